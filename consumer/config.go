@@ -1,0 +1,86 @@
+package consumer
+
+import (
+	"time"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// Default names of the message contract. A site may change every one of them
+// through configuration; deploy/ uses these values and a test checks that.
+const (
+	DefaultInputStream    = "FHIR_INPUT"
+	DefaultInputSubjects  = "fhir.input.>" // e.g. fhir.input.lab, fhir.input.device, fhir.input.adt
+	DefaultOutputStream   = "VENTDERIVE"
+	DefaultDurable        = "ventderive"
+	DefaultObservationSub = "ventderive.observation"
+	DefaultProvenanceSub  = "ventderive.provenance"
+	DefaultDeadLetterSub  = "ventderive.deadletter"
+	DefaultOutputSubjects = "ventderive.>"
+)
+
+// Header names the service sets on what it publishes.
+const (
+	HeaderContentType = "Content-Type" // application/fhir+json
+	HeaderKind        = "Ventderive-Kind"
+	HeaderStatus      = "Ventderive-Status"
+	HeaderAlgorithm   = "Ventderive-Algorithm"
+	HeaderReason      = "Ventderive-Reason"     // dead letters: the reason code
+	HeaderDetail      = "Ventderive-Detail"     // dead letters: the field or entry at fault, no payload values
+	HeaderStreamSeq   = "Ventderive-Stream-Seq" // dead letters: the input stream sequence
+	FHIRContentType   = "application/fhir+json"
+)
+
+// Config is the pipeline's configuration. cmd fills it from flags and
+// environment; zero values mean the defaults of DefaultConfig.
+type Config struct {
+	InputStream    string
+	Durable        string
+	ObservationSub string
+	ProvenanceSub  string
+	DeadLetterSub  string
+
+	// Window is the pairing window around a blood gas.
+	Window fhirmap.Window
+	// Horizon bounds how far from a patient-level fact (height, sex, ...)
+	// blood gases are recomputed when it arrives.
+	Horizon time.Duration
+
+	// AckWait is the consumer's ack wait: the failover time for a dead replica.
+	AckWait time.Duration
+	// MaxAckPending bounds in-flight messages per consumer.
+	MaxAckPending int
+	// Fetch is how many messages one pull asks for.
+	Fetch int
+	// RetryBase and RetryMax bound the NakWithDelay back-off for transient failures.
+	RetryBase time.Duration
+	RetryMax  time.Duration
+	// MaxDeliver bounds redeliveries; -1 is unlimited (transient store
+	// outages must not turn into lost input).
+	MaxDeliver int
+	// RelayInterval is how often the outbox relay polls when idle.
+	RelayInterval time.Duration
+	// StallAfter is how long the watchdog tolerates pending messages with no progress.
+	StallAfter time.Duration
+}
+
+// DefaultConfig returns the defaults documented in the README.
+func DefaultConfig() Config {
+	return Config{
+		InputStream:    DefaultInputStream,
+		Durable:        DefaultDurable,
+		ObservationSub: DefaultObservationSub,
+		ProvenanceSub:  DefaultProvenanceSub,
+		DeadLetterSub:  DefaultDeadLetterSub,
+		Window:         fhirmap.Window{Before: 30 * time.Minute, After: 10 * time.Minute},
+		Horizon:        14 * 24 * time.Hour,
+		AckWait:        30 * time.Second,
+		MaxAckPending:  256,
+		Fetch:          64,
+		RetryBase:      500 * time.Millisecond,
+		RetryMax:       30 * time.Second,
+		MaxDeliver:     -1,
+		RelayInterval:  200 * time.Millisecond,
+		StallAfter:     2 * time.Minute,
+	}
+}

@@ -1,0 +1,132 @@
+package consumer
+
+import (
+	"context"
+	"errors"
+	"time"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// Store is the provenance store the pipeline needs. The PostgreSQL
+// implementation lives in consumer/postgres; tests may use a fake.
+type Store interface {
+	// Ingest records one input message and what it changes, in one
+	// transaction: it claims the inbox key, takes the per-patient locks,
+	// stores the facts, loads the snapshot of every affected patient, calls
+	// plan once per patient with it, and writes the returned changes
+	// (derivations, refusals, outbox rows). It returns ErrDuplicate, having
+	// written nothing, when the inbox already holds msg.InboxKey.
+	Ingest(ctx context.Context, msg Message, plan PlanFunc) (IngestResult, error)
+
+	// DeadLetter records a poison message. Idempotent on msg.InboxKey.
+	DeadLetter(ctx context.Context, msg Message, reason, detail string) error
+
+	// RelayOutbox claims up to limit unpublished outbox rows (FOR UPDATE SKIP
+	// LOCKED, in their insertion order), calls publish with them, and marks as
+	// published those whose sequence numbers publish returns, all in one
+	// transaction. It returns how many it marked.
+	RelayOutbox(ctx context.Context, limit int, publish func(context.Context, []OutboxMessage) (published []int64, err error)) (int, error)
+
+	// OutboxBacklog counts unpublished outbox rows.
+	OutboxBacklog(ctx context.Context) (int64, error)
+
+	// Ping reports whether the store is reachable.
+	Ping(ctx context.Context) error
+}
+
+// ErrDuplicate reports that a message was seen before; the caller acks it.
+var ErrDuplicate = errors.New("duplicate message")
+
+// ErrTransient marks store errors worth retrying (connection lost, serialization
+// failure, deadlock, outcome of COMMIT unknown). The store wraps such errors
+// with it; anything else is treated as permanent for that message.
+var ErrTransient = errors.New("transient store error")
+
+// Message is one input message as received from the bus, decoded.
+type Message struct {
+	// InboxKey identifies the message for idempotency: the hex SHA-256 of the
+	// payload bytes.
+	InboxKey string
+	Subject  string
+	// StreamSeq is the JetStream stream sequence, 0 for offline use.
+	StreamSeq uint64
+	Received  time.Time
+	Raw       []byte // the payload as received
+	// Resources are the FHIR resources the message held, each with its raw
+	// JSON, and Facts what they normalised to. Empty for a dead letter.
+	Resources []fhirmap.Resource
+	Facts     []fhirmap.Fact
+	// Window and Horizon tell the store which stored facts a new fact can
+	// affect: blood gases within Window of a ventilator fact, every blood gas
+	// within Horizon of a patient-level fact (sex, birth date, height, weight).
+	Window  fhirmap.Window
+	Horizon time.Duration
+}
+
+// Snapshot is what the store hands to PlanFunc for one patient, inside the
+// ingest transaction and under that patient's lock.
+type Snapshot struct {
+	Patient string
+	// Facts holds every stored version of every fact of the patient that
+	// lies in the pairing window of an affected blood gas, plus all of the
+	// patient's patient-level facts. The new message's facts are included.
+	Facts []fhirmap.Fact
+	// Affected are the Keys of the blood-gas facts (QPCO2 of any specimen)
+	// whose derivations must be recomputed.
+	Affected []string
+	// Current holds, for the affected blood gases, the latest stored version
+	// of each derivation and refusal (by Derivation.Key / Refusal.Key).
+	Current []Stored
+}
+
+// Stored is the latest stored state of one derivation key.
+type Stored struct {
+	Key     string
+	Kind    string
+	Version int    // 1 for the first version
+	Digest  string // Derivation.Digest or Refusal.Digest
+	Refused bool   // the latest version is a refusal, not a value
+	Status  fhirmap.Status
+	Value   float64
+}
+
+// PlanFunc works out, from one patient's snapshot, what to record and
+// publish. It must be a pure function of the snapshot: the store may call it
+// again if the transaction is retried.
+type PlanFunc func(Snapshot) (Changes, error)
+
+// Changes is what one message changes for one patient.
+type Changes struct {
+	// Derivations are new versions to record, each with the version
+	// number it gets (Stored.Version+1, or 1) in Versions at the same index.
+	Derivations []fhirmap.Derivation
+	Versions    []int
+	// Refusals are new refusals to record (a refusal replaces a derivation
+	// key's latest state, and vice versa).
+	Refusals []fhirmap.Refusal
+	// Outbox holds the messages to publish after commit.
+	Outbox []OutboxMessage
+}
+
+// OutboxMessage is one message waiting to be published.
+type OutboxMessage struct {
+	Seq     int64 // assigned by the store
+	Subject string
+	MsgID   string // Nats-Msg-Id: deterministic from the derivation's key and digest
+	Header  map[string]string
+	Payload []byte
+}
+
+// IngestResult says what an ingest did.
+type IngestResult struct {
+	Facts       int // facts stored (new keys or new versions)
+	Derivations int // new derivation versions
+	Retractions int // new versions with status entered-in-error
+	Refusals    int
+	Outbox      int
+	// RefusalReasons counts new refusals by reason code, DerivedKinds new
+	// derivation versions by kind, for metrics.
+	RefusalReasons map[string]int
+	DerivedKinds   map[string]int
+}
