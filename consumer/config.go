@@ -1,6 +1,7 @@
 package consumer
 
 import (
+	"github.com/nats-io/nats.go/jetstream"
 	"time"
 
 	"github.com/ventderive/ventderive/fhirmap"
@@ -82,5 +83,62 @@ func DefaultConfig() Config {
 		MaxDeliver:     -1,
 		RelayInterval:  200 * time.Millisecond,
 		StallAfter:     2 * time.Minute,
+	}
+}
+
+// InputStreamConfig is the input stream the service expects (deploy/ holds
+// the same definition for the deploy identity to create). The service does
+// not create it in production; the demo and tests do.
+func InputStreamConfig(name string) jetstream.StreamConfig {
+	if name == "" {
+		name = DefaultInputStream
+	}
+	return jetstream.StreamConfig{
+		Name:     name,
+		Subjects: []string{DefaultInputSubjects},
+		Storage:  jetstream.FileStorage,
+		// Limits retention: inputs stay for replay and reconciliation after
+		// the service acknowledged them; PostgreSQL is the source of truth.
+		Retention: jetstream.LimitsPolicy,
+		MaxAge:    7 * 24 * time.Hour,
+		// A gateway that retries a publish within this window is deduplicated
+		// by Nats-Msg-Id; later repeats are caught by the inbox.
+		Duplicates: 10 * time.Minute,
+		MaxMsgSize: 1 << 20,
+		Discard:    jetstream.DiscardOld,
+	}
+}
+
+// OutputStreamConfig is the stream for derived Observations, Provenance and
+// dead letters.
+func OutputStreamConfig() jetstream.StreamConfig {
+	return jetstream.StreamConfig{
+		Name:      DefaultOutputStream,
+		Subjects:  []string{DefaultOutputSubjects},
+		Storage:   jetstream.FileStorage,
+		Retention: jetstream.LimitsPolicy,
+		MaxAge:    30 * 24 * time.Hour,
+		// The outbox relay republishes with the same Nats-Msg-Id after a
+		// crash; an hour covers any restart. The outbox's published mark
+		// covers the rest.
+		Duplicates: time.Hour,
+		MaxMsgSize: 1 << 20,
+		Discard:    jetstream.DiscardOld,
+	}
+}
+
+// ConsumerConfig is the durable pull consumer the service creates or
+// updates at start (and recreates if it is deleted).
+func ConsumerConfig(c Config) jetstream.ConsumerConfig {
+	return jetstream.ConsumerConfig{
+		Durable:       c.Durable,
+		Description:   "ventderive: derive CO2-elimination physiology from blood gases and ventilator data",
+		DeliverPolicy: jetstream.DeliverAllPolicy,
+		AckPolicy:     jetstream.AckExplicitPolicy,
+		AckWait:       c.AckWait,
+		MaxDeliver:    c.MaxDeliver,
+		MaxAckPending: c.MaxAckPending,
+		FilterSubject: DefaultInputSubjects,
+		ReplayPolicy:  jetstream.ReplayInstantPolicy,
 	}
 }

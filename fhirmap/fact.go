@@ -33,6 +33,7 @@ const (
 	QBodyTemp    Quantity = "body-temp"     // Cel
 	QSex         Quantity = "sex"           // coded: Fact.Text is "male" or "female" (FHIR administrative-gender)
 	QBirthDate   Quantity = "birth-date"    // Fact.Text is the FHIR date as sent (YYYY, YYYY-MM or YYYY-MM-DD)
+	QPECO2       Quantity = "peco2"         // mm[Hg]; mixed-expired CO2 partial pressure (volumetric capnography, site alias only)
 )
 
 // Origin tells a measured value from a ventilator setting. Measured values
