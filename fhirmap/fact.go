@@ -152,6 +152,10 @@ type Derivation struct {
 	Status    Status // final, preliminary, amended, corrected, entered-in-error
 	Algorithm string // algorithm version of the service, e.g. "ventderive-derive/1"
 	Digest    string // hex SHA-256 over kind, value, unit, inputs (keys and digests) and status
+	// Retracted is the reason code when Status is entered-in-error: the
+	// service withdrew a value it had published (its blood gas was entered in
+	// error, or an input it needed was withdrawn). Empty otherwise.
+	Retracted string
 }
 
 // Refusal records that a derivation of Kind was not made for a blood gas,
