@@ -1,0 +1,233 @@
+package physio
+
+const (
+	methodEnghoff          = "Bohr-Enghoff"
+	methodEnghoffVCO2      = "Bohr-Enghoff, PECO2 from VCO2 and expired minute volume"
+	methodMixedExpired     = "mixed-expired PCO2 from VCO2 and expired minute volume"
+	methodSiddiki          = "estimated dead-space fraction (Siddiki 2010), VCO2 from resting energy expenditure"
+	methodDeadSpaceVolume  = "dead-space volume VD/VT x VT"
+	methodVAFromDeadSpace  = "alveolar ventilation VE x (1 - VD/VT)"
+	assumeMixedExpired     = "PECO2 is mixed-expired PCO2 (volumetric capnography, Douglas bag or calorimetry), not end-tidal"
+	assumeSameSteadyState  = "arterial blood and expired gas taken in the same steady state"
+	assumeExpiredVE        = "VE is expired minute volume at BTPS; circuit compressible volume not subtracted (it raises VE and so VD/VT)"
+	assumeVentilatorVE     = "VE is ventilator rate x expired tidal volume, as in the published method"
+	assumeVDVTFromBohr     = "VD/VT from a Bohr-Enghoff derivation in the same steady state"
+	assumeVTExpiredVolumes = "VT is expired tidal volume at BTPS"
+)
+
+var kDefSiddiki = constDef{name: "K", unit: "mm[Hg].L/mL",
+	source: "as published by Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 (0.86; the ideal gas law gives 0.863 at 37 Cel)"}
+
+// Published readings of the physiologic dead-space fraction.
+var (
+	interpVDVTNormal = Interpretation{Code: "N",
+		Text:   "at or below about 0.3, the value in healthy and anaesthetised adults",
+		Source: "Nunn & Hill, J Appl Physiol 1960"}
+	interpVDVTHigh = Interpretation{Code: "H",
+		Text:   "above about 0.3, the value in healthy and anaesthetised adults",
+		Source: "Nunn & Hill, J Appl Physiol 1960"}
+	interpVDVTARDS = Interpretation{Code: "H",
+		Text:   "above 0.3 (healthy adults) and at or above 0.58, the mean at ARDS onset; 0.63 in non-survivors vs 0.54 in survivors, odds of death x1.45 per 0.05 rise",
+		Source: "Nunn & Hill, J Appl Physiol 1960; Nuckton et al., NEJM 2002;346:1281-6"}
+)
+
+// Thresholds of the dead-space fraction readings.
+const (
+	vdvtHealthy   = 0.30 // Nunn & Hill 1960
+	vdvtARDSOnset = 0.58 // Nuckton 2002, mean at onset
+)
+
+func interpretVDVT(v float64) Interpretation {
+	switch {
+	case v <= vdvtHealthy:
+		return interpVDVTNormal
+	case v < vdvtARDSOnset:
+		return interpVDVTHigh
+	}
+	return interpVDVTARDS
+}
+
+// DeadSpaceEnghoff returns the physiologic dead-space fraction VD/VT
+// (UCUM 1) by the Enghoff modification of the Bohr equation:
+// VD/VT = (PaCO2 - PECO2) / PaCO2, from arterial PCO2 paco2 and
+// mixed-expired PCO2 peco2, both in mm[Hg]. The Interpretation reads the
+// value against Nunn & Hill (about 0.3 in health) and Nuckton (ARDS).
+//
+// It refuses paco2 outside PaCO2Range, peco2 outside PECO2Range, and a
+// peco2 not below paco2 (ErrOutOfMeaning: mixed-expired gas is diluted
+// alveolar gas).
+func DeadSpaceEnghoff(paco2, peco2 MmHg) (Result, error) {
+	if err := PaCO2Range.Check("PaCO2", float64(paco2)); err != nil {
+		return Result{}, err
+	}
+	if err := PECO2Range.Check("PECO2", float64(peco2)); err != nil {
+		return Result{}, err
+	}
+	if peco2 >= paco2 {
+		return Result{}, meaningError("PECO2", float64(peco2), UnitMmHg, "mixed-expired PCO2 must be below PaCO2")
+	}
+	v := float64(paco2-peco2) / float64(paco2)
+	r := Result{Value: v, Unit: UnitOne, Method: methodEnghoff, MethodVersion: MethodVersion,
+		Interpretation: interpretVDVT(v)}
+	r.assume(assumeMixedExpired)
+	r.assume(assumeSameSteadyState)
+	r.assume(assumeSteadyState)
+	r.basis("VD/VT = (PaCO2 - PECO2) / PaCO2 = (%.1f mm[Hg] - %.1f mm[Hg]) / %.1f mm[Hg] = %.4f",
+		float64(paco2), float64(peco2), float64(paco2), v)
+	return r, nil
+}
+
+// MixedExpiredPCO2 returns the mixed-expired PCO2, in mm[Hg], implied by
+// CO2 production vco2 (mL/min, STPD) leaving in expired minute volume ve
+// (L/min, BTPS): PECO2 = K(T) x VCO2 / VE. bodyTemp 0 means 37 Cel
+// (recorded).
+//
+// It refuses vco2 outside VCO2Range, ve outside MinuteVolumeRange, bodyTemp
+// outside BodyTempRange and a computed PECO2 outside PECO2Range.
+func MixedExpiredPCO2(vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) (Result, error) {
+	r := Result{Unit: UnitMmHg, Method: methodMixedExpired, MethodVersion: MethodVersion}
+	if err := VCO2Range.Check("VCO2", float64(vco2)); err != nil {
+		return Result{}, err
+	}
+	if err := MinuteVolumeRange.Check("VE", float64(ve)); err != nil {
+		return Result{}, err
+	}
+	k, t, err := r.alveolarK(bodyTemp, false)
+	if err != nil {
+		return Result{}, err
+	}
+	v := k * float64(vco2) / float64(ve)
+	if err := checkComputed("computed PECO2", v, PECO2Range); err != nil {
+		return Result{}, err
+	}
+	r.Value = v
+	r.assume(assumeSteadyState)
+	r.assume(assumeExpiredVE)
+	r.basis("PECO2 = K(%.1f Cel) x VCO2 / VE = %.4g x %.1f mL/min / %.2f L/min = %.2f mm[Hg]",
+		float64(t), k, float64(vco2), float64(ve), v)
+	return r, nil
+}
+
+// DeadSpaceFromVCO2 returns the physiologic dead-space fraction VD/VT (UCUM
+// 1) from measured CO2 production: the Enghoff equation with the
+// mixed-expired PCO2 implied by VCO2 and expired minute volume,
+// VD/VT = 1 - K(T) x VCO2 / (VE x PaCO2), K from AlveolarConstant.
+// paco2 in mm[Hg], vco2 in mL/min (STPD), ve expired minute volume in L/min
+// (BTPS); bodyTemp 0 means 37 Cel (recorded).
+//
+// It refuses inputs outside PaCO2Range, VCO2Range, MinuteVolumeRange and
+// BodyTempRange, and a result not strictly between 0 and 1
+// (ErrOutOfMeaning: the inputs are inconsistent).
+func DeadSpaceFromVCO2(paco2 MmHg, vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) (Result, error) {
+	r := Result{Unit: UnitOne, Method: methodEnghoffVCO2, MethodVersion: MethodVersion}
+	if err := PaCO2Range.Check("PaCO2", float64(paco2)); err != nil {
+		return Result{}, err
+	}
+	if err := VCO2Range.Check("VCO2", float64(vco2)); err != nil {
+		return Result{}, err
+	}
+	if err := MinuteVolumeRange.Check("VE", float64(ve)); err != nil {
+		return Result{}, err
+	}
+	k, t, err := r.alveolarK(bodyTemp, false)
+	if err != nil {
+		return Result{}, err
+	}
+	v := 1 - k*float64(vco2)/(float64(ve)*float64(paco2))
+	if err := checkFraction("computed VD/VT", v); err != nil {
+		return Result{}, err
+	}
+	r.Value = v
+	r.Interpretation = interpretVDVT(v)
+	r.assume(assumeSteadyState)
+	r.assume(assumeExpiredVE)
+	r.assume(assumeGasStates)
+	r.basis("VD/VT = 1 - K(%.1f Cel) x VCO2 / (VE x PaCO2) = 1 - %.4g x %.1f mL/min / (%.2f L/min x %.1f mm[Hg]) = %.4f",
+		float64(t), k, float64(vco2), float64(ve), float64(paco2), v)
+	return r, nil
+}
+
+// DeadSpaceEstimated returns an estimated physiologic dead-space fraction
+// VD/VT (UCUM 1) when CO2 production is not measured, by the method of
+// Siddiki et al. (Crit Care 2010): VD/VT = 1 - 0.86 x VCO2est / (VE x
+// PaCO2), with VCO2est from EstimateVCO2(e) (resting energy expenditure and
+// the Weir equation). It uses K = 0.86 as published, not the
+// temperature-dependent K, and records it. paco2 in mm[Hg]; ve is
+// ventilator rate x expired tidal volume, in L/min. Assumptions label the
+// value estimated.
+//
+// It refuses what EstimateVCO2 refuses, paco2 outside PaCO2Range, ve
+// outside MinuteVolumeRange, and a result not strictly between 0 and 1.
+func DeadSpaceEstimated(paco2 MmHg, ve LPerMin, e EnergyInput) (Result, error) {
+	if err := PaCO2Range.Check("PaCO2", float64(paco2)); err != nil {
+		return Result{}, err
+	}
+	if err := MinuteVolumeRange.Check("VE", float64(ve)); err != nil {
+		return Result{}, err
+	}
+	c, err := checkEnergy(e)
+	if err != nil {
+		return Result{}, err
+	}
+	const k = 0.86
+	r := Result{Unit: UnitOne, Method: methodSiddiki, MethodVersion: MethodVersion}
+	r.addConst(&kDefSiddiki, k)
+	ree, rq, vco2, err := r.vco2Est(c, e)
+	if err != nil {
+		return Result{}, err
+	}
+	v := 1 - k*vco2/(float64(ve)*float64(paco2))
+	if err := checkFraction("computed VD/VT", v); err != nil {
+		return Result{}, err
+	}
+	r.Value = v
+	r.Interpretation = interpretVDVT(v)
+	r.assume(assumeSteadyState)
+	r.assume(assumeVentilatorVE)
+	r.basis(c.basisDeadSpace, c.c0, c.w, float64(e.Weight), c.h, float64(e.Height), c.a, float64(e.Age), ree,
+		ree, weirDay, weirO2, rq, weirCO2, vco2,
+		k, vco2, float64(ve), float64(paco2), v)
+	return r, nil
+}
+
+// DeadSpaceVolume returns the physiologic dead-space volume per breath, in
+// mL: VD = VD/VT x VT, from a dead-space fraction vdvt (UCUM 1) and a tidal
+// volume vt in mL (expired, BTPS).
+//
+// It refuses vdvt not strictly between 0 and 1 (ErrOutOfMeaning) and vt
+// outside TidalVolumeRange.
+func DeadSpaceVolume(vdvt Fraction, vt ML) (Result, error) {
+	if err := checkFraction("VD/VT", float64(vdvt)); err != nil {
+		return Result{}, err
+	}
+	if err := TidalVolumeRange.Check("VT", float64(vt)); err != nil {
+		return Result{}, err
+	}
+	v := float64(vdvt) * float64(vt)
+	r := Result{Value: v, Unit: UnitML, Method: methodDeadSpaceVolume, MethodVersion: MethodVersion}
+	r.assume(assumeVDVTFromBohr)
+	r.assume(assumeVTExpiredVolumes)
+	r.basis("VD = VD/VT x VT = %.4f x %.0f mL = %.1f mL", float64(vdvt), float64(vt), v)
+	return r, nil
+}
+
+// AlveolarVentilationFromDeadSpace returns the alveolar ventilation, in
+// L/min (BTPS): VA = VE x (1 - VD/VT), from expired minute volume ve
+// (L/min) and a dead-space fraction vdvt (UCUM 1).
+//
+// It refuses ve outside MinuteVolumeRange and vdvt not strictly between 0
+// and 1 (ErrOutOfMeaning). The result is positive by construction.
+func AlveolarVentilationFromDeadSpace(ve LPerMin, vdvt Fraction) (Result, error) {
+	if err := MinuteVolumeRange.Check("VE", float64(ve)); err != nil {
+		return Result{}, err
+	}
+	if err := checkFraction("VD/VT", float64(vdvt)); err != nil {
+		return Result{}, err
+	}
+	v := float64(ve) * (1 - float64(vdvt))
+	r := Result{Value: v, Unit: UnitLPerMin, Method: methodVAFromDeadSpace, MethodVersion: MethodVersion}
+	r.assume(assumeVDVTFromBohr)
+	r.assume(assumeExpiredVE)
+	r.basis("VA = VE x (1 - VD/VT) = %.2f L/min x (1 - %.4f) = %.3f L/min", float64(ve), float64(vdvt), v)
+	return r, nil
+}

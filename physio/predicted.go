@@ -1,0 +1,206 @@
+package physio
+
+var (
+	pbwInterceptMale   = constDef{name: "PBW intercept, men", unit: UnitKg, source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
+	pbwInterceptFemale = constDef{name: "PBW intercept, women", unit: UnitKg, source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
+	pbwSlope           = constDef{name: "PBW slope", unit: "kg/cm", source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
+	pbwRefHeight       = constDef{name: "PBW reference height", unit: UnitCm, source: "ARDS Network, NEJM 2000;342:1301-8 [published] (60 in)"}
+	anatomicPerKg      = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]"}
+	discrepancyDef     = constDef{name: "material PaCO2 difference", unit: UnitMmHg,
+		source: "half-width of the healthy 35-45 mm[Hg] range [derived from published textbooks; common practice]"}
+)
+
+const (
+	pbwSlopeKgPerCm = 0.91
+	pbwRefHeightCm  = 152.4
+	pbwMaleKg       = 50.0
+	pbwFemaleKg     = 45.5
+	anatomicMLPerKg = 2.2
+
+	// DiscrepancyThreshold is the measured-minus-predicted PaCO2 difference,
+	// in mm[Hg], above which PaCO2Discrepancy calls the difference material:
+	// half the width of the healthy 35-45 mm[Hg] range, i.e. the spread of
+	// PaCO2 between healthy people [derived from published textbooks], and
+	// twice the standard deviation (2.5 mm[Hg]) of the arterial to end-tidal
+	// gradient in anaesthetised adults [published: Nunn & Hill 1960]; a
+	// smaller difference is within the noise of the inputs [common practice].
+	DiscrepancyThreshold MmHg = 5
+
+	methodPBW         = "ARDS Network predicted body weight (cm form)"
+	methodPredicted   = "alveolar ventilation equation, predicted PaCO2"
+	methodDiscrepancy = "measured minus predicted PaCO2"
+
+	assumePBWAdult     = "height is the measured adult standing height"
+	assumeAnatomicPBW  = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed (Radford 1955; a poor predictor for an individual, Brewer & Orr)"
+	assumeNoAlveolarVD = "no alveolar dead space and no shunt: a measured PaCO2 above the predicted one points to them"
+	assumeVCO2Estimate = "estimated: VCO2 not measured"
+	assumePredictedVT  = "VT is expired tidal volume and RR the total breath rate"
+	assumeDiscrepancy  = "predicted PaCO2 from the same steady state as the measured one, with the VCO2 and dead space it assumed"
+)
+
+// PredictedBodyWeight returns the ARDS Network predicted body weight, in
+// kg, from sex and height in cm: men 50 + 0.91 x (H - 152.4), women 45.5 +
+// 0.91 x (H - 152.4) (ARDS Network, NEJM 2000;342:1301-8). The inch form
+// (2.3 kg per inch over 60 in) differs by about 0.1 kg; the cm form is used.
+//
+// It refuses an unknown sex (ErrNotGiven / ErrOutOfMeaning) and a height
+// outside HeightRange.
+func PredictedBodyWeight(sex Sex, height Cm) (Result, error) {
+	if err := checkSex(sex); err != nil {
+		return Result{}, err
+	}
+	if err := HeightRange.Check("height", float64(height)); err != nil {
+		return Result{}, err
+	}
+	r := Result{Unit: UnitKg, Method: methodPBW, MethodVersion: MethodVersion}
+	base, def, format := pbwMaleKg, &pbwInterceptMale, "PBW (male) = %g kg + %g kg/cm x (%.1f cm - %g cm) = %.3f kg"
+	if sex == Female {
+		base, def, format = pbwFemaleKg, &pbwInterceptFemale, "PBW (female) = %g kg + %g kg/cm x (%.1f cm - %g cm) = %.3f kg"
+	}
+	v := base + pbwSlopeKgPerCm*(float64(height)-pbwRefHeightCm)
+	r.Value = v
+	r.addConst(def, base)
+	r.addConst(&pbwSlope, pbwSlopeKgPerCm)
+	r.addConst(&pbwRefHeight, pbwRefHeightCm)
+	r.assume(assumePBWAdult)
+	r.basis(format, base, pbwSlopeKgPerCm, float64(height), pbwRefHeightCm, v)
+	return r, nil
+}
+
+// PredictedInput holds the inputs of PredictedPaCO2.
+type PredictedInput struct {
+	VCO2          MLPerMin // CO2 production, mL/min STPD, VCO2Range
+	VCO2Estimated bool     // true when VCO2 is an estimate (recorded as an assumption)
+	VT            ML       // expired tidal volume, mL, TidalVolumeRange
+	RR            PerMin   // total breath rate, /min, RespRateRange
+	// AnatomicVD is the anatomic dead space, mL (AnatomicDeadSpaceRange);
+	// 0 means 2.2 mL/kg of PBW (Radford 1955), recorded as an assumption.
+	AnatomicVD ML
+	PBW        Kg // predicted body weight, kg (PBWRange); needed only when AnatomicVD is 0
+	// ApparatusVD is the dead space of the apparatus beyond the Y-piece (HME,
+	// closed suction, extensions), mL (ApparatusDeadSpaceRange). It must be
+	// declared: ApparatusVDKnown false is refused with ErrNotGiven, so that a
+	// missing site configuration is never read as zero.
+	ApparatusVD      ML
+	ApparatusVDKnown bool
+	BodyTemp         Celsius // 0 means 37 Cel (recorded)
+}
+
+// PredictedPaCO2 returns the PaCO2, in mm[Hg], that the alveolar
+// ventilation equation predicts when all dead space is anatomic plus
+// apparatus: VA = (VT - VDanat - VDapp) x RR / 1000 (L/min), PaCO2 = K(T) x
+// VCO2 / VA. A measured PaCO2 above it points to alveolar dead space (see
+// PaCO2Discrepancy).
+//
+// It refuses, in this order: VCO2, VT and RR outside their ranges; an
+// undeclared apparatus dead space (ErrNotGiven) or one outside
+// ApparatusDeadSpaceRange; AnatomicVD outside AnatomicDeadSpaceRange (or,
+// when it is 0, PBW outside PBWRange); bodyTemp outside BodyTempRange; a VT
+// not above the summed dead space (ErrOutOfMeaning); and a computed PaCO2
+// outside PaCO2Range.
+func PredictedPaCO2(p PredictedInput) (Result, error) {
+	if err := VCO2Range.Check("VCO2", float64(p.VCO2)); err != nil {
+		return Result{}, err
+	}
+	if err := TidalVolumeRange.Check("VT", float64(p.VT)); err != nil {
+		return Result{}, err
+	}
+	if err := RespRateRange.Check("RR", float64(p.RR)); err != nil {
+		return Result{}, err
+	}
+	if !p.ApparatusVDKnown {
+		return Result{}, &InputError{Input: "apparatus dead space", Value: float64(p.ApparatusVD), Unit: UnitML, Kind: ErrNotGiven,
+			Detail: "must be configured for the circuit, 0 when there is none; never assumed zero"}
+	}
+	if err := ApparatusDeadSpaceRange.Check("apparatus dead space", float64(p.ApparatusVD)); err != nil {
+		return Result{}, err
+	}
+	r := Result{Unit: UnitMmHg, Method: methodPredicted, MethodVersion: MethodVersion}
+	anat := float64(p.AnatomicVD)
+	defaultAnat := anat == 0
+	if defaultAnat {
+		if err := PBWRange.Check("PBW", float64(p.PBW)); err != nil {
+			return Result{}, err
+		}
+		anat = anatomicMLPerKg * float64(p.PBW)
+		r.addConst(&anatomicPerKg, anatomicMLPerKg)
+		r.assume(assumeAnatomicPBW)
+	} else if err := AnatomicDeadSpaceRange.Check("anatomic dead space", anat); err != nil {
+		return Result{}, err
+	}
+	k, t, err := r.alveolarK(p.BodyTemp, false)
+	if err != nil {
+		return Result{}, err
+	}
+	effective := float64(p.VT) - anat - float64(p.ApparatusVD)
+	if effective <= 0 {
+		return Result{}, meaningError("VT - dead space", effective, UnitML,
+			"tidal volume must exceed anatomic plus apparatus dead space")
+	}
+	va := effective * float64(p.RR) / 1000
+	v := k * float64(p.VCO2) / va
+	if err := checkComputed("predicted PaCO2", v, PaCO2Range); err != nil {
+		return Result{}, err
+	}
+	r.Value = v
+	r.assume(assumeSteadyState)
+	r.assume(assumeNoAlveolarVD)
+	r.assume(assumePredictedVT)
+	if p.VCO2Estimated {
+		r.assume(assumeVCO2Estimate)
+	}
+	if defaultAnat {
+		r.basis("VDanat = 2.2 mL/kg x %.2f kg = %.1f mL; VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f Cel) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mm[Hg]",
+			float64(p.PBW), anat, float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
+			float64(t), k, float64(p.VCO2), va, v)
+	} else {
+		r.basis("VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f Cel) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mm[Hg]",
+			float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
+			float64(t), k, float64(p.VCO2), va, v)
+	}
+	return r, nil
+}
+
+// Readings of the measured-minus-predicted difference.
+var (
+	interpDiscrepancyHigh = Interpretation{Code: "H",
+		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than assumed, or an input error (tidal volume, rate, apparatus dead space, units)",
+		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+	interpDiscrepancyLow = Interpretation{Code: "L",
+		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error",
+		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+	interpDiscrepancyNone = Interpretation{Code: "N",
+		Text:   "measured PaCO2 within 5 mm[Hg] of predicted: consistent with the assumed dead space and CO2 production",
+		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+)
+
+// PaCO2Discrepancy returns measured minus predicted PaCO2, in mm[Hg]. Its
+// Interpretation is H when the difference exceeds DiscrepancyThreshold
+// (naming the likely causes: more dead space than assumed, higher CO2
+// production than assumed, or an input error), L when it is below
+// -DiscrepancyThreshold, N otherwise.
+//
+// It refuses measured outside PaCO2Range and predicted outside PaCO2Range.
+func PaCO2Discrepancy(measured, predicted MmHg) (Result, error) {
+	if err := PaCO2Range.Check("PaCO2", float64(measured)); err != nil {
+		return Result{}, err
+	}
+	if err := PaCO2Range.Check("predicted PaCO2", float64(predicted)); err != nil {
+		return Result{}, err
+	}
+	v := float64(measured - predicted)
+	r := Result{Value: v, Unit: UnitMmHg, Method: methodDiscrepancy, MethodVersion: MethodVersion}
+	switch th := float64(DiscrepancyThreshold); {
+	case v > th:
+		r.Interpretation = interpDiscrepancyHigh
+	case v < -th:
+		r.Interpretation = interpDiscrepancyLow
+	default:
+		r.Interpretation = interpDiscrepancyNone
+	}
+	r.addConst(&discrepancyDef, float64(DiscrepancyThreshold))
+	r.assume(assumeDiscrepancy)
+	r.basis("PaCO2 measured - predicted = %.1f mm[Hg] - %.2f mm[Hg] = %.2f mm[Hg] (material beyond +/- %g mm[Hg])",
+		float64(measured), float64(predicted), v, float64(DiscrepancyThreshold))
+	return r, nil
+}

@@ -1,0 +1,147 @@
+package physio
+
+// Advisory bounds of the ventilation-for-target answers. An answer outside
+// them is still returned, never clamped, with a Flag.
+const (
+	// MaxVTPerKgPBW: tidal volume above 8 mL/kg PBW, the upper limit of the
+	// ARDS Network protocol (NEJM 2000;342:1301-8) [memory: 6 mL/kg target,
+	// raised to 7-8 mL/kg only for severe dyspnoea].
+	MaxVTPerKgPBW = 8.0
+	// MinVTPerKgPBW: tidal volume below 4 mL/kg PBW, the lowest the ARDS
+	// Network protocol allows [memory: protocol card, 4 mL/kg when plateau
+	// pressure stays above 30 cm[H2O]]; below it VT approaches anatomic dead
+	// space (2.2 mL/kg, Radford 1955), so ventilation becomes ineffective.
+	MinVTPerKgPBW = 4.0
+	// MaxRate: breath rate above 35 /min, the ARDS Network protocol maximum
+	// [memory: protocol card, rate not above 35 /min]; gas trapping and
+	// intrinsic PEEP become likely.
+	MaxRate PerMin = 35
+	// MinRate: breath rate below 8 /min [common practice: adult backup rates
+	// are rarely set lower; below it each breath cycle lasts more than 7.5 s,
+	// a long gap without a mandatory breath if the patient stops triggering].
+	MinRate PerMin = 8
+
+	flagVTHigh   = "tidal volume above 8 mL/kg predicted body weight, the ARDS Network upper limit"
+	flagVTLow    = "tidal volume below 4 mL/kg predicted body weight, the ARDS Network lower limit; close to anatomic dead space"
+	flagRateHigh = "rate above 35 /min, the ARDS Network maximum; gas trapping and intrinsic PEEP become likely"
+	flagRateLow  = "rate below 8 /min [common practice lower bound]; long pauses without mandatory breaths"
+
+	assumeAdvisory        = "advisory only, not an order: the value that would bring PaCO2 to the target if CO2 production stays constant; verify at the bedside"
+	assumeFixedDeadSpace  = "dead space per breath stays constant when the rate changes"
+	assumeFixedDeadSpaceV = "dead space per breath (VD) stays constant when the tidal volume changes"
+	assumeFixedRate       = "breath rate unchanged"
+	assumeFixedVT         = "tidal volume unchanged"
+
+	methodRateForTarget = "alveolar ventilation equation, rate for a target PaCO2 at fixed tidal volume"
+	methodVTForTarget   = "alveolar ventilation equation, tidal volume for a target PaCO2 at fixed rate"
+)
+
+var (
+	maxVTDef   = constDef{name: "advisory upper tidal volume", unit: "mL/kg", source: "ARDS Network protocol, NEJM 2000;342:1301-8 [memory]"}
+	minVTDef   = constDef{name: "advisory lower tidal volume", unit: "mL/kg", source: "ARDS Network protocol [memory]"}
+	maxRateDef = constDef{name: "advisory upper rate", unit: UnitPerMin, source: "ARDS Network protocol [memory]"}
+	minRateDef = constDef{name: "advisory lower rate", unit: UnitPerMin, source: "[common practice]"}
+)
+
+// flagVT flags a tidal volume outside the advisory bounds per kg PBW.
+func (r *Result) flagVT(vtPerKg float64) {
+	r.addConst(&maxVTDef, MaxVTPerKgPBW)
+	r.addConst(&minVTDef, MinVTPerKgPBW)
+	switch {
+	case vtPerKg > MaxVTPerKgPBW:
+		r.flag(flagVTHigh)
+	case vtPerKg < MinVTPerKgPBW:
+		r.flag(flagVTLow)
+	}
+}
+
+// RateForTarget returns, as advice, the breath rate in /min that would bring
+// PaCO2 from paco2 to target (both mm[Hg]) at the current tidal volume,
+// with CO2 production and dead space per breath unchanged: PaCO2 is
+// inversely proportional to alveolar ventilation, so RR_new = RR x PaCO2 /
+// target. vt (mL) and pbw (kg) do not enter the formula; they are used to
+// flag the tidal volume per kg PBW. Flags mark an answer above MaxRate or
+// below MinRate and a VT outside MinVTPerKgPBW..MaxVTPerKgPBW.
+//
+// It refuses rr outside RespRateRange, paco2 outside PaCO2Range, target
+// outside TargetPaCO2Range, vt outside TidalVolumeRange and pbw outside
+// PBWRange.
+func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error) {
+	if err := RespRateRange.Check("RR", float64(rr)); err != nil {
+		return Result{}, err
+	}
+	if err := PaCO2Range.Check("PaCO2", float64(paco2)); err != nil {
+		return Result{}, err
+	}
+	if err := TargetPaCO2Range.Check("target PaCO2", float64(target)); err != nil {
+		return Result{}, err
+	}
+	if err := TidalVolumeRange.Check("VT", float64(vt)); err != nil {
+		return Result{}, err
+	}
+	if err := PBWRange.Check("PBW", float64(pbw)); err != nil {
+		return Result{}, err
+	}
+	v := float64(rr) * float64(paco2) / float64(target)
+	vtPerKg := float64(vt) / float64(pbw)
+	r := Result{Value: v, Unit: UnitPerMin, Method: methodRateForTarget, MethodVersion: MethodVersion}
+	r.addConst(&maxRateDef, float64(MaxRate))
+	r.addConst(&minRateDef, float64(MinRate))
+	switch {
+	case v > float64(MaxRate):
+		r.flag(flagRateHigh)
+	case v < float64(MinRate):
+		r.flag(flagRateLow)
+	}
+	r.flagVT(vtPerKg)
+	r.assume(assumeAdvisory)
+	r.assume(assumeFixedDeadSpace)
+	r.assume(assumeFixedVT)
+	r.assume(assumeSteadyState)
+	r.basis("RR for target = RR x PaCO2 / target = %.1f /min x %.1f mm[Hg] / %.1f mm[Hg] = %.2f /min (VT %.0f mL = %.2f mL/kg PBW of %.2f kg)",
+		float64(rr), float64(paco2), float64(target), v, float64(vt), vtPerKg, float64(pbw))
+	return r, nil
+}
+
+// TidalVolumeForTarget returns, as advice, the tidal volume in mL that
+// would bring PaCO2 from paco2 to target (both mm[Hg]) at the current rate,
+// with CO2 production and the dead space per breath vd (mL) held constant:
+// VT_new = VD + (VT - VD) x PaCO2 / target. Scaling VT alone would
+// overestimate the change, since only VT - VD ventilates alveoli. pbw (kg)
+// is used to flag the answer per kg PBW (MinVTPerKgPBW..MaxVTPerKgPBW).
+//
+// It refuses vt outside TidalVolumeRange, vd outside
+// PhysiologicDeadSpaceRange or not below vt (ErrOutOfMeaning), paco2
+// outside PaCO2Range, target outside TargetPaCO2Range and pbw outside
+// PBWRange.
+func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error) {
+	if err := TidalVolumeRange.Check("VT", float64(vt)); err != nil {
+		return Result{}, err
+	}
+	if err := PhysiologicDeadSpaceRange.Check("VD", float64(vd)); err != nil {
+		return Result{}, err
+	}
+	if vd >= vt {
+		return Result{}, meaningError("VD", float64(vd), UnitML, "dead space per breath must be below the tidal volume")
+	}
+	if err := PaCO2Range.Check("PaCO2", float64(paco2)); err != nil {
+		return Result{}, err
+	}
+	if err := TargetPaCO2Range.Check("target PaCO2", float64(target)); err != nil {
+		return Result{}, err
+	}
+	if err := PBWRange.Check("PBW", float64(pbw)); err != nil {
+		return Result{}, err
+	}
+	v := float64(vd) + float64(vt-vd)*float64(paco2)/float64(target)
+	vtPerKg := v / float64(pbw)
+	r := Result{Value: v, Unit: UnitML, Method: methodVTForTarget, MethodVersion: MethodVersion}
+	r.flagVT(vtPerKg)
+	r.assume(assumeAdvisory)
+	r.assume(assumeFixedDeadSpaceV)
+	r.assume(assumeFixedRate)
+	r.assume(assumeSteadyState)
+	r.basis("VT for target = VD + (VT - VD) x PaCO2 / target = %.0f mL + (%.0f mL - %.0f mL) x %.1f mm[Hg] / %.1f mm[Hg] = %.1f mL (%.2f mL/kg PBW of %.2f kg)",
+		float64(vd), float64(vt), float64(vd), float64(paco2), float64(target), v, vtPerKg, float64(pbw))
+	return r, nil
+}
