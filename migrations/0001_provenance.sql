@@ -111,6 +111,12 @@ CREATE TABLE derivation (
     CONSTRAINT derivation_supersedes_previous CHECK ((version = 1) = (supersedes_id IS NULL)),
     -- Volumes, flows, rates and weights are positive.
     CONSTRAINT derivation_positive_amounts CHECK (unit NOT IN ('L/min', 'mL', 'mL/min', 'kg', '/min', 'mL/kg') OR value > 0),
+    -- Fractions of the service's catalogue lie in 0..1; predicted PaCO2 and
+    -- the ventilatory ratio are positive (codes: fhirmap.Kind*).
+    CONSTRAINT derivation_fraction_in_range CHECK (kind NOT IN ('deadspace-fraction-enghoff',
+        'deadspace-fraction-vco2', 'deadspace-fraction-estimated', 'alveolar-deadspace-fraction')
+        OR (value >= 0 AND value <= 1)),
+    CONSTRAINT derivation_positive_kinds CHECK (kind NOT IN ('paco2-predicted', 'ventilatory-ratio') OR value > 0),
     -- A retraction reason belongs to a retraction only.
     CONSTRAINT derivation_retraction_reason CHECK (retracted = '' OR status = 'entered-in-error')
 );

@@ -1,0 +1,45 @@
+// Package postgres is the PostgreSQL provenance store of ventderive: it
+// implements consumer.Store (inbox, facts, derivation versions with their
+// lineage, refusals, outbox, dead letters) and the reviewer's audit queries.
+//
+// # Ingest
+//
+// Store.Ingest handles one input message in one transaction and three
+// batched round trips (besides BEGIN and COMMIT):
+//
+//  1. claim the inbox key (nothing claimed: consumer.ErrDuplicate, nothing
+//     written), take each patient's transaction-scoped advisory lock in
+//     sorted order, store the resources and facts, keeping only new
+//     (identity, digest) pairs;
+//  2. per patient with new facts: work out the affected blood gases, load
+//     the snapshot and the current head of their derivation keys;
+//  3. after calling the plan once per patient with affected blood gases,
+//     write the derivation versions with their inputs, the refusals with
+//     the inputs they considered, the head updates and the outbox rows.
+//
+// A blood gas (a pco2 fact of any specimen) is affected by a new version of
+// itself; by a new patient-level fact (sex, birth date, height, weight) when
+// it lies within Message.Horizon before the patient's latest blood gas; and by
+// any other new fact at time t when its effective time lies in
+// [t - Window.After, t + Window.Before], where t ranges over every stored
+// version of that fact (a corrected time also reopens the blood gases around
+// the old one). The snapshot holds every version of every fact key of the
+// patient that has a version in the window of an affected blood gas, every
+// version of the affected blood gases, and every patient-level fact, in the
+// order they were stored.
+//
+// # Errors
+//
+// Driver errors are translated at this package's edge: connection loss,
+// serialization failure (40001), deadlock (40P01), administrator shutdown
+// (57P01..57P03), class 08 and a COMMIT whose outcome is unknown are wrapped
+// with consumer.ErrTransient (the inbox key makes a retry safe). Other server
+// errors become a *DBError carrying only the SQLSTATE, constraint, table and
+// column names: the server's message and detail can echo key values (patient
+// references) and are neither returned nor logged.
+//
+// # Times
+//
+// PostgreSQL keeps microseconds: times are stored truncated to the
+// microsecond and read back in UTC.
+package postgres

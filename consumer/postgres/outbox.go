@@ -1,0 +1,122 @@
+package postgres
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"slices"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/ventderive/ventderive/consumer"
+)
+
+const deadLetterSQL = `
+INSERT INTO dead_letter (inbox_key, subject, stream_seq, raw, reason, detail, created_at)
+VALUES ($1, $2, $3, $4, $5, $6, $7)
+ON CONFLICT (inbox_key) DO NOTHING`
+
+// DeadLetter implements consumer.Store: it keeps the message as received
+// with its reason code (lower-case words joined by "-", e.g. "invalid-json")
+// and a detail that must name the field or entry at fault, never a value.
+// A second call for the same InboxKey does nothing.
+func (s *Store) DeadLetter(ctx context.Context, msg consumer.Message, reason, detail string) error {
+	_, err := s.pool.Exec(ctx, deadLetterSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), orNil(msg.Raw),
+		reason, detail, s.now().UTC())
+	return translate("dead letter", err, false)
+}
+
+func orNil(b []byte) []byte {
+	if b == nil {
+		return []byte{}
+	}
+	return b
+}
+
+const (
+	claimOutboxSQL = `
+SELECT seq, subject, msg_id, headers::text, payload
+FROM outbox
+WHERE published_at IS NULL
+ORDER BY seq
+LIMIT $1
+FOR UPDATE SKIP LOCKED`
+
+	markPublishedSQL = `
+UPDATE outbox SET published_at = $2
+WHERE seq = ANY($1::bigint[]) AND published_at IS NULL`
+)
+
+// RelayOutbox implements consumer.Store. Rows claimed by another relay are
+// skipped, not waited for. Sequence numbers that publish returns but did not
+// claim are ignored. When publish returns an error, the rows it reports as
+// published are still marked, the transaction commits, and the error is
+// returned wrapped ("publish outbox: ...") with the count marked.
+func (s *Store) RelayOutbox(ctx context.Context, limit int, publish func(context.Context, []consumer.OutboxMessage) ([]int64, error)) (int, error) {
+	if limit <= 0 {
+		return 0, nil
+	}
+	marked := 0
+	var pubErr error
+	err := s.inTx(ctx, "relay outbox", func(tx pgx.Tx) error {
+		rows, err := tx.Query(ctx, claimOutboxSQL, limit)
+		if err != nil {
+			return fmt.Errorf("claim outbox: %w", err)
+		}
+		msgs, err := pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.OutboxMessage, error) {
+			var m consumer.OutboxMessage
+			var headers string
+			if err := row.Scan(&m.Seq, &m.Subject, &m.MsgID, &headers, &m.Payload); err != nil {
+				return m, err
+			}
+			if err := json.Unmarshal([]byte(headers), &m.Header); err != nil {
+				return m, fmt.Errorf("outbox headers of seq %d: %w", m.Seq, err)
+			}
+			return m, nil
+		})
+		if err != nil {
+			return fmt.Errorf("claim outbox: %w", err)
+		}
+		if len(msgs) == 0 {
+			return nil
+		}
+		published, err := publish(ctx, msgs)
+		pubErr = err
+		var seqs []int64
+		for _, seq := range published {
+			if slices.ContainsFunc(msgs, func(m consumer.OutboxMessage) bool { return m.Seq == seq }) {
+				seqs = append(seqs, seq)
+			}
+		}
+		if len(seqs) == 0 {
+			return nil
+		}
+		tag, err := tx.Exec(ctx, markPublishedSQL, seqs, s.now().UTC())
+		if err != nil {
+			return fmt.Errorf("mark published: %w", err)
+		}
+		marked = int(tag.RowsAffected())
+		return nil
+	})
+	if err != nil {
+		return 0, err
+	}
+	if pubErr != nil {
+		return marked, fmt.Errorf("publish outbox: %w", pubErr)
+	}
+	return marked, nil
+}
+
+const backlogSQL = `SELECT count(*) FROM outbox WHERE published_at IS NULL`
+
+// OutboxBacklog implements consumer.Store.
+func (s *Store) OutboxBacklog(ctx context.Context) (int64, error) {
+	var n int64
+	err := s.pool.QueryRow(ctx, backlogSQL).Scan(&n)
+	return n, translate("outbox backlog", err, false)
+}
+
+// Ping implements consumer.Store: a round trip on a pooled connection.
+func (s *Store) Ping(ctx context.Context) error {
+	return translate("ping", s.pool.Ping(ctx), false)
+}

@@ -1,0 +1,649 @@
+package postgres
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"log/slog"
+	"slices"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgtype"
+	"github.com/jackc/pgx/v5/pgxpool"
+
+	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// Store is the PostgreSQL provenance store. It is safe for concurrent use.
+type Store struct {
+	pool  *pgxpool.Pool
+	key   []byte
+	log   *slog.Logger
+	now   func() time.Time
+	tries int
+}
+
+var _ consumer.Store = (*Store)(nil)
+
+// Options configures a Store.
+type Options struct {
+	// PatientKey is the site's secret for consumer.PatientHash. It should
+	// be at least 32 random bytes; an empty key still works but the hashes
+	// can then be reversed by trying known identifiers (New logs a warning).
+	PatientKey []byte
+	// Logger receives operational messages; nil discards them.
+	Logger *slog.Logger
+	// Now is the clock for recorded and created times; nil means time.Now.
+	// Tests fix it for golden output.
+	Now func() time.Time
+}
+
+// New returns a Store over pool. The pool's role needs the rights
+// deploy/postgres/roles.sql gives ventderive_writer.
+func New(pool *pgxpool.Pool, opts Options) *Store {
+	s := &Store{pool: pool, key: opts.PatientKey, log: opts.Logger, now: opts.Now, tries: 3}
+	if s.log == nil {
+		s.log = slog.New(slog.DiscardHandler)
+	}
+	if s.now == nil {
+		s.now = time.Now
+	}
+	if len(s.key) == 0 {
+		s.log.Warn("patient hash key is empty: patient hashes are not protected")
+	}
+	return s
+}
+
+// hash is the keyed patient hash stored beside every patient reference.
+func (s *Store) hash(ref string) string { return consumer.PatientHash(s.key, ref) }
+
+// inTx runs fn in a transaction and translates errors, telling a failed
+// COMMIT (outcome unknown) from a failure inside fn.
+func (s *Store) inTx(ctx context.Context, op string, fn func(pgx.Tx) error) error {
+	fnDone := false
+	err := pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
+		if err := fn(tx); err != nil {
+			return err
+		}
+		fnDone = true
+		return nil
+	})
+	return translate(op, err, fnDone)
+}
+
+// Patient-level quantities: a new one reopens the patient's recent blood gases.
+var patientLevel = []string{string(fhirmap.QSex), string(fhirmap.QBirthDate), string(fhirmap.QHeight), string(fhirmap.QWeight)}
+
+const (
+	claimInboxSQL = `
+INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
+VALUES ($1, $2, $3, $4, $5, $6, $7)
+ON CONFLICT (inbox_key) DO NOTHING`
+
+	// One lock per patient, taken in sorted order by the caller so that two
+	// messages about the same patients cannot deadlock.
+	lockPatientSQL = `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`
+
+	insertResourcesSQL = `
+INSERT INTO input_resource (reference, resource_type, version_id, patient_ref, patient_hash, digest, raw, inbox_key, received, recorded_at)
+SELECT u.reference, u.resource_type, u.version_id, u.patient_ref, u.patient_hash, u.digest, u.raw, $8, $9, $10
+FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::text[], $6::text[], $7::bytea[])
+     AS u(reference, resource_type, version_id, patient_ref, patient_hash, digest, raw)
+ON CONFLICT (reference, digest) DO NOTHING`
+
+	insertFactsSQL = `
+INSERT INTO fact (key, digest, resource_ref, version_id, last_updated, patient_ref, patient_hash, encounter,
+    quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
+    code_system, code, code_display, status, effective, issued, inbox_key, recorded_at)
+SELECT u.key, u.digest, u.resource_ref, u.version_id, u.last_updated, u.patient_ref, u.patient_hash, u.encounter,
+    u.quantity, u.origin, u.detail, u.specimen, u.temp_corrected, u.value, u.unit, u.text, u.source_value, u.source_unit,
+    u.code_system, u.code, u.code_display, u.status, u.effective, u.issued, $25, $26
+FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[], $8::text[],
+    $9::text[], $10::text[], $11::text[], $12::text[], $13::boolean[], $14::float8[], $15::text[], $16::text[],
+    $17::float8[], $18::text[], $19::text[], $20::text[], $21::text[], $22::text[], $23::timestamptz[], $24::timestamptz[])
+    AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, patient_hash, encounter,
+    quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
+    code_system, code, code_display, status, effective, issued)
+ON CONFLICT (key, digest) DO NOTHING
+RETURNING patient_ref, key`
+
+	// affectedCTE works out the affected blood gases of one patient.
+	// $1 patient hash, $2 keys of the new facts, $3 window before and $4
+	// window after (microseconds), $5 horizon (microseconds), $6
+	// patient-level quantities, $7 the blood-gas quantity.
+	affectedCTE = `
+WITH changed AS (
+    SELECT quantity, effective, key FROM fact WHERE patient_hash = $1 AND key = ANY($2::text[])
+), bg AS (
+    SELECT key, effective FROM fact WHERE patient_hash = $1 AND quantity = $7::text
+), affected AS (
+    SELECT DISTINCT bg.key FROM bg
+    WHERE bg.key IN (SELECT key FROM changed WHERE quantity = $7::text)
+       OR (EXISTS (SELECT 1 FROM changed WHERE quantity = ANY($6::text[]))
+           AND bg.effective >= (SELECT max(effective) FROM bg) - $5::bigint * interval '1 microsecond')
+       OR EXISTS (SELECT 1 FROM changed c
+                  WHERE c.quantity <> $7::text AND NOT c.quantity = ANY($6::text[])
+                    AND bg.effective BETWEEN c.effective - $4::bigint * interval '1 microsecond'
+                                         AND c.effective + $3::bigint * interval '1 microsecond')
+)`
+
+	affectedSQL = affectedCTE + `
+SELECT key FROM affected ORDER BY key`
+
+	snapshotFactsSQL = affectedCTE + `,
+win AS (
+    SELECT bg.effective - $3::bigint * interval '1 microsecond' AS lo,
+           bg.effective + $4::bigint * interval '1 microsecond' AS hi
+    FROM bg WHERE bg.key IN (SELECT key FROM affected)
+), keys AS (
+    SELECT key FROM affected
+    UNION SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.quantity = ANY($6::text[])
+    UNION SELECT f.key FROM win JOIN fact f ON f.patient_hash = $1 AND f.effective BETWEEN win.lo AND win.hi
+)
+SELECT ` + factColumns + `
+FROM fact WHERE patient_hash = $1 AND key IN (SELECT key FROM keys) AND EXISTS (SELECT 1 FROM affected)
+ORDER BY id`
+
+	snapshotHeadsSQL = affectedCTE + `
+SELECT key, kind, version, digest, refused, status, value
+FROM head WHERE patient_hash = $1 AND blood_gas_key IN (SELECT key FROM affected)
+ORDER BY key`
+
+	factColumns = `key, digest, resource_ref, version_id, last_updated, patient_ref, encounter, quantity, origin,
+    detail, specimen, temp_corrected, value, unit, text, source_value, source_unit, code_system, code,
+    code_display, status, effective, issued`
+)
+
+const (
+	insertDerivationSQL = `
+WITH d AS (
+    INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
+        blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
+        interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest,
+        supersedes_id, inbox_key, created_at)
+    VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20,
+        $21, $22, $23, $24, (SELECT id FROM derivation WHERE key = $1 AND version = $2 - 1), $25, $26)
+    RETURNING id
+), i AS (
+    INSERT INTO derivation_input (derivation_id, ordinal, role, fact_key, fact_digest, resource_ref, time_offset, fallback)
+    SELECT d.id, u.ord, u.role, u.fact_key, u.fact_digest, u.resource_ref, u.offset_us * interval '1 microsecond', u.fallback
+    FROM d, unnest($27::text[], $28::text[], $29::text[], $30::text[], $31::bigint[], $32::text[])
+         WITH ORDINALITY AS u(role, fact_key, fact_digest, resource_ref, offset_us, fallback, ord)
+)
+INSERT INTO head (key, kind, patient_ref, patient_hash, blood_gas_key, version, refused, derivation_id,
+    refusal_id, digest, status, value, updated_at)
+SELECT $1, $4, $5, $6, $8, $2, false, d.id, NULL, $24, $21, $10, $26 FROM d
+ON CONFLICT (key) DO UPDATE SET version = EXCLUDED.version, refused = false,
+    derivation_id = EXCLUDED.derivation_id, refusal_id = NULL, digest = EXCLUDED.digest,
+    status = EXCLUDED.status, value = EXCLUDED.value, updated_at = EXCLUDED.updated_at`
+
+	// A refusal moves the head to refused; version, status and value keep
+	// describing the latest derivation version, if any.
+	insertRefusalSQL = `
+WITH r AS (
+    INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail,
+        digest, inbox_key, created_at)
+    VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11)
+    RETURNING id
+), i AS (
+    INSERT INTO refusal_input (refusal_id, ordinal, role, fact_key, fact_digest, resource_ref, time_offset, fallback)
+    SELECT r.id, u.ord, u.role, u.fact_key, u.fact_digest, u.resource_ref, u.offset_us * interval '1 microsecond', u.fallback
+    FROM r, unnest($12::text[], $13::text[], $14::text[], $15::text[], $16::bigint[], $17::text[])
+         WITH ORDINALITY AS u(role, fact_key, fact_digest, resource_ref, offset_us, fallback, ord)
+)
+INSERT INTO head (key, kind, patient_ref, patient_hash, blood_gas_key, version, refused, derivation_id,
+    refusal_id, digest, status, value, updated_at)
+SELECT $1, $2, $3, $4, $5, 0, true, NULL, r.id, $9, '', 0, $11 FROM r
+ON CONFLICT (key) DO UPDATE SET refused = true, refusal_id = EXCLUDED.refusal_id,
+    digest = EXCLUDED.digest, updated_at = EXCLUDED.updated_at`
+
+	insertOutboxSQL = `
+INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
+SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, $5, $6
+FROM unnest($1::text[], $2::text[], $3::text[], $4::bytea[]) WITH ORDINALITY AS u(subject, msg_id, headers, payload, ord)
+ORDER BY u.ord
+ON CONFLICT (msg_id) DO NOTHING`
+)
+
+// Ingest implements consumer.Store. Serialization failures and deadlocks
+// are retried in place (up to three attempts, calling plan again); other
+// transient failures are returned wrapped with consumer.ErrTransient.
+func (s *Store) Ingest(ctx context.Context, msg consumer.Message, plan consumer.PlanFunc) (consumer.IngestResult, error) {
+	var res consumer.IngestResult
+	var err error
+	for attempt := 1; ; attempt++ {
+		res, err = s.ingestOnce(ctx, msg, plan)
+		if err == nil || attempt == s.tries || !retryInPlace(err) || ctx.Err() != nil {
+			break
+		}
+		s.log.Debug("ingest retried", "attempt", attempt, "error", err)
+		select {
+		case <-time.After(time.Duration(attempt) * 20 * time.Millisecond):
+		case <-ctx.Done():
+		}
+	}
+	return res, err
+}
+
+// retryInPlace reports serialization failures and deadlocks: the
+// transaction was rolled back by the server, so a new one is safe.
+func retryInPlace(err error) bool {
+	var dbErr *DBError
+	return errors.As(err, &dbErr) && (dbErr.Code == "40001" || dbErr.Code == "40P01")
+}
+
+// patientPlan is one patient's part of an ingest.
+type patientPlan struct {
+	ref      string
+	hash     string
+	newKeys  []string
+	affected []string
+	facts    []fhirmap.Fact
+	current  []consumer.Stored
+	changes  consumer.Changes
+}
+
+func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consumer.PlanFunc) (consumer.IngestResult, error) {
+	var res consumer.IngestResult
+	now := s.now().UTC()
+	err := s.inTx(ctx, "ingest", func(tx pgx.Tx) error {
+		// Phase 1: claim, lock, store.
+		patients := messagePatients(msg)
+		b := &pgx.Batch{}
+		b.Queue(claimInboxSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), msg.Received.UTC(), now,
+			len(msg.Resources), len(msg.Facts))
+		for _, p := range patients {
+			b.Queue(lockPatientSQL, p)
+		}
+		if len(msg.Resources) > 0 {
+			b.Queue(insertResourcesSQL, s.resourceArgs(msg, now)...)
+		}
+		if len(msg.Facts) > 0 {
+			b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
+		}
+		br := tx.SendBatch(ctx, b)
+		tag, err := br.Exec()
+		if err != nil {
+			br.Close()
+			return fmt.Errorf("claim inbox: %w", err)
+		}
+		if tag.RowsAffected() == 0 {
+			br.Close()
+			return consumer.ErrDuplicate
+		}
+		for range patients {
+			if _, err := br.Exec(); err != nil {
+				br.Close()
+				return fmt.Errorf("lock patient: %w", err)
+			}
+		}
+		if len(msg.Resources) > 0 {
+			if _, err := br.Exec(); err != nil {
+				br.Close()
+				return fmt.Errorf("insert resources: %w", err)
+			}
+		}
+		byPatient := map[string]*patientPlan{}
+		var order []*patientPlan
+		if len(msg.Facts) > 0 {
+			rows, err := br.Query()
+			if err != nil {
+				br.Close()
+				return fmt.Errorf("insert facts: %w", err)
+			}
+			for rows.Next() {
+				var ref, key string
+				if err := rows.Scan(&ref, &key); err != nil {
+					rows.Close()
+					br.Close()
+					return fmt.Errorf("insert facts: %w", err)
+				}
+				res.Facts++
+				p := byPatient[ref]
+				if p == nil {
+					p = &patientPlan{ref: ref, hash: s.hash(ref)}
+					byPatient[ref] = p
+					order = append(order, p)
+				}
+				p.newKeys = append(p.newKeys, key)
+			}
+			if err := rows.Err(); err != nil {
+				br.Close()
+				return fmt.Errorf("insert facts: %w", err)
+			}
+		}
+		if err := br.Close(); err != nil {
+			return fmt.Errorf("store input: %w", err)
+		}
+		if len(order) == 0 {
+			return nil
+		}
+		slices.SortFunc(order, func(a, b *patientPlan) int { return compareStrings(a.ref, b.ref) })
+
+		// Phase 2: affected blood gases, snapshot, heads.
+		if err := s.loadSnapshots(ctx, tx, msg, order); err != nil {
+			return err
+		}
+
+		// Plan, outside the database.
+		for _, p := range order {
+			if len(p.affected) == 0 {
+				continue
+			}
+			ch, err := plan(consumer.Snapshot{Patient: p.ref, Facts: p.facts, Affected: p.affected, Current: p.current})
+			if err != nil {
+				return &planError{fmt.Errorf("plan: %w", err)}
+			}
+			if err := checkChanges(p.ref, ch); err != nil {
+				return &planError{err}
+			}
+			p.changes = ch
+		}
+
+		// Phase 3: write what the plans returned.
+		return s.writeChanges(ctx, tx, msg, order, now, &res)
+	})
+	if err != nil {
+		return consumer.IngestResult{}, err
+	}
+	return res, nil
+}
+
+// messagePatients lists the patients of a message, sorted, once each.
+func messagePatients(msg consumer.Message) []string {
+	var ps []string
+	for _, f := range msg.Facts {
+		ps = append(ps, f.Patient)
+	}
+	for _, r := range msg.Resources {
+		if r.Patient != "" {
+			ps = append(ps, r.Patient)
+		}
+	}
+	slices.Sort(ps)
+	return slices.Compact(ps)
+}
+
+func compareStrings(a, b string) int {
+	switch {
+	case a < b:
+		return -1
+	case a > b:
+		return 1
+	}
+	return 0
+}
+
+func (s *Store) resourceArgs(msg consumer.Message, now time.Time) []any {
+	n := len(msg.Resources)
+	ref, typ, ver, pat, hash, dig := make([]string, n), make([]string, n), make([]string, n), make([]string, n), make([]string, n), make([]string, n)
+	raw := make([][]byte, n)
+	for i, r := range msg.Resources {
+		ref[i], typ[i], ver[i], pat[i], hash[i], dig[i], raw[i] = r.Reference, r.Type, r.VersionID, r.Patient, s.hash(r.Patient), r.Digest, r.Raw
+	}
+	return []any{ref, typ, ver, pat, hash, dig, raw, msg.InboxKey, msg.Received.UTC(), now}
+}
+
+func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
+	n := len(msg.Facts)
+	var (
+		key, dig, res, ver, pat, hash, enc, qty, org, det, spc = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+		unit, text, sunit, csys, code, cdisp, st               = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+		lastUpd, eff, iss                                      = make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n)
+		tc                                                     = make([]bool, n)
+		val, sval                                              = make([]float64, n), make([]float64, n)
+	)
+	for i, f := range msg.Facts {
+		key[i], dig[i], res[i], ver[i], pat[i], hash[i], enc[i] = f.Key, f.Digest, f.Resource, f.VersionID, f.Patient, s.hash(f.Patient), f.Encounter
+		qty[i], org[i], det[i], spc[i], tc[i] = string(f.Quantity), string(f.Origin), f.Detail, string(f.Specimen), f.TempCorrected
+		val[i], unit[i], text[i], sval[i], sunit[i] = f.Value, f.Unit, f.Text, f.SourceValue, f.SourceUnit
+		csys[i], code[i], cdisp[i], st[i] = f.Code.System, f.Code.Code, f.Code.Display, string(f.Status)
+		lastUpd[i], eff[i], iss[i] = optTime(f.LastUpdated), pgtype.Timestamptz{Time: f.Effective.UTC(), Valid: true}, optTime(f.Issued)
+	}
+	return []any{key, dig, res, ver, lastUpd, pat, hash, enc, qty, org, det, spc, tc, val, unit, text, sval, sunit,
+		csys, code, cdisp, st, eff, iss, msg.InboxKey, now}
+}
+
+func mk(n int) []string { return make([]string, n) }
+
+// optTime stores a zero time as NULL.
+func optTime(t time.Time) pgtype.Timestamptz {
+	if t.IsZero() {
+		return pgtype.Timestamptz{}
+	}
+	return pgtype.Timestamptz{Time: t.UTC(), Valid: true}
+}
+
+func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan) error {
+	before, after, horizon := msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(), msg.Horizon.Microseconds()
+	b := &pgx.Batch{}
+	for _, p := range order {
+		args := []any{p.hash, p.newKeys, before, after, horizon, patientLevel, string(fhirmap.QPCO2)}
+		b.Queue(affectedSQL, args...)
+		b.Queue(snapshotFactsSQL, args...)
+		b.Queue(snapshotHeadsSQL, args...)
+	}
+	br := tx.SendBatch(ctx, b)
+	defer br.Close()
+	for _, p := range order {
+		rows, err := br.Query()
+		if err != nil {
+			return fmt.Errorf("affected blood gases: %w", err)
+		}
+		p.affected, err = pgx.CollectRows(rows, pgx.RowTo[string])
+		if err != nil {
+			return fmt.Errorf("affected blood gases: %w", err)
+		}
+		rows, err = br.Query()
+		if err != nil {
+			return fmt.Errorf("load snapshot: %w", err)
+		}
+		p.facts, err = pgx.CollectRows(rows, scanFact)
+		if err != nil {
+			return fmt.Errorf("load snapshot: %w", err)
+		}
+		rows, err = br.Query()
+		if err != nil {
+			return fmt.Errorf("load heads: %w", err)
+		}
+		p.current, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.Stored, error) {
+			var st consumer.Stored
+			var status string
+			err := row.Scan(&st.Key, &st.Kind, &st.Version, &st.Digest, &st.Refused, &status, &st.Value)
+			st.Status = fhirmap.Status(status)
+			return st, err
+		})
+		if err != nil {
+			return fmt.Errorf("load heads: %w", err)
+		}
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("load snapshot: %w", err)
+	}
+	return nil
+}
+
+// scanFact reads the columns of factColumns into a Fact.
+func scanFact(row pgx.CollectableRow) (fhirmap.Fact, error) {
+	var f fhirmap.Fact
+	var lastUpd, issued pgtype.Timestamptz
+	var qty, org, spc, st string
+	err := row.Scan(&f.Key, &f.Digest, &f.Resource, &f.VersionID, &lastUpd, &f.Patient, &f.Encounter, &qty, &org,
+		&f.Detail, &spc, &f.TempCorrected, &f.Value, &f.Unit, &f.Text, &f.SourceValue, &f.SourceUnit,
+		&f.Code.System, &f.Code.Code, &f.Code.Display, &st, &f.Effective, &issued)
+	if err != nil {
+		return fhirmap.Fact{}, err
+	}
+	f.Quantity, f.Origin, f.Specimen, f.Status = fhirmap.Quantity(qty), fhirmap.Origin(org), fhirmap.Specimen(spc), fhirmap.Status(st)
+	f.Effective = f.Effective.UTC()
+	if lastUpd.Valid {
+		f.LastUpdated = lastUpd.Time.UTC()
+	}
+	if issued.Valid {
+		f.Issued = issued.Time.UTC()
+	}
+	return f, nil
+}
+
+// checkChanges refuses a plan that writes for another patient or numbers
+// its versions inconsistently: a bug in the plan must not reach provenance.
+func checkChanges(patient string, ch consumer.Changes) error {
+	if len(ch.Versions) != len(ch.Derivations) {
+		return fmt.Errorf("plan: %d versions for %d derivations", len(ch.Versions), len(ch.Derivations))
+	}
+	for i, d := range ch.Derivations {
+		if d.Patient != patient {
+			return errors.New("plan: derivation for another patient than the snapshot's")
+		}
+		if ch.Versions[i] < 1 {
+			return fmt.Errorf("plan: derivation version %d", ch.Versions[i])
+		}
+	}
+	for _, r := range ch.Refusals {
+		if r.Patient != patient {
+			return errors.New("plan: refusal for another patient than the snapshot's")
+		}
+	}
+	return nil
+}
+
+// jsonConstant is how a constant is kept in derivation.constants.
+type jsonConstant struct {
+	Name   string  `json:"name"`
+	Value  float64 `json:"value"`
+	Unit   string  `json:"unit"`
+	Source string  `json:"source"`
+}
+
+func jsonList[T any](v []T) ([]byte, error) {
+	if v == nil {
+		v = []T{}
+	}
+	return json.Marshal(v)
+}
+
+type lineage struct {
+	role, key, digest, resource, fallback []string
+	offsetUS                              []int64
+}
+
+func lineageOf(in []fhirmap.Input) lineage {
+	n := len(in)
+	l := lineage{role: mk(n), key: mk(n), digest: mk(n), resource: mk(n), fallback: mk(n), offsetUS: make([]int64, n)}
+	for i, x := range in {
+		l.role[i], l.key[i], l.digest[i], l.resource[i] = string(x.Role), x.Fact.Key, x.Fact.Digest, x.Fact.Resource
+		l.offsetUS[i], l.fallback[i] = x.Offset.Microseconds(), x.Fallback
+	}
+	return l
+}
+
+func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, now time.Time) ([]any, error) {
+	r := d.Result
+	var consts []jsonConstant
+	for _, c := range r.Constants() {
+		consts = append(consts, jsonConstant{Name: c.Name, Value: c.Value, Unit: c.Unit, Source: c.Source})
+	}
+	cj, err := jsonList(consts)
+	if err != nil {
+		return nil, fmt.Errorf("encode constants: %w", err)
+	}
+	aj, err := jsonList(r.Assumptions())
+	if err != nil {
+		return nil, fmt.Errorf("encode assumptions: %w", err)
+	}
+	fj, err := jsonList(r.Flags())
+	if err != nil {
+		return nil, fmt.Errorf("encode flags: %w", err)
+	}
+	l := lineageOf(d.Inputs)
+	return []any{d.Key, version, d.ID, d.Kind, d.Patient, s.hash(d.Patient), d.Encounter, d.BloodGas,
+		d.Effective.UTC(), r.Value, r.Unit, r.Method, r.MethodVersion, string(cj), string(aj), r.Basis(),
+		r.Interpretation.Code, r.Interpretation.Text, r.Interpretation.Source, string(fj), string(d.Status),
+		d.Retracted, d.Algorithm, d.Digest, inbox, now,
+		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback}, nil
+}
+
+func (s *Store) writeChanges(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan, now time.Time, res *consumer.IngestResult) error {
+	b := &pgx.Batch{}
+	var subj, ids, hdrs []string
+	var payloads [][]byte
+	for _, p := range order {
+		for i, d := range p.changes.Derivations {
+			args, err := s.derivationArgs(d, p.changes.Versions[i], msg.InboxKey, now)
+			if err != nil {
+				return err
+			}
+			b.Queue(insertDerivationSQL, args...)
+			res.Derivations++
+			if d.Status == fhirmap.StatusEnteredInError {
+				res.Retractions++
+			}
+			if res.DerivedKinds == nil {
+				res.DerivedKinds = map[string]int{}
+			}
+			res.DerivedKinds[d.Kind]++
+		}
+		for _, r := range p.changes.Refusals {
+			l := lineageOf(r.Considered)
+			b.Queue(insertRefusalSQL, r.Key, r.Kind, r.Patient, s.hash(r.Patient), r.BloodGas, r.Effective.UTC(),
+				r.Reason, r.Detail, r.Digest, msg.InboxKey, now,
+				l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback)
+			res.Refusals++
+			if res.RefusalReasons == nil {
+				res.RefusalReasons = map[string]int{}
+			}
+			res.RefusalReasons[r.Reason]++
+		}
+		for _, o := range p.changes.Outbox {
+			h, err := json.Marshal(orEmpty(o.Header))
+			if err != nil {
+				return fmt.Errorf("encode outbox headers: %w", err)
+			}
+			subj, ids, hdrs, payloads = append(subj, o.Subject), append(ids, o.MsgID), append(hdrs, string(h)), append(payloads, o.Payload)
+		}
+	}
+	if len(subj) > 0 {
+		b.Queue(insertOutboxSQL, subj, ids, hdrs, payloads, msg.InboxKey, now)
+	}
+	if b.Len() == 0 {
+		return nil
+	}
+	br := tx.SendBatch(ctx, b)
+	defer br.Close()
+	for range res.Derivations {
+		if _, err := br.Exec(); err != nil {
+			return fmt.Errorf("insert derivation: %w", err)
+		}
+	}
+	for range res.Refusals {
+		if _, err := br.Exec(); err != nil {
+			return fmt.Errorf("insert refusal: %w", err)
+		}
+	}
+	if len(subj) > 0 {
+		tag, err := br.Exec()
+		if err != nil {
+			return fmt.Errorf("insert outbox: %w", err)
+		}
+		res.Outbox = int(tag.RowsAffected())
+		if res.Outbox < len(subj) {
+			// A message id already used: the earlier row carries it (and
+			// JetStream would drop the repeat as a duplicate anyway).
+			s.log.Warn("outbox message ids already present", "skipped", len(subj)-res.Outbox)
+		}
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("write changes: %w", err)
+	}
+	return nil
+}
+
+func orEmpty(m map[string]string) map[string]string {
+	if m == nil {
+		return map[string]string{}
+	}
+	return m
+}
