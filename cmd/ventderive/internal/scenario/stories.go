@@ -1,0 +1,240 @@
+package scenario
+
+// kAlveolar is the constant of the alveolar ventilation equation at 37 Cel,
+// mm[Hg] L / mL (reference/physiology.md section 1: 0.863, STPD to BTPS).
+const kAlveolar = 0.863
+
+// state is a patient's true physiology at one moment. Measured values are
+// made from it with noise.
+type state struct {
+	vco2    float64 // CO2 production, mL/min STPD
+	vdvt    float64 // physiologic dead-space fraction (Enghoff), 1
+	vt      float64 // expired tidal volume, mL
+	rr      float64 // total breath rate, /min
+	gap     float64 // arterial to end-tidal CO2 gradient, mm[Hg]
+	hco3    float64 // plasma bicarbonate, mmol/L
+	pf      float64 // PaO2/FiO2, mm[Hg]
+	fio2    float64 // inspired O2 fraction, 1
+	peep    float64 // cm[H2O]
+	plateau float64 // cm[H2O]; 0: the ventilator reports none
+	tempC   float64 // body temperature, Cel
+}
+
+// ve is the expired minute volume, L/min.
+func (s state) ve() float64 { return s.vt * s.rr / 1000 }
+
+// paCO2 is the arterial CO2 tension the alveolar ventilation equation gives
+// for this state, mm[Hg] (reference/physiology.md sections 1 and 2).
+func (s state) paCO2() float64 { return kAlveolar * s.vco2 / (s.ve() * (1 - s.vdvt)) }
+
+// How a feed shapes its messages.
+type labShape int
+
+const (
+	labSingles        labShape = iota // one Observation per message
+	labComponents                     // one 24336-0 panel with components
+	labHasMemberTx                    // transaction Bundle: 24336-0 panel with hasMember, and the members
+	labMessageSingles                 // message Bundle: MessageHeader and single Observations
+	labMessagePanel                   // message Bundle: MessageHeader and a panel with components
+	labTxSingles                      // transaction Bundle of single Observations
+)
+
+type ventShape int
+
+const (
+	ventSingles ventShape = iota // one Observation per message, LOINC
+	ventTxLOINC                  // one transaction Bundle per reading, LOINC
+	ventTxMDC                    // transaction Bundle, MDC codes (LOINC where MDC has none)
+	ventTxBoth                   // transaction Bundle, MDC and LOINC codings together
+)
+
+type malformedKind int
+
+const (
+	wellFormed malformedKind = iota
+	malformedJSON
+	malformedResourceType
+	malformedNoSubject
+	malformedUnit
+)
+
+// story is one bed: who the patient is, how their physiology runs through the
+// day, and how the hospital's feeds send it.
+type story struct {
+	bed          int
+	label        string
+	text         string
+	gender       string
+	birthDate    string
+	heightCm     float64
+	weightKg     float64
+	imperialBody bool // height in [in_i], weight in [lb_av]
+
+	// at gives the state at fraction f of the simulated span (0..1).
+	at func(f float64) state
+
+	lab          labShape
+	labKPa       bool
+	venous       bool // blood gases are venous (2021-4) only
+	vent         ventShape
+	etco2KPa     bool
+	fio2Fraction bool // FiO2 as a fraction with unit "1", else %
+	vco2Measured bool
+	tempF        bool
+
+	feedStops   bool // the ventilator feed stops after the middle blood gas
+	amendGas    int  // index of a blood gas later amended; -1: none
+	errorGas    int  // index of a blood gas later entered in error; -1: none
+	lateVentGas int  // index of a blood gas whose nearest reading arrives late; -1: none
+	malformed   malformedKind
+}
+
+func lerp(a, b, f float64) float64 { return a + (b-a)*f }
+
+// ramp is a until f0, b from f1, linear in between.
+func ramp(a, b, f, f0, f1 float64) float64 {
+	switch {
+	case f <= f0:
+		return a
+	case f >= f1:
+		return b
+	}
+	return lerp(a, b, (f-f0)/(f1-f0))
+}
+
+// stories are the ten beds of ICU 3 West. Values are chosen from the story
+// and the published ranges in reference/physiology.md; PaCO2 follows from
+// them (see the package comment), it is never chosen directly.
+func stories() []story {
+	return []story{
+		{
+			bed: 1, label: "Bed 1: normal lungs after abdominal surgery",
+			text: "Healthy lungs ventilated overnight after surgery. Expect VD/VT about 0.33 (normal about 0.3, " +
+				"Nunn & Hill 1960), ventilatory ratio about 1, arterial to end-tidal gradient about 4-5 mm[Hg], " +
+				"measured PaCO2 close to predicted. One ventilator reading arrives after the second blood gas.",
+			gender: "male", birthDate: "1961-05-14", heightCm: 178, weightKg: 82,
+			at: func(f float64) state {
+				return state{vco2: 200, vdvt: 0.33, vt: 560, rr: 12, gap: 4.5, hco3: 24, pf: 420, fio2: 0.35, peep: 5, tempC: 36.8}
+			},
+			lab: labSingles, vent: ventSingles, vco2Measured: true,
+			amendGas: -1, errorGas: -1, lateVentGas: 1,
+		},
+		{
+			bed: 2, label: "Bed 2: worsening ARDS",
+			text: "Pneumonia progressing to ARDS. Dead space rises through the day (VD/VT 0.55 to 0.70; ARDS onset " +
+				"0.58 +/- 0.09, Nuckton 2002) and the ventilatory ratio rises from about 1.5 to above 2 although " +
+				"the rate is increased; PaO2/FiO2 falls. Blood gases in kPa as panels with components.",
+			gender: "male", birthDate: "1969-09-02", heightCm: 180, weightKg: 88,
+			at: func(f float64) state {
+				return state{vco2: 220, vdvt: lerp(0.55, 0.70, f), vt: 450, rr: lerp(22, 31, f), gap: lerp(8, 12, f),
+					hco3: 25, pf: lerp(160, 95, f), fio2: lerp(0.55, 0.80, f), peep: lerp(12, 15, f),
+					plateau: lerp(26, 31, f), tempC: 37.6}
+			},
+			lab: labComponents, labKPa: true, vent: ventTxBoth, vco2Measured: true,
+			amendGas: -1, errorGas: -1, lateVentGas: -1, malformed: malformedJSON,
+		},
+		{
+			bed: 3, label: "Bed 3: exacerbation of obstructive lung disease",
+			text: "Chronic hypercapnia with metabolic compensation (HCO3 34 mmol/L). High PaCO2 (about 57 mm[Hg]) " +
+				"and a wide arterial to end-tidal gradient (about 14 mm[Hg]); VD/VT about 0.6. The rate is raised " +
+				"mid-morning and PaCO2 falls as the alveolar ventilation equation predicts. VCO2 is not measured: " +
+				"dead space can only be estimated.",
+			gender: "male", birthDate: "1957-11-23", heightCm: 170, weightKg: 61,
+			at: func(f float64) state {
+				return state{vco2: 175, vdvt: 0.60, vt: 470, rr: ramp(14, 16, f, 0.35, 0.40), gap: 14, hco3: 34,
+					pf: 230, fio2: 0.30, peep: 5, tempC: 36.9}
+			},
+			lab: labHasMemberTx, vent: ventTxLOINC, fio2Fraction: true,
+			amendGas: -1, errorGas: -1, lateVentGas: -1, malformed: malformedUnit,
+		},
+		{
+			bed: 4, label: "Bed 4: pulmonary embolism, thrombolysed",
+			text: "Massive pulmonary embolism: a wide arterial to end-tidal gap (about 17 mm[Hg], alveolar dead-space " +
+				"fraction about 0.45) that narrows to about 7 mm[Hg] after thrombolysis mid-morning, with VD/VT " +
+				"falling from 0.55 to 0.40. End-tidal CO2 in kPa, ventilator codes MDC only, body height and " +
+				"weight in inches and pounds.",
+			gender: "female", birthDate: "1971-02-08", heightCm: 165, weightKg: 80, imperialBody: true,
+			at: func(f float64) state {
+				return state{vco2: 210, vdvt: ramp(0.55, 0.40, f, 0.40, 0.60), vt: 420, rr: ramp(24, 20, f, 0.40, 0.60),
+					gap: ramp(17, 7, f, 0.40, 0.60), hco3: 22, pf: ramp(180, 280, f, 0.40, 0.60),
+					fio2: ramp(0.50, 0.35, f, 0.40, 0.60), peep: 8, tempC: 37.2}
+			},
+			lab: labMessageSingles, vent: ventTxMDC, etco2KPa: true, vco2Measured: true,
+			amendGas: -1, errorGas: -1, lateVentGas: -1,
+		},
+		{
+			bed: 5, label: "Bed 5: septic shock, high CO2 production",
+			text: "Fever and sepsis raise CO2 production to about 300 mL/min. The ventilatory ratio is about 2 " +
+				"although VD/VT is only about 0.40: the high VE is driven by VCO2, not by dead space. Metabolic " +
+				"acidosis improving with resuscitation. Temperature in Fahrenheit.",
+			gender: "female", birthDate: "1964-07-30", heightCm: 165, weightKg: 70,
+			at: func(f float64) state {
+				return state{vco2: lerp(310, 280, f), vdvt: 0.40, vt: 420, rr: 28, gap: 6, hco3: lerp(16, 19, f),
+					pf: 250, fio2: 0.40, peep: 8, tempC: lerp(39.2, 38.4, f)}
+			},
+			lab: labComponents, vent: ventTxLOINC, vco2Measured: true, tempF: true,
+			amendGas: -1, errorGas: -1, lateVentGas: -1, malformed: malformedResourceType,
+		},
+		{
+			bed: 6, label: "Bed 6: cooled after cardiac arrest",
+			text: "Targeted temperature management at 33.5 Cel lowers CO2 production to about 140 mL/min; PaCO2 " +
+				"normal on a low minute volume. On rewarming VCO2 rises to about 185 mL/min and PaCO2 rises until " +
+				"the rate is increased; the ventilation needed for a target PaCO2 of 40 rises with it.",
+			gender: "male", birthDate: "1968-12-11", heightCm: 182, weightKg: 85,
+			at: func(f float64) state {
+				t := ramp(33.5, 36.8, f, 0.55, 0.85)
+				return state{vco2: ramp(140, 185, f, 0.55, 0.85), vdvt: 0.33, vt: 470, rr: ramp(10, 12, f, 0.70, 0.72),
+					gap: 5, hco3: 22, pf: 300, fio2: 0.40, peep: 6, tempC: t}
+			},
+			lab: labSingles, vent: ventTxBoth, vco2Measured: true,
+			amendGas: -1, errorGas: -1, lateVentGas: -1, malformed: malformedNoSubject,
+		},
+		{
+			bed: 7, label: "Bed 7: venous gases only",
+			text: "Only central venous blood gases are drawn (LOINC 2021-4). Every dead-space derivation must be " +
+				"refused: venous specimen.",
+			gender: "male", birthDate: "1980-04-19", heightCm: 175, weightKg: 78,
+			at: func(f float64) state {
+				return state{vco2: 210, vdvt: 0.35, vt: 500, rr: 15, gap: 5, hco3: 24, pf: 330, fio2: 0.35, peep: 5, tempC: 37.0}
+			},
+			lab: labSingles, venous: true, vent: ventTxLOINC, vco2Measured: true,
+			amendGas: -1, errorGas: -1, lateVentGas: -1,
+		},
+		{
+			bed: 8, label: "Bed 8: ventilator feed stops",
+			text: "Pneumonia with moderate dead space (VD/VT about 0.45). The ventilator's data feed stops after the " +
+				"middle blood gas of the day; later blood gases must be refused: no ventilator data in window. " +
+				"Blood gases in kPa, FiO2 as a fraction.",
+			gender: "female", birthDate: "1955-10-03", heightCm: 158, weightKg: 62,
+			at: func(f float64) state {
+				return state{vco2: 190, vdvt: 0.45, vt: 400, rr: 20, gap: 7, hco3: 23, pf: 200, fio2: 0.45, peep: 8, tempC: 37.4}
+			},
+			lab: labMessageSingles, labKPa: true, vent: ventTxLOINC, fio2Fraction: true, feedStops: true,
+			amendGas: -1, errorGas: -1, lateVentGas: -1,
+		},
+		{
+			bed: 9, label: "Bed 9: blood gas amended",
+			text: "Lung contusion after trauma, VD/VT about 0.40. The laboratory first reports the second blood gas " +
+				"with a PaCO2 about 15 mm[Hg] too high, then amends it an hour later: the derived values get a new " +
+				"version from the amended value.",
+			gender: "male", birthDate: "1989-06-27", heightCm: 188, weightKg: 95,
+			at: func(f float64) state {
+				return state{vco2: 230, vdvt: 0.40, vt: 560, rr: 16, gap: 5, hco3: 24, pf: 280, fio2: 0.40, peep: 8, tempC: 37.1}
+			},
+			lab: labMessagePanel, vent: ventTxMDC,
+			amendGas: 1, errorGas: -1, lateVentGas: -1,
+		},
+		{
+			bed: 10, label: "Bed 10: blood gas entered in error",
+			text: "Aspiration pneumonia, VD/VT about 0.45. The second blood gas came from another patient's sample " +
+				"(PaCO2 about 68 mm[Hg]) and is marked entered-in-error 100 minutes later: its derived values are " +
+				"retracted.",
+			gender: "female", birthDate: "1976-01-15", heightCm: 170, weightKg: 68,
+			at: func(f float64) state {
+				return state{vco2: 200, vdvt: 0.45, vt: 430, rr: 18, gap: 6, hco3: 24, pf: 240, fio2: 0.40, peep: 8, tempC: 37.3}
+			},
+			lab: labTxSingles, vent: ventTxLOINC, vco2Measured: true,
+			amendGas: -1, errorGas: 1, lateVentGas: -1,
+		},
+	}
+}
