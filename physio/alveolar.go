@@ -195,7 +195,7 @@ func AlveolarVentilationFromPaCO2KPa(vco2 MLPerMin, paco2 KPa, bodyTemp Celsius)
 	r.Value = v
 	r.assume(assumeSteadyState)
 	r.assume(assumeGasStates)
-	r.basis("VA = K(%.1f Cel) x VCO2 / PaCO2 = %.6f x %.1f mL/min / %.3f kPa = %.3f L/min",
+	r.basis("VA = K(%.1f Cel) x VCO2 / PaCO2 = %.6f x %.1f mL/min / %.4f kPa = %.3f L/min",
 		float64(t), k, float64(vco2), float64(paco2), v)
 	return r, nil
 }

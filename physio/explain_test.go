@@ -1,0 +1,301 @@
+package physio_test
+
+import (
+	"flag"
+	"fmt"
+	"os"
+	"path/filepath"
+	"slices"
+	"strings"
+	"testing"
+
+	"github.com/ventderive/ventderive/physio"
+)
+
+var update = flag.Bool("update", false, "rewrite the golden files in testdata/")
+
+// Interpretations apply only published thresholds, and name them.
+func TestInterpretations(t *testing.T) {
+	cases := []struct {
+		name       string
+		call       func() (physio.Result, error)
+		code       string
+		sourceHas  string
+		thresholds string // where the threshold comes from, with its label
+	}{
+		{"VDVT_0.25_normal", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 30) }, "N", "Nunn & Hill", "about 0.3 in health [published: Nunn & Hill 1960]"},
+		{"VDVT_0.30_normal_at_threshold", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 28) }, "N", "Nunn & Hill", "about 0.3 [published: Nunn & Hill 1960]"},
+		{"VDVT_0.325_high", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 27) }, "H", "Nunn & Hill", "above 0.3 [published: Nunn & Hill 1960]"},
+		{"VDVT_0.6164_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
+		{"VDVT_estimated_0.6404_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceEstimated(45, 10, man) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
+		{"VR_1.0_healthy_no_cutoff", func() (physio.Result, error) { return physio.VentilatoryRatio(7.0566, 37.5, 70.566) }, "", "Sinha", "near 1 in health, no cut-off [published: Sinha 2009]"},
+		{"VR_1.7005_above_non_survivor_mean", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }, "H", "Sinha", "1.55 non-survivors [published: Sinha 2009]"},
+		{"VR_2.1_ARDS_median", func() (physio.Result, error) { return physio.VentilatoryRatio(12.35, 45, 70.566) }, "H", "PETAL-ROSE", "median about 2 in ARDS [published: Crit Care 2022]"},
+		{"gradient_4.6mmHg_normal", func() (physio.Result, error) { return physio.EndTidalGradient(40, 35.4) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]; 4.6 normal [published: Nunn & Hill 1960]"},
+		{"gradient_9mmHg_at_threshold", func() (physio.Result, error) { return physio.EndTidalGradient(45, 36) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]"},
+		{"gradient_10mmHg_high", func() (physio.Result, error) { return physio.EndTidalGradient(45, 35) }, "H", "Tyburski", "> 9 mm[Hg] [published: Tyburski 2002]"},
+		{"AVDSF_0.20_at_threshold", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 36) }, "N", "Tyburski", "<= 0.20 [published: Tyburski 2002]"},
+		{"AVDSF_0.2222_high", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 35) }, "H", "Tyburski", "> 0.20 [published: Tyburski 2002]"},
+		{"discrepancy_plus_15.9mmHg_high", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1) }, "H", "35-45", "5 mm[Hg] [derived; common practice]"},
+		{"discrepancy_minus_8mmHg_low", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41) }, "L", "35-45", "5 mm[Hg] [derived; common practice]"},
+		{"discrepancy_plus_4mmHg_not_material", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41) }, "N", "35-45", "5 mm[Hg] [derived; common practice]"},
+		{"PaCO2_from_VA_no_threshold", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(200, 4.2, 37) }, "", "", "none: a model output, not a measurement"},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r, err := c.call()
+			if err != nil {
+				t.Fatal(err)
+			}
+			in := r.Interpretation
+			if in.Code != c.code {
+				t.Errorf("%s: code %q, want %q (value %v)", c.thresholds, in.Code, c.code, r.Value)
+			}
+			if !strings.Contains(in.Source, c.sourceHas) {
+				t.Errorf("source %q does not name %q", in.Source, c.sourceHas)
+			}
+			if c.sourceHas != "" && in.Text == "" {
+				t.Errorf("interpretation without text")
+			}
+		})
+	}
+	t.Run("discrepancy_names_likely_causes", func(t *testing.T) {
+		r, err := physio.PaCO2Discrepancy(57, 41.1)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, cause := range []string{"more dead space than assumed", "higher CO2 production than assumed", "input error"} {
+			if !strings.Contains(r.Interpretation.Text, cause) {
+				t.Errorf("text %q does not name %q", r.Interpretation.Text, cause)
+			}
+		}
+	})
+}
+
+// Answers outside the advisory bounds are returned unclamped, with flags.
+func TestTargetFlags(t *testing.T) {
+	cases := []struct {
+		name   string
+		call   func() (physio.Result, error)
+		want   float64
+		flag   string // substring of the expected flag, "" for none
+		source string
+	}{
+		{"rate_40_per_min_above_35", func() (physio.Result, error) { return physio.RateForTarget(20, 70, 35, 420, 70.566) }, 40, "above 35 /min", "ARDS Network protocol [memory]"},
+		{"rate_6.67_per_min_below_8", func() (physio.Result, error) { return physio.RateForTarget(10, 30, 45, 420, 70.566) }, 10 * 30 / 45.0, "below 8 /min", "[common practice]"},
+		{"rate_19.25_per_min_no_flag", func() (physio.Result, error) { return physio.RateForTarget(14, 55, 40, 420, 70.566) }, 19.25, "", "reference §9"},
+		{"rate_ok_but_current_VT_9mLkg", func() (physio.Result, error) { return physio.RateForTarget(14, 55, 40, 635, 70.566) }, 19.25, "above 8 mL/kg", "ARDS Network [memory]"},
+		{"VT_800mL_11.3mLkg_above_8", func() (physio.Result, error) { return physio.TidalVolumeForTarget(600, 200, 60, 40, 70.566) }, 800, "above 8 mL/kg", "ARDS Network [memory]"},
+		{"VT_237.5mL_3.4mLkg_below_4", func() (physio.Result, error) { return physio.TidalVolumeForTarget(300, 150, 35, 60, 70.566) }, 237.5, "below 4 mL/kg", "ARDS Network protocol [memory]"},
+		{"VT_510mL_7.2mLkg_no_flag", func() (physio.Result, error) { return physio.TidalVolumeForTarget(420, 180, 55, 40, 70.566) }, 510, "", "reference §9"},
+		{"negative_gradient_flagged", func() (physio.Result, error) { return physio.EndTidalGradient(35, 38) }, -3, "end-tidal PCO2 above arterial", "sampling check [common practice]"},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r, err := c.call()
+			if err != nil {
+				t.Fatal(err)
+			}
+			if !relClose(r.Value, c.want, 1e-12) {
+				t.Errorf("value %v, want %v unclamped", r.Value, c.want)
+			}
+			flags := r.Flags()
+			if c.flag == "" {
+				if len(flags) != 0 {
+					t.Errorf("unexpected flags %q", flags)
+				}
+				return
+			}
+			if !slices.ContainsFunc(flags, func(f string) bool { return strings.Contains(f, c.flag) }) {
+				t.Errorf("%s: flags %q lack %q", c.source, flags, c.flag)
+			}
+		})
+	}
+}
+
+// Advice is worded as advice: never an imperative, always marked advisory.
+func TestTargetWordingIsAdvisory(t *testing.T) {
+	for _, call := range []func() (physio.Result, error){
+		func() (physio.Result, error) { return physio.RateForTarget(20, 70, 35, 635, 70.566) },
+		func() (physio.Result, error) { return physio.TidalVolumeForTarget(600, 200, 60, 40, 70.566) },
+	} {
+		r, err := call()
+		if err != nil {
+			t.Fatal(err)
+		}
+		as := r.Assumptions()
+		if !slices.ContainsFunc(as, func(a string) bool { return strings.HasPrefix(a, "advisory only, not an order") }) {
+			t.Errorf("%s: assumptions %q lack the advisory statement", r.Method, as)
+		}
+		text := strings.ToLower(strings.Join(append(append(as, r.Flags()...), r.Basis()), " | "))
+		for _, imperative := range []string{"increase ", "decrease ", "set the", "reduce ", "must ", "should "} {
+			if strings.Contains(text, imperative) {
+				t.Errorf("%s: imperative wording %q in %q", r.Method, imperative, text)
+			}
+		}
+	}
+}
+
+// Estimated values are labelled "estimated"; defaults are recorded, never
+// silent.
+func TestAssumptionsRecorded(t *testing.T) {
+	has := func(r physio.Result, prefix string) bool {
+		return slices.ContainsFunc(r.Assumptions(), func(a string) bool { return strings.HasPrefix(a, prefix) })
+	}
+	t.Run("estimated_VDVT_labelled_estimated", func(t *testing.T) {
+		r, _ := physio.DeadSpaceEstimated(45, 10, man)
+		if !has(r, "estimated: VCO2") || !has(r, "respiratory quotient not measured: 0.8") {
+			t.Errorf("assumptions %q", r.Assumptions())
+		}
+		consts := r.Constants()
+		if len(consts) == 0 || consts[0].Name != "K" || consts[0].Value != 0.86 || !strings.Contains(consts[0].Source, "Siddiki") {
+			t.Errorf("first constant %+v, want K 0.86 from Siddiki 2010", consts)
+		}
+	})
+	t.Run("given_RQ_0.85_recorded_no_default", func(t *testing.T) {
+		e := man
+		e.RQ = 0.85
+		r, _ := physio.EstimateVCO2(e)
+		if has(r, "respiratory quotient not measured") {
+			t.Errorf("default recorded although RQ given: %q", r.Assumptions())
+		}
+		if !slices.ContainsFunc(r.Constants(), func(c physio.Constant) bool { return c.Name == "RQ" && c.Value == 0.85 }) {
+			t.Errorf("RQ 0.85 not among constants %+v", r.Constants())
+		}
+	})
+	t.Run("REE_labelled_estimated", func(t *testing.T) {
+		r, _ := physio.RestingEnergy(man)
+		if !has(r, "estimated:") {
+			t.Errorf("assumptions %q", r.Assumptions())
+		}
+	})
+	t.Run("predicted_with_estimated_VCO2", func(t *testing.T) {
+		r, _ := physio.PredictedPaCO2(physio.PredictedInput{VCO2: 188, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVDKnown: true})
+		if !has(r, "estimated: VCO2") || !has(r, "anatomic dead space not given: 2.2 mL/kg") || !has(r, "body temperature not measured: 37 Cel") {
+			t.Errorf("assumptions %q", r.Assumptions())
+		}
+	})
+	t.Run("measured_temperature_no_default", func(t *testing.T) {
+		r, _ := physio.DeadSpaceFromVCO2(45, 200, 10, 38.5)
+		if has(r, "body temperature not measured") {
+			t.Errorf("default recorded although temperature given: %q", r.Assumptions())
+		}
+		if k := r.Constants()[0]; k.Name != "K" || k.Unit != "mm[Hg].L/mL" || !relClose(k.Value, 0.760*(273+38.5)/273, 1e-15) {
+			t.Errorf("K constant %+v, want 0.760 x 311.5/273", k)
+		}
+	})
+	t.Run("zero_result_is_empty", func(t *testing.T) {
+		var r physio.Result
+		if r.Basis() != "" || r.Constants() != nil || r.Assumptions() != nil || r.Flags() != nil {
+			t.Errorf("zero Result is not empty")
+		}
+	})
+	t.Run("accessors_return_copies", func(t *testing.T) {
+		r, _ := physio.DeadSpaceEstimated(45, 10, man)
+		a := r.Assumptions()
+		a[0] = "changed"
+		c := r.Constants()
+		c[0].Value = 1
+		if r.Assumptions()[0] == "changed" || r.Constants()[0].Value == 1 {
+			t.Errorf("accessor results alias the Result")
+		}
+	})
+}
+
+// goldenResults are the derivations of the reference end-to-end vector
+// (reference §11) and the other reference checks whose basis lines are
+// reviewed in testdata/basis.golden.
+func goldenResults() []struct {
+	name string
+	r    physio.Result
+	err  error
+} {
+	var out []struct {
+		name string
+		r    physio.Result
+		err  error
+	}
+	add := func(name string, r physio.Result, err error) {
+		out = append(out, struct {
+			name string
+			r    physio.Result
+			err  error
+		}{name, r, err})
+	}
+	for _, c := range refCases() {
+		r, err := c.got()
+		add(c.name, r, err)
+	}
+	r, err := physio.PredictedPaCO2(physio.PredictedInput{VCO2: 188.16, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVD: 95, ApparatusVDKnown: true})
+	add("PredictedPaCO2_estimated_VCO2_default_anatomic_default_temp", r, err)
+	r, err = physio.PaCO2Discrepancy(45, 41.1)
+	add("Discrepancy_45_vs_41.1mmHg", r, err)
+	r, err = physio.EndTidalGradient(35, 38)
+	add("Gradient_negative", r, err)
+	return out
+}
+
+// TestBasisGolden renders every reviewed result (value, unit, method,
+// basis, constants, assumptions, interpretation, flags) and compares it with
+// testdata/basis.golden. Run with -update to rewrite it; review the diff
+// like code.
+func TestBasisGolden(t *testing.T) {
+	var b strings.Builder
+	for _, g := range goldenResults() {
+		if g.err != nil {
+			t.Fatalf("%s: %v", g.name, g.err)
+		}
+		basis := g.r.Basis()
+		if strings.Contains(basis, "%!") || strings.Contains(basis, "NaN") || strings.Contains(basis, "Inf") {
+			t.Errorf("%s: malformed basis %q", g.name, basis)
+		}
+		fmt.Fprintf(&b, "## %s\nvalue: %.6g %s\nmethod: %s (v%s)\nbasis: %s\n", g.name, g.r.Value, g.r.Unit, g.r.Method, g.r.MethodVersion, basis)
+		for _, c := range g.r.Constants() {
+			fmt.Fprintf(&b, "constant: %s = %.6g %s (%s)\n", c.Name, c.Value, c.Unit, c.Source)
+		}
+		for _, a := range g.r.Assumptions() {
+			fmt.Fprintf(&b, "assumption: %s\n", a)
+		}
+		if in := g.r.Interpretation; in.Text != "" {
+			fmt.Fprintf(&b, "interpretation: [%s] %s (%s)\n", in.Code, in.Text, in.Source)
+		}
+		for _, f := range g.r.Flags() {
+			fmt.Fprintf(&b, "flag: %s\n", f)
+		}
+		b.WriteByte('\n')
+	}
+	path := filepath.Join("testdata", "basis.golden")
+	if *update {
+		if err := os.MkdirAll("testdata", 0o755); err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	want, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatalf("read golden file (run go test -run TestBasisGolden -update once): %v", err)
+	}
+	if got := b.String(); got != string(want) {
+		t.Errorf("basis output differs from %s; run with -update and review the diff\n%s", path, firstDiff(got, string(want)))
+	}
+}
+
+// firstDiff shows the first differing line of two texts.
+func firstDiff(got, want string) string {
+	g, w := strings.Split(got, "\n"), strings.Split(want, "\n")
+	for i := range max(len(g), len(w)) {
+		var gl, wl string
+		if i < len(g) {
+			gl = g[i]
+		}
+		if i < len(w) {
+			wl = w[i]
+		}
+		if gl != wl {
+			return fmt.Sprintf("line %d:\n got: %s\nwant: %s", i+1, gl, wl)
+		}
+	}
+	return ""
+}
