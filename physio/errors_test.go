@@ -36,7 +36,9 @@ func TestRefusals(t *testing.T) {
 		{"PECO2_above_PaCO2", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 45) }, physio.ErrOutOfMeaning, "PECO2"},
 		{"VCO2_0mLmin", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(0, 4.2, 37) }, physio.ErrNotPositive, "VCO2"},
 		{"VCO2_in_Lmin_0.2", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(0.2, 4.2, 37) }, physio.ErrImplausible, "VCO2"},
-		{"VA_NaN", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(200, physio.LPerMin(nan), 37) }, physio.ErrNotFinite, "VA"},
+		{"VA_NaN", func() (physio.Result, error) {
+			return physio.PaCO2FromAlveolarVentilation(200, physio.LPerMin(nan), 37)
+		}, physio.ErrNotFinite, "VA"},
 		{"VA_0Lmin", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilationKPa(200, 0, 37) }, physio.ErrNotPositive, "VA"},
 		{"body_temp_50Cel", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(200, 4.2, 50) }, physio.ErrImplausible, "body temperature"},
 		{"body_temp_minus_5Cel", func() (physio.Result, error) { return physio.AlveolarVentilationFromPaCO2(200, 40, -5) }, physio.ErrNotPositive, "body temperature"},
@@ -50,7 +52,9 @@ func TestRefusals(t *testing.T) {
 		{"VDVT_0", func() (physio.Result, error) { return physio.DeadSpaceVolume(0, 500) }, physio.ErrOutOfMeaning, "VD/VT"},
 		{"VDVT_1", func() (physio.Result, error) { return physio.DeadSpaceVolume(1, 500) }, physio.ErrOutOfMeaning, "VD/VT"},
 		{"VDVT_1.2", func() (physio.Result, error) { return physio.AlveolarVentilationFromDeadSpace(10, 1.2) }, physio.ErrOutOfMeaning, "VD/VT"},
-		{"VDVT_NaN", func() (physio.Result, error) { return physio.AlveolarVentilationFromDeadSpace(10, physio.Fraction(nan)) }, physio.ErrNotFinite, "VD/VT"},
+		{"VDVT_NaN", func() (physio.Result, error) {
+			return physio.AlveolarVentilationFromDeadSpace(10, physio.Fraction(nan))
+		}, physio.ErrNotFinite, "VD/VT"},
 		{"VT_0mL", func() (physio.Result, error) { return physio.DeadSpaceVolume(0.3, 0) }, physio.ErrNotPositive, "VT"},
 		{"VT_0.5_litres_sent_as_mL", func() (physio.Result, error) { return physio.DeadSpaceVolume(0.3, 0.5) }, physio.ErrImplausible, "VT"},
 		{"sex_not_given", func() (physio.Result, error) { return physio.PredictedBodyWeight(physio.SexUnknown, 175) }, physio.ErrNotGiven, "sex"},
