@@ -156,6 +156,12 @@ type Derivation struct {
 	// service withdrew a value it had published (its blood gas was entered in
 	// error, or an input it needed was withdrawn). Empty otherwise.
 	Retracted string
+	// Steps are the intermediate results the value rests on, in order (the
+	// predicted body weight inside a ventilatory ratio, the dead-space
+	// fraction inside a dead-space volume), each with its own basis, so that
+	// the whole chain can be redone by hand. Not part of Digest: they are
+	// functions of Inputs.
+	Steps []physio.Result
 }
 
 // Refusal records that a derivation of Kind was not made for a blood gas,

@@ -1,0 +1,235 @@
+package fhirmap
+
+// Codes of the derived values in the service's CodeSystem (Site.CodeSystemURL).
+// No LOINC code exists for them (checked; see the code reference). The codes
+// are stable across releases: a code is never reused for another meaning.
+const (
+	KindDeadSpaceEnghoff      = "deadspace-fraction-enghoff"
+	KindDeadSpaceVCO2         = "deadspace-fraction-vco2"
+	KindDeadSpaceEstimated    = "deadspace-fraction-estimated"
+	KindDeadSpaceVolume       = "deadspace-volume"
+	KindAlveolarVentilation   = "alveolar-ventilation"
+	KindPredictedPaCO2        = "paco2-predicted"
+	KindPaCO2Discrepancy      = "paco2-measured-minus-predicted"
+	KindVentilatoryRatio      = "ventilatory-ratio"
+	KindPaCO2PETCO2Gradient   = "paco2-petco2-gradient"
+	KindAlveolarDeadSpace     = "alveolar-deadspace-fraction"
+	KindRateForTarget         = "resp-rate-for-target-paco2"
+	KindTidalVolumeForTarget  = "tidal-volume-for-target-paco2"
+	codeAdvisoryTag           = "advisory"
+	codeDerivedCategory       = "derived-physiology"
+	advisoryTagDisplay        = "Advisory: not an order; verify at the bedside"
+	derivedCategoryDisplay    = "Derived ventilation physiology (computed, advisory)"
+	codeSystemVersion         = "1"
+	codeSystemDate            = "2026-12-01"
+	codeSystemID              = "ventderive-derived"
+	codeSystemName            = "VentderiveDerived"
+	codeSystemTitle           = "ventderive derived ventilation physiology"
+	codeSystemPublisherString = "ventderive"
+)
+
+// KindInfo describes one derived value: its code and meaning, its UCUM unit,
+// its formula with the published source, and when it is refused. The
+// CodeSystem, the README table and the tests are built from Catalogue.
+type KindInfo struct {
+	Code       string
+	Display    string
+	Definition string // one or two sentences for CodeSystem.concept.definition
+	Unit       string // UCUM code of the value
+	// Decimals is the output precision: valueQuantity.value and the digest
+	// use the value rounded to this many decimals.
+	Decimals int
+	Formula  string
+	Source   string // published source, with the reference label
+	Refused  string // the refusal reasons specific to the kind, in the order checked
+}
+
+// Catalogue lists every derived value the service makes, in the order
+// derivations are attempted and reported.
+var Catalogue = []KindInfo{
+	{
+		Code:       KindDeadSpaceEnghoff,
+		Display:    "Physiologic dead-space fraction (VD/VT), Bohr-Enghoff, measured mixed-expired PCO2",
+		Definition: "Fraction of each tidal breath that does not take part in CO2 elimination, from arterial PCO2 and the mixed-expired PCO2 measured by volumetric capnography or expired-gas collection.",
+		Unit:       "1", Decimals: 3,
+		Formula: "VD/VT = (PaCO2 - PECO2) / PaCO2",
+		Source:  "Enghoff modification of the Bohr equation [published; e.g. Crit Care 2016, doi 10.1186/s13054-016-1311-8]",
+		Refused: "no-peco2; implausible-input; inconsistent-inputs (PECO2 not below PaCO2)",
+	},
+	{
+		Code:       KindDeadSpaceVCO2,
+		Display:    "Physiologic dead-space fraction (VD/VT) from measured VCO2 and expired minute volume",
+		Definition: "Dead-space fraction by the Enghoff equation with the mixed-expired PCO2 computed from measured CO2 production and expired minute ventilation (steady state, no inspired CO2).",
+		Unit:       "1", Decimals: 3,
+		Formula: "VD/VT = 1 - K x VCO2 / (VE x PaCO2), K = 0.863 mm[Hg].L/mL",
+		Source:  "Enghoff [published] with the alveolar ventilation equation, K from the ideal gas law (STPD to BTPS at 37 Cel) [derived]",
+		Refused: "no-vco2; no-minute-volume; implausible-input; inconsistent-inputs",
+	},
+	{
+		Code:       KindDeadSpaceEstimated,
+		Display:    "Estimated dead-space fraction (VD/VT), VCO2 estimated from resting energy expenditure",
+		Definition: "Dead-space fraction with CO2 production estimated, not measured: resting energy expenditure from an energy equation, converted to VCO2 with the Weir equation and an assumed respiratory quotient. Always an estimate.",
+		Unit:       "1", Decimals: 3,
+		Formula: "VD/VT = 1 - 0.86 x VCO2est / (VE x PaCO2); VCO2est = REE / (1.440 x (3.941/RQ + 1.106)), REE by Harris-Benedict 1919 (or Roza-Shizgal 1984 when configured)",
+		Source:  "Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 [published]; Weir, J Physiol 1949;109:1-9 [published]; Harris & Benedict 1919 [published]",
+		Refused: "no-minute-volume; no-sex; no-age; no-height; no-weight; implausible-input; inconsistent-inputs",
+	},
+	{
+		Code:       KindDeadSpaceVolume,
+		Display:    "Physiologic dead-space volume per breath (VD)",
+		Definition: "Volume of each breath that does not take part in CO2 elimination: the measured dead-space fraction (Bohr-Enghoff from PECO2 when measured, else from VCO2) times the tidal volume.",
+		Unit:       "mL", Decimals: 0,
+		Formula: "VD = VD/VT x VT",
+		Source:  "Enghoff [published]; product with VT [derived]",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form); no-tidal-volume; implausible-input; inconsistent-inputs",
+	},
+	{
+		Code:       KindAlveolarVentilation,
+		Display:    "Alveolar ventilation (VA)",
+		Definition: "Part of the minute ventilation that reaches gas-exchanging alveoli: minute ventilation times one minus the measured dead-space fraction.",
+		Unit:       "L/min", Decimals: 2,
+		Formula: "VA = VE x (1 - VD/VT)",
+		Source:  "alveolar ventilation equation [published: standard respiratory physiology texts; e.g. Wang et al., Adv Physiol Educ 2020;44:145-152]",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume; implausible-input; inconsistent-inputs",
+	},
+	{
+		Code:       KindPredictedPaCO2,
+		Display:    "Predicted PaCO2 from measured VCO2, ventilator settings and predicted dead space",
+		Definition: "PaCO2 expected from the alveolar ventilation equation if dead space were only anatomic (2.2 mL/kg predicted body weight) plus the configured apparatus dead space.",
+		Unit:       "mm[Hg]", Decimals: 1,
+		Formula: "PaCO2pred = K x VCO2 / ((VT - VDanat - VDapp) x RR / 1000); VDanat = 2.2 mL/kg x PBW; PBW (ARDS Network) from height and sex",
+		Source:  "alveolar ventilation equation [published]; Radford, J Appl Physiol 1955 [published]; ARDS Network, NEJM 2000;342:1301-8 [published]",
+		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-height; no-sex; apparatus-dead-space-not-configured; implausible-input; inconsistent-inputs (VT not above dead space)",
+	},
+	{
+		Code:       KindPaCO2Discrepancy,
+		Display:    "Measured minus predicted PaCO2",
+		Definition: "Arterial PCO2 minus the predicted PaCO2: a large positive difference means more dead space (or CO2 production) than the prediction assumes.",
+		Unit:       "mm[Hg]", Decimals: 1,
+		Formula: "PaCO2 - PaCO2pred",
+		Source:  "difference of the measured value and the alveolar-ventilation prediction [derived]",
+		Refused: "as paco2-predicted",
+	},
+	{
+		Code:       KindVentilatoryRatio,
+		Display:    "Ventilatory ratio (VR)",
+		Definition: "Ratio of the actual minute ventilation and PaCO2 product to the predicted product (100 mL/kg/min predicted body weight, PaCO2 37.5 mm[Hg]); near 1 in healthy lungs.",
+		Unit:       "1", Decimals: 2,
+		Formula: "VR = (VE[mL/min] x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mm[Hg])",
+		Source:  "Sinha et al., Br J Anaesth 2009;102:692-697 [published]; mm[Hg] form, Sinha et al., AJRCCM 2019 [published]",
+		Refused: "no-minute-volume; no-height; no-sex; implausible-input",
+	},
+	{
+		Code:       KindPaCO2PETCO2Gradient,
+		Display:    "Arterial to end-tidal PCO2 gradient (Pa-ETCO2)",
+		Definition: "Arterial PCO2 minus end-tidal PCO2; widens with alveolar dead space.",
+		Unit:       "mm[Hg]", Decimals: 1,
+		Formula: "Pa-ETCO2 = PaCO2 - PETCO2",
+		Source:  "Nunn & Hill, J Appl Physiol 1960 [published]; Tyburski et al., J Trauma 2002;53:738 [published]",
+		Refused: "no-etco2; implausible-input",
+	},
+	{
+		Code:       KindAlveolarDeadSpace,
+		Display:    "Alveolar dead-space fraction (AVDSF)",
+		Definition: "Arterial to end-tidal PCO2 gradient as a fraction of arterial PCO2.",
+		Unit:       "1", Decimals: 3,
+		Formula: "AVDSF = (PaCO2 - PETCO2) / PaCO2",
+		Source:  "Yehya et al., Pediatr Crit Care Med 2016 [published]; Tyburski et al., J Trauma 2002;53:738 [published]",
+		Refused: "no-etco2; implausible-input; inconsistent-inputs (PETCO2 above PaCO2)",
+	},
+	{
+		Code:       KindRateForTarget,
+		Display:    "Breath rate for the target PaCO2 at the same tidal volume (advisory)",
+		Definition: "Breath rate at which, with unchanged tidal volume, dead space and CO2 production, PaCO2 would reach the site's target. Advisory arithmetic, not an order.",
+		Unit:       "/min", Decimals: 1,
+		Formula: "RRnew = RR x PaCO2 / PaCO2target",
+		Source:  "inverse proportion of PaCO2 and alveolar ventilation at constant VCO2 [derived from the alveolar ventilation equation]",
+		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); implausible-input",
+	},
+	{
+		Code:       KindTidalVolumeForTarget,
+		Display:    "Tidal volume for the target PaCO2 at the same breath rate (advisory)",
+		Definition: "Tidal volume at which, with unchanged breath rate, physiologic dead-space volume and CO2 production, PaCO2 would reach the site's target. Advisory arithmetic, not an order.",
+		Unit:       "mL", Decimals: 0,
+		Formula: "VTnew = VD + (VT - VD) x PaCO2 / PaCO2target, VD the measured physiologic dead-space volume",
+		Source:  "alveolar ventilation equation at constant VCO2 and dead-space volume [derived]",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); implausible-input; inconsistent-inputs",
+	},
+}
+
+// LookupKind returns the catalogue entry of a kind code.
+func LookupKind(code string) (KindInfo, bool) {
+	for _, k := range Catalogue {
+		if k.Code == code {
+			return k, true
+		}
+	}
+	return KindInfo{}, false
+}
+
+// KindUnit returns the UCUM unit of a kind code, or "" for an unknown code.
+func KindUnit(code string) string {
+	k, _ := LookupKind(code)
+	return k.Unit
+}
+
+// Refusal reason codes. They are stable: stores, metrics and reviewers
+// count by them.
+const (
+	// Blood-gas level: every kind of the blood gas is refused.
+	ReasonVenous              = "venous-specimen"
+	ReasonCapillary           = "capillary-specimen"
+	ReasonMixedVenous         = "mixed-venous-specimen"
+	ReasonUnknownSpecimen     = "unknown-specimen"
+	ReasonEnteredInError      = "blood-gas-entered-in-error"
+	ReasonBloodGasNotUsable   = "blood-gas-status-not-usable"
+	ReasonTemperatureAdjusted = "temperature-corrected-paco2"
+
+	// Kind level.
+	ReasonNoVentilatorData = "no-ventilator-data-in-window"
+	ReasonNoMinuteVolume   = "no-minute-volume"
+	ReasonNoVCO2           = "no-vco2"
+	ReasonNoPECO2          = "no-peco2"
+	ReasonNoETCO2          = "no-etco2"
+	ReasonNoTidalVolume    = "no-tidal-volume"
+	ReasonNoRespRate       = "no-resp-rate"
+	ReasonNoHeight         = "no-height"
+	ReasonNoSex            = "no-sex"
+	ReasonNoAge            = "no-age"
+	ReasonNoWeight         = "no-weight"
+	ReasonImplausible      = "implausible-input"
+	ReasonInconsistent     = "inconsistent-inputs"
+	ReasonApparatusNotSet  = "apparatus-dead-space-not-configured"
+)
+
+// ReasonInfo describes one refusal reason.
+type ReasonInfo struct {
+	Code    string
+	Meaning string
+}
+
+// Reasons lists every refusal reason with its meaning, for the README and
+// the OperationOutcome texts.
+var Reasons = []ReasonInfo{
+	{ReasonVenous, "the PCO2 was measured in venous blood; dead-space formulas need arterial blood"},
+	{ReasonCapillary, "the PCO2 was measured in capillary blood; dead-space formulas need arterial blood"},
+	{ReasonMixedVenous, "the PCO2 was measured in mixed venous blood; dead-space formulas need arterial blood"},
+	{ReasonUnknownSpecimen, "the PCO2 code does not name the blood and the Observation's specimen does not say arterial"},
+	{ReasonEnteredInError, "the blood gas was entered in error; values derived from it are withdrawn"},
+	{ReasonBloodGasNotUsable, "the blood gas status is registered, cancelled or unknown: there is no result to use"},
+	{ReasonTemperatureAdjusted, "the PaCO2 was adjusted to the patient's temperature; the formulas use PaCO2 measured at 37 Cel"},
+	{ReasonNoVentilatorData, "no usable ventilator reading of the patient (same encounter) lies in the pairing window"},
+	{ReasonNoMinuteVolume, "no minute volume (measured or set) in the pairing window"},
+	{ReasonNoVCO2, "no measured CO2 production (VCO2), and for dead-space volume no mixed-expired PCO2 either, in the pairing window"},
+	{ReasonNoPECO2, "no measured mixed-expired PCO2 in the pairing window"},
+	{ReasonNoETCO2, "no end-tidal PCO2 in the pairing window"},
+	{ReasonNoTidalVolume, "no tidal volume (measured or set) in the pairing window"},
+	{ReasonNoRespRate, "no total or mechanical breath rate (measured or set) in the pairing window"},
+	{ReasonNoHeight, "no body height of the patient: predicted body weight needs it"},
+	{ReasonNoSex, "no sex (male or female) of the patient: the sex-specific equations need it"},
+	{ReasonNoAge, "no birth date of the patient: the energy equation needs the age"},
+	{ReasonNoWeight, "no body weight of the patient: the energy equation needs it"},
+	{ReasonImplausible, "an input lies outside its published plausible range (the detail names it)"},
+	{ReasonInconsistent, "the inputs contradict each other (e.g. mixed-expired PCO2 not below PaCO2; the detail says which)"},
+	{ReasonApparatusNotSet, "the site has not configured its apparatus dead space; it is never assumed to be zero"},
+}

@@ -1,0 +1,544 @@
+package fhirmap
+
+import (
+	"errors"
+	"fmt"
+	"slices"
+	"strings"
+	"time"
+
+	"github.com/ventderive/ventderive/physio"
+)
+
+// DeriveAll derives every kind for every blood gas in facts: it reduces facts
+// to their current versions (Current), then pairs and derives each PCO2 fact
+// of any specimen, so that venous, capillary and unspecified gases produce
+// refusals with their reason rather than silence. Results are sorted by Key.
+// facts may hold several patients.
+func DeriveAll(facts []Fact, site Site) ([]Derivation, []Refusal) {
+	current := Current(facts)
+	var (
+		ds []Derivation
+		rs []Refusal
+	)
+	for _, f := range current {
+		if f.Quantity != QPCO2 {
+			continue
+		}
+		d, r := Derive(Select(f, current, site), site)
+		ds = append(ds, d...)
+		rs = append(rs, r...)
+	}
+	slices.SortFunc(ds, func(a, b Derivation) int { return strings.Compare(a.Key, b.Key) })
+	slices.SortFunc(rs, func(a, b Refusal) int { return strings.Compare(a.Key, b.Key) })
+	return ds, rs
+}
+
+// DeriveBloodGas recomputes the derivations of one blood gas (its fact Key)
+// from a patient's snapshot, for the service. facts are reduced to their
+// current versions first (Current is idempotent). It returns nothing when no
+// current PCO2 fact has that key: the caller asked about a fact it does not
+// hold.
+func DeriveBloodGas(key string, facts []Fact, site Site) ([]Derivation, []Refusal) {
+	current := Current(facts)
+	for _, f := range current {
+		if f.Key == key && f.Quantity == QPCO2 {
+			return Derive(Select(f, current, site), site)
+		}
+	}
+	return nil, nil
+}
+
+// Derive computes every kind of Catalogue from one selection: a Derivation
+// for each kind whose inputs are present, plausible and consistent, and a
+// Refusal with a stable reason for each other kind. Every derivation and
+// refusal is sealed (Digest set). When the selection itself was refused
+// (sel.Reason), every kind is refused with that reason.
+//
+// A derivation's status is preliminary when any input it used is
+// preliminary, final otherwise; the service turns it into amended or
+// corrected when it supersedes a published version.
+func Derive(sel Selection, site Site) ([]Derivation, []Refusal) {
+	x := deriver{sel: sel, site: site}
+	var (
+		ds []Derivation
+		rs []Refusal
+	)
+	for _, k := range Catalogue {
+		if sel.Reason != "" {
+			rs = append(rs, x.refusal(k.Code, sel.Reason, sel.Detail, sel.Inputs[:1]))
+			continue
+		}
+		d, r, ok := x.derive(k.Code)
+		if ok {
+			ds = append(ds, d)
+		} else {
+			rs = append(rs, r)
+		}
+	}
+	return ds, rs
+}
+
+// deriver holds one selection while its kinds are derived.
+type deriver struct {
+	sel  Selection
+	site Site
+}
+
+// stop is a refusal reason found while gathering inputs.
+type stop struct {
+	reason, detail string
+}
+
+// gather collects the inputs of a kind. It remembers what it found (for
+// Refusal.Considered) and the first reason to stop.
+type gather struct {
+	x     *deriver
+	used  []Input
+	steps []physio.Result
+	stop  *stop
+}
+
+func (x *deriver) start() *gather {
+	g := &gather{x: x}
+	g.used = append(g.used, x.sel.Inputs[0])
+	return g
+}
+
+// missingReason is the refusal reason of a role with no input.
+var missingReason = map[Role]string{
+	RolePECO2:        ReasonNoPECO2,
+	RoleVCO2:         ReasonNoVCO2,
+	RoleMinuteVolume: ReasonNoMinuteVolume,
+	RoleTidalVolume:  ReasonNoTidalVolume,
+	RoleRespRate:     ReasonNoRespRate,
+	RolePETCO2:       ReasonNoETCO2,
+	RoleSex:          ReasonNoSex,
+	RoleBirthDate:    ReasonNoAge,
+	RoleHeight:       ReasonNoHeight,
+	RoleWeight:       ReasonNoWeight,
+}
+
+// plausible is the published plausible range of each numeric role.
+var plausible = map[Role]physio.Range{
+	RolePECO2:        physio.PECO2Range,
+	RoleVCO2:         physio.VCO2Range,
+	RoleMinuteVolume: physio.MinuteVolumeRange,
+	RoleTidalVolume:  physio.TidalVolumeRange,
+	RoleRespRate:     physio.RespRateRange,
+	RolePETCO2:       physio.PETCO2Range,
+	RoleBodyTemp:     physio.BodyTempRange,
+	RoleHeight:       physio.HeightRange,
+	RoleWeight:       physio.WeightRange,
+}
+
+// need returns the input of role r, recording it as used, or records the
+// reason to stop. After a stop it only records what else is present.
+func (g *gather) need(r Role) (Input, bool) {
+	in, ok := g.x.sel.Input(r)
+	if !ok {
+		if g.stop == nil {
+			g.stop = g.x.missing(r)
+		}
+		return Input{}, false
+	}
+	g.used = append(g.used, in)
+	if g.stop != nil {
+		return in, false
+	}
+	if rg, ok := plausible[r]; ok {
+		if err := rg.Check(roleLabel(r), in.Fact.Value); err != nil {
+			g.stop = &stop{ReasonImplausible, errorDetail(err) + source(in)}
+			return in, false
+		}
+	}
+	return in, true
+}
+
+// source names where an input came from for a refusal detail: the
+// Observation key of a reading, nothing for a patient-level fact, whose key
+// holds the patient reference (details carry no patient identifiers).
+func source(in Input) string {
+	if strings.HasPrefix(in.Fact.Key, "Patient/") || in.Fact.Patient != "" && strings.HasPrefix(in.Fact.Key, in.Fact.Patient) {
+		return ""
+	}
+	return " (" + in.Fact.Key + ")"
+}
+
+// optional returns the input of role r when present and plausible; an
+// implausible one stops the derivation (it is not silently dropped).
+func (g *gather) optional(r Role) (Input, bool) {
+	if _, ok := g.x.sel.Input(r); !ok {
+		return Input{}, false
+	}
+	return g.need(r)
+}
+
+// missing explains a role with no input: "no-ventilator-data-in-window"
+// when the window holds no ventilator reading at all.
+func (x *deriver) missing(r Role) *stop {
+	w := x.sel.Window
+	span := fmt.Sprintf("%s before to %s after the blood gas", formatDuration(w.Before), formatDuration(w.After))
+	rule, _ := ruleForRole(r)
+	if rule != nil && rule.ventilator && x.sel.Ventilator == 0 {
+		d := "no usable ventilator reading of this patient from " + span
+		if x.sel.HasOutside {
+			d += "; the nearest is " + describeOffset(x.sel.NearestOutside)
+		}
+		if x.sel.OtherEncounter > 0 {
+			d += fmt.Sprintf("; %d reading(s) of another encounter ignored", x.sel.OtherEncounter)
+		}
+		if x.sel.NotUsable > 0 {
+			d += fmt.Sprintf("; %d reading(s) with an unusable status ignored", x.sel.NotUsable)
+		}
+		return &stop{ReasonNoVentilatorData, d}
+	}
+	reason := missingReason[r]
+	if rule != nil && rule.patient {
+		return &stop{reason, "no " + roleLabel(r) + " of the patient"}
+	}
+	what := roleLabel(r)
+	if rule != nil && len(rule.labels) > 0 {
+		what = rule.labels[0]
+		if len(rule.labels) > 1 {
+			what = roleLabel(r) + " (measured or set)"
+		}
+	}
+	return &stop{reason, "no " + what + " from " + span}
+}
+
+func ruleForRole(r Role) (*roleRule, bool) {
+	for _, q := range []Quantity{QMinuteVol, QTidalVol, QRespRate, QPETCO2, QVCO2, QPECO2, QBodyTemp, QSex, QBirthDate, QHeight, QWeight} {
+		if rule, _ := ruleFor(q); rule.role == r {
+			return rule, true
+		}
+	}
+	return nil, false
+}
+
+// fail records a physio error as the reason to stop.
+func (g *gather) fail(err error) {
+	if g.stop != nil {
+		return
+	}
+	reason := ReasonImplausible
+	if errors.Is(err, physio.ErrOutOfMeaning) || errors.Is(err, physio.ErrNotGiven) {
+		reason = ReasonInconsistent
+	}
+	g.stop = &stop{reason, errorDetail(err)}
+}
+
+// sex reads the sex input as a physio.Sex.
+func (g *gather) sex() physio.Sex {
+	in, ok := g.need(RoleSex)
+	if !ok {
+		return physio.SexUnknown
+	}
+	switch in.Fact.Text {
+	case "male":
+		return physio.Male
+	case "female":
+		return physio.Female
+	}
+	g.stop = &stop{ReasonNoSex, fmt.Sprintf("sex recorded as %q; the sex-specific equations need male or female", in.Fact.Text)}
+	return physio.SexUnknown
+}
+
+// pbw computes the predicted body weight as a step.
+func (g *gather) pbw() physio.Kg {
+	sex := g.sex()
+	h, ok := g.need(RoleHeight)
+	if !ok || g.stop != nil {
+		return 0
+	}
+	r, err := physio.PredictedBodyWeight(sex, physio.Cm(h.Fact.Value))
+	if err != nil {
+		g.fail(err)
+		return 0
+	}
+	g.steps = append(g.steps, r)
+	return physio.Kg(r.Value)
+}
+
+// age returns the age in years at the blood gas from the birth date.
+func (g *gather) age() physio.Years {
+	in, ok := g.need(RoleBirthDate)
+	if !ok {
+		return 0
+	}
+	a, _, err := ageAt(in.Fact.Text, g.x.sel.BloodGas.Effective)
+	if err != nil {
+		g.stop = &stop{ReasonNoAge, "birth date not readable: " + err.Error()}
+		return 0
+	}
+	if err := physio.AgeRange.Check("age", a); err != nil {
+		g.stop = &stop{ReasonImplausible, errorDetail(err) + source(in)}
+		return 0
+	}
+	return physio.Years(a)
+}
+
+// bodyTemp returns the measured body temperature, or 0 (37 Cel assumed by physio).
+func (g *gather) bodyTemp() physio.Celsius {
+	if in, ok := g.optional(RoleBodyTemp); ok {
+		return physio.Celsius(in.Fact.Value)
+	}
+	return 0
+}
+
+// measuredVDVT computes the measured dead-space fraction as a step:
+// Bohr-Enghoff from PECO2 when it was measured, else from VCO2 and the
+// minute volume.
+func (g *gather) measuredVDVT(paco2 physio.MmHg) physio.Fraction {
+	if _, ok := g.x.sel.Input(RolePECO2); ok {
+		pe, ok := g.need(RolePECO2)
+		if !ok {
+			return 0
+		}
+		return g.step(physio.DeadSpaceEnghoff(paco2, physio.MmHg(pe.Fact.Value)))
+	}
+	if _, ok := g.x.sel.Input(RoleVCO2); !ok {
+		if g.stop == nil {
+			g.stop = g.x.missing(RoleVCO2)
+			if g.stop.reason == ReasonNoVCO2 {
+				g.stop.detail += "; no mixed-expired PCO2 either"
+			}
+		}
+		return 0
+	}
+	v, _ := g.need(RoleVCO2)
+	ve, _ := g.need(RoleMinuteVolume)
+	t := g.bodyTemp()
+	if g.stop != nil {
+		return 0
+	}
+	return g.step(physio.DeadSpaceFromVCO2(paco2, physio.MLPerMin(v.Fact.Value), physio.LPerMin(ve.Fact.Value), t))
+}
+
+// step records an intermediate result and returns its value.
+func (g *gather) step(r physio.Result, err error) physio.Fraction {
+	if err != nil {
+		g.fail(err)
+		return 0
+	}
+	g.steps = append(g.steps, r)
+	return physio.Fraction(r.Value)
+}
+
+// derive computes one kind.
+func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
+	g := x.start()
+	paco2 := physio.MmHg(x.sel.BloodGas.Value)
+	target := physio.MmHg(x.site.TargetPaCO2mmHg)
+	var (
+		res physio.Result
+		err error
+	)
+	switch kind {
+	case KindDeadSpaceEnghoff:
+		pe, _ := g.need(RolePECO2)
+		if g.stop == nil {
+			res, err = physio.DeadSpaceEnghoff(paco2, physio.MmHg(pe.Fact.Value))
+		}
+	case KindDeadSpaceVCO2:
+		v, _ := g.need(RoleVCO2)
+		ve, _ := g.need(RoleMinuteVolume)
+		t := g.bodyTemp()
+		if g.stop == nil {
+			res, err = physio.DeadSpaceFromVCO2(paco2, physio.MLPerMin(v.Fact.Value), physio.LPerMin(ve.Fact.Value), t)
+		}
+	case KindDeadSpaceEstimated:
+		ve, _ := g.need(RoleMinuteVolume)
+		sex := g.sex()
+		age := g.age()
+		h, _ := g.need(RoleHeight)
+		w, _ := g.need(RoleWeight)
+		if g.stop == nil {
+			res, err = physio.DeadSpaceEstimated(paco2, physio.LPerMin(ve.Fact.Value), physio.EnergyInput{
+				Sex: sex, Age: age, Weight: physio.Kg(w.Fact.Value), Height: physio.Cm(h.Fact.Value),
+				Equation: x.site.Energy, RQ: x.site.RQ,
+			})
+		}
+	case KindDeadSpaceVolume:
+		vdvt := g.measuredVDVT(paco2)
+		vt, _ := g.need(RoleTidalVolume)
+		if g.stop == nil {
+			res, err = physio.DeadSpaceVolume(vdvt, physio.ML(vt.Fact.Value))
+		}
+	case KindAlveolarVentilation:
+		vdvt := g.measuredVDVT(paco2)
+		ve, _ := g.need(RoleMinuteVolume)
+		if g.stop == nil {
+			res, err = physio.AlveolarVentilationFromDeadSpace(physio.LPerMin(ve.Fact.Value), vdvt)
+		}
+	case KindPredictedPaCO2, KindPaCO2Discrepancy:
+		pred := x.predicted(g)
+		if g.stop == nil && kind == KindPredictedPaCO2 {
+			res = pred
+		} else if g.stop == nil {
+			g.steps = append(g.steps, pred)
+			res, err = physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value))
+		}
+	case KindVentilatoryRatio:
+		ve, _ := g.need(RoleMinuteVolume)
+		pbw := g.pbw()
+		if g.stop == nil {
+			res, err = physio.VentilatoryRatio(physio.LPerMin(ve.Fact.Value), paco2, pbw)
+		}
+	case KindPaCO2PETCO2Gradient:
+		et, _ := g.need(RolePETCO2)
+		if g.stop == nil {
+			res, err = physio.EndTidalGradient(paco2, physio.MmHg(et.Fact.Value))
+		}
+	case KindAlveolarDeadSpace:
+		et, _ := g.need(RolePETCO2)
+		if g.stop == nil {
+			res, err = physio.AlveolarDeadSpaceFraction(paco2, physio.MmHg(et.Fact.Value))
+		}
+	case KindRateForTarget:
+		rr, _ := g.need(RoleRespRate)
+		vt, _ := g.need(RoleTidalVolume)
+		pbw := g.pbw()
+		if g.stop == nil {
+			res, err = physio.RateForTarget(physio.PerMin(rr.Fact.Value), paco2, target, physio.ML(vt.Fact.Value), pbw)
+		}
+	case KindTidalVolumeForTarget:
+		vdvt := g.measuredVDVT(paco2)
+		vt, _ := g.need(RoleTidalVolume)
+		pbw := g.pbw()
+		if g.stop == nil {
+			var vd physio.Result
+			vd, err = physio.DeadSpaceVolume(vdvt, physio.ML(vt.Fact.Value))
+			if err == nil {
+				g.steps = append(g.steps, vd)
+				res, err = physio.TidalVolumeForTarget(physio.ML(vt.Fact.Value), physio.ML(vd.Value), paco2, target, pbw)
+			}
+		}
+	default:
+		g.stop = &stop{ReasonNotBloodGas, "unknown kind " + kind}
+	}
+	if err != nil {
+		g.fail(err)
+	}
+	if g.stop != nil {
+		return Derivation{}, x.refusal(kind, g.stop.reason, g.stop.detail, g.used), false
+	}
+	return x.derivation(kind, res, g), Refusal{}, true
+}
+
+// predicted computes the predicted PaCO2 (with its PBW step) or records why not.
+func (x *deriver) predicted(g *gather) physio.Result {
+	v, _ := g.need(RoleVCO2)
+	vt, _ := g.need(RoleTidalVolume)
+	rr, _ := g.need(RoleRespRate)
+	pbw := g.pbw()
+	t := g.bodyTemp()
+	if g.stop == nil && !x.site.ApparatusDeadSpaceConfigured {
+		g.stop = &stop{ReasonApparatusNotSet, "the site has not configured its apparatus dead space (HME, closed suction, extensions); it is never assumed to be zero"}
+	}
+	if g.stop != nil {
+		return physio.Result{}
+	}
+	r, err := physio.PredictedPaCO2(physio.PredictedInput{
+		VCO2: physio.MLPerMin(v.Fact.Value), VT: physio.ML(vt.Fact.Value), RR: physio.PerMin(rr.Fact.Value),
+		PBW: pbw, ApparatusVD: physio.ML(x.site.ApparatusDeadSpaceML), ApparatusVDKnown: true, BodyTemp: t,
+	})
+	if err != nil {
+		g.fail(err)
+		return physio.Result{}
+	}
+	return r
+}
+
+// derivation builds and seals the Derivation of a computed result.
+func (x *deriver) derivation(kind string, res physio.Result, g *gather) Derivation {
+	bg := x.sel.BloodGas
+	status := StatusFinal
+	for _, in := range g.used {
+		if in.Fact.Status == StatusPreliminary {
+			status = StatusPreliminary
+		}
+	}
+	key := DerivationKey(bg.Patient, bg.Key, kind)
+	d := Derivation{
+		Key:       key,
+		ID:        DerivationID(key),
+		Kind:      kind,
+		Patient:   bg.Patient,
+		Encounter: bg.Encounter,
+		Effective: bg.Effective,
+		BloodGas:  bg.Key,
+		Result:    res,
+		Inputs:    sortedInputs(g.used),
+		Status:    status,
+		Algorithm: Algorithm,
+		Steps:     g.steps,
+	}
+	d.Seal()
+	return d
+}
+
+// refusal builds and seals a Refusal.
+func (x *deriver) refusal(kind, reason, detail string, considered []Input) Refusal {
+	bg := x.sel.BloodGas
+	r := Refusal{
+		Key:        DerivationKey(bg.Patient, bg.Key, kind),
+		Kind:       kind,
+		Patient:    bg.Patient,
+		BloodGas:   bg.Key,
+		Effective:  bg.Effective,
+		Reason:     reason,
+		Detail:     detail,
+		Considered: sortedInputs(considered),
+	}
+	r.Seal()
+	return r
+}
+
+// sortedInputs returns the inputs in role order, each role once.
+func sortedInputs(in []Input) []Input {
+	out := make([]Input, 0, len(in))
+	for _, r := range roleOrderArray {
+		for _, i := range in {
+			if i.Role == r {
+				out = append(out, i)
+				break
+			}
+		}
+	}
+	return out
+}
+
+// ageAt returns the age in completed years at time at of a FHIR date
+// (YYYY, YYYY-MM or YYYY-MM-DD). A partial date is taken at its middle
+// (1 July, or the 15th), which note says; the age may then be off by one
+// year.
+func ageAt(date string, at time.Time) (years float64, note string, err error) {
+	var b time.Time
+	switch len(date) {
+	case len("2006-01-02"):
+		b, err = time.Parse("2006-01-02", date)
+	case len("2006-01"):
+		b, err = time.Parse("2006-01", date)
+		b = b.AddDate(0, 0, 14)
+		note = "birth date given to the month: the 15th assumed"
+	case len("2006"):
+		b, err = time.Parse("2006", date)
+		b = b.AddDate(0, 6, 0)
+		note = "birth date given to the year: 1 July assumed"
+	default:
+		return 0, "", fmt.Errorf("date %q: not YYYY, YYYY-MM or YYYY-MM-DD", date)
+	}
+	if err != nil {
+		return 0, "", fmt.Errorf("date %q: %w", date, err)
+	}
+	at = at.UTC()
+	if at.Before(b) {
+		return 0, "", fmt.Errorf("date %q: after the blood gas", date)
+	}
+	y := at.Year() - b.Year()
+	if at.Month() < b.Month() || at.Month() == b.Month() && at.Day() < b.Day() {
+		y--
+	}
+	return float64(y), note, nil
+}

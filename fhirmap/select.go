@@ -1,0 +1,379 @@
+package fhirmap
+
+import (
+	"fmt"
+	"strings"
+	"time"
+
+	"github.com/ventderive/ventderive/physio"
+)
+
+// Roles of the inputs of a derivation. They name what an input was used
+// for; the same roles appear in Provenance, in the basis note and in the
+// digest.
+const (
+	RoleBloodGas     Role = "paco2"         // the arterial PCO2 the derivation is made for
+	RolePECO2        Role = "peco2"         // mixed-expired PCO2, measured
+	RoleVCO2         Role = "vco2"          // CO2 production, measured
+	RoleMinuteVolume Role = "minute-volume" // expired > inspired > set
+	RoleTidalVolume  Role = "tidal-volume"  // measured expired > other measured > set
+	RoleRespRate     Role = "resp-rate"     // total > unspecified > mechanical > set
+	RolePETCO2       Role = "petco2"        // end-tidal PCO2, measured > calculated
+	RoleBodyTemp     Role = "body-temp"     // for K(T); 37 Cel assumed when absent
+	RoleSex          Role = "sex"           // patient-level
+	RoleBirthDate    Role = "birth-date"    // patient-level
+	RoleHeight       Role = "height"        // patient-level
+	RoleWeight       Role = "weight"        // patient-level, actual body weight
+)
+
+// ReasonNotBloodGas refuses a Select call whose blood gas is not a PCO2
+// fact: a caller's mistake, reported rather than panicking.
+const ReasonNotBloodGas = "not-a-blood-gas"
+
+// Selection is the outcome of pairing one blood gas with the data around
+// it. It is a value: the same blood gas, facts and site always give the
+// same Selection.
+type Selection struct {
+	// BloodGas is the PCO2 fact the selection was made for.
+	BloodGas Fact
+	// Window is the pairing window used (Site.Window).
+	Window Window
+	// Reason is set when the blood gas itself cannot be used (a non-arterial
+	// specimen, entered in error, an implausible PaCO2...): every kind is
+	// then refused with it, and Detail says why in words.
+	Reason string
+	Detail string
+	// Inputs holds the chosen fact of each role, the blood gas first, in a
+	// fixed role order; a role with no eligible fact is absent. Each input
+	// records its offset from the blood gas and, when it is not the
+	// preferred kind, the fallback taken.
+	Inputs []Input
+	// Ventilator counts the usable ventilator readings of the patient in
+	// the window (same encounter). Zero means "no-ventilator-data-in-window".
+	Ventilator int
+	// NearestOutside is the offset of the nearest usable ventilator reading
+	// outside the window (stale or too late), valid when HasOutside.
+	NearestOutside time.Duration
+	HasOutside     bool
+	// OtherEncounter counts readings in the window ignored because they
+	// belong to another encounter; NotUsable those ignored for their status
+	// (registered, cancelled, entered-in-error, unknown).
+	OtherEncounter int
+	NotUsable      int
+}
+
+// Input returns the input chosen for role r.
+func (s Selection) Input(r Role) (Input, bool) {
+	for _, in := range s.Inputs {
+		if in.Role == r {
+			return in, true
+		}
+	}
+	return Input{}, false
+}
+
+// roleRule says which facts may fill a role and how they rank.
+type roleRule struct {
+	role Role
+	// patient marks a patient-level role: any time, any encounter, the
+	// latest by Effective wins.
+	patient bool
+	// ventilator marks readings that count as ventilator data in the window.
+	ventilator bool
+	// rank returns the preference of a fact (0 best) or false when the fact
+	// cannot fill the role at all.
+	rank func(Fact) (int, bool)
+	// labels names each rank, for the fallback text.
+	labels []string
+}
+
+var (
+	ruleMinuteVolume = roleRule{role: RoleMinuteVolume, ventilator: true,
+		rank: func(f Fact) (int, bool) {
+			switch {
+			case isSetting(f):
+				return 3, true
+			case f.Detail == "expired":
+				return 0, true
+			case f.Detail == "inspired":
+				return 2, true
+			case f.Detail == "spontaneous":
+				return 0, false // a part of the minute volume only
+			}
+			return 1, true
+		},
+		labels: []string{"measured expired minute volume", "measured minute volume (direction not stated)",
+			"measured inspired minute volume", "minute volume setting"}}
+	ruleTidalVolume = roleRule{role: RoleTidalVolume, ventilator: true,
+		rank: func(f Fact) (int, bool) {
+			switch {
+			case isSetting(f):
+				return 2, true
+			case f.Detail == "expired":
+				return 0, true
+			}
+			return 1, true
+		},
+		labels: []string{"measured expired tidal volume", "measured delivered tidal volume", "tidal volume setting"}}
+	ruleRespRate = roleRule{role: RoleRespRate, ventilator: true,
+		rank: func(f Fact) (int, bool) {
+			switch {
+			case isSetting(f):
+				return 3, true
+			case f.Detail == "total":
+				return 0, true
+			case f.Detail == "mechanical":
+				return 2, true
+			case f.Detail == "spontaneous":
+				return 0, false // spontaneous breaths alone are not the rate
+			}
+			return 1, true
+		},
+		labels: []string{"measured total breath rate", "measured breath rate (kind not stated)",
+			"measured mechanical breath rate", "breath rate setting"}}
+	rulePETCO2 = roleRule{role: RolePETCO2, ventilator: true,
+		rank: func(f Fact) (int, bool) {
+			switch {
+			case isSetting(f):
+				return 0, false
+			case f.Origin == OriginCalculated:
+				return 1, true
+			}
+			return 0, true
+		},
+		labels: []string{"measured end-tidal PCO2", "calculated end-tidal PCO2"}}
+	ruleVCO2 = roleRule{role: RoleVCO2, ventilator: true,
+		rank:   measuredOnly,
+		labels: []string{"measured VCO2"}}
+	rulePECO2 = roleRule{role: RolePECO2, ventilator: true,
+		rank:   measuredOnly,
+		labels: []string{"measured mixed-expired PCO2"}}
+	ruleBodyTemp = roleRule{role: RoleBodyTemp, rank: measuredOnly, labels: []string{"measured body temperature"}}
+	ruleSex      = roleRule{role: RoleSex, patient: true}
+	ruleBirth    = roleRule{role: RoleBirthDate, patient: true}
+	ruleHeight   = roleRule{role: RoleHeight, patient: true}
+	ruleWeight   = roleRule{role: RoleWeight, patient: true}
+	// ruleVentOther marks ventilator readings that no derivation uses but
+	// that show the ventilator feed was present.
+	ruleVentOther = roleRule{ventilator: true}
+)
+
+func measuredOnly(f Fact) (int, bool) { return 0, !isSetting(f) }
+
+// isSetting reports whether a fact is a ventilator setting rather than a
+// measurement (the decoder marks settings by Origin and by Detail "set").
+func isSetting(f Fact) bool { return f.Origin == OriginSetting || f.Detail == "set" }
+
+// ruleFor returns the rule of a fact's quantity.
+func ruleFor(q Quantity) (*roleRule, bool) {
+	switch q {
+	case QMinuteVol:
+		return &ruleMinuteVolume, true
+	case QTidalVol:
+		return &ruleTidalVolume, true
+	case QRespRate:
+		return &ruleRespRate, true
+	case QPETCO2:
+		return &rulePETCO2, true
+	case QVCO2:
+		return &ruleVCO2, true
+	case QPECO2:
+		return &rulePECO2, true
+	case QBodyTemp:
+		return &ruleBodyTemp, true
+	case QSex:
+		return &ruleSex, true
+	case QBirthDate:
+		return &ruleBirth, true
+	case QHeight:
+		return &ruleHeight, true
+	case QWeight:
+		return &ruleWeight, true
+	case QPEEP, QPlateau, QMeanAirway, QFETCO2:
+		return &ruleVentOther, true
+	}
+	return nil, false
+}
+
+type candidate struct {
+	fact   Fact
+	offset time.Duration
+	rank   int
+	rule   *roleRule
+}
+
+// better reports whether a beats b for a window role: better rank, then
+// nearer in time, then earlier, then the smaller Key.
+func (a candidate) better(b candidate) bool {
+	if a.rank != b.rank {
+		return a.rank < b.rank
+	}
+	da, db := a.offset.Abs(), b.offset.Abs()
+	if da != db {
+		return da < db
+	}
+	if c := a.fact.Effective.Compare(b.fact.Effective); c != 0 {
+		return c < 0
+	}
+	return a.fact.Key < b.fact.Key
+}
+
+// later reports whether a beats b for a patient-level role: the later
+// Effective, then the smaller Key.
+func (a candidate) later(b candidate) bool {
+	if c := a.fact.Effective.Compare(b.fact.Effective); c != 0 {
+		return c > 0
+	}
+	return a.fact.Key < b.fact.Key
+}
+
+// Select pairs one blood gas with the ventilator and patient data around it.
+// It is the one selection rule of the service: the offline command and the
+// pipeline both call it. facts are a patient's normalised current facts
+// (Current); facts of other patients are ignored, so a mixed slice is fine.
+//
+// The rules, in order:
+//   - the blood gas must be a usable (preliminary, final, amended, corrected)
+//     arterial PCO2 measured at 37 Cel with a plausible value; otherwise
+//     Selection.Reason says why and no input is selected;
+//   - only facts with Status.Usable(), of the same Patient, are considered;
+//     ventilator and body-temperature readings must also lie in
+//     site.Window around the blood gas (both ends included) and belong to the
+//     blood gas's Encounter when both name one (another encounter's readings
+//     are mismatched data, counted in OtherEncounter);
+//   - per role, the preferred kind wins (measured over set: expired minute
+//     volume > unspecified > inspired > setting; expired tidal volume >
+//     delivered > setting; total breath rate > unspecified > mechanical >
+//     setting; measured end-tidal PCO2 > calculated), then the nearest in
+//     time, then the earlier, then the smaller Key; a fallback is recorded
+//     in Input.Fallback;
+//   - patient-level facts (sex, birth date, height, weight) come from any
+//     time and encounter: the latest by Effective, then the smaller Key.
+func Select(bloodGas Fact, facts []Fact, site Site) Selection {
+	sel := Selection{BloodGas: bloodGas, Window: site.Window}
+	sel.Inputs = append(sel.Inputs, Input{Role: RoleBloodGas, Fact: bloodGas})
+	if reason, detail := bloodGasRefusal(bloodGas); reason != "" {
+		sel.Reason, sel.Detail = reason, detail
+		return sel
+	}
+
+	var (
+		best [len(roleOrderArray)]candidate
+		has  [len(roleOrderArray)]bool
+	)
+	for _, f := range facts {
+		if f.Key == bloodGas.Key || f.Patient != bloodGas.Patient {
+			continue
+		}
+		rule, ok := ruleFor(f.Quantity)
+		if !ok {
+			continue
+		}
+		off := f.Effective.Sub(bloodGas.Effective)
+		inWindow := off >= -site.Window.Before && off <= site.Window.After
+		if !f.Status.Usable() {
+			if inWindow && !rule.patient {
+				sel.NotUsable++
+			}
+			continue
+		}
+		if rule.patient {
+			c := candidate{fact: f, offset: off, rule: rule}
+			if i := roleIndex(rule.role); !has[i] || c.later(best[i]) {
+				best[i], has[i] = c, true
+			}
+			continue
+		}
+		if bloodGas.Encounter != "" && f.Encounter != "" && f.Encounter != bloodGas.Encounter {
+			if inWindow {
+				sel.OtherEncounter++
+			}
+			continue
+		}
+		if !inWindow {
+			if rule.ventilator && (!sel.HasOutside || off.Abs() < sel.NearestOutside.Abs() ||
+				off.Abs() == sel.NearestOutside.Abs() && off < sel.NearestOutside) {
+				sel.NearestOutside, sel.HasOutside = off, true
+			}
+			continue
+		}
+		if rule.ventilator {
+			sel.Ventilator++
+		}
+		if rule.role == "" || rule.rank == nil {
+			continue
+		}
+		rank, ok := rule.rank(f)
+		if !ok {
+			continue
+		}
+		c := candidate{fact: f, offset: off, rank: rank, rule: rule}
+		if i := roleIndex(rule.role); !has[i] || c.better(best[i]) {
+			best[i], has[i] = c, true
+		}
+	}
+	for i, c := range best {
+		if !has[i] {
+			continue
+		}
+		in := Input{Role: c.rule.role, Fact: c.fact, Offset: c.offset}
+		if c.rank > 0 {
+			in.Fallback = fmt.Sprintf("%s used: no %s in the window", c.rule.labels[c.rank], c.rule.labels[0])
+		}
+		sel.Inputs = append(sel.Inputs, in)
+	}
+	return sel
+}
+
+// roleOrderArray is the order of Selection.Inputs and Derivation.Inputs.
+var roleOrderArray = [...]Role{
+	RoleBloodGas, RolePECO2, RoleVCO2, RoleMinuteVolume, RoleTidalVolume, RoleRespRate,
+	RolePETCO2, RoleBodyTemp, RoleSex, RoleBirthDate, RoleHeight, RoleWeight,
+}
+
+func roleIndex(r Role) int {
+	for i, o := range roleOrderArray {
+		if o == r {
+			return i
+		}
+	}
+	panic("fhirmap: role without a place in roleOrderArray: " + string(r))
+}
+
+// bloodGasRefusal returns the reason a PCO2 fact cannot anchor any
+// derivation, or "" when it can.
+func bloodGasRefusal(bg Fact) (reason, detail string) {
+	if bg.Quantity != QPCO2 {
+		return ReasonNotBloodGas, fmt.Sprintf("the fact is a %s value, not a blood PCO2", bg.Quantity)
+	}
+	switch {
+	case bg.Status == StatusEnteredInError:
+		return ReasonEnteredInError, "the blood gas was entered in error"
+	case !bg.Status.Usable():
+		return ReasonBloodGasNotUsable, fmt.Sprintf("the blood gas has status %q: no result to use", bg.Status)
+	}
+	switch bg.Specimen {
+	case SpecimenArterial:
+	case SpecimenVenous:
+		return ReasonVenous, "venous PCO2 (code " + bg.Code.Code + "): dead-space and CO2-elimination formulas need arterial blood"
+	case SpecimenCapillary:
+		return ReasonCapillary, "capillary PCO2 (code " + bg.Code.Code + "): dead-space and CO2-elimination formulas need arterial blood"
+	case SpecimenMixedVenous:
+		return ReasonMixedVenous, "mixed venous PCO2 (code " + bg.Code.Code + "): dead-space and CO2-elimination formulas need arterial blood"
+	default:
+		return ReasonUnknownSpecimen, "PCO2 of unspecified blood (code " + bg.Code.Code + ") and no arterial specimen on the Observation"
+	}
+	if bg.TempCorrected {
+		return ReasonTemperatureAdjusted, "PaCO2 adjusted to the patient's temperature (code " + bg.Code.Code + "); the formulas use PaCO2 measured at 37 Cel"
+	}
+	if err := physio.PaCO2Range.Check("PaCO2", bg.Value); err != nil {
+		return ReasonImplausible, errorDetail(err)
+	}
+	return "", ""
+}
+
+// errorDetail renders a physio error without its package prefix, for a
+// refusal detail.
+func errorDetail(err error) string {
+	return strings.TrimPrefix(err.Error(), "physio: ")
+}
