@@ -158,7 +158,10 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 	if d.Status == StatusEnteredInError {
 		what := "the advisory value"
 		if d.Result.Unit != "" && !math.IsNaN(d.Result.Value) && !math.IsInf(d.Result.Value, 0) {
-			what += " " + FormatValue(k.Code, d.Result.Value) + " " + k.Unit
+			what += " " + FormatValue(k.Code, d.Result.Value)
+			if k.Unit != "1" {
+				what += " " + k.Unit
+			}
 		}
 		if version > 1 {
 			what += " published as version " + strconv.Itoa(version-1)
@@ -196,7 +199,11 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 		}
 		notes = append(notes, "Constants: "+strings.Join(parts, "; ")+".")
 	}
-	assumptions := d.Result.Assumptions()
+	var assumptions []string
+	for _, st := range d.Steps {
+		assumptions = appendNew(assumptions, st.Assumptions()...)
+	}
+	assumptions = appendNew(assumptions, d.Result.Assumptions()...)
 	for _, in := range d.Inputs {
 		if in.Fallback != "" {
 			assumptions = append(assumptions, in.Fallback)
@@ -216,6 +223,16 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 		notes = append(notes, "Flags: "+strings.Join(fl, "; ")+".")
 	}
 	return notes
+}
+
+// appendNew appends the strings of add not yet in list.
+func appendNew(list []string, add ...string) []string {
+	for _, a := range add {
+		if !slices.Contains(list, a) {
+			list = append(list, a)
+		}
+	}
+	return list
 }
 
 // allConstants returns the constants of the steps and of the result, each
@@ -632,7 +649,28 @@ func marshal(v any) ([]byte, error) {
 	if err := enc.Encode(v); err != nil {
 		return nil, fmt.Errorf("marshal json: %w", err)
 	}
-	return unescapeHTML(bytes.TrimSuffix(buf.Bytes(), []byte("\n"))), nil
+	return resourceTypeFirst(unescapeHTML(bytes.TrimSuffix(buf.Bytes(), []byte("\n")))), nil
+}
+
+// resourceTypeFirst moves the samply models' trailing "resourceType" member
+// to the front, where FHIR JSON writers conventionally put it and readers
+// look first. JSON member order carries no meaning, so this changes nothing
+// but readability.
+func resourceTypeFirst(b []byte) []byte {
+	i := bytes.LastIndex(b, []byte(`,"resourceType":"`))
+	if i < 0 || len(b) < 2 || b[0] != '{' || b[len(b)-1] != '}' {
+		return b
+	}
+	member := b[i+1 : len(b)-1]
+	if bytes.ContainsAny(member[len(`"resourceType":"`):len(member)-1], `"\,{}`) {
+		return b // not a plain trailing member
+	}
+	out := make([]byte, 0, len(b))
+	out = append(out, '{')
+	out = append(out, member...)
+	out = append(out, ',')
+	out = append(out, b[1:i]...)
+	return append(out, '}')
 }
 
 // unescapeHTML replaces the escapes \u003c, \u003e and \u0026 by <, > and &.
