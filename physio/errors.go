@@ -16,8 +16,8 @@ var (
 	// ErrImplausible: the value lies outside its published plausible range (see the *Range variables).
 	ErrImplausible = errors.New("physiologically implausible")
 	// ErrOutOfMeaning: the value, or a result computed from valid values, has no
-	// meaning (a fraction outside 0..1, a tidal volume not above dead space, an
-	// unknown sex or equation).
+	// meaning (a fraction outside 0..1, a tidal volume not above dead space, a
+	// sex or equation value outside its enumeration).
 	ErrOutOfMeaning = errors.New("outside the quantity's meaning")
 	// ErrNotGiven: a required choice was left at its zero value (sex,
 	// energy equation, apparatus dead space not declared known). Such inputs

@@ -52,10 +52,13 @@ func (p KPa) MmHg() MmHg { return MmHg(float64(p) * 1000 / PascalPerMmHg) }
 // every equation that needs a sex.
 type Sex uint8
 
+// The sexes of the sex-specific equations (FHIR administrative-gender
+// "male" and "female"). SexUnknown, the zero value, is refused with
+// ErrNotGiven; any other value with ErrOutOfMeaning.
 const (
-	SexUnknown Sex = iota // not given: refused with ErrOutOfMeaning
-	Male
-	Female
+	SexUnknown Sex = iota // not given
+	Male                  // FHIR administrative-gender "male"
+	Female                // FHIR administrative-gender "female"
 )
 
 // String returns "male", "female" or "unknown" (FHIR administrative-gender codes).
