@@ -57,11 +57,12 @@ const (
 	ReasonNoVentInWindow = "no-ventilator-data-in-window"
 )
 
-// Dead-letter reasons the malformed messages are meant to produce.
+// Dead-letter reasons the malformed messages are meant to produce: the
+// decoder's reason codes (fhirmap.DecodeError.Reason).
 const (
-	DeadLetterInvalidJSON  = "invalid-json"
-	DeadLetterResourceType = "unsupported-resource-type"
-	DeadLetterNoSubject    = "missing-subject"
+	DeadLetterInvalidJSON  = "malformed-json"
+	DeadLetterResourceType = "wrong-resource-type"
+	DeadLetterNoSubject    = "missing-field" // Observation.subject
 	DeadLetterUnknownUnit  = "unknown-unit"
 )
 

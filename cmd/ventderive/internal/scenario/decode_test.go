@@ -1,0 +1,78 @@
+package scenario
+
+import (
+	"errors"
+	"math"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// TestServiceDecodesScenario feeds every message to the service's decoder:
+// well-formed messages decode without error and nothing clinical is ignored,
+// malformed ones fail with the intended reason.
+func TestServiceDecodesScenario(t *testing.T) {
+	sc, _ := generated(t, Options{Seed: 4, Duration: MinDuration, VentEvery: 2 * time.Minute})
+	quantities := map[string]map[fhirmap.Quantity]int{} // patient -> quantity -> facts
+	specimens := map[string]map[fhirmap.Specimen]int{}
+	for i, m := range sc.Messages {
+		d, err := fhirmap.Decode(m.Payload, nil)
+		if m.Malformed {
+			var de *fhirmap.DecodeError
+			if !errors.As(err, &de) || de.Reason != m.DeadLetterReason {
+				t.Errorf("message %d (%s): err %v, want reason %s", i, m.Patient, err, m.DeadLetterReason)
+			}
+			if m.DeadLetterReason == DeadLetterNoSubject && de != nil && !strings.Contains(de.Field, "subject") {
+				t.Errorf("message %d: missing field %q, want the subject", i, de.Field)
+			}
+			continue
+		}
+		if err != nil {
+			t.Fatalf("message %d (%s, %s): %v", i, m.Subject, m.Patient, err)
+		}
+		if len(d.Facts) == 0 {
+			t.Fatalf("message %d (%s): no facts", i, m.Subject)
+		}
+		for _, ig := range d.Ignored {
+			// A hasMember panel carries no value of its own (its members
+			// do), and a MessageHeader no clinical data: both are expected.
+			if ig.Reason != "panel" && ig.Reason != "message-header" {
+				t.Errorf("message %d (%s): ignored %+v", i, m.Subject, ig)
+			}
+		}
+		for _, f := range d.Facts {
+			if f.Patient != m.Patient {
+				t.Fatalf("message %d: fact of %s in a message of %s", i, f.Patient, m.Patient)
+			}
+			if math.IsNaN(f.Value) || math.IsInf(f.Value, 0) {
+				t.Fatalf("message %d: %s not finite", i, f.Key)
+			}
+			if quantities[f.Patient] == nil {
+				quantities[f.Patient] = map[fhirmap.Quantity]int{}
+				specimens[f.Patient] = map[fhirmap.Specimen]int{}
+			}
+			quantities[f.Patient][f.Quantity]++
+			if f.Quantity == fhirmap.QPCO2 {
+				specimens[f.Patient][f.Specimen]++
+			}
+		}
+	}
+	for _, p := range sc.Patients {
+		q := quantities[p.Ref]
+		for _, need := range []fhirmap.Quantity{fhirmap.QPCO2, fhirmap.QMinuteVol, fhirmap.QTidalVol, fhirmap.QRespRate,
+			fhirmap.QPETCO2, fhirmap.QFiO2, fhirmap.QHeight, fhirmap.QWeight, fhirmap.QBodyTemp, fhirmap.QSex, fhirmap.QBirthDate} {
+			if q[need] == 0 {
+				t.Errorf("%s: no %s facts", p.Label, need)
+			}
+		}
+		if (q[fhirmap.QVCO2] > 0) != p.VCO2Measured {
+			t.Errorf("%s: %d VCO2 facts, VCO2Measured %v", p.Label, q[fhirmap.QVCO2], p.VCO2Measured)
+		}
+		venous := p.Bed == 7
+		if venous != (specimens[p.Ref][fhirmap.SpecimenVenous] > 0) || venous == (specimens[p.Ref][fhirmap.SpecimenArterial] > 0) {
+			t.Errorf("%s: PCO2 specimens %v", p.Label, specimens[p.Ref])
+		}
+	}
+}
