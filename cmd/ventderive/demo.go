@@ -1,0 +1,574 @@
+package main
+
+import (
+	"context"
+	"crypto/rand"
+	"crypto/sha256"
+	"encoding/hex"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"log/slog"
+	"os"
+	"path/filepath"
+	"slices"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgxpool"
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+
+	"github.com/ventderive/ventderive/cmd/ventderive/internal/scenario"
+	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+)
+
+func init() {
+	register(command{name: "demo", summary: "run the whole service on embedded defaults with an invented ICU day", run: runDemo})
+}
+
+type demoFlags struct {
+	duration time.Duration
+	speed    float64
+	seed     int64
+	keep     bool
+	check    bool
+	dir      string
+}
+
+func runDemo(ctx context.Context, args []string, e env) error {
+	fs := flag.NewFlagSet("demo", flag.ContinueOnError)
+	fs.SetOutput(e.stderr)
+	var f demoFlags
+	fs.DurationVar(&f.duration, "duration", scenario.DefaultDuration, "simulated span of the scenario (at least 6h)")
+	fs.Float64Var(&f.speed, "speed", 2880, "simulated seconds per real second (2880: a day in 30 s); 0: as fast as possible")
+	fs.Int64Var(&f.seed, "seed", 1, "scenario seed: the same seed gives the same messages")
+	fs.BoolVar(&f.keep, "keep", false, "keep the database (and its throwaway cluster) for 'ventderive audit' afterwards")
+	fs.BoolVar(&f.check, "check", false, "exit non-zero unless every story behaves as expected and no message is lost (CI smoke test)")
+	fs.StringVar(&f.dir, "dir", "", "working directory for the embedded NATS store, logs and the throwaway cluster (default: a new temporary directory)")
+	if err := fs.Parse(args); err != nil {
+		return errUsage
+	}
+	if f.duration < scenario.MinDuration {
+		return fmt.Errorf("--duration %s: the scenario needs at least %s", f.duration, scenario.MinDuration)
+	}
+	return demo(ctx, f, e)
+}
+
+func demo(ctx context.Context, f demoFlags, e env) (err error) {
+	out := e.stdout
+	if f.dir == "" {
+		f.dir, err = os.MkdirTemp("", "ventderive-demo-")
+		if err != nil {
+			return err
+		}
+	}
+	if !f.keep {
+		defer os.RemoveAll(f.dir)
+	}
+	logPath := filepath.Join(f.dir, "service.log")
+	logFile, err := os.Create(logPath)
+	if err != nil {
+		return err
+	}
+	defer logFile.Close()
+	log := slog.New(slog.NewJSONHandler(logFile, &slog.HandlerOptions{Level: slog.LevelInfo}))
+
+	sc := scenario.Generate(scenario.Options{Seed: f.seed, Duration: f.duration})
+	fmt.Fprintf(out, "ventderive demo: %s, %s — %d invented patients, %d messages over a simulated %s (seed %d)\n",
+		sc.Hospital, sc.Unit, len(sc.Patients), len(sc.Messages), sc.Duration, f.seed)
+	fmt.Fprintln(out, "All patients, identifiers and values are invented. Derived values are advisory, never orders.")
+
+	// NATS: an embedded server with JetStream on a temporary store.
+	ns, err := server.NewServer(&server.Options{
+		Host: "127.0.0.1", Port: -1, JetStream: true, StoreDir: filepath.Join(f.dir, "nats"),
+		NoLog: true, NoSigs: true,
+	})
+	if err != nil {
+		return fmt.Errorf("embedded nats: %w", err)
+	}
+	ns.Start()
+	defer ns.WaitForShutdown()
+	defer ns.Shutdown()
+	if !ns.ReadyForConnections(10 * time.Second) {
+		return errors.New("embedded nats did not start")
+	}
+	fmt.Fprintf(out, "  NATS      embedded JetStream at %s\n", ns.ClientURL())
+
+	// PostgreSQL: a fresh database on DATABASE_URL's server, or a
+	// throwaway cluster.
+	dbURL, cleanupDB, err := demoDatabase(ctx, e, f, out)
+	if err != nil {
+		return err
+	}
+	defer func() {
+		if !f.keep {
+			cleanupDB()
+		}
+	}()
+
+	nc, err := nats.Connect(ns.ClientURL())
+	if err != nil {
+		return err
+	}
+	defer nc.Close()
+	js, err := jetstream.New(nc)
+	if err != nil {
+		return err
+	}
+	for _, sc := range []jetstream.StreamConfig{consumer.InputStreamConfig(""), consumer.OutputStreamConfig()} {
+		if _, err := js.CreateStream(ctx, sc); err != nil {
+			return fmt.Errorf("create stream %s: %w", sc.Name, err)
+		}
+	}
+
+	// The service, in-process, exactly as serve runs it.
+	var c serveConfig
+	fs := flag.NewFlagSet("demo-serve", flag.ContinueOnError)
+	if _, err := bindServe(fs, func(string) string { return "" }, &c); err != nil {
+		return err
+	}
+	c.natsURL = ns.ClientURL()
+	c.databaseURL = dbURL
+	c.httpAddr = "127.0.0.1:0"
+	c.migrate = true
+	c.apparatusDeadSpaceML = scenario.ApparatusDeadSpaceML
+	c.pipeline.Window.Before, c.pipeline.Window.After = scenario.PairingBefore, scenario.PairingAfter
+	key := make([]byte, 32)
+	_, _ = rand.Read(key)
+	c.patientHashKey = hex.EncodeToString(key)
+	fmt.Fprintf(out, "  service   apparatus dead space %g mL, pairing window %s before to %s after each blood gas; logs in %s\n",
+		c.apparatusDeadSpaceML, c.pipeline.Window.Before, c.pipeline.Window.After, logPath)
+
+	svcCtx, stopSvc := context.WithCancel(ctx)
+	ready := make(chan *consumer.Pipeline, 1)
+	svcErr := make(chan error, 1)
+	go func() { svcErr <- serve(svcCtx, c, log, ready) }()
+	select {
+	case <-ready:
+	case err := <-svcErr:
+		stopSvc()
+		return fmt.Errorf("service: %w", err)
+	}
+	defer func() {
+		stopSvc()
+		if serr := <-svcErr; serr != nil && err == nil {
+			err = fmt.Errorf("service: %w", serr)
+		}
+	}()
+
+	pool, err := pgxpool.New(ctx, dbURL)
+	if err != nil {
+		return err
+	}
+	defer pool.Close()
+
+	if err := feed(ctx, js, pool, sc, f.speed, out); err != nil {
+		return err
+	}
+	if err := waitSettled(ctx, js, pool, 3*time.Minute); err != nil {
+		return err
+	}
+	problems, err := summarise(ctx, pool, js, sc, out)
+	if err != nil {
+		return err
+	}
+	if f.keep {
+		fmt.Fprintf(out, "\nThe store is kept. Try, as a reviewer would:\n")
+		p := sc.Patients[1].Ref
+		fmt.Fprintf(out, "  export DATABASE_URL='%s'\n", dbURL)
+		fmt.Fprintf(out, "  go run ./cmd/ventderive audit list --patient %s\n", p)
+		fmt.Fprintf(out, "  go run ./cmd/ventderive audit refusals\n")
+		fmt.Fprintf(out, "  go run ./cmd/ventderive audit changes\n")
+		fmt.Fprintf(out, "  go run ./cmd/ventderive audit discrepancies --threshold 5\n")
+		fmt.Fprintf(out, "Files (NATS store, service log%s) are in %s\n", map[bool]string{true: ", PostgreSQL cluster", false: ""}[e.getenv("DATABASE_URL") == ""], f.dir)
+	}
+	if f.check && len(problems) > 0 {
+		return fmt.Errorf("demo check failed: %s", strings.Join(problems, "; "))
+	}
+	return nil
+}
+
+// demoDatabase returns the URL of an empty database for the demo and a
+// function that removes it.
+func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (string, func(), error) {
+	name := fmt.Sprintf("ventderive_demo_%d", time.Now().UnixNano())
+	admin := e.getenv("DATABASE_URL")
+	var cluster *pgtest.Cluster
+	if admin == "" {
+		var err error
+		cluster, err = pgtest.StartCluster(ctx, filepath.Join(f.dir, "postgres"))
+		if err != nil {
+			if errors.Is(err, pgtest.ErrNoServer) {
+				return "", nil, fmt.Errorf("no DATABASE_URL and no PostgreSQL server to start a throwaway one: install the Debian package postgresql (or set DATABASE_URL to a server where this role may CREATE DATABASE): %w", err)
+			}
+			return "", nil, fmt.Errorf("throwaway PostgreSQL: %w", err)
+		}
+		admin = cluster.URL()
+		fmt.Fprintf(out, "  PostgreSQL throwaway cluster in %s\n", filepath.Join(f.dir, "postgres"))
+	}
+	conn, err := pgx.Connect(ctx, admin)
+	if err != nil {
+		if cluster != nil {
+			_ = cluster.Close()
+		}
+		return "", nil, fmt.Errorf("database: %w", err)
+	}
+	defer conn.Close(ctx)
+	if _, err := conn.Exec(ctx, "CREATE DATABASE "+pgx.Identifier{name}.Sanitize()); err != nil {
+		if cluster != nil {
+			_ = cluster.Close()
+		}
+		return "", nil, fmt.Errorf("create demo database: %w", err)
+	}
+	cfg, err := pgx.ParseConfig(admin)
+	if err != nil {
+		return "", nil, err
+	}
+	url := withDatabase(admin, name)
+	if cluster == nil {
+		fmt.Fprintf(out, "  PostgreSQL database %s on %s:%d\n", name, cfg.Host, cfg.Port)
+	}
+	cleanup := func() {
+		cctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+		defer cancel()
+		if cluster != nil {
+			_ = cluster.Close()
+			return
+		}
+		if c, err := pgx.Connect(cctx, admin); err == nil {
+			_, _ = c.Exec(cctx, "DROP DATABASE IF EXISTS "+pgx.Identifier{name}.Sanitize()+" WITH (FORCE)")
+			c.Close(cctx)
+		}
+	}
+	return url, cleanup, nil
+}
+
+// withDatabase replaces the database of a postgres:// URL.
+func withDatabase(admin, name string) string {
+	cfg, err := pgx.ParseConfig(admin)
+	if err != nil {
+		return admin
+	}
+	u := fmt.Sprintf("postgres://%s@%s:%d/%s", cfg.User, cfg.Host, cfg.Port, name)
+	if cfg.Password != "" {
+		u = fmt.Sprintf("postgres://%s:%s@%s:%d/%s", cfg.User, cfg.Password, cfg.Host, cfg.Port, name)
+	}
+	if cfg.TLSConfig == nil {
+		u += "?sslmode=disable"
+	}
+	return u
+}
+
+// feed publishes the scenario at the requested speed with a progress line.
+func feed(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool, sc scenario.Scenario, speed float64, out io.Writer) error {
+	realStart := time.Now()
+	lastShown := time.Time{}
+	futures := make([]jetstream.PubAckFuture, 0, 256)
+	flush := func() error {
+		for _, f := range futures {
+			select {
+			case <-f.Ok():
+			case err := <-f.Err():
+				return fmt.Errorf("publish: %w", err)
+			case <-ctx.Done():
+				return ctx.Err()
+			}
+		}
+		futures = futures[:0]
+		return nil
+	}
+	for i, m := range sc.Messages {
+		if speed > 0 {
+			due := realStart.Add(time.Duration(float64(m.At.Sub(sc.Start)) / speed))
+			if wait := time.Until(due); wait > 0 {
+				if err := flush(); err != nil {
+					return err
+				}
+				select {
+				case <-ctx.Done():
+					return ctx.Err()
+				case <-time.After(wait):
+				}
+			}
+		}
+		nm := nats.NewMsg(m.Subject)
+		nm.Data = m.Payload
+		f, err := js.PublishMsgAsync(nm, jetstream.WithMsgID(m.MsgID))
+		if err != nil {
+			return fmt.Errorf("publish: %w", err)
+		}
+		futures = append(futures, f)
+		if len(futures) == cap(futures) {
+			if err := flush(); err != nil {
+				return err
+			}
+		}
+		if time.Since(lastShown) > time.Second || i == len(sc.Messages)-1 {
+			lastShown = time.Now()
+			progress(ctx, pool, out, m.At, i+1, len(sc.Messages))
+		}
+	}
+	if err := flush(); err != nil {
+		return err
+	}
+	fmt.Fprintln(out)
+	return nil
+}
+
+func progress(ctx context.Context, pool *pgxpool.Pool, out io.Writer, at time.Time, sent, total int) {
+	var derived, refused, dead int64
+	_ = pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM derivation), (SELECT count(*) FROM refusal), (SELECT count(*) FROM dead_letter)`).Scan(&derived, &refused, &dead)
+	fmt.Fprintf(out, "\r  simulated %s  sent %5d/%d  derived %5d  refused %5d  dead letters %d   ",
+		at.Format("Jan 2 15:04"), sent, total, derived, refused, dead)
+}
+
+// waitSettled waits until the service has settled every input and
+// published every outbox row.
+func waitSettled(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool, timeout time.Duration) error {
+	deadline := time.Now().Add(timeout)
+	for {
+		var pending, ackPending uint64 = 1, 1
+		if c, err := js.Consumer(ctx, consumer.DefaultInputStream, consumer.DefaultDurable); err == nil {
+			if ci, err := c.Info(ctx); err == nil {
+				pending, ackPending = ci.NumPending, uint64(ci.NumAckPending)
+			}
+		}
+		var backlog int64 = 1
+		_ = pool.QueryRow(ctx, `SELECT count(*) FROM outbox WHERE published_at IS NULL`).Scan(&backlog)
+		if pending == 0 && ackPending == 0 && backlog == 0 {
+			return nil
+		}
+		if time.Now().After(deadline) {
+			return fmt.Errorf("service did not settle in %s: %d pending, %d in flight, %d unpublished", timeout, pending, ackPending, backlog)
+		}
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-time.After(200 * time.Millisecond):
+		}
+	}
+}
+
+// patientSummary is what the store says of one patient.
+type patientSummary struct {
+	gases       int
+	derived     int // current, valid derived values
+	retracted   int // current heads retracted
+	amended     int // derivation versions amended or corrected
+	refusals    map[string]int
+	deadLetters int
+	latest      map[string]string // kind -> value of the latest blood gas
+}
+
+// summarise prints what happened per patient and checks every story's
+// expectation and the message accounting; it returns the problems found.
+func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, sc scenario.Scenario, out io.Writer) ([]string, error) {
+	const headsSQL = `
+		SELECT h.patient_ref, h.blood_gas_key, h.kind, h.refused, coalesce(r.reason, ''),
+		       coalesce(d.status, ''), coalesce(d.value, 0), coalesce(d.unit, ''), coalesce(d.effective, r.effective)
+		FROM head h
+		LEFT JOIN refusal r ON r.id = h.refusal_id
+		LEFT JOIN derivation d ON d.id = h.derivation_id
+		ORDER BY h.patient_ref, 9, h.kind`
+	rows, err := pool.Query(ctx, headsSQL)
+	if err != nil {
+		return nil, fmt.Errorf("summary: %w", err)
+	}
+	sum := map[string]*patientSummary{}
+	get := func(ref string) *patientSummary {
+		s, ok := sum[ref]
+		if !ok {
+			s = &patientSummary{refusals: map[string]int{}, latest: map[string]string{}}
+			sum[ref] = s
+		}
+		return s
+	}
+	gases := map[string]map[string]bool{}
+	lastGas := map[string]time.Time{}
+	for rows.Next() {
+		var ref, gas, kind, reason, status, unit string
+		var refused bool
+		var value float64
+		var eff time.Time
+		if err := rows.Scan(&ref, &gas, &kind, &refused, &reason, &status, &value, &unit, &eff); err != nil {
+			rows.Close()
+			return nil, err
+		}
+		s := get(ref)
+		if gases[ref] == nil {
+			gases[ref] = map[string]bool{}
+		}
+		gases[ref][gas] = true
+		switch {
+		case refused:
+			s.refusals[reason]++
+			if status == "entered-in-error" {
+				s.retracted++
+			}
+		case status == "entered-in-error":
+			s.retracted++
+		default:
+			s.derived++
+			if !eff.Before(lastGas[ref]) {
+				if eff.After(lastGas[ref]) {
+					s.latest = map[string]string{}
+				}
+				lastGas[ref] = eff
+				s.latest[kind] = fmt.Sprintf("%.3g %s", value, unit)
+			}
+		}
+	}
+	rows.Close()
+	if err := rows.Err(); err != nil {
+		return nil, err
+	}
+	for ref, g := range gases {
+		get(ref).gases = len(g)
+	}
+	if err := scanInto(ctx, pool, `SELECT patient_ref, count(DISTINCT blood_gas_key) FROM derivation WHERE status IN ('amended','corrected') GROUP BY 1`, func(ref string, n int) { get(ref).amended = n }); err != nil {
+		return nil, err
+	}
+
+	var problems []string
+	fmt.Fprintf(out, "\nSummary per patient (current state of the provenance store):\n")
+	tw := tabwriter.NewWriter(out, 0, 0, 2, ' ', 0)
+	for _, p := range sc.Patients {
+		s := get(p.Ref)
+		want := p.Expect
+		var bad []string
+		if s.derived < want.MinDerived {
+			bad = append(bad, fmt.Sprintf("%d derived values, expected at least %d", s.derived, want.MinDerived))
+		}
+		for _, r := range want.Refusals {
+			if s.refusals[r] == 0 {
+				bad = append(bad, "no refusal for "+r)
+			}
+		}
+		if s.amended < want.Amended {
+			bad = append(bad, fmt.Sprintf("%d amended blood gases, expected %d", s.amended, want.Amended))
+		}
+		if want.Retracted > 0 && s.retracted == 0 {
+			bad = append(bad, "nothing retracted")
+		}
+		mark := "ok"
+		if len(bad) > 0 {
+			mark = "UNEXPECTED: " + strings.Join(bad, "; ")
+			problems = append(problems, p.Label+": "+strings.Join(bad, "; "))
+		}
+		fmt.Fprintf(tw, "\n%s\t%s\n", p.Label, mark)
+		fmt.Fprintf(tw, "  story\t%s\n", p.Story)
+		fmt.Fprintf(tw, "  store\t%d blood gases, %d current derived values, %d retracted, %d amended\n", s.gases, s.derived, s.retracted, s.amended)
+		if len(s.refusals) > 0 {
+			fmt.Fprintf(tw, "  refusals\t%s\n", formatCounts(s.refusals))
+		}
+		if len(s.latest) > 0 {
+			fmt.Fprintf(tw, "  latest gas\t%s\n", formatLatest(s.latest))
+		}
+	}
+	tw.Flush()
+
+	// Accounting: every message is in the inbox or a dead letter, every
+	// derivation version was published once with its Provenance.
+	good, poison := map[string]bool{}, map[string]bool{}
+	for _, m := range sc.Messages {
+		k := sha256.Sum256(m.Payload)
+		if m.Malformed {
+			poison[hex.EncodeToString(k[:])] = true
+		} else {
+			good[hex.EncodeToString(k[:])] = true
+		}
+	}
+	var inbox, dead, versions, unpublished int
+	if err := pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM inbox), (SELECT count(*) FROM dead_letter),
+		(SELECT count(*) FROM derivation), (SELECT count(*) FROM outbox WHERE published_at IS NULL)`).Scan(&inbox, &dead, &versions, &unpublished); err != nil {
+		return nil, err
+	}
+	out2, err := streamCount(ctx, js)
+	if err != nil {
+		return nil, err
+	}
+	fmt.Fprintf(out, "\nAccounting: %d distinct inputs sent, %d recorded; %d malformed sent, %d dead letters; %d derivation versions, %d output messages (Observation + Provenance each, plus dead-letter copies); %d unpublished\n",
+		len(good), inbox, len(poison), dead, versions, out2, unpublished)
+	if inbox != len(good) {
+		problems = append(problems, fmt.Sprintf("%d inputs recorded of %d sent", inbox, len(good)))
+	}
+	if dead != len(poison) {
+		problems = append(problems, fmt.Sprintf("%d dead letters of %d malformed sent", dead, len(poison)))
+	}
+	if out2 != 2*versions+dead {
+		problems = append(problems, fmt.Sprintf("%d output messages, expected %d", out2, 2*versions+dead))
+	}
+	if unpublished != 0 {
+		problems = append(problems, fmt.Sprintf("%d outbox rows unpublished", unpublished))
+	}
+	if versions == 0 {
+		problems = append(problems, "nothing was derived")
+	}
+	if len(problems) == 0 {
+		fmt.Fprintln(out, "Every story behaved as expected; no message lost or duplicated.")
+	} else {
+		fmt.Fprintf(out, "%d problem(s):\n  %s\n", len(problems), strings.Join(problems, "\n  "))
+	}
+	return problems, nil
+}
+
+func streamCount(ctx context.Context, js jetstream.JetStream) (int, error) {
+	s, err := js.Stream(ctx, consumer.DefaultOutputStream)
+	if err != nil {
+		return 0, err
+	}
+	info, err := s.Info(ctx)
+	if err != nil {
+		return 0, err
+	}
+	return int(info.State.Msgs), nil
+}
+
+func scanInto(ctx context.Context, pool *pgxpool.Pool, sql string, fn func(string, int)) error {
+	rows, err := pool.Query(ctx, sql)
+	if err != nil {
+		return err
+	}
+	defer rows.Close()
+	for rows.Next() {
+		var k string
+		var n int
+		if err := rows.Scan(&k, &n); err != nil {
+			return err
+		}
+		fn(k, n)
+	}
+	return rows.Err()
+}
+
+func formatCounts(m map[string]int) string {
+	keys := make([]string, 0, len(m))
+	for k := range m {
+		keys = append(keys, k)
+	}
+	slices.Sort(keys)
+	parts := make([]string, len(keys))
+	for i, k := range keys {
+		parts[i] = fmt.Sprintf("%s x%d", k, m[k])
+	}
+	return strings.Join(parts, ", ")
+}
+
+func formatLatest(m map[string]string) string {
+	keys := make([]string, 0, len(m))
+	for k := range m {
+		keys = append(keys, k)
+	}
+	slices.Sort(keys)
+	parts := make([]string, len(keys))
+	for i, k := range keys {
+		parts[i] = k + " " + m[k]
+	}
+	return strings.Join(parts, "; ")
+}

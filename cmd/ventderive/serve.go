@@ -1,0 +1,356 @@
+package main
+
+import (
+	"context"
+	"crypto/tls"
+	"crypto/x509"
+	"errors"
+	"flag"
+	"fmt"
+	"log/slog"
+	"net"
+	"net/http"
+	"net/url"
+	"os"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/jackc/pgx/v5/pgxpool"
+	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+
+	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/postgres"
+	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/migrations"
+)
+
+func init() {
+	register(command{name: "serve", summary: "run the service: consume, derive, record, publish", run: runServe})
+}
+
+// envPrefix is the one prefix of every environment variable the service
+// reads (DATABASE_URL excepted, the name every PostgreSQL tool knows).
+const envPrefix = "VENTDERIVE_"
+
+// serveConfig is the resolved configuration of serve (and of demo).
+type serveConfig struct {
+	natsURL, natsCreds, tlsCA, tlsCert, tlsKey string
+	databaseURL                                string
+	httpAddr                                   string
+	logLevel                                   string
+	codeAliases                                string
+	codeSystemURL                              string
+	patientHashKey                             string
+	apparatusDeadSpaceML                       float64 // < 0: not configured
+	migrate                                    bool
+	workers                                    int
+	pipeline                                   consumer.Config
+}
+
+// settings binds each flag to its environment variable, so that one
+// table documents both (README "Configuration").
+type settings struct {
+	fs      *flag.FlagSet
+	getenv  func(string) string
+	secrets map[string]bool
+	order   []string
+}
+
+func (s *settings) env(name string) string {
+	if name == "database-url" {
+		return "DATABASE_URL"
+	}
+	return envPrefix + strings.ToUpper(strings.ReplaceAll(name, "-", "_"))
+}
+
+func (s *settings) str(p *string, name, def, usage string) {
+	if v := s.getenv(s.env(name)); v != "" {
+		def = v
+	}
+	s.fs.StringVar(p, name, def, usage+" (env "+s.env(name)+")")
+	s.order = append(s.order, name)
+}
+
+func (s *settings) secret(p *string, name, def, usage string) {
+	s.str(p, name, def, usage)
+	s.secrets[name] = true
+}
+
+func (s *settings) dur(p *time.Duration, name string, def time.Duration, usage string) error {
+	if v := s.getenv(s.env(name)); v != "" {
+		d, err := time.ParseDuration(v)
+		if err != nil {
+			return fmt.Errorf("%s: %w", s.env(name), err)
+		}
+		def = d
+	}
+	s.fs.DurationVar(p, name, def, usage+" (env "+s.env(name)+")")
+	s.order = append(s.order, name)
+	return nil
+}
+
+func (s *settings) num(p *float64, name string, def float64, usage string) error {
+	if v := s.getenv(s.env(name)); v != "" {
+		f, err := strconv.ParseFloat(v, 64)
+		if err != nil {
+			return fmt.Errorf("%s: %w", s.env(name), err)
+		}
+		def = f
+	}
+	s.fs.Float64Var(p, name, def, usage+" (env "+s.env(name)+")")
+	s.order = append(s.order, name)
+	return nil
+}
+
+func (s *settings) integer(p *int, name string, def int, usage string) error {
+	if v := s.getenv(s.env(name)); v != "" {
+		n, err := strconv.Atoi(v)
+		if err != nil {
+			return fmt.Errorf("%s: %w", s.env(name), err)
+		}
+		def = n
+	}
+	s.fs.IntVar(p, name, def, usage+" (env "+s.env(name)+")")
+	s.order = append(s.order, name)
+	return nil
+}
+
+// resolved lists every setting with secrets masked, for the start log.
+func (s *settings) resolved() []any {
+	var out []any
+	for _, name := range s.order {
+		v := s.fs.Lookup(name).Value.String()
+		switch {
+		case s.secrets[name] && v != "":
+			v = "****"
+		case name == "database-url" || name == "nats-url":
+			v = maskURL(v)
+		}
+		out = append(out, slog.String(name, v))
+	}
+	return out
+}
+
+// maskURL hides a password in a URL (or in a key=value DSN).
+func maskURL(raw string) string {
+	if u, err := url.Parse(raw); err == nil && u.User != nil {
+		if _, ok := u.User.Password(); ok {
+			u.User = url.UserPassword(u.User.Username(), "****")
+		}
+		return u.String()
+	}
+	if strings.Contains(raw, "password=") {
+		fields := strings.Fields(raw)
+		for i, f := range fields {
+			if strings.HasPrefix(f, "password=") {
+				fields[i] = "password=****"
+			}
+		}
+		return strings.Join(fields, " ")
+	}
+	return raw
+}
+
+// bindServe declares serve's flags on fs; demo reuses it.
+func bindServe(fs *flag.FlagSet, getenv func(string) string, c *serveConfig) (*settings, error) {
+	s := &settings{fs: fs, getenv: getenv, secrets: map[string]bool{}}
+	d := consumer.DefaultConfig()
+	c.pipeline = d
+	s.str(&c.natsURL, "nats-url", nats.DefaultURL, "NATS server URL(s), comma-separated")
+	s.str(&c.natsCreds, "nats-creds", "", "NATS credentials file (JWT and NKey seed)")
+	s.str(&c.tlsCA, "nats-tls-ca", "", "CA certificate file for the NATS server")
+	s.str(&c.tlsCert, "nats-tls-cert", "", "client certificate file for NATS")
+	s.str(&c.tlsKey, "nats-tls-key", "", "client key file for NATS")
+	s.secret(&c.databaseURL, "database-url", "", "PostgreSQL connection URL of the service writer role")
+	s.str(&c.pipeline.InputStream, "input-stream", d.InputStream, "JetStream stream holding the input subjects")
+	s.str(&c.pipeline.Durable, "durable", d.Durable, "durable pull consumer name shared by all replicas")
+	s.str(&c.pipeline.ObservationSub, "subject-observation", d.ObservationSub, "subject for derived Observations")
+	s.str(&c.pipeline.ProvenanceSub, "subject-provenance", d.ProvenanceSub, "subject for Provenance resources")
+	s.str(&c.pipeline.DeadLetterSub, "subject-deadletter", d.DeadLetterSub, "subject for dead-letter copies")
+	errs := []error{
+		s.dur(&c.pipeline.Window.Before, "window-before", fhirmap.DefaultSite().Window.Before, "pair ventilator data up to this long before a blood gas"),
+		s.dur(&c.pipeline.Window.After, "window-after", fhirmap.DefaultSite().Window.After, "pair ventilator data up to this long after a blood gas"),
+		s.num(&c.apparatusDeadSpaceML, "apparatus-dead-space-ml", -1, "apparatus dead space of the site's circuits in mL (HME, closed suction); negative: not configured, and derivations that need it are refused"),
+	}
+	s.str(&c.codeAliases, "code-aliases", "", "site code-alias file mapping local codes onto known quantities")
+	s.str(&c.codeSystemURL, "codesystem-url", fhirmap.DefaultSite().CodeSystemURL, "canonical URL of the service's CodeSystem for derived values")
+	s.secret(&c.patientHashKey, "patient-hash-key", "", "secret key for the keyed hash of patient references in logs and lookups (required)")
+	s.str(&c.httpAddr, "http-addr", ":8080", "listen address for /healthz, /readyz and /metrics")
+	s.str(&c.logLevel, "log-level", "info", "debug, info, warn or error")
+	errs = append(errs,
+		s.dur(&c.pipeline.AckWait, "ack-wait", d.AckWait, "consumer ack wait: how long before a dead replica's messages go to another"),
+		s.integer(&c.pipeline.MaxAckPending, "max-ack-pending", d.MaxAckPending, "consumer max ack pending"),
+		s.integer(&c.workers, "workers", 4, "messages handled at once per replica"),
+	)
+	fs.BoolVar(&c.migrate, "migrate", false, "apply database migrations before starting (needs the owner role)")
+	return s, errors.Join(errs...)
+}
+
+func runServe(ctx context.Context, args []string, e env) error {
+	fs := flag.NewFlagSet("serve", flag.ContinueOnError)
+	fs.SetOutput(e.stderr)
+	var c serveConfig
+	s, err := bindServe(fs, e.getenv, &c)
+	if err != nil {
+		return err
+	}
+	if err := fs.Parse(args); err != nil {
+		return errUsage
+	}
+	log, err := newLogger(e, c.logLevel)
+	if err != nil {
+		return err
+	}
+	log.Info("ventderive serve starting", s.resolved()...)
+	if c.databaseURL == "" {
+		return errors.New("no database: set DATABASE_URL or --database-url")
+	}
+	if c.patientHashKey == "" {
+		return errors.New("no patient hash key: set VENTDERIVE_PATIENT_HASH_KEY (a long random secret)")
+	}
+	return serve(ctx, c, log, nil)
+}
+
+// newLogger builds the JSON logger every command that logs uses.
+func newLogger(e env, level string) (*slog.Logger, error) {
+	var l slog.Level
+	if err := l.UnmarshalText([]byte(level)); err != nil {
+		return nil, fmt.Errorf("log level: %w", err)
+	}
+	return slog.New(slog.NewJSONHandler(e.stderr, &slog.HandlerOptions{Level: l})), nil
+}
+
+// serve runs the service until ctx ends. ready, when not nil, is closed once
+// the pipeline consumes (the demo waits for it).
+func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *consumer.Pipeline) error {
+	site := fhirmap.DefaultSite()
+	site.Window = c.pipeline.Window
+	site.CodeSystemURL = c.codeSystemURL
+	if c.apparatusDeadSpaceML >= 0 {
+		site.ApparatusDeadSpaceML = c.apparatusDeadSpaceML
+		site.ApparatusDeadSpaceConfigured = true
+	}
+	codes := fhirmap.DefaultCodes()
+	if c.codeAliases != "" {
+		f, err := os.Open(c.codeAliases)
+		if err != nil {
+			return fmt.Errorf("code aliases: %w", err)
+		}
+		codes, err = codes.WithAliases(f)
+		f.Close()
+		if err != nil {
+			return fmt.Errorf("code aliases %s: %w", c.codeAliases, err)
+		}
+	}
+
+	// Start order: database, NATS, pipeline, HTTP. Stop in reverse.
+	pool, err := pgxpool.New(ctx, c.databaseURL)
+	if err != nil {
+		return fmt.Errorf("database: %w", err)
+	}
+	defer pool.Close()
+	if c.migrate {
+		v, err := migrations.Apply(ctx, pool, log)
+		if err != nil {
+			return fmt.Errorf("migrate: %w", err)
+		}
+		log.Info("database migrated", "version", v)
+	}
+	store := postgres.New(pool, postgres.Options{PatientKey: []byte(c.patientHashKey), Logger: log})
+
+	nc, err := connectNATS(c, log)
+	if err != nil {
+		return err
+	}
+	defer nc.Close()
+
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	p, err := consumer.New(nc, store, consumer.Options{
+		Config: c.pipeline, Site: site, Codes: codes, Logger: log,
+		Metrics: consumer.NewMetrics(reg), Workers: c.workers,
+	})
+	if err != nil {
+		return err
+	}
+
+	var srv *http.Server
+	if c.httpAddr != "" {
+		ln, err := net.Listen("tcp", c.httpAddr)
+		if err != nil {
+			return fmt.Errorf("http listen: %w", err)
+		}
+		srv = &http.Server{Handler: p.Handler(reg), ReadHeaderTimeout: 5 * time.Second}
+		go func() {
+			if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
+				log.Error("http server", "err", err)
+			}
+		}()
+		log.Info("http listening", "addr", ln.Addr().String())
+	}
+
+	runErr := make(chan error, 1)
+	go func() { runErr <- p.Run(ctx) }()
+	if ready != nil {
+		ready <- p
+	}
+	err = <-runErr
+	log.Info("pipeline stopped; draining NATS")
+	if srv != nil {
+		sctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+		_ = srv.Shutdown(sctx)
+		cancel()
+	}
+	if derr := nc.Drain(); derr != nil {
+		log.Warn("nats drain", "err", derr)
+	}
+	return err
+}
+
+// connectNATS connects with reconnection forever: a replica must outlive
+// any NATS outage on its own.
+func connectNATS(c serveConfig, log *slog.Logger) (*nats.Conn, error) {
+	opts := []nats.Option{
+		nats.Name("ventderive"),
+		nats.MaxReconnects(-1),
+		nats.ReconnectWait(time.Second),
+		nats.RetryOnFailedConnect(true),
+		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
+			log.Warn("nats disconnected", "err", err)
+		}),
+		nats.ReconnectHandler(func(nc *nats.Conn) { log.Info("nats reconnected", "url", nc.ConnectedUrlRedacted()) }),
+	}
+	if c.natsCreds != "" {
+		opts = append(opts, nats.UserCredentials(c.natsCreds))
+	}
+	if c.tlsCA != "" || c.tlsCert != "" {
+		tc := &tls.Config{MinVersion: tls.VersionTLS12}
+		if c.tlsCA != "" {
+			pem, err := os.ReadFile(c.tlsCA)
+			if err != nil {
+				return nil, fmt.Errorf("nats tls ca: %w", err)
+			}
+			pool := x509.NewCertPool()
+			if !pool.AppendCertsFromPEM(pem) {
+				return nil, errors.New("nats tls ca: no certificate found")
+			}
+			tc.RootCAs = pool
+		}
+		if c.tlsCert != "" {
+			cert, err := tls.LoadX509KeyPair(c.tlsCert, c.tlsKey)
+			if err != nil {
+				return nil, fmt.Errorf("nats tls client certificate: %w", err)
+			}
+			tc.Certificates = []tls.Certificate{cert}
+		}
+		opts = append(opts, nats.Secure(tc))
+	}
+	nc, err := nats.Connect(c.natsURL, opts...)
+	if err != nil {
+		return nil, fmt.Errorf("nats connect: %w", err)
+	}
+	return nc, nil
+}

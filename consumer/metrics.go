@@ -1,0 +1,70 @@
+package consumer
+
+import (
+	"github.com/prometheus/client_golang/prometheus"
+)
+
+// Metrics are the pipeline's Prometheus metrics. Labels never carry patient
+// identifiers: only outcomes, kinds and reason codes, which are bounded sets.
+type Metrics struct {
+	Inputs        *prometheus.CounterVec // by outcome: accepted, duplicate, retry, dead-letter
+	Ignored       *prometheus.CounterVec // resources ignored by reason (e.g. unknown-code)
+	Derived       *prometheus.CounterVec // new derivation versions by kind
+	Retractions   prometheus.Counter
+	Refusals      *prometheus.CounterVec // by reason code
+	DeadLetters   *prometheus.CounterVec // by reason code
+	Redeliveries  prometheus.Counter
+	Published     prometheus.Counter
+	OutboxBacklog prometheus.Gauge
+	Latency       prometheus.Histogram // input publish to ack, seconds
+	Handling      prometheus.Histogram // handler time, seconds
+	Stalls        prometheus.Counter
+}
+
+// NewMetrics creates the metrics and registers them with reg when it is not nil.
+func NewMetrics(reg prometheus.Registerer) *Metrics {
+	buckets := []float64{.001, .0025, .005, .01, .025, .05, .1, .25, .5, 1, 2.5, 5, 10, 30}
+	m := &Metrics{
+		Inputs: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ventderive_inputs_total", Help: "Input messages by outcome (accepted, duplicate, retry, dead-letter).",
+		}, []string{"outcome"}),
+		Ignored: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ventderive_ignored_resources_total", Help: "Resources in accepted messages that carried nothing the service uses, by reason.",
+		}, []string{"reason"}),
+		Derived: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ventderive_derived_total", Help: "New derived-value versions recorded, by kind.",
+		}, []string{"kind"}),
+		Retractions: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_retractions_total", Help: "Derived values withdrawn (entered-in-error versions).",
+		}),
+		Refusals: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ventderive_refusals_total", Help: "Derivations refused, by reason code.",
+		}, []string{"reason"}),
+		DeadLetters: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ventderive_dead_letters_total", Help: "Poison messages terminated and recorded, by reason code.",
+		}, []string{"reason"}),
+		Redeliveries: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_redeliveries_total", Help: "Messages received with a delivery count above one.",
+		}),
+		Published: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_published_total", Help: "Outbox messages published and acknowledged by the server.",
+		}),
+		OutboxBacklog: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_outbox_backlog", Help: "Outbox rows not yet published.",
+		}),
+		Latency: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name: "ventderive_input_latency_seconds", Help: "From input publish (stream timestamp) to acknowledgement.", Buckets: buckets,
+		}),
+		Handling: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name: "ventderive_processing_seconds", Help: "Handler time per input message.", Buckets: buckets,
+		}),
+		Stalls: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_consumer_stalls_total", Help: "Times the watchdog found pending input with no progress and rebuilt the consumer.",
+		}),
+	}
+	if reg != nil {
+		reg.MustRegister(m.Inputs, m.Ignored, m.Derived, m.Retractions, m.Refusals, m.DeadLetters,
+			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls)
+	}
+	return m
+}

@@ -1,0 +1,457 @@
+package consumer
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"errors"
+	"fmt"
+	"log/slog"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// Pipeline consumes input messages from the durable JetStream consumer,
+// records them and what they change through the Store, and relays the outbox
+// to the output subjects. Several replicas may run against the same stream,
+// consumer and database.
+type Pipeline struct {
+	nc      *nats.Conn
+	js      jetstream.JetStream
+	store   Store
+	codes   *fhirmap.CodeTable
+	planner Planner
+	cfg     Config
+	log     *slog.Logger
+	metrics *Metrics
+	now     func() time.Time
+	// Workers is how many messages of a fetched batch are processed at
+	// once; messages of one patient serialise on the store's patient lock.
+	workers int
+
+	relayKick chan struct{}
+
+	mu       sync.Mutex
+	consumer jetstream.Consumer
+	active   atomic.Bool  // the consumer exists and the last fetch did not fail
+	progress atomic.Int64 // messages settled (acked, naked or terminated)
+	stalls   atomic.Int64
+
+	// hooks lets tests inject faults at named points; nil in production.
+	hooks *Hooks
+}
+
+// Hooks are fault-injection points for tests. A hook returning an error
+// makes the pipeline behave as if the process died at that point: the
+// message is neither acked nor naked.
+type Hooks struct {
+	AfterCommit  func(streamSeq uint64) error // after the store committed, before the ack
+	AfterPublish func(seq int64) error        // after the output PubAck, before the outbox row is marked
+	BeforeIngest func(streamSeq uint64)       // e.g. to slow a handler down
+	DuringPlan   func(patient string)         // inside the ingest transaction, under the patient lock
+}
+
+// Options configures a Pipeline.
+type Options struct {
+	Config  Config
+	Site    fhirmap.Site
+	Codes   *fhirmap.CodeTable
+	Logger  *slog.Logger
+	Metrics *Metrics
+	// Workers bounds concurrent message handling per replica; default 4.
+	Workers int
+	Now     func() time.Time
+	Hooks   *Hooks
+}
+
+// New builds a pipeline. It does not touch the network.
+func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
+	js, err := jetstream.New(nc)
+	if err != nil {
+		return nil, fmt.Errorf("jetstream: %w", err)
+	}
+	cfg := o.Config.withDefaults()
+	if o.Codes == nil {
+		o.Codes = fhirmap.DefaultCodes()
+	}
+	if o.Logger == nil {
+		o.Logger = slog.New(slog.DiscardHandler)
+	}
+	if o.Metrics == nil {
+		o.Metrics = NewMetrics(nil)
+	}
+	if o.Workers <= 0 {
+		o.Workers = 4
+	}
+	if o.Now == nil {
+		o.Now = time.Now
+	}
+	site := o.Site
+	site.Window = cfg.Window
+	return &Pipeline{
+		nc:        nc,
+		js:        js,
+		store:     store,
+		codes:     o.Codes,
+		planner:   Planner{Site: site, ObservationSub: cfg.ObservationSub, ProvenanceSub: cfg.ProvenanceSub},
+		cfg:       cfg,
+		log:       o.Logger,
+		metrics:   o.Metrics,
+		now:       o.Now,
+		workers:   o.Workers,
+		relayKick: make(chan struct{}, 1),
+		hooks:     o.Hooks,
+	}, nil
+}
+
+// withDefaults fills zero fields from DefaultConfig.
+func (c Config) withDefaults() Config {
+	d := DefaultConfig()
+	if c.InputStream == "" {
+		c.InputStream = d.InputStream
+	}
+	if c.Durable == "" {
+		c.Durable = d.Durable
+	}
+	if c.ObservationSub == "" {
+		c.ObservationSub = d.ObservationSub
+	}
+	if c.ProvenanceSub == "" {
+		c.ProvenanceSub = d.ProvenanceSub
+	}
+	if c.DeadLetterSub == "" {
+		c.DeadLetterSub = d.DeadLetterSub
+	}
+	if c.Window == (fhirmap.Window{}) {
+		c.Window = d.Window
+	}
+	if c.Horizon == 0 {
+		c.Horizon = d.Horizon
+	}
+	if c.AckWait == 0 {
+		c.AckWait = d.AckWait
+	}
+	if c.MaxAckPending == 0 {
+		c.MaxAckPending = d.MaxAckPending
+	}
+	if c.Fetch == 0 {
+		c.Fetch = d.Fetch
+	}
+	if c.RetryBase == 0 {
+		c.RetryBase = d.RetryBase
+	}
+	if c.RetryMax == 0 {
+		c.RetryMax = d.RetryMax
+	}
+	if c.MaxDeliver == 0 {
+		c.MaxDeliver = d.MaxDeliver
+	}
+	if c.RelayInterval == 0 {
+		c.RelayInterval = d.RelayInterval
+	}
+	if c.StallAfter == 0 {
+		c.StallAfter = d.StallAfter
+	}
+	return c
+}
+
+// Config returns the resolved configuration.
+func (p *Pipeline) Config() Config { return p.cfg }
+
+// Run consumes until ctx is cancelled, then finishes the messages in hand,
+// publishes what they produced, and returns. The caller drains and closes
+// the NATS connection and the store afterwards.
+func (p *Pipeline) Run(ctx context.Context) error {
+	if err := p.ensureConsumer(ctx); err != nil {
+		return err
+	}
+	relayCtx, stopRelay := context.WithCancel(context.WithoutCancel(ctx))
+	var wg sync.WaitGroup
+	wg.Go(func() { p.relayLoop(relayCtx) })
+	wg.Go(func() { p.watchdog(ctx) })
+
+	p.fetchLoop(ctx)
+
+	// Input is settled; publish what it produced before stopping, bounded
+	// so that a dead NATS cannot hold shutdown forever (the outbox keeps
+	// the rest for the next start).
+	flushCtx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 10*time.Second)
+	p.relayAll(flushCtx)
+	cancel()
+	stopRelay()
+	wg.Wait()
+	p.active.Store(false)
+	return nil
+}
+
+// ensureConsumer creates or updates the durable consumer. Several replicas
+// doing this at once is fine: the config is identical.
+func (p *Pipeline) ensureConsumer(ctx context.Context) error {
+	ctx, cancel := context.WithTimeout(ctx, 10*time.Second)
+	defer cancel()
+	c, err := p.js.CreateOrUpdateConsumer(ctx, p.cfg.InputStream, ConsumerConfig(p.cfg))
+	if err != nil {
+		return fmt.Errorf("create consumer %s on %s: %w", p.cfg.Durable, p.cfg.InputStream, err)
+	}
+	p.mu.Lock()
+	p.consumer = c
+	p.mu.Unlock()
+	p.active.Store(true)
+	return nil
+}
+
+func (p *Pipeline) currentConsumer() jetstream.Consumer {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	return p.consumer
+}
+
+// fetchLoop pulls small batches (Fetch, not Consume, so a replica never
+// holds a large prefetched buffer that another replica could have taken)
+// and settles every message of a batch before pulling the next.
+func (p *Pipeline) fetchLoop(ctx context.Context) {
+	failures := 0
+	for ctx.Err() == nil {
+		batch, err := p.currentConsumer().Fetch(p.cfg.Fetch, jetstream.FetchMaxWait(time.Second))
+		if err == nil {
+			sem := make(chan struct{}, p.workers)
+			var wg sync.WaitGroup
+			for msg := range batch.Messages() {
+				sem <- struct{}{}
+				wg.Go(func() {
+					defer func() { <-sem }()
+					// A message in hand is finished even when shutdown
+					// begins: drain, do not abandon.
+					p.handle(context.WithoutCancel(ctx), msg)
+				})
+			}
+			wg.Wait()
+			err = batch.Error()
+		}
+		switch {
+		case err == nil, errors.Is(err, nats.ErrTimeout), errors.Is(err, context.DeadlineExceeded):
+			failures = 0
+			p.active.Store(true)
+			continue
+		case errors.Is(err, jetstream.ErrConsumerDeleted), errors.Is(err, jetstream.ErrConsumerNotFound):
+			p.active.Store(false)
+			p.log.Warn("consumer gone; recreating", "durable", p.cfg.Durable)
+			if err := p.ensureConsumer(ctx); err != nil {
+				p.log.Error("recreate consumer", "err", err)
+			}
+		default:
+			if ctx.Err() != nil {
+				return
+			}
+			p.active.Store(false)
+			p.log.Warn("fetch failed", "err", err)
+		}
+		failures++
+		sleep(ctx, backoff(p.cfg.RetryBase, p.cfg.RetryMax, failures))
+	}
+}
+
+// handle processes one message and settles it exactly once.
+func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
+	start := p.now()
+	meta, err := msg.Metadata()
+	if err != nil {
+		// Not a JetStream message: nothing to settle against.
+		p.log.Error("message without metadata", "err", err)
+		return
+	}
+	if meta.NumDelivered > 1 {
+		p.metrics.Redeliveries.Inc()
+	}
+	if p.hooks != nil && p.hooks.BeforeIngest != nil {
+		p.hooks.BeforeIngest(meta.Sequence.Stream)
+	}
+	// Work that may outlast AckWait tells the server it is alive.
+	stopProgress := p.inProgress(msg)
+	defer stopProgress()
+
+	raw := msg.Data()
+	sum := sha256.Sum256(raw)
+	m := Message{
+		InboxKey:  hex.EncodeToString(sum[:]),
+		Subject:   msg.Subject(),
+		StreamSeq: meta.Sequence.Stream,
+		Received:  p.now().UTC(),
+		Raw:       raw,
+		Window:    p.cfg.Window,
+		Horizon:   p.cfg.Horizon,
+	}
+	log := p.log.With("stream_seq", meta.Sequence.Stream, "delivery", meta.NumDelivered)
+
+	decoded, err := fhirmap.Decode(raw, p.codes)
+	if err != nil {
+		reason, detail := decodeReason(err)
+		p.poison(ctx, msg, m, reason, detail, log)
+		return
+	}
+	m.Resources, m.Facts = decoded.Resources, decoded.Facts
+	for _, ig := range decoded.Ignored {
+		p.metrics.Ignored.WithLabelValues(ig.Reason).Inc()
+	}
+
+	recorded := p.now().UTC()
+	res, err := p.store.Ingest(ctx, m, func(s Snapshot) (Changes, error) {
+		if p.hooks != nil && p.hooks.DuringPlan != nil {
+			p.hooks.DuringPlan(s.Patient)
+		}
+		return p.planner.Plan(s, recorded)
+	})
+	switch {
+	case errors.Is(err, ErrDuplicate):
+		p.metrics.Inputs.WithLabelValues("duplicate").Inc()
+		p.ack(msg, log)
+		return
+	case errors.Is(err, ErrTransient), errors.Is(err, context.DeadlineExceeded), errors.Is(err, context.Canceled):
+		p.metrics.Inputs.WithLabelValues("retry").Inc()
+		delay := backoff(p.cfg.RetryBase, p.cfg.RetryMax, int(meta.NumDelivered))
+		log.Warn("transient failure; retrying", "err", err, "delay", delay)
+		p.settle(msg.NakWithDelay(delay), "nak", log)
+		return
+	case err != nil:
+		// The store refused the content itself (a constraint): retrying
+		// cannot help. Keep it as a dead letter for review.
+		log.Error("store refused message", "err", err)
+		p.poison(ctx, msg, m, "store-rejected", storeDetail(err), log)
+		return
+	}
+	if p.hooks != nil && p.hooks.AfterCommit != nil {
+		if err := p.hooks.AfterCommit(meta.Sequence.Stream); err != nil {
+			return // simulated crash between COMMIT and ack
+		}
+	}
+	p.ack(msg, log)
+	p.metrics.Inputs.WithLabelValues("accepted").Inc()
+	p.metrics.Latency.Observe(p.now().Sub(meta.Timestamp).Seconds())
+	p.metrics.Handling.Observe(p.now().Sub(start).Seconds())
+	for kind, n := range res.DerivedKinds {
+		p.metrics.Derived.WithLabelValues(kind).Add(float64(n))
+	}
+	for reason, n := range res.RefusalReasons {
+		p.metrics.Refusals.WithLabelValues(reason).Add(float64(n))
+	}
+	p.metrics.Retractions.Add(float64(res.Retractions))
+	if res.Outbox > 0 {
+		p.kickRelay()
+	}
+}
+
+// poison records a message that can never succeed, copies it to the
+// dead-letter subject and terminates it. If recording fails the message is
+// naked, so a poison message is never dropped unrecorded.
+func (p *Pipeline) poison(ctx context.Context, msg jetstream.Msg, m Message, reason, detail string, log *slog.Logger) {
+	if err := p.store.DeadLetter(ctx, m, reason, detail); err != nil {
+		log.Warn("record dead letter failed; retrying", "err", err)
+		p.settle(msg.NakWithDelay(backoff(p.cfg.RetryBase, p.cfg.RetryMax, 2)), "nak", log)
+		return
+	}
+	dl := nats.NewMsg(p.cfg.DeadLetterSub)
+	dl.Data = m.Raw
+	dl.Header.Set(HeaderReason, reason)
+	dl.Header.Set(HeaderDetail, detail)
+	dl.Header.Set(HeaderStreamSeq, fmt.Sprint(m.StreamSeq))
+	pctx, cancel := context.WithTimeout(ctx, 5*time.Second)
+	_, err := p.js.PublishMsg(pctx, dl, jetstream.WithMsgID("deadletter/"+m.InboxKey))
+	cancel()
+	if err != nil {
+		// The record is durable; the copy is a convenience. Retry the
+		// message so the copy is made (both steps are idempotent).
+		log.Warn("publish dead letter failed; retrying", "err", err)
+		p.settle(msg.NakWithDelay(backoff(p.cfg.RetryBase, p.cfg.RetryMax, 2)), "nak", log)
+		return
+	}
+	log.Warn("dead letter", "reason", reason, "detail", detail)
+	p.metrics.Inputs.WithLabelValues("dead-letter").Inc()
+	p.metrics.DeadLetters.WithLabelValues(reason).Inc()
+	p.settle(msg.TermWithReason(reason), "term", log)
+}
+
+func (p *Pipeline) ack(msg jetstream.Msg, log *slog.Logger) { p.settle(msg.Ack(), "ack", log) }
+
+func (p *Pipeline) settle(err error, what string, log *slog.Logger) {
+	p.progress.Add(1)
+	if err != nil {
+		// An unconfirmed settle means redelivery after AckWait, which the
+		// inbox absorbs.
+		log.Warn(what+" failed", "err", err)
+	}
+}
+
+// inProgress sends InProgress at a third of AckWait until stopped.
+func (p *Pipeline) inProgress(msg jetstream.Msg) (stop func()) {
+	done := make(chan struct{})
+	t := time.NewTicker(max(p.cfg.AckWait/3, 10*time.Millisecond))
+	go func() {
+		defer t.Stop()
+		for {
+			select {
+			case <-done:
+				return
+			case <-t.C:
+				_ = msg.InProgress()
+			}
+		}
+	}()
+	return func() { close(done) }
+}
+
+// decodeReason extracts the stable reason code and a payload-free detail.
+func decodeReason(err error) (reason, detail string) {
+	if de, ok := errors.AsType[*fhirmap.DecodeError](err); ok {
+		detail = de.Field
+		if de.Entry >= 0 {
+			detail = fmt.Sprintf("entry %d: %s", de.Entry, de.Field)
+		}
+		return de.Reason, detail
+	}
+	return "malformed", "undecodable message"
+}
+
+// storeDetail keeps what is safe to record of a store error: the store
+// reduces driver errors to SQLSTATE and constraint names (never the
+// server's detail, which echoes values).
+func storeDetail(err error) string {
+	d := err.Error()
+	if len(d) > 200 {
+		d = d[:200]
+	}
+	return d
+}
+
+func (p *Pipeline) kickRelay() {
+	select {
+	case p.relayKick <- struct{}{}:
+	default:
+	}
+}
+
+// backoff is base*2^(attempt-1), capped at maxDelay.
+func backoff(base, maxDelay time.Duration, attempt int) time.Duration {
+	if attempt < 1 {
+		attempt = 1
+	}
+	d := base
+	for i := 1; i < attempt && d < maxDelay; i++ {
+		d *= 2
+	}
+	return min(d, maxDelay)
+}
+
+func sleep(ctx context.Context, d time.Duration) {
+	t := time.NewTimer(d)
+	defer t.Stop()
+	select {
+	case <-ctx.Done():
+	case <-t.C:
+	}
+}
