@@ -117,27 +117,30 @@ RETURNING patient_ref, key`
 	affectedCTE = `
 WITH changed AS (
     SELECT quantity, effective, key FROM fact WHERE patient_hash = $1 AND key = ANY($2::text[])
-), bg AS (
-    SELECT key, effective FROM fact WHERE patient_hash = $1 AND quantity = $7::text
 ), affected AS (
-    SELECT DISTINCT bg.key FROM bg
-    WHERE bg.key IN (SELECT key FROM changed WHERE quantity = $7::text)
-       OR (EXISTS (SELECT 1 FROM changed WHERE quantity = ANY($6::text[]))
-           AND bg.effective >= (SELECT max(effective) FROM bg) - $5::bigint * interval '1 microsecond')
-       OR EXISTS (SELECT 1 FROM changed c
-                  WHERE c.quantity <> $7::text AND NOT c.quantity = ANY($6::text[])
-                    AND bg.effective BETWEEN c.effective - $4::bigint * interval '1 microsecond'
-                                         AND c.effective + $3::bigint * interval '1 microsecond')
+    SELECT key FROM changed WHERE quantity = $7::text
+    UNION
+    SELECT b.key FROM fact b
+    WHERE b.patient_hash = $1 AND b.quantity = $7::text
+      AND EXISTS (SELECT 1 FROM changed WHERE quantity = ANY($6::text[]))
+      AND b.effective >= (SELECT max(effective) FROM fact WHERE patient_hash = $1 AND quantity = $7::text)
+                         - $5::bigint * interval '1 microsecond'
+    UNION
+    SELECT b.key FROM changed c
+    JOIN fact b ON b.patient_hash = $1 AND b.quantity = $7::text
+     AND b.effective BETWEEN c.effective - $4::bigint * interval '1 microsecond'
+                         AND c.effective + $3::bigint * interval '1 microsecond'
+    WHERE c.quantity <> $7::text AND NOT c.quantity = ANY($6::text[])
 )`
 
 	affectedSQL = affectedCTE + `
-SELECT key FROM affected ORDER BY key`
+SELECT DISTINCT key FROM affected ORDER BY key`
 
 	snapshotFactsSQL = affectedCTE + `,
 win AS (
-    SELECT bg.effective - $3::bigint * interval '1 microsecond' AS lo,
-           bg.effective + $4::bigint * interval '1 microsecond' AS hi
-    FROM bg WHERE bg.key IN (SELECT key FROM affected)
+    SELECT b.effective - $3::bigint * interval '1 microsecond' AS lo,
+           b.effective + $4::bigint * interval '1 microsecond' AS hi
+    FROM fact b WHERE b.patient_hash = $1 AND b.key IN (SELECT key FROM affected)
 ), keys AS (
     SELECT key FROM affected
     UNION SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.quantity = ANY($6::text[])

@@ -1,0 +1,111 @@
+package postgres_test
+
+import (
+	"context"
+	"errors"
+	"os"
+	"testing"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgconn"
+	"github.com/jackc/pgx/v5/pgxpool"
+
+	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/postgres"
+	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/migrations"
+)
+
+// poolAs opens a pool whose sessions act as role (SET ROLE): the grants are
+// what is tested, whatever authentication the server uses.
+func poolAs(t *testing.T, ctx context.Context, u, role string) *pgxpool.Pool {
+	t.Helper()
+	cfg, err := pgxpool.ParseConfig(u)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg.AfterConnect = func(ctx context.Context, c *pgx.Conn) error {
+		_, err := c.Exec(ctx, "SET ROLE "+role)
+		return err
+	}
+	pool, err := pgxpool.NewWithConfig(ctx, cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(pool.Close)
+	return pool
+}
+
+func wantDenied(t *testing.T, what string, err error) {
+	t.Helper()
+	var pgErr *pgconn.PgError
+	if !errors.As(err, &pgErr) || pgErr.Code != "42501" {
+		t.Errorf("%s: err = %v, want permission denied (42501)", what, err)
+	}
+}
+
+// TestRoles applies deploy/postgres/roles.sql, migrates as the owner role,
+// runs the store as the writer role and reads as the reviewer role.
+func TestRoles(t *testing.T) {
+	t.Parallel()
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	rolesSQL, err := os.ReadFile("../../deploy/postgres/roles.sql")
+	if err != nil {
+		t.Fatal(err)
+	}
+	u := pgtest.NewEmptyDatabase(t)
+	pgtest.ApplyRoles(t, u, string(rolesSQL))
+	pgtest.ApplyRoles(t, u, string(rolesSQL)) // idempotent
+
+	owner := poolAs(t, ctx, u, "ventderive_owner")
+	if v, err := migrations.Apply(ctx, owner, nil); err != nil || v != migrations.Latest() {
+		t.Fatalf("migrate as owner = %d, %v", v, err)
+	}
+	// Grants also hold when roles.sql runs after the schema exists.
+	pgtest.ApplyRoles(t, u, string(rolesSQL))
+
+	writer := poolAs(t, ctx, u, "ventderive_writer")
+	store := postgres.New(writer, postgres.Options{PatientKey: testKey, Now: clock()})
+	msg := message("fhir.input.lab", 1, abg(p1, "abg-1", t0, 45), vent(p1, "ve-1", fhirmap.QMinuteVol, t0, 10, "L/min"))
+	if res, err := store.Ingest(ctx, msg, new(testPlan).plan); err != nil || res.Derivations != 1 {
+		t.Fatalf("Ingest as writer = %+v, %v", res, err)
+	}
+	if _, err := store.Ingest(ctx, message("fhir.input.lab", 2, abg(p1, "abg-2", t0.Add(time.Hour), 45)), new(testPlan).plan); err != nil {
+		t.Fatalf("Ingest of a refusal as writer: %v", err)
+	}
+	if n, err := store.RelayOutbox(ctx, 10, func(_ context.Context, ms []consumer.OutboxMessage) ([]int64, error) { return seqs(ms), nil }); err != nil || n != 1 {
+		t.Fatalf("RelayOutbox as writer = %d, %v", n, err)
+	}
+	dl := consumer.Message{InboxKey: sha([]byte("bad")), Subject: "fhir.input.lab", Raw: []byte("bad")}
+	if err := store.DeadLetter(ctx, dl, "invalid-json", ""); err != nil {
+		t.Fatalf("DeadLetter as writer: %v", err)
+	}
+	for _, stmt := range []string{
+		"DELETE FROM fact", "DELETE FROM outbox", "DELETE FROM derivation", "DELETE FROM inbox",
+		"UPDATE derivation SET value = 0", "UPDATE outbox SET payload = ''", "UPDATE fact SET value = 0",
+		"TRUNCATE refusal", "DROP TABLE dead_letter", "SELECT * FROM review_derivation",
+	} {
+		_, err := writer.Exec(ctx, stmt)
+		wantDenied(t, "writer "+stmt, err)
+	}
+
+	reviewer := poolAs(t, ctx, u, "ventderive_reviewer")
+	for _, view := range []string{"review_derivation", "review_derivation_input", "review_refusal", "review_refusal_input",
+		"review_head", "review_fact", "review_dead_letter", "review_outbox"} {
+		var n int
+		if err := reviewer.QueryRow(ctx, "SELECT count(*) FROM "+view).Scan(&n); err != nil || n == 0 {
+			t.Errorf("reviewer reads %s: %d rows, %v; want rows", view, n, err)
+		}
+	}
+	for _, stmt := range []string{
+		"SELECT * FROM fact", "SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM derivation",
+		"SELECT * FROM outbox", "SELECT * FROM head", "INSERT INTO inbox VALUES ('x', 's', 0, now(), now(), 0, 0)",
+		"CREATE TABLE reviewer_notes (x int)",
+	} {
+		_, err := reviewer.Exec(ctx, stmt)
+		wantDenied(t, "reviewer "+stmt, err)
+	}
+}
