@@ -152,6 +152,20 @@ func observation(d Derivation, version int, site Site) (fhir.Observation, error)
 	return obs, nil
 }
 
+// BasisNotes returns the lines of the basis of a derivation, as written to
+// Observation.note for its first version: the advisory statement, the
+// formula with the numbers, intermediate steps, constants with their
+// sources, assumptions and fallbacks, the inputs with their time offsets, and
+// the flags. For a retraction the first line says what was withdrawn and
+// why. It returns nil for a kind not in the catalogue.
+func BasisNotes(d Derivation) []string {
+	k, ok := LookupKind(d.Kind)
+	if !ok {
+		return nil
+	}
+	return basisNotes(d, k, 1)
+}
+
 // basisNotes renders everything needed to redo the derivation by hand.
 func basisNotes(d Derivation, k KindInfo, version int) []string {
 	var notes []string

@@ -1,0 +1,276 @@
+package main
+
+import (
+	"bytes"
+	"cmp"
+	"context"
+	"encoding/json"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"os"
+	"slices"
+	"strings"
+	"time"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+func init() {
+	register(command{
+		name:    "derive",
+		summary: "derive from FHIR JSON/NDJSON files offline; print a FHIR Bundle (or a table with --explain)",
+		run:     runDerive,
+	})
+}
+
+// deriveConfig is the resolved configuration of derive.
+type deriveConfig struct {
+	explain  bool
+	aliases  string
+	recorded time.Time
+	site     fhirmap.Site
+	files    []string
+}
+
+// parseDerive reads the flags of derive. Every setting is a flag: the
+// offline command reads no environment variable.
+func parseDerive(args []string, stderr io.Writer, now time.Time) (deriveConfig, error) {
+	c := deriveConfig{site: fhirmap.DefaultSite()}
+	fs := flag.NewFlagSet("derive", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, "usage: ventderive derive [flags] FILE... ('-' reads standard input)")
+		fmt.Fprintln(stderr, "Reads FHIR R4 JSON (a resource or a Bundle) or NDJSON, pairs every blood gas with the")
+		fmt.Fprintln(stderr, "ventilator and patient data around it and writes one FHIR collection Bundle: the derived")
+		fmt.Fprintln(stderr, "Observations (advisory, not orders), their Provenance, and an OperationOutcome listing")
+		fmt.Fprintln(stderr, "every refusal with its reason.")
+		fs.PrintDefaults()
+	}
+	var apparatus float64
+	var recorded string
+	fs.BoolVar(&c.explain, "explain", false, "print a readable table (values with their basis, refusals with reasons) instead of the Bundle")
+	fs.StringVar(&c.aliases, "aliases", "", "site code alias file (see the README) added to the standard code table")
+	fs.Float64Var(&apparatus, "apparatus-dead-space-ml", 0, "apparatus dead space beyond the Y-piece in mL (HME, closed suction); unset: predicted PaCO2 is refused, never computed with zero")
+	fs.DurationVar(&c.site.Window.Before, "window-before", c.site.Window.Before, "pairing window before the blood gas")
+	fs.DurationVar(&c.site.Window.After, "window-after", c.site.Window.After, "pairing window after the blood gas")
+	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", c.site.TargetPaCO2mmHg, "target PaCO2 in mm[Hg] for the ventilation-for-target advice")
+	fs.StringVar(&c.site.CodeSystemURL, "codesystem-url", c.site.CodeSystemURL, "canonical URL of the service CodeSystem")
+	fs.StringVar(&recorded, "recorded", "", "RFC 3339 time written as Provenance.recorded and Bundle.timestamp (default: now)")
+	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return c, flag.ErrHelp
+		}
+		return c, errUsage
+	}
+	fs.Visit(func(f *flag.Flag) {
+		if f.Name == "apparatus-dead-space-ml" {
+			c.site.ApparatusDeadSpaceML, c.site.ApparatusDeadSpaceConfigured = apparatus, true
+		}
+	})
+	c.recorded = now
+	if recorded != "" {
+		t, err := time.Parse(time.RFC3339Nano, recorded)
+		if err != nil {
+			fmt.Fprintf(stderr, "ventderive derive: --recorded %q: not an RFC 3339 time\n", recorded)
+			return c, errUsage
+		}
+		c.recorded = t
+	}
+	if err := c.site.Validate(); err != nil {
+		fmt.Fprintf(stderr, "ventderive derive: %v\n", err)
+		return c, errUsage
+	}
+	c.files = fs.Args()
+	if len(c.files) == 0 {
+		fs.Usage()
+		return c, errUsage
+	}
+	return c, nil
+}
+
+func runDerive(ctx context.Context, args []string, e env) error {
+	c, err := parseDerive(args, e.stderr, time.Now())
+	if errors.Is(err, flag.ErrHelp) {
+		return nil
+	}
+	if err != nil {
+		return err
+	}
+	codes := fhirmap.DefaultCodes()
+	if c.aliases != "" {
+		f, err := os.Open(c.aliases)
+		if err != nil {
+			return fmt.Errorf("open aliases: %w", err)
+		}
+		codes, err = codes.WithAliases(f)
+		f.Close()
+		if err != nil {
+			return fmt.Errorf("read aliases %s: %w", c.aliases, err)
+		}
+	}
+	var facts []fhirmap.Fact
+	for _, name := range c.files {
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		raw, err := readInput(name, e.stdin)
+		if err != nil {
+			return err
+		}
+		d, err := fhirmap.DecodeFile(displayName(name), raw, codes)
+		if err != nil {
+			return err // names the file, the entry or line, and the field
+		}
+		facts = append(facts, d.Facts...)
+	}
+	ds, rs := fhirmap.DeriveAll(facts, c.site)
+	if c.explain {
+		return explain(e.stdout, c, ds, rs)
+	}
+	b, err := fhirmap.EncodeBundle(ds, nil, rs, c.recorded, c.site)
+	if err != nil {
+		return fmt.Errorf("encode bundle: %w", err)
+	}
+	var out bytes.Buffer
+	if err := json.Indent(&out, b, "", "  "); err != nil {
+		return fmt.Errorf("indent bundle: %w", err)
+	}
+	out.WriteByte('\n')
+	if _, err := e.stdout.Write(out.Bytes()); err != nil {
+		return fmt.Errorf("write bundle: %w", err)
+	}
+	return nil
+}
+
+// maxInput bounds one input file, as the service bounds a message.
+const maxInput = 64 << 20
+
+func readInput(name string, stdin io.Reader) ([]byte, error) {
+	var r io.Reader = stdin
+	if name != "-" {
+		f, err := os.Open(name)
+		if err != nil {
+			return nil, fmt.Errorf("open input: %w", err)
+		}
+		defer f.Close()
+		r = f
+	}
+	raw, err := io.ReadAll(io.LimitReader(r, maxInput+1))
+	if err != nil {
+		return nil, fmt.Errorf("read %s: %w", displayName(name), err)
+	}
+	if len(raw) > maxInput {
+		return nil, fmt.Errorf("read %s: larger than %d MiB", displayName(name), maxInput>>20)
+	}
+	return raw, nil
+}
+
+func displayName(name string) string {
+	if name == "-" {
+		return "<stdin>"
+	}
+	return name
+}
+
+// explain prints the derivations with their basis and the refusals with
+// their reasons as a readable table.
+func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.Refusal) error {
+	var b strings.Builder
+	site := c.site
+	apparatus := "not configured (predicted PaCO2 refused)"
+	if site.ApparatusDeadSpaceConfigured {
+		apparatus = fmt.Sprintf("%g mL", site.ApparatusDeadSpaceML)
+	}
+	fmt.Fprintf(&b, "ventderive derive, %s. ADVISORY values: not orders; verify at the bedside.\n", fhirmap.Algorithm)
+	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas; apparatus dead space %s; target PaCO2 %g mm[Hg]; %s, RQ %g.\n\n",
+		shortDuration(site.Window.Before), shortDuration(site.Window.After), apparatus, site.TargetPaCO2mmHg, site.Energy, site.RQ)
+	// Read by patient, then blood-gas time, then kind.
+	ds = slices.Clone(ds)
+	slices.SortStableFunc(ds, func(x, y fhirmap.Derivation) int {
+		return cmp.Or(cmp.Compare(x.Patient, y.Patient), x.Effective.Compare(y.Effective), cmp.Compare(x.Kind, y.Kind))
+	})
+	rs = slices.Clone(rs)
+	slices.SortStableFunc(rs, func(x, y fhirmap.Refusal) int {
+		return cmp.Or(cmp.Compare(x.Patient, y.Patient), x.Effective.Compare(y.Effective), cmp.Compare(x.BloodGas, y.BloodGas), cmp.Compare(x.Kind, y.Kind))
+	})
+
+	rows := [][]string{{"PATIENT", "BLOOD GAS (UTC)", "KIND", "VALUE", "UNIT", "STATUS"}}
+	for _, d := range ds {
+		rows = append(rows, []string{d.Patient, d.Effective.UTC().Format(time.RFC3339), d.Kind,
+			fhirmap.FormatValue(d.Kind, d.Result.Value), d.Result.Unit, string(d.Status)})
+	}
+	widths := columnWidths(rows)
+	fmt.Fprintf(&b, "DERIVED (%d)\n", len(ds))
+	for i, row := range rows {
+		writeRow(&b, row, widths)
+		if i == 0 {
+			continue
+		}
+		for _, note := range fhirmap.BasisNotes(ds[i-1])[1:] { // the advisory line is in the header
+			fmt.Fprintf(&b, "    %s\n", note)
+		}
+	}
+	rows = [][]string{{"PATIENT", "BLOOD GAS (UTC)", "KIND", "REASON", "DETAIL"}}
+	for i := 0; i < len(rs); {
+		r := rs[i]
+		// A blood gas refused as a whole (its specimen, status or value)
+		// is one row: every kind has the same reason and detail.
+		j := i
+		for j < len(rs) && rs[j].BloodGas == r.BloodGas && rs[j].Patient == r.Patient && rs[j].Reason == r.Reason && rs[j].Detail == r.Detail {
+			j++
+		}
+		kind := r.Kind
+		if j-i == len(fhirmap.Catalogue) {
+			kind = "(every kind)"
+		} else {
+			j = i + 1
+		}
+		rows = append(rows, []string{r.Patient, r.Effective.UTC().Format(time.RFC3339), kind, r.Reason, r.Detail})
+		i = j
+	}
+	fmt.Fprintf(&b, "\nREFUSED (%d)\n", len(rs))
+	widths = columnWidths(rows)
+	for _, row := range rows {
+		writeRow(&b, row, widths)
+	}
+	_, err := io.WriteString(w, b.String())
+	if err != nil {
+		return fmt.Errorf("write explanation: %w", err)
+	}
+	return nil
+}
+
+// shortDuration renders 30m0s as 30m and 1h30m0s as 1h30m.
+func shortDuration(d time.Duration) string {
+	s := d.String()
+	if strings.HasSuffix(s, "m0s") {
+		s = strings.TrimSuffix(s, "0s")
+	}
+	if strings.HasSuffix(s, "h0m") {
+		s = strings.TrimSuffix(s, "0m")
+	}
+	return s
+}
+
+func columnWidths(rows [][]string) []int {
+	w := make([]int, len(rows[0]))
+	for _, row := range rows {
+		for i, cell := range row {
+			w[i] = max(w[i], len(cell))
+		}
+	}
+	return w
+}
+
+func writeRow(b *strings.Builder, row []string, widths []int) {
+	for i, cell := range row {
+		if i == len(row)-1 {
+			b.WriteString(cell)
+			break
+		}
+		fmt.Fprintf(b, "%-*s  ", widths[i], cell)
+	}
+	b.WriteByte('\n')
+}
