@@ -34,6 +34,7 @@ const (
 	QSex         Quantity = "sex"           // coded: Fact.Text is "male" or "female" (FHIR administrative-gender)
 	QBirthDate   Quantity = "birth-date"    // Fact.Text is the FHIR date as sent (YYYY, YYYY-MM or YYYY-MM-DD)
 	QPECO2       Quantity = "peco2"         // mm[Hg]; mixed-expired CO2 partial pressure (volumetric capnography, site alias only)
+	QFETCO2      Quantity = "fetco2"        // 1; end-tidal CO2 as a volume fraction (LOINC 19889-5), not a pressure
 )
 
 // Origin tells a measured value from a ventilator setting. Measured values
