@@ -10,6 +10,9 @@ import (
 	"os"
 	"path/filepath"
 	"reflect"
+	"regexp"
+	"slices"
+	"strconv"
 	"testing"
 	"time"
 
@@ -239,5 +242,47 @@ func TestHTTPPaths(t *testing.T) {
 	mux.ServeHTTP(rec, httptest.NewRequest(http.MethodGet, HealthPath, nil))
 	if rec.Code != http.StatusOK {
 		t.Errorf("GET %s: %d", HealthPath, rec.Code)
+	}
+}
+
+// TestKubernetesConfigMapDefaults checks that the settings the ConfigMap
+// spells out are still the service's defaults. The manifests are YAML; the
+// full YAML checks live in the deploycheck module, this one reads only the
+// flat `KEY: "value"` lines of ventderive-config.
+func TestKubernetesConfigMapDefaults(t *testing.T) {
+	raw, err := os.ReadFile(filepath.Join("kubernetes", "configmap.yaml"))
+	if err != nil {
+		t.Fatalf("read: %v", err)
+	}
+	got := map[string]string{}
+	for _, m := range regexp.MustCompile(`(?m)^  ([A-Z_]+): "([^"]*)"$`).FindAllSubmatch(raw, -1) {
+		got[string(m[1])] = string(m[2])
+	}
+	d := consumer.DefaultConfig()
+	want := map[string]string{
+		"VENTDERIVE_HTTP_ADDR":           DefaultHTTPAddr,
+		"VENTDERIVE_INPUT_STREAM":        d.InputStream,
+		"VENTDERIVE_DURABLE":             d.Durable,
+		"VENTDERIVE_SUBJECT_OBSERVATION": d.ObservationSub,
+		"VENTDERIVE_SUBJECT_PROVENANCE":  d.ProvenanceSub,
+		"VENTDERIVE_SUBJECT_DEADLETTER":  d.DeadLetterSub,
+		"VENTDERIVE_MAX_ACK_PENDING":     strconv.Itoa(d.MaxAckPending),
+	}
+	for k, v := range want {
+		if got[k] != v {
+			t.Errorf("%s: %q, service default %q", k, got[k], v)
+		}
+	}
+	for k, v := range map[string]time.Duration{
+		"VENTDERIVE_WINDOW_BEFORE": d.Window.Before, "VENTDERIVE_WINDOW_AFTER": d.Window.After, "VENTDERIVE_ACK_WAIT": d.AckWait,
+	} {
+		if g, err := time.ParseDuration(got[k]); err != nil || g != v {
+			t.Errorf("%s: %q, service default %v", k, got[k], v)
+		}
+	}
+	for k := range got {
+		if !slices.Contains(KnownEnv, k) {
+			t.Errorf("%s is not a setting of serve", k)
+		}
 	}
 }
