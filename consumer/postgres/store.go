@@ -107,16 +107,19 @@ FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::timestamptz[], $
     AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, patient_hash, encounter,
     quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
     code_system, code, code_display, status, effective, issued)
-ON CONFLICT (key, digest) DO NOTHING
-RETURNING patient_ref, key`
+ON CONFLICT (key, digest) DO NOTHING`
 
 	// affectedCTE works out the affected blood gases of one patient.
-	// $1 patient hash, $2 keys of the new facts, $3 window before and $4
-	// window after (microseconds), $5 horizon (microseconds), $6
-	// patient-level quantities, $7 the blood-gas quantity.
+	// $1 patient hash, $2 keys of the message's facts, $3 window before and
+	// $4 window after (microseconds), $5 horizon (microseconds), $6
+	// patient-level quantities, $7 the blood-gas quantity, $8 the inbox key.
+	// changed holds every stored version of each key that this message
+	// brought a new version of (new rows carry this message's inbox key).
 	affectedCTE = `
 WITH changed AS (
-    SELECT quantity, effective, key FROM fact WHERE patient_hash = $1 AND key = ANY($2::text[])
+    SELECT c.quantity, c.effective, c.key FROM fact c
+    WHERE c.patient_hash = $1 AND c.key = ANY($2::text[])
+      AND EXISTS (SELECT 1 FROM fact n WHERE n.key = c.key AND n.patient_hash = $1 AND n.inbox_key = $8)
 ), affected AS (
     SELECT key FROM changed WHERE quantity = $7::text
     UNION
@@ -242,7 +245,6 @@ func retryInPlace(err error) bool {
 type patientPlan struct {
 	ref      string
 	hash     string
-	newKeys  []string
 	affected []string
 	facts    []fhirmap.Fact
 	current  []consumer.Stored
@@ -253,82 +255,56 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 	var res consumer.IngestResult
 	now := s.now().UTC()
 	err := s.inTx(ctx, "ingest", func(tx pgx.Tx) error {
-		// Phase 1: claim, lock, store.
-		patients := messagePatients(msg)
+		// Round trip 1: claim, lock, store, then load what the new facts
+		// affect (later statements of a batch see the earlier ones' rows).
+		var order []*patientPlan
+		for _, ref := range messagePatients(msg) {
+			order = append(order, &patientPlan{ref: ref, hash: s.hash(ref)})
+		}
 		b := &pgx.Batch{}
 		b.Queue(claimInboxSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), msg.Received.UTC(), now,
 			len(msg.Resources), len(msg.Facts))
-		for _, p := range patients {
-			b.Queue(lockPatientSQL, p)
+		for _, p := range order {
+			b.Queue(lockPatientSQL, p.ref)
 		}
 		if len(msg.Resources) > 0 {
 			b.Queue(insertResourcesSQL, s.resourceArgs(msg, now)...)
 		}
 		if len(msg.Facts) > 0 {
 			b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
+			s.queueSnapshots(b, msg, order)
 		}
 		br := tx.SendBatch(ctx, b)
+		defer br.Close()
 		tag, err := br.Exec()
 		if err != nil {
-			br.Close()
 			return fmt.Errorf("claim inbox: %w", err)
 		}
 		if tag.RowsAffected() == 0 {
-			br.Close()
 			return consumer.ErrDuplicate
 		}
-		for range patients {
+		for range order {
 			if _, err := br.Exec(); err != nil {
-				br.Close()
 				return fmt.Errorf("lock patient: %w", err)
 			}
 		}
 		if len(msg.Resources) > 0 {
 			if _, err := br.Exec(); err != nil {
-				br.Close()
 				return fmt.Errorf("insert resources: %w", err)
 			}
 		}
-		byPatient := map[string]*patientPlan{}
-		var order []*patientPlan
 		if len(msg.Facts) > 0 {
-			rows, err := br.Query()
+			tag, err := br.Exec()
 			if err != nil {
-				br.Close()
 				return fmt.Errorf("insert facts: %w", err)
 			}
-			for rows.Next() {
-				var ref, key string
-				if err := rows.Scan(&ref, &key); err != nil {
-					rows.Close()
-					br.Close()
-					return fmt.Errorf("insert facts: %w", err)
-				}
-				res.Facts++
-				p := byPatient[ref]
-				if p == nil {
-					p = &patientPlan{ref: ref, hash: s.hash(ref)}
-					byPatient[ref] = p
-					order = append(order, p)
-				}
-				p.newKeys = append(p.newKeys, key)
-			}
-			if err := rows.Err(); err != nil {
-				br.Close()
-				return fmt.Errorf("insert facts: %w", err)
+			res.Facts = int(tag.RowsAffected())
+			if err := readSnapshots(br, order); err != nil {
+				return err
 			}
 		}
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
-		}
-		if len(order) == 0 {
-			return nil
-		}
-		slices.SortFunc(order, func(a, b *patientPlan) int { return compareStrings(a.ref, b.ref) })
-
-		// Phase 2: affected blood gases, snapshot, heads.
-		if err := s.loadSnapshots(ctx, tx, msg, order); err != nil {
-			return err
 		}
 
 		// Plan, outside the database.
@@ -346,7 +322,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 			p.changes = ch
 		}
 
-		// Phase 3: write what the plans returned.
+		// Round trip 2: write what the plans returned.
 		return s.writeChanges(ctx, tx, msg, order, now, &res)
 	})
 	if err != nil {
@@ -368,16 +344,6 @@ func messagePatients(msg consumer.Message) []string {
 	}
 	slices.Sort(ps)
 	return slices.Compact(ps)
-}
-
-func compareStrings(a, b string) int {
-	switch {
-	case a < b:
-		return -1
-	case a > b:
-		return 1
-	}
-	return 0
 }
 
 func (s *Store) resourceArgs(msg consumer.Message, now time.Time) []any {
@@ -420,17 +386,25 @@ func optTime(t time.Time) pgtype.Timestamptz {
 	return pgtype.Timestamptz{Time: t.UTC(), Valid: true}
 }
 
-func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan) error {
+// queueSnapshots queues, per patient, the affected blood gases, the
+// snapshot facts and the heads (three statements sharing affectedCTE).
+func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
 	before, after, horizon := msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(), msg.Horizon.Microseconds()
-	b := &pgx.Batch{}
 	for _, p := range order {
-		args := []any{p.hash, p.newKeys, before, after, horizon, patientLevel, string(fhirmap.QPCO2)}
+		var keys []string
+		for _, f := range msg.Facts {
+			if f.Patient == p.ref {
+				keys = append(keys, f.Key)
+			}
+		}
+		args := []any{p.hash, keys, before, after, horizon, patientLevel, string(fhirmap.QPCO2), msg.InboxKey}
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
 		b.Queue(snapshotHeadsSQL, args...)
 	}
-	br := tx.SendBatch(ctx, b)
-	defer br.Close()
+}
+
+func readSnapshots(br pgx.BatchResults, order []*patientPlan) error {
 	for _, p := range order {
 		rows, err := br.Query()
 		if err != nil {
@@ -462,9 +436,6 @@ func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Messa
 		if err != nil {
 			return fmt.Errorf("load heads: %w", err)
 		}
-	}
-	if err := br.Close(); err != nil {
-		return fmt.Errorf("load snapshot: %w", err)
 	}
 	return nil
 }
