@@ -59,6 +59,11 @@ func DeriveBloodGas(key string, facts []Fact, site Site) ([]Derivation, []Refusa
 // preliminary, final otherwise; the service turns it into amended or
 // corrected when it supersedes a published version.
 func Derive(sel Selection, site Site) ([]Derivation, []Refusal) {
+	if len(sel.Inputs) == 0 || sel.Inputs[0].Role != RoleBloodGas {
+		// Not made by Select: refuse rather than guess.
+		sel.Inputs = []Input{{Role: RoleBloodGas, Fact: sel.BloodGas}}
+		sel.Reason, sel.Detail = ReasonNotBloodGas, "the selection holds no blood gas; build it with Select"
+	}
 	x := deriver{sel: sel, site: site}
 	var (
 		ds []Derivation

@@ -259,6 +259,13 @@ func TestDeriveRefusals(t *testing.T) {
 	})
 }
 
+func TestDeriveZeroSelectionIsRefused(t *testing.T) {
+	ds, rs := Derive(Selection{}, DefaultSite())
+	if len(ds) != 0 || len(rs) != len(Catalogue) || rs[0].Reason != ReasonNotBloodGas {
+		t.Errorf("zero selection: %d derivations, refusals %+v", len(ds), rs)
+	}
+}
+
 func TestDeriveStatusFollowsInputs(t *testing.T) {
 	tests := []struct {
 		name  string
