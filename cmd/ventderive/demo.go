@@ -12,6 +12,7 @@ import (
 	"log/slog"
 	"os"
 	"path/filepath"
+	"runtime/pprof"
 	"slices"
 	"strings"
 	"text/tabwriter"
@@ -39,6 +40,7 @@ type demoFlags struct {
 	keep     bool
 	check    bool
 	dir      string
+	cpuprof  string
 }
 
 func runDemo(ctx context.Context, args []string, e env) error {
@@ -51,8 +53,20 @@ func runDemo(ctx context.Context, args []string, e env) error {
 	fs.BoolVar(&f.keep, "keep", false, "keep the database (and its throwaway cluster) for 'ventderive audit' afterwards")
 	fs.BoolVar(&f.check, "check", false, "exit non-zero unless every story behaves as expected and no message is lost (CI smoke test)")
 	fs.StringVar(&f.dir, "dir", "", "working directory for the embedded NATS store, logs and the throwaway cluster (default: a new temporary directory)")
+	fs.StringVar(&f.cpuprof, "cpuprofile", "", "write a CPU profile of the whole demo to this file (for performance work)")
 	if err := fs.Parse(args); err != nil {
 		return errUsage
+	}
+	if f.cpuprof != "" {
+		pf, err := os.Create(f.cpuprof)
+		if err != nil {
+			return err
+		}
+		defer pf.Close()
+		if err := pprof.StartCPUProfile(pf); err != nil {
+			return err
+		}
+		defer pprof.StopCPUProfile()
 	}
 	if f.duration < scenario.MinDuration {
 		return fmt.Errorf("--duration %s: the scenario needs at least %s", f.duration, scenario.MinDuration)
@@ -67,6 +81,9 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 		if err != nil {
 			return err
 		}
+	}
+	if err := os.MkdirAll(f.dir, 0o755); err != nil {
+		return err
 	}
 	if !f.keep {
 		defer os.RemoveAll(f.dir)
