@@ -76,3 +76,73 @@ func TestServiceDecodesScenario(t *testing.T) {
 		}
 	}
 }
+
+// TestExpectationsHoldOffline runs the whole scenario through the service's
+// decoder and derivation (no bus, no database; all messages at once, so late
+// arrivals are already in place) with the site settings the scenario
+// assumes, and checks every patient's Expectation and a few story values.
+func TestExpectationsHoldOffline(t *testing.T) {
+	sc, _ := generated(t, Options{Seed: 4, Duration: MinDuration, VentEvery: 2 * time.Minute})
+	var facts []fhirmap.Fact
+	for _, m := range sc.Messages {
+		if m.Malformed {
+			continue
+		}
+		d, err := fhirmap.Decode(m.Payload, nil)
+		if err != nil {
+			t.Fatalf("decode: %v", err)
+		}
+		facts = append(facts, d.Facts...)
+	}
+	site := fhirmap.DefaultSite()
+	site.ApparatusDeadSpaceML, site.ApparatusDeadSpaceConfigured = ApparatusDeadSpaceML, true
+	site.Window = fhirmap.Window{Before: PairingBefore, After: PairingAfter}
+	ds, rs := fhirmap.DeriveAll(facts, site)
+
+	for _, p := range sc.Patients {
+		t.Run(strings.ReplaceAll(p.Label, " ", "_"), func(t *testing.T) {
+			derivedGases := map[string]bool{}
+			vr := []float64{}
+			for _, d := range ds {
+				if d.Patient != p.Ref || d.Status == fhirmap.StatusEnteredInError {
+					continue
+				}
+				derivedGases[d.BloodGas] = true
+				if d.Kind == fhirmap.KindVentilatoryRatio {
+					vr = append(vr, d.Result.Value)
+				}
+			}
+			reasons := map[string]bool{}
+			for _, r := range rs {
+				if r.Patient == p.Ref {
+					reasons[r.Reason] = true
+				}
+			}
+			if len(derivedGases) < p.Expect.MinDerived {
+				t.Errorf("%d blood gases with derived values, expectation at least %d", len(derivedGases), p.Expect.MinDerived)
+			}
+			for _, want := range p.Expect.Refusals {
+				if !reasons[want] {
+					t.Errorf("no refusal %s; refusals %v", want, reasons)
+				}
+			}
+			if p.Expect.Retracted > 0 && !reasons[fhirmap.ReasonEnteredInError] {
+				t.Errorf("the entered-in-error gas is not refused as such; refusals %v", reasons)
+			}
+			// The service's ventilatory ratio agrees with the story
+			// (Sinha 2009: near 1 in healthy lungs; ARDS about 2).
+			switch p.Bed {
+			case 1:
+				for _, v := range vr {
+					if !between(v, 0.75, 1.25) {
+						t.Errorf("ventilatory ratio %.2f", v)
+					}
+				}
+			case 2:
+				if len(vr) < 2 || !(vr[len(vr)-1] > vr[0]) {
+					t.Errorf("ventilatory ratio %v not rising", vr)
+				}
+			}
+		})
+	}
+}

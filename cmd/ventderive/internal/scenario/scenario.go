@@ -55,6 +55,9 @@ const (
 const (
 	ReasonVenous         = "venous-specimen"
 	ReasonNoVentInWindow = "no-ventilator-data-in-window"
+	// ReasonNoVCO2 is expected for beds without measured VCO2 that have
+	// paired blood gases: the measured-VCO2 kinds are refused there.
+	ReasonNoVCO2 = "no-vco2"
 )
 
 // Dead-letter reasons the malformed messages are meant to produce: the
@@ -295,6 +298,9 @@ func (g *generator) run() Patient {
 			continue
 		}
 		p.Expect.MinDerived++
+	}
+	if !st.vco2Measured && p.Expect.MinDerived > 0 {
+		refusals[ReasonNoVCO2] = true
 	}
 	for r := range refusals {
 		p.Expect.Refusals = append(p.Expect.Refusals, r)
