@@ -73,7 +73,7 @@ func DefaultConfig() Config {
 		ObservationSub: DefaultObservationSub,
 		ProvenanceSub:  DefaultProvenanceSub,
 		DeadLetterSub:  DefaultDeadLetterSub,
-		Window:         fhirmap.Window{Before: 30 * time.Minute, After: 10 * time.Minute},
+		Window:         fhirmap.Window{Before: fhirmap.DefaultWindowBefore, After: fhirmap.DefaultWindowAfter},
 		Horizon:        14 * 24 * time.Hour,
 		AckWait:        30 * time.Second,
 		MaxAckPending:  256,

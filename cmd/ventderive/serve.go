@@ -164,7 +164,7 @@ func bindServe(fs *flag.FlagSet, getenv func(string) string, c *serveConfig) (*s
 	s.str(&c.tlsCA, "nats-tls-ca", "", "CA certificate file for the NATS server")
 	s.str(&c.tlsCert, "nats-tls-cert", "", "client certificate file for NATS")
 	s.str(&c.tlsKey, "nats-tls-key", "", "client key file for NATS")
-	s.secret(&c.databaseURL, "database-url", "", "PostgreSQL connection URL of the service writer role")
+	s.str(&c.databaseURL, "database-url", "", "PostgreSQL connection URL of the service writer role")
 	s.str(&c.pipeline.InputStream, "input-stream", d.InputStream, "JetStream stream holding the input subjects")
 	s.str(&c.pipeline.Durable, "durable", d.Durable, "durable pull consumer name shared by all replicas")
 	s.str(&c.pipeline.ObservationSub, "subject-observation", d.ObservationSub, "subject for derived Observations")
@@ -198,6 +198,9 @@ func runServe(ctx context.Context, args []string, e env) error {
 		return err
 	}
 	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return nil
+		}
 		return errUsage
 	}
 	log, err := newLogger(e, c.logLevel)
