@@ -12,7 +12,7 @@ import (
 // every derived value finite and encodable; every refusal with a known
 // reason; the same input twice gives the same digests.
 func FuzzDerive(f *testing.F) {
-	// Seeds: the reference vector (physiology.md s11) and the refusal cases.
+	// Starting corpus: the reference vector (physiology.md s11) and the refusal cases.
 	f.Add(45.0, 10.0, 200.0, 35.0, 500.0, 20.0, 175.0, 70.0, 17.26, int64(-5))
 	f.Add(300.0, 250.0, 900.0, 50.0, 5000.0, 0.0, 90.0, 10.0, 60.0, int64(-45))
 	f.Add(6.0, 0.1, 10.0, 2.0, 20.0, 200.0, 300.0, 500.0, -1.0, int64(11))
