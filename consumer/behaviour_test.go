@@ -1,0 +1,181 @@
+package consumer_test
+
+import (
+	"context"
+	"encoding/json"
+	"math"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// gasHeads returns the heads of one blood gas of patient i.
+func (h *harness) gasHeads(i, j int) map[string]headState {
+	prefix := patientRef(i) + "|Observation/" + gasID(i, j) + "|"
+	out := map[string]headState{}
+	for k, s := range h.heads() {
+		if strings.HasPrefix(k, prefix) {
+			out[strings.TrimPrefix(k, prefix)] = s
+		}
+	}
+	if len(out) == 0 {
+		h.t.Fatalf("no derivation keys for %s", prefix)
+	}
+	return out
+}
+
+// observations reads the published derived Observations of one blood gas.
+func (h *harness) observations(i, j int) []map[string]any {
+	var out []map[string]any
+	for _, m := range h.readOutput() {
+		if m.subject != h.cfg.ObservationSub {
+			continue
+		}
+		var o map[string]any
+		if err := json.Unmarshal(m.data, &o); err != nil {
+			h.t.Fatal(err)
+		}
+		if strings.Contains(string(m.data), gasID(i, j)) {
+			out = append(out, o)
+		}
+	}
+	return out
+}
+
+// A ventilator reading that arrives after its blood gas completes it: the
+// earlier refusal "no-ventilator-data-in-window" gives way to values.
+func TestLateVentilatorReadingCompletesEarlierGas(t *testing.T) {
+	h := newHarness(t)
+	h.startReplica(nil)
+	early := append(patientMsgs(0), gasMsg(0, 0, 45, 1, "final"))
+	h.publish(early)
+	h.waitSettled(30 * time.Second)
+	before := h.gasHeads(0, 0)
+	for kind, s := range before {
+		if !s.refused && true {
+			t.Errorf("%s derived without ventilator data: %+v", kind, s)
+		}
+	}
+	if before[fhirmap.KindDeadSpaceVCO2].reason != "no-ventilator-data-in-window" && before[fhirmap.KindDeadSpaceVCO2].reason != "no-vco2" {
+		t.Errorf("refusal before ventilator data: %+v", before[fhirmap.KindDeadSpaceVCO2])
+	}
+
+	late := ventMsgs(0, 0, 10*time.Minute)
+	h.publish(late)
+	h.waitSettled(30 * time.Second)
+	after := h.gasHeads(0, 0)
+	vdvt := after[fhirmap.KindDeadSpaceVCO2]
+	if vdvt.refused {
+		t.Fatalf("still refused after the late readings: %+v", vdvt)
+	}
+	// shared/reference/physiology.md §11 [derived]: VE 10 L/min, VCO2 200
+	// mL/min, PaCO2 45 mm[Hg], K 0.863 -> VD/VT 0.61644 (to 5 digits).
+	if math.Abs(vdvt.value-0.61644) > 0.000005 {
+		t.Errorf("VD/VT %v, want 0.61644 (physiology.md §11)", vdvt.value)
+	}
+	h.reconcile(append(early, late...))
+}
+
+// An amended blood gas supersedes its derivations: new versions with status
+// amended, computed from the new value, published.
+func TestAmendedGasSupersedesDerivations(t *testing.T) {
+	h := newHarness(t)
+	h.startReplica(nil)
+	msgs := generate(genOpts{patients: 1, gases: 1})
+	h.publish(msgs)
+	h.waitSettled(30 * time.Second)
+	first := h.gasHeads(0, 0)[fhirmap.KindDeadSpaceVCO2]
+
+	amended := gasMsg(0, 0, 50, 2, "amended")
+	h.publish([]testMsg{amended})
+	h.waitSettled(30 * time.Second)
+	second := h.gasHeads(0, 0)[fhirmap.KindDeadSpaceVCO2]
+	if second.status != "amended" || second.value <= first.value {
+		t.Errorf("after amendment %+v (before %+v): want status amended and a higher VD/VT for a higher PaCO2", second, first)
+	}
+	// 1 - 0.863*200/(10*50) = 0.6548 [derived from physiology.md §2].
+	if math.Abs(second.value-(1-0.863004*200/(10*50))) > 1e-4 {
+		t.Errorf("VD/VT %v after PaCO2 50, want 0.6548", second.value)
+	}
+	var versions int
+	if err := h.pool.QueryRow(context.Background(),
+		`SELECT max(version) FROM derivation WHERE key LIKE '%|deadspace-fraction-vco2' AND supersedes_id IS NOT NULL`).Scan(&versions); err != nil {
+		t.Fatal(err)
+	}
+	if versions != 2 {
+		t.Errorf("latest version %d, want 2 superseding 1", versions)
+	}
+	var amendedPublished bool
+	for _, o := range h.observations(0, 0) {
+		if o["status"] == "amended" {
+			amendedPublished = true
+		}
+	}
+	if !amendedPublished {
+		t.Error("no amended Observation was published")
+	}
+	h.reconcile(append(msgs, amended))
+}
+
+// A blood gas entered in error retracts everything derived from it.
+func TestEnteredInErrorRetractsDerivations(t *testing.T) {
+	h := newHarness(t)
+	h.startReplica(nil)
+	msgs := generate(genOpts{patients: 1, gases: 1})
+	h.publish(msgs)
+	h.waitSettled(30 * time.Second)
+	valid := 0
+	for _, s := range h.gasHeads(0, 0) {
+		if !s.refused {
+			valid++
+		}
+	}
+	if valid == 0 {
+		t.Fatal("nothing derived before the retraction")
+	}
+
+	eie := gasMsg(0, 0, 45, 2, "entered-in-error")
+	h.publish([]testMsg{eie})
+	h.waitSettled(30 * time.Second)
+	for kind, s := range h.gasHeads(0, 0) {
+		if !s.refused && s.status != string(fhirmap.StatusEnteredInError) {
+			t.Errorf("%s still valid after the blood gas was entered in error: %+v", kind, s)
+		}
+	}
+	retracted := 0
+	for _, o := range h.observations(0, 0) {
+		if o["status"] == "entered-in-error" {
+			retracted++
+		}
+	}
+	if retracted != valid {
+		t.Errorf("%d retractions published, want %d (one per value published)", retracted, valid)
+	}
+	h.reconcile(append(msgs, eie))
+}
+
+// The same inputs in two different orders give the same final state.
+func TestArrivalOrderIndependence(t *testing.T) {
+	msgs := generate(genOpts{patients: 3, gases: 2})
+	var states []map[string]headState
+	for _, seed := range []uint64{1, 2} {
+		h := newHarness(t)
+		h.startReplica(nil)
+		h.startReplica(nil)
+		h.publish(shuffled(msgs, seed))
+		h.waitSettled(60 * time.Second)
+		h.reconcile(msgs)
+		states = append(states, h.heads())
+	}
+	if len(states[0]) != len(states[1]) {
+		t.Fatalf("%d keys vs %d keys", len(states[0]), len(states[1]))
+	}
+	for k, a := range states[0] {
+		b := states[1][k]
+		if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
+			t.Errorf("%s: %+v vs %+v", k, a, b)
+		}
+	}
+}
