@@ -179,3 +179,45 @@ func TestArrivalOrderIndependence(t *testing.T) {
 		}
 	}
 }
+
+// A Bundle whose entries are identified by fullUrl only (urn:uuid, no
+// resource id: valid FHIR R4) is recorded and derived like any other input.
+func TestBundleEntriesIdentifiedByFullURL(t *testing.T) {
+	h := newHarness(t)
+	h.startReplica(nil)
+	ref := patientRef(0)
+	var entries []any
+	add := func(uuid string, o map[string]any) {
+		delete(o, "id")
+		entries = append(entries, map[string]any{"fullUrl": "urn:uuid:" + uuid, "resource": o})
+	}
+	at := gasTime(0)
+	add("0b0c6f1e-4a53-4c39-9a55-3d2b9a0e0001", observation("x", ref, "76008-2", "L/min", 10, at.Add(-5*time.Minute), nil))
+	add("0b0c6f1e-4a53-4c39-9a55-3d2b9a0e0002", observation("x", ref, "60825-7", "mL/min", 200, at.Add(-5*time.Minute), nil))
+	add("0b0c6f1e-4a53-4c39-9a55-3d2b9a0e0003", observation("x", ref, "2019-8", "mm[Hg]", 45, at, nil))
+	bundle := msgOf("fhir.input.lab", map[string]any{"resourceType": "Bundle", "type": "collection", "entry": entries})
+	msgs := append(patientMsgs(0), bundle)
+	h.publish(msgs)
+	h.waitSettled(30 * time.Second)
+	var dead int
+	if err := h.pool.QueryRow(context.Background(), `SELECT count(*) FROM dead_letter`).Scan(&dead); err != nil {
+		t.Fatal(err)
+	}
+	if dead != 0 {
+		t.Fatalf("%d dead letters for a valid Bundle", dead)
+	}
+	h.reconcile(msgs)
+	found := false
+	for k, s := range h.heads() {
+		if strings.HasSuffix(k, "|"+fhirmap.KindDeadSpaceVCO2) && !s.refused {
+			found = true
+			// physiology.md §11 [derived]: 0.61644.
+			if math.Abs(s.value-0.61644) > 0.000005 {
+				t.Errorf("VD/VT %v, want 0.61644", s.value)
+			}
+		}
+	}
+	if !found {
+		t.Error("no dead-space fraction derived from the Bundle")
+	}
+}
