@@ -32,6 +32,7 @@ var KnownEnv = []string{
 	"VENTDERIVE_LOG_LEVEL",               // debug, info, warn, error
 	"VENTDERIVE_ACK_WAIT",                // consumer ack wait, Go duration
 	"VENTDERIVE_MAX_ACK_PENDING",         // consumer max ack pending
+	"VENTDERIVE_WORKERS",                 // messages handled at once per replica
 }
 
 // SecretEnv are the entries of KnownEnv that carry secrets: deployment files

@@ -7,6 +7,8 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/ventderive/ventderive/deploy"
 )
 
 func TestServeConfigFromEnvironment(t *testing.T) {
@@ -82,5 +84,32 @@ func TestServeRefusesWithoutPatientHashKey(t *testing.T) {
 	})
 	if err == nil || !strings.Contains(err.Error(), "VENTDERIVE_PATIENT_HASH_KEY") {
 		t.Errorf("err = %v", err)
+	}
+}
+
+// deploy/ may set only the environment serve reads, and serve reads only
+// what deploy/ documents.
+func TestServeEnvironmentMatchesDeploy(t *testing.T) {
+	fs := flag.NewFlagSet("serve", flag.ContinueOnError)
+	var c serveConfig
+	s, err := bindServe(fs, func(string) string { return "" }, &c)
+	if err != nil {
+		t.Fatal(err)
+	}
+	got := map[string]bool{}
+	for _, name := range s.order {
+		got[s.env(name)] = true
+	}
+	known := map[string]bool{}
+	for _, e := range deploy.KnownEnv {
+		known[e] = true
+		if !got[e] {
+			t.Errorf("deploy.KnownEnv lists %s, which serve does not read", e)
+		}
+	}
+	for e := range got {
+		if !known[e] {
+			t.Errorf("serve reads %s, which deploy.KnownEnv does not list", e)
+		}
 	}
 }
