@@ -481,7 +481,7 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 			mark = "UNEXPECTED: " + strings.Join(bad, "; ")
 			problems = append(problems, p.Label+": "+strings.Join(bad, "; "))
 		}
-		fmt.Fprintf(tw, "\n%s\t%s\n", p.Label, mark)
+		fmt.Fprintf(tw, "\n%s: %s\n", p.Label, mark)
 		fmt.Fprintf(tw, "  story\t%s\n", p.Story)
 		fmt.Fprintf(tw, "  store\t%d blood gases, %d current derived values, %d retracted, %d amended\n", s.gases, s.derived, s.retracted, s.amended)
 		if len(s.refusals) > 0 {
@@ -588,7 +588,7 @@ func formatLatest(m map[string]string) string {
 	slices.Sort(keys)
 	parts := make([]string, len(keys))
 	for i, k := range keys {
-		parts[i] = k + " " + m[k]
+		parts[i] = k + " " + strings.TrimSuffix(m[k], " 1") // UCUM "1": a plain number
 	}
 	return strings.Join(parts, "; ")
 }
