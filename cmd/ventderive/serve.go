@@ -326,34 +326,45 @@ func connectNATS(c serveConfig, log *slog.Logger) (*nats.Conn, error) {
 		}),
 		nats.ReconnectHandler(func(nc *nats.Conn) { log.Info("nats reconnected", "url", nc.ConnectedUrlRedacted()) }),
 	}
-	if c.natsCreds != "" {
-		opts = append(opts, nats.UserCredentials(c.natsCreds))
+	auth, err := natsAuth(c.natsCreds, c.tlsCA, c.tlsCert, c.tlsKey)
+	if err != nil {
+		return nil, err
 	}
-	if c.tlsCA != "" || c.tlsCert != "" {
-		tc := &tls.Config{MinVersion: tls.VersionTLS12}
-		if c.tlsCA != "" {
-			pem, err := os.ReadFile(c.tlsCA)
-			if err != nil {
-				return nil, fmt.Errorf("nats tls ca: %w", err)
-			}
-			pool := x509.NewCertPool()
-			if !pool.AppendCertsFromPEM(pem) {
-				return nil, errors.New("nats tls ca: no certificate found")
-			}
-			tc.RootCAs = pool
-		}
-		if c.tlsCert != "" {
-			cert, err := tls.LoadX509KeyPair(c.tlsCert, c.tlsKey)
-			if err != nil {
-				return nil, fmt.Errorf("nats tls client certificate: %w", err)
-			}
-			tc.Certificates = []tls.Certificate{cert}
-		}
-		opts = append(opts, nats.Secure(tc))
-	}
+	opts = append(opts, auth...)
 	nc, err := nats.Connect(c.natsURL, opts...)
 	if err != nil {
 		return nil, fmt.Errorf("nats connect: %w", err)
 	}
 	return nc, nil
+}
+
+// natsAuth turns the credentials and TLS settings shared by serve and
+// simulate into connection options.
+func natsAuth(creds, caFile, certFile, keyFile string) ([]nats.Option, error) {
+	var opts []nats.Option
+	if creds != "" {
+		opts = append(opts, nats.UserCredentials(creds))
+	}
+	if caFile == "" && certFile == "" {
+		return opts, nil
+	}
+	tc := &tls.Config{MinVersion: tls.VersionTLS12}
+	if caFile != "" {
+		pem, err := os.ReadFile(caFile)
+		if err != nil {
+			return nil, fmt.Errorf("nats tls ca: %w", err)
+		}
+		tc.RootCAs = x509.NewCertPool()
+		if !tc.RootCAs.AppendCertsFromPEM(pem) {
+			return nil, errors.New("nats tls ca: no certificate found")
+		}
+	}
+	if certFile != "" {
+		cert, err := tls.LoadX509KeyPair(certFile, keyFile)
+		if err != nil {
+			return nil, fmt.Errorf("nats tls client certificate: %w", err)
+		}
+		tc.Certificates = []tls.Certificate{cert}
+	}
+	return append(opts, nats.Secure(tc)), nil
 }

@@ -2,8 +2,6 @@ package main
 
 import (
 	"context"
-	"crypto/tls"
-	"crypto/x509"
 	"encoding/json"
 	"errors"
 	"flag"
@@ -12,7 +10,6 @@ import (
 	"log/slog"
 	"maps"
 	"net/url"
-	"os"
 	"slices"
 	"strings"
 	"time"
@@ -193,30 +190,11 @@ func dryRun(w io.Writer, sc scenario.Scenario, prefix string) error {
 // first connection: an operator running simulate wants to know at once.
 func (c simulateConfig) connect() (*nats.Conn, error) {
 	opts := []nats.Option{nats.Name("ventderive-simulate"), nats.MaxReconnects(-1), nats.ReconnectWait(time.Second)}
-	if c.creds != "" {
-		opts = append(opts, nats.UserCredentials(c.creds))
+	auth, err := natsAuth(c.creds, c.tlsCA, c.tlsCert, c.tlsKey)
+	if err != nil {
+		return nil, err
 	}
-	if c.tlsCA != "" || c.tlsCert != "" {
-		tc := &tls.Config{MinVersion: tls.VersionTLS12}
-		if c.tlsCA != "" {
-			pem, err := os.ReadFile(c.tlsCA)
-			if err != nil {
-				return nil, fmt.Errorf("nats tls ca: %w", err)
-			}
-			tc.RootCAs = x509.NewCertPool()
-			if !tc.RootCAs.AppendCertsFromPEM(pem) {
-				return nil, errors.New("nats tls ca: no certificate found")
-			}
-		}
-		if c.tlsCert != "" {
-			cert, err := tls.LoadX509KeyPair(c.tlsCert, c.tlsKey)
-			if err != nil {
-				return nil, fmt.Errorf("nats tls client certificate: %w", err)
-			}
-			tc.Certificates = []tls.Certificate{cert}
-		}
-		opts = append(opts, nats.Secure(tc))
-	}
+	opts = append(opts, auth...)
 	nc, err := nats.Connect(c.natsURL, opts...)
 	if err != nil {
 		return nil, fmt.Errorf("connect nats: %w", err)
