@@ -130,3 +130,25 @@ type IngestResult struct {
 	RefusalReasons map[string]int
 	DerivedKinds   map[string]int
 }
+
+// BatchStore is a Store that can also record several messages in one
+// transaction (group commit). The pipeline detects it with a type assertion
+// and then commits a group of messages at once, acknowledging each only
+// after that COMMIT; a Store without it is called once per message.
+type BatchStore interface {
+	Store
+	// IngestBatch records msgs as Ingest would record them one after the
+	// other in the given order, but in one transaction: later messages see
+	// what earlier ones stored and planned. It returns one result per
+	// message, at the same index. Each result's Err has Ingest's meaning
+	// (nil, ErrDuplicate, wrapped ErrTransient, or a permanent refusal of
+	// that message). A message that fails permanently must not fail the
+	// others: the store then records the others without it.
+	IngestBatch(ctx context.Context, msgs []Message, plan PlanFunc) []BatchResult
+}
+
+// BatchResult is what IngestBatch did with one message.
+type BatchResult struct {
+	IngestResult
+	Err error
+}

@@ -257,23 +257,14 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 	err := s.inTx(ctx, "ingest", func(tx pgx.Tx) error {
 		// Round trip 1: claim, lock, store, then load what the new facts
 		// affect (later statements of a batch see the earlier ones' rows).
-		var order []*patientPlan
-		for _, ref := range messagePatients(msg) {
-			order = append(order, &patientPlan{ref: ref, hash: s.hash(ref)})
-		}
+		order := patientPlans(s, msg)
 		b := &pgx.Batch{}
 		b.Queue(claimInboxSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), msg.Received.UTC(), now,
 			len(msg.Resources), len(msg.Facts))
 		for _, p := range order {
 			b.Queue(lockPatientSQL, p.ref)
 		}
-		if len(msg.Resources) > 0 {
-			b.Queue(insertResourcesSQL, s.resourceArgs(msg, now)...)
-		}
-		if len(msg.Facts) > 0 {
-			b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
-			s.queueSnapshots(b, msg, order)
-		}
+		s.queueInput(b, msg, order, now)
 		br := tx.SendBatch(ctx, b)
 		defer br.Close()
 		tag, err := br.Exec()
@@ -288,47 +279,102 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 				return fmt.Errorf("lock patient: %w", err)
 			}
 		}
-		if len(msg.Resources) > 0 {
-			if _, err := br.Exec(); err != nil {
-				return fmt.Errorf("insert resources: %w", err)
-			}
-		}
-		if len(msg.Facts) > 0 {
-			tag, err := br.Exec()
-			if err != nil {
-				return fmt.Errorf("insert facts: %w", err)
-			}
-			res.Facts = int(tag.RowsAffected())
-			if err := readSnapshots(br, order); err != nil {
-				return err
-			}
+		if err := readInput(br, msg, order, &res); err != nil {
+			return err
 		}
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
 		}
 
 		// Plan, outside the database.
-		for _, p := range order {
-			if len(p.affected) == 0 {
-				continue
-			}
-			ch, err := plan(consumer.Snapshot{Patient: p.ref, Facts: p.facts, Affected: p.affected, Current: p.current})
-			if err != nil {
-				return &planError{fmt.Errorf("plan: %w", err)}
-			}
-			if err := checkChanges(p.ref, ch); err != nil {
-				return &planError{err}
-			}
-			p.changes = ch
+		if err := planPatients(order, plan); err != nil {
+			return err
 		}
 
 		// Round trip 2: write what the plans returned.
-		return s.writeChanges(ctx, tx, msg, order, now, &res)
+		b = &pgx.Batch{}
+		w, err := s.queueChanges(b, msg, order, now, &res)
+		if err != nil {
+			return err
+		}
+		if b.Len() == 0 {
+			return nil
+		}
+		br2 := tx.SendBatch(ctx, b)
+		defer br2.Close()
+		if err := s.readChanges(br2, w, &res); err != nil {
+			return err
+		}
+		if err := br2.Close(); err != nil {
+			return fmt.Errorf("write changes: %w", err)
+		}
+		return nil
 	})
 	if err != nil {
 		return consumer.IngestResult{}, err
 	}
 	return res, nil
+}
+
+// patientPlans returns one empty plan per patient of msg, in sorted order.
+func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
+	refs := messagePatients(msg)
+	order := make([]*patientPlan, len(refs))
+	for i, ref := range refs {
+		order[i] = &patientPlan{ref: ref, hash: s.hash(ref)}
+	}
+	return order
+}
+
+// queueInput queues the statements that store a claimed message's resources
+// and facts and load, per patient, what the new facts affect.
+func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time) {
+	if len(msg.Resources) > 0 {
+		b.Queue(insertResourcesSQL, s.resourceArgs(msg, now)...)
+	}
+	if len(msg.Facts) > 0 {
+		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
+		s.queueSnapshots(b, msg, order)
+	}
+}
+
+// readInput reads the results of what queueInput queued.
+func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, res *consumer.IngestResult) error {
+	if len(msg.Resources) > 0 {
+		if _, err := br.Exec(); err != nil {
+			return fmt.Errorf("insert resources: %w", err)
+		}
+	}
+	if len(msg.Facts) > 0 {
+		tag, err := br.Exec()
+		if err != nil {
+			return fmt.Errorf("insert facts: %w", err)
+		}
+		res.Facts = int(tag.RowsAffected())
+		if err := readSnapshots(br, order); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// planPatients calls plan for every patient with affected blood gases and
+// checks what it returns.
+func planPatients(order []*patientPlan, plan consumer.PlanFunc) error {
+	for _, p := range order {
+		if len(p.affected) == 0 {
+			continue
+		}
+		ch, err := plan(consumer.Snapshot{Patient: p.ref, Facts: p.facts, Affected: p.affected, Current: p.current})
+		if err != nil {
+			return &planError{fmt.Errorf("plan: %w", err)}
+		}
+		if err := checkChanges(p.ref, ch); err != nil {
+			return &planError{err}
+		}
+		p.changes = ch
+	}
+	return nil
 }
 
 // messagePatients lists the patients of a message, sorted, once each.
@@ -540,17 +586,26 @@ func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, 
 		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback}, nil
 }
 
-func (s *Store) writeChanges(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan, now time.Time, res *consumer.IngestResult) error {
-	b := &pgx.Batch{}
+// queued counts what queueChanges queued, for readChanges.
+type queued struct {
+	derivations, refusals, outbox int
+}
+
+// queueChanges queues the statements that write what the plans returned:
+// derivations with their lineage and heads, refusals likewise, and the
+// outbox rows in one statement. It counts them into res.
+func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time, res *consumer.IngestResult) (queued, error) {
+	var q queued
 	var subj, ids, hdrs []string
 	var payloads [][]byte
 	for _, p := range order {
 		for i, d := range p.changes.Derivations {
 			args, err := s.derivationArgs(d, p.changes.Versions[i], msg.InboxKey, now)
 			if err != nil {
-				return err
+				return q, err
 			}
 			b.Queue(insertDerivationSQL, args...)
+			q.derivations++
 			res.Derivations++
 			if d.Status == fhirmap.StatusEnteredInError {
 				res.Retractions++
@@ -565,6 +620,7 @@ func (s *Store) writeChanges(ctx context.Context, tx pgx.Tx, msg consumer.Messag
 			b.Queue(insertRefusalSQL, r.Key, r.Kind, r.Patient, s.hash(r.Patient), r.BloodGas, r.Effective.UTC(),
 				r.Reason, r.Detail, r.Digest, msg.InboxKey, now,
 				l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback)
+			q.refusals++
 			res.Refusals++
 			if res.RefusalReasons == nil {
 				res.RefusalReasons = map[string]int{}
@@ -574,43 +630,41 @@ func (s *Store) writeChanges(ctx context.Context, tx pgx.Tx, msg consumer.Messag
 		for _, o := range p.changes.Outbox {
 			h, err := json.Marshal(orEmpty(o.Header))
 			if err != nil {
-				return fmt.Errorf("encode outbox headers: %w", err)
+				return q, fmt.Errorf("encode outbox headers: %w", err)
 			}
 			subj, ids, hdrs, payloads = append(subj, o.Subject), append(ids, o.MsgID), append(hdrs, string(h)), append(payloads, o.Payload)
 		}
 	}
 	if len(subj) > 0 {
 		b.Queue(insertOutboxSQL, subj, ids, hdrs, payloads, msg.InboxKey, now)
+		q.outbox = len(subj)
 	}
-	if b.Len() == 0 {
-		return nil
-	}
-	br := tx.SendBatch(ctx, b)
-	defer br.Close()
-	for range res.Derivations {
+	return q, nil
+}
+
+// readChanges reads the results of what queueChanges queued.
+func (s *Store) readChanges(br pgx.BatchResults, q queued, res *consumer.IngestResult) error {
+	for range q.derivations {
 		if _, err := br.Exec(); err != nil {
 			return fmt.Errorf("insert derivation: %w", err)
 		}
 	}
-	for range res.Refusals {
+	for range q.refusals {
 		if _, err := br.Exec(); err != nil {
 			return fmt.Errorf("insert refusal: %w", err)
 		}
 	}
-	if len(subj) > 0 {
+	if q.outbox > 0 {
 		tag, err := br.Exec()
 		if err != nil {
 			return fmt.Errorf("insert outbox: %w", err)
 		}
 		res.Outbox = int(tag.RowsAffected())
-		if res.Outbox < len(subj) {
+		if res.Outbox < q.outbox {
 			// A message id already used: the earlier row carries it (and
 			// JetStream would drop the repeat as a duplicate anyway).
-			s.log.Warn("outbox message ids already present", "skipped", len(subj)-res.Outbox)
+			s.log.Warn("outbox message ids already present", "skipped", q.outbox-res.Outbox)
 		}
-	}
-	if err := br.Close(); err != nil {
-		return fmt.Errorf("write changes: %w", err)
 	}
 	return nil
 }

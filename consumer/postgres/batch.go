@@ -1,0 +1,217 @@
+package postgres
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/ventderive/ventderive/consumer"
+)
+
+var _ consumer.BatchStore = (*Store)(nil)
+
+const (
+	// lockPatientsSQL takes the patient locks of a whole group in the
+	// order of $1, which the caller sorts: the plan is a function scan of
+	// unnest, which yields the elements in array order, feeding the
+	// aggregate row by row. Same lock keys as lockPatientSQL, so single and
+	// grouped ingests of different replicas serialise on the same patients.
+	lockPatientsSQL = `
+SELECT count(pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || u.ref, 0)))
+FROM unnest($1::text[]) AS u(ref)`
+
+	// claimInboxesSQL claims the inbox keys of a group in one statement
+	// (in key order, so that two groups holding the same redelivered
+	// message cannot deadlock on it) and returns those it claimed; a key
+	// listed twice is claimed once.
+	claimInboxesSQL = `
+INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
+SELECT u.inbox_key, u.subject, u.stream_seq, u.received, $8, u.resources, u.facts
+FROM unnest($1::text[], $2::text[], $3::bigint[], $4::timestamptz[], $5::int[], $6::int[], $7::int[])
+     AS u(inbox_key, subject, stream_seq, received, resources, facts, ord)
+ORDER BY u.inbox_key, u.ord
+ON CONFLICT (inbox_key) DO NOTHING
+RETURNING inbox_key`
+)
+
+// IngestBatch implements consumer.BatchStore: group commit. It records
+// msgs in one transaction, each exactly as Ingest would in that order, with
+// one round trip per message: the writes of message i travel with the
+// inserts and snapshot queries of message i+1. The transaction first takes
+// the locks of every patient of the group in sorted order, then claims all
+// inbox keys in one statement; a message whose key was already claimed
+// (by an earlier transaction or earlier in the group) gets
+// consumer.ErrDuplicate and writes nothing.
+//
+// Failure modes: serialization failures and deadlocks retry the group in
+// place (three attempts, as Ingest); another transient failure, including a
+// COMMIT whose outcome is unknown, is returned for every message (the inbox
+// absorbs their redelivery). Any other failure (a constraint the content
+// violates, a plan error) means some message is at fault: the group is
+// rolled back and each message is then recorded on its own with Ingest, so
+// that only the faulty one fails. A group of one is an Ingest.
+func (s *Store) IngestBatch(ctx context.Context, msgs []consumer.Message, plan consumer.PlanFunc) []consumer.BatchResult {
+	out := make([]consumer.BatchResult, len(msgs))
+	if len(msgs) == 1 {
+		out[0].IngestResult, out[0].Err = s.Ingest(ctx, msgs[0], plan)
+		return out
+	}
+	if len(msgs) == 0 {
+		return out
+	}
+	var err error
+	for attempt := 1; ; attempt++ {
+		clear(out)
+		err = s.ingestBatchOnce(ctx, msgs, plan, out)
+		if err == nil || attempt == s.tries || !retryInPlace(err) || ctx.Err() != nil {
+			break
+		}
+		s.log.Debug("group ingest retried", "attempt", attempt, "messages", len(msgs), "error", err)
+		select {
+		case <-time.After(time.Duration(attempt) * 20 * time.Millisecond):
+		case <-ctx.Done():
+		}
+	}
+	if err == nil {
+		return out
+	}
+	if errors.Is(err, consumer.ErrTransient) || ctx.Err() != nil {
+		for i := range out {
+			out[i] = consumer.BatchResult{Err: err}
+		}
+		return out
+	}
+	// One message (or more) is refused for its content: find which by
+	// recording each on its own. The log names no message: the error is
+	// reduced to SQLSTATE and constraint names.
+	s.log.Warn("group ingest failed; recording its messages one by one", "messages", len(msgs), "err", err)
+	for i, m := range msgs {
+		out[i].IngestResult, out[i].Err = s.Ingest(ctx, m, plan)
+	}
+	return out
+}
+
+// ingestBatchOnce is one attempt at the group's transaction. It fills out
+// only when it returns nil.
+func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, plan consumer.PlanFunc, out []consumer.BatchResult) error {
+	now := s.now().UTC()
+	res := make([]consumer.IngestResult, len(msgs))
+	fresh := make([]bool, len(msgs))
+	err := s.inTx(ctx, "ingest group", func(tx pgx.Tx) error {
+		// Round trip 1: the locks of every patient of the group, sorted,
+		// then every inbox key.
+		orders := make([][]*patientPlan, len(msgs))
+		var refs []string
+		n := len(msgs)
+		keys, subjects := make([]string, n), make([]string, n)
+		seqs, received := make([]int64, n), make([]time.Time, n)
+		nres, nfacts, ords := make([]int32, n), make([]int32, n), make([]int32, n)
+		for i, m := range msgs {
+			orders[i] = patientPlans(s, m)
+			for _, p := range orders[i] {
+				refs = append(refs, p.ref)
+			}
+			keys[i], subjects[i], seqs[i], received[i] = m.InboxKey, m.Subject, int64(m.StreamSeq), m.Received.UTC()
+			nres[i], nfacts[i], ords[i] = int32(len(m.Resources)), int32(len(m.Facts)), int32(i)
+		}
+		slices.Sort(refs)
+		refs = slices.Compact(refs)
+		b := &pgx.Batch{}
+		if len(refs) > 0 {
+			b.Queue(lockPatientsSQL, refs)
+		}
+		b.Queue(claimInboxesSQL, keys, subjects, seqs, received, nres, nfacts, ords, now)
+		br := tx.SendBatch(ctx, b)
+		if len(refs) > 0 {
+			if _, err := br.Exec(); err != nil {
+				br.Close()
+				return fmt.Errorf("lock patients: %w", err)
+			}
+		}
+		rows, err := br.Query()
+		if err != nil {
+			br.Close()
+			return fmt.Errorf("claim inbox: %w", err)
+		}
+		claimed, err := pgx.CollectRows(rows, pgx.RowTo[string])
+		if err != nil {
+			br.Close()
+			return fmt.Errorf("claim inbox: %w", err)
+		}
+		if err := br.Close(); err != nil {
+			return fmt.Errorf("claim inbox: %w", err)
+		}
+		// The first message with a claimed key is the one recorded; any
+		// later one with the same key is a duplicate, like a redelivery.
+		left := make(map[string]bool, len(claimed))
+		for _, k := range claimed {
+			left[k] = true
+		}
+		for i, m := range msgs {
+			if left[m.InboxKey] {
+				fresh[i] = true
+				delete(left, m.InboxKey)
+			}
+		}
+
+		// Round trips 2..: message i's input and snapshot queries travel
+		// with the writes of the previous fresh message, so every message
+		// sees what the ones before it stored and planned.
+		prev, prevQ := -1, queued{}
+		for i := 0; i <= n; i++ {
+			if i < n && !fresh[i] {
+				continue
+			}
+			b := &pgx.Batch{}
+			if prev >= 0 {
+				q, err := s.queueChanges(b, msgs[prev], orders[prev], now, &res[prev])
+				if err != nil {
+					return err
+				}
+				prevQ = q
+			}
+			if i < n {
+				s.queueInput(b, msgs[i], orders[i], now)
+			}
+			if b.Len() > 0 {
+				br := tx.SendBatch(ctx, b)
+				if prev >= 0 {
+					if err := s.readChanges(br, prevQ, &res[prev]); err != nil {
+						br.Close()
+						return err
+					}
+				}
+				if i < n {
+					if err := readInput(br, msgs[i], orders[i], &res[i]); err != nil {
+						br.Close()
+						return err
+					}
+				}
+				if err := br.Close(); err != nil {
+					return fmt.Errorf("store group: %w", err)
+				}
+			}
+			if i < n {
+				if err := planPatients(orders[i], plan); err != nil {
+					return err
+				}
+			}
+			prev = i
+		}
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	for i := range msgs {
+		out[i].IngestResult = res[i]
+		if !fresh[i] {
+			out[i].Err = consumer.ErrDuplicate
+		}
+	}
+	return nil
+}
