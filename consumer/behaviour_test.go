@@ -3,11 +3,18 @@ package consumer_test
 import (
 	"context"
 	"encoding/json"
+	"fmt"
+	"io"
 	"math"
+	"net/http"
+	"net/http/httptest"
 	"strings"
 	"testing"
 	"time"
 
+	"github.com/prometheus/client_golang/prometheus"
+
+	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/fhirmap"
 )
 
@@ -219,5 +226,52 @@ func TestBundleEntriesIdentifiedByFullURL(t *testing.T) {
 	}
 	if !found {
 		t.Error("no dead-space fraction derived from the Bundle")
+	}
+}
+
+// The operations endpoints: liveness, readiness and Prometheus metrics that
+// count what happened (by outcome, kind and reason, never by patient).
+func TestHealthAndMetricsEndpoints(t *testing.T) {
+	h := newHarness(t)
+	reg := prometheus.NewRegistry()
+	h.metrics = consumer.NewMetrics(reg)
+	r := h.startReplica(nil)
+	msgs := append(generate(genOpts{patients: 1, gases: 1}), poisonMsgs()[:2]...)
+	h.publish(msgs)
+	h.waitSettled(30 * time.Second)
+
+	srv := httptest.NewServer(r.p.Handler(reg))
+	defer srv.Close()
+	get := func(path string) (int, string) {
+		resp, err := http.Get(srv.URL + path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer resp.Body.Close()
+		b, _ := io.ReadAll(resp.Body)
+		return resp.StatusCode, string(b)
+	}
+	if code, _ := get("/healthz"); code != http.StatusOK {
+		t.Errorf("/healthz %d", code)
+	}
+	if code, body := get("/readyz"); code != http.StatusOK {
+		t.Errorf("/readyz %d %s", code, body)
+	}
+	_, body := get("/metrics")
+	good := len(msgs) - 2
+	for _, want := range []string{
+		fmt.Sprintf(`ventderive_inputs_total{outcome="accepted"} %d`, good),
+		`ventderive_inputs_total{outcome="dead-letter"} 2`,
+		`ventderive_dead_letters_total{reason="malformed-json"} 2`,
+		`ventderive_derived_total{kind="deadspace-fraction-vco2"} 1`,
+		`ventderive_outbox_backlog 0`,
+		`ventderive_input_latency_seconds_count`,
+	} {
+		if !strings.Contains(body, want) {
+			t.Errorf("/metrics lacks %q", want)
+		}
+	}
+	if strings.Contains(body, "Patient/") || strings.Contains(body, "t-0000") {
+		t.Error("/metrics carries a patient identifier")
 	}
 }

@@ -97,6 +97,7 @@ type harness struct {
 
 	mu       sync.Mutex
 	replicas []*replica
+	metrics  *consumer.Metrics // for the next replica started; nil: unregistered metrics
 }
 
 type replica struct {
@@ -174,7 +175,7 @@ func (h *harness) startReplica(hooks *consumer.Hooks) *replica {
 	log := slog.New(slog.NewJSONHandler(h.logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
 	store := postgres.New(pool, postgres.Options{PatientKey: h.key, Logger: log})
 	p, err := consumer.New(nc, store, consumer.Options{
-		Config: h.cfg, Site: h.site, Logger: log, Hooks: hooks, Workers: 4,
+		Config: h.cfg, Site: h.site, Logger: log, Hooks: hooks, Workers: 4, Metrics: h.metrics,
 	})
 	if err != nil {
 		h.t.Fatal(err)
