@@ -55,7 +55,7 @@ func (p Planner) Plan(snap Snapshot, recorded time.Time) (Changes, error) {
 				if same.Digest == cur.Digest {
 					continue
 				}
-				d.Status = revisedStatus(d.Status, bloodGas[key].Status)
+				d.Status = revisedStatus(d.Status, cur.Status, bloodGas[key].Status)
 				d.Seal()
 			}
 			if err := p.emit(&ch, d, nextVersion(cur, ok), recorded); err != nil {
@@ -104,13 +104,17 @@ func nextVersion(cur Stored, ok bool) int {
 	return cur.Version + 1
 }
 
-// revisedStatus is the status of a new version of a published derivation: it
-// stays preliminary while any input is, is "corrected" when the blood gas was
-// corrected, and "amended" otherwise (FHIR R4 ObservationStatus).
-func revisedStatus(computed, bloodGas fhirmap.Status) fhirmap.Status {
+// revisedStatus is the status of a new version of a published derivation
+// (FHIR R4 ObservationStatus): it stays preliminary while any input is;
+// a preliminary value that becomes final is "final" (amended and corrected
+// mean a change after a final result); after a final result it is
+// "corrected" when the blood gas was corrected and "amended" otherwise.
+func revisedStatus(computed, published, bloodGas fhirmap.Status) fhirmap.Status {
 	switch {
 	case computed == fhirmap.StatusPreliminary:
 		return fhirmap.StatusPreliminary
+	case published == fhirmap.StatusPreliminary:
+		return computed
 	case bloodGas == fhirmap.StatusCorrected:
 		return fhirmap.StatusCorrected
 	default:
