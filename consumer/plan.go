@@ -31,11 +31,18 @@ func (p Planner) Plan(snap Snapshot, recorded time.Time) (Changes, error) {
 	for _, s := range snap.Current {
 		current[s.Key] = s
 	}
+	// bloodGas holds, per key, the fact a retraction names and takes its
+	// time from: the current version, whatever it now measures (a blood gas
+	// re-coded by the lab is no longer a PCO2 but its derived values must
+	// still be withdrawn), else the latest stored version.
 	bloodGas := make(map[string]fhirmap.Fact, len(snap.Affected))
-	for _, f := range facts {
-		if f.Quantity == fhirmap.QPCO2 {
+	for _, f := range snap.Facts {
+		if old, ok := bloodGas[f.Key]; !ok || f.Effective.After(old.Effective) {
 			bloodGas[f.Key] = f
 		}
+	}
+	for _, f := range facts {
+		bloodGas[f.Key] = f
 	}
 
 	var ch Changes
