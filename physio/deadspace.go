@@ -1,25 +1,52 @@
 package physio
 
+import "math"
+
 const (
 	methodEnghoff          = "Bohr-Enghoff"
-	methodEnghoffVCO2      = "Bohr-Enghoff, PECO2 from VCO2 and expired minute volume"
-	methodMixedExpired     = "mixed-expired PCO2 from VCO2 and expired minute volume"
+	methodEnghoffVCO2      = "Bohr-Enghoff, PECO2 from VCO2 and minute volume"
+	methodMixedExpired     = "mixed-expired PCO2 from VCO2 and minute volume"
 	methodSiddiki          = "estimated dead-space fraction (Siddiki 2010), VCO2 from resting energy expenditure"
 	methodDeadSpaceVolume  = "dead-space volume VD/VT x VT"
 	methodVAFromDeadSpace  = "alveolar ventilation VE x (1 - VD/VT)"
 	assumeMixedExpired     = "PECO2 is mixed-expired PCO2 (volumetric capnography, Douglas bag or calorimetry), not end-tidal"
 	assumeSameSteadyState  = "arterial blood and expired gas taken in the same steady state"
-	assumeExpiredVE        = "VE is expired minute volume at BTPS; circuit compressible volume not subtracted (it raises VE and so VD/VT)"
-	assumeVentilatorVE     = "VE is ventilator rate x expired tidal volume, as in the published method"
+	assumeExpiredVE        = "VE is the minute volume supplied, taken as BTPS; the method needs the expired minute volume: circuit compressible volume is not subtracted and an inspired volume also counts leaks, both of which raise VE and so VD/VT"
+	assumeVentilatorVE     = "VE is the minute volume supplied; the published method used ventilator rate x expired tidal volume"
 	assumeVDVTFromBohr     = "VD/VT from a Bohr-Enghoff derivation in the same steady state"
-	assumeVTExpiredVolumes = "VT is expired tidal volume at BTPS"
+	assumeVTExpiredVolumes = "VT is the tidal volume supplied, taken as BTPS; the method needs the expired tidal volume"
+
+	flagVDVTLowVCO2  = "dead-space fraction below 0.15, below the anatomic dead space alone: check the minute volume and VCO2 inputs"
+	flagVDVTLowPECO2 = "dead-space fraction below 0.15, below the anatomic dead space alone: check the mixed-expired PCO2 and PaCO2 inputs"
 )
+
+// DeadSpaceFractionFloor is the physiologic dead-space fraction below which
+// a value is flagged as implausibly low (UCUM 1). Why: anatomic dead space
+// alone is about 2.2 mL/kg of predicted body weight [published: Radford, J
+// Appl Physiol 1955], i.e. 0.27-0.37 of a usual tidal volume of 6-8 mL/kg
+// [derived]; physiologic dead space includes it, so a fraction below 0.15
+// (about half the smallest of those) points to an input error (minute
+// volume too high, VCO2 too low, PECO2 too close to PaCO2) rather than to
+// good lungs [derived; common practice]. The flag is judged on the value at
+// 3 decimals, the precision at which a fraction is reported, so that a
+// value reported as 0.150 is never flagged as below 0.15.
+const DeadSpaceFractionFloor = 0.15
+
+// flagLowVDVT flags a dead-space fraction below DeadSpaceFractionFloor.
+func (r *Result) flagLowVDVT(v float64, flag string) {
+	if math.Round(v*1000)/1000 < DeadSpaceFractionFloor {
+		r.flag(flag)
+	}
+}
 
 var kDefSiddiki = constDef{name: "K", unit: "mm[Hg].L/mL",
 	source: "as published by Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 (0.86; the ideal gas law gives 0.863 at 37 Cel)"}
 
 // Published readings of the physiologic dead-space fraction.
 var (
+	interpVDVTBelowAnatomic = Interpretation{Code: "",
+		Text:   "below 0.15, less than the anatomic dead space alone (about 0.27-0.37 of a 6-8 mL/kg breath): not a reading of healthy lungs but a sign of an input error; no published threshold applies",
+		Source: "Radford, J Appl Physiol 1955 (anatomic dead space about 2.2 mL/kg) [derived]"}
 	interpVDVTNormal = Interpretation{Code: "N",
 		Text:   "at or below about 0.3, the value in healthy and anaesthetised adults",
 		Source: "Nunn & Hill, J Appl Physiol 1960"}
@@ -37,8 +64,19 @@ const (
 	vdvtARDSOnset = 0.58 // Nuckton 2002, mean at onset
 )
 
-func interpretVDVT(v float64) Interpretation {
+// InterpretDeadSpaceFraction reads a physiologic dead-space fraction VD/VT
+// (UCUM 1) against the published values: N at or below 0.30 (about 0.3 in
+// healthy and anaesthetised adults, Nunn & Hill 1960), H above it, and H
+// with the ARDS reading at or above 0.58 (the mean at ARDS onset, Nuckton
+// et al. 2002). Below DeadSpaceFractionFloor it gives no code: such a value
+// is not healthy but implausible. The derivations call it on the unrounded
+// value; a caller that reports a rounded value calls it again on that value
+// so that the reading matches what is shown. It never fails and does not
+// allocate.
+func InterpretDeadSpaceFraction(v float64) Interpretation {
 	switch {
+	case v < DeadSpaceFractionFloor:
+		return interpVDVTBelowAnatomic
 	case v <= vdvtHealthy:
 		return interpVDVTNormal
 	case v < vdvtARDSOnset:
@@ -51,7 +89,9 @@ func interpretVDVT(v float64) Interpretation {
 // (UCUM 1) by the Enghoff modification of the Bohr equation:
 // VD/VT = (PaCO2 - PECO2) / PaCO2, from arterial PCO2 paco2 and
 // mixed-expired PCO2 peco2, both in mm[Hg]. The Interpretation reads the
-// value against Nunn & Hill (about 0.3 in health) and Nuckton (ARDS).
+// value against Nunn & Hill (about 0.3 in health) and Nuckton (ARDS) (see
+// InterpretDeadSpaceFraction); a value below DeadSpaceFractionFloor is
+// flagged.
 //
 // It refuses paco2 outside PaCO2Range, peco2 outside PECO2Range, and a
 // peco2 not below paco2 (ErrOutOfMeaning: mixed-expired gas is diluted
@@ -68,7 +108,8 @@ func DeadSpaceEnghoff(paco2, peco2 MmHg) (Result, error) {
 	}
 	v := float64(paco2-peco2) / float64(paco2)
 	r := Result{Value: v, Unit: UnitOne, Method: methodEnghoff, MethodVersion: MethodVersion,
-		Interpretation: interpretVDVT(v)}
+		Interpretation: InterpretDeadSpaceFraction(v)}
+	r.flagLowVDVT(v, flagVDVTLowPECO2)
 	r.assume(assumeMixedExpired)
 	r.assume(assumeSameSteadyState)
 	r.assume(assumeSteadyState)
@@ -78,9 +119,9 @@ func DeadSpaceEnghoff(paco2, peco2 MmHg) (Result, error) {
 }
 
 // MixedExpiredPCO2 returns the mixed-expired PCO2, in mm[Hg], implied by
-// CO2 production vco2 (mL/min, STPD) leaving in expired minute volume ve
-// (L/min, BTPS): PECO2 = K(T) x VCO2 / VE. bodyTemp 0 means 37 Cel
-// (recorded).
+// CO2 production vco2 (mL/min, STPD) leaving in minute volume ve (L/min,
+// BTPS; the method needs the expired minute volume): PECO2 = K(T) x VCO2 /
+// VE. bodyTemp 0 means 37 Cel (recorded).
 //
 // It refuses vco2 outside VCO2Range, ve outside MinuteVolumeRange, bodyTemp
 // outside BodyTempRange and a computed PECO2 outside PECO2Range.
@@ -110,10 +151,14 @@ func MixedExpiredPCO2(vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) (Result, erro
 
 // DeadSpaceFromVCO2 returns the physiologic dead-space fraction VD/VT (UCUM
 // 1) from measured CO2 production: the Enghoff equation with the
-// mixed-expired PCO2 implied by VCO2 and expired minute volume,
+// mixed-expired PCO2 implied by VCO2 and minute volume,
 // VD/VT = 1 - K(T) x VCO2 / (VE x PaCO2), K from AlveolarConstant.
-// paco2 in mm[Hg], vco2 in mL/min (STPD), ve expired minute volume in L/min
-// (BTPS); bodyTemp 0 means 37 Cel (recorded).
+// paco2 in mm[Hg], vco2 in mL/min (STPD), ve in L/min (BTPS): the method
+// needs the measured expired minute volume; whatever the caller passes is
+// recorded neutrally in the assumptions, and the caller states which kind
+// it was. bodyTemp 0 means 37 Cel (recorded). Interpretation as
+// InterpretDeadSpaceFraction; a value below DeadSpaceFractionFloor is
+// flagged.
 //
 // It refuses inputs outside PaCO2Range, VCO2Range, MinuteVolumeRange and
 // BodyTempRange, and a result not strictly between 0 and 1
@@ -138,7 +183,8 @@ func DeadSpaceFromVCO2(paco2 MmHg, vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) 
 		return Result{}, err
 	}
 	r.Value = v
-	r.Interpretation = interpretVDVT(v)
+	r.Interpretation = InterpretDeadSpaceFraction(v)
+	r.flagLowVDVT(v, flagVDVTLowVCO2)
 	r.assume(assumeSteadyState)
 	r.assume(assumeExpiredVE)
 	r.assume(assumeGasStates)
@@ -152,9 +198,12 @@ func DeadSpaceFromVCO2(paco2 MmHg, vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) 
 // Siddiki et al. (Crit Care 2010): VD/VT = 1 - 0.86 x VCO2est / (VE x
 // PaCO2), with VCO2est from EstimateVCO2(e) (resting energy expenditure and
 // the Weir equation). It uses K = 0.86 as published, not the
-// temperature-dependent K, and records it. paco2 in mm[Hg]; ve is
-// ventilator rate x expired tidal volume, in L/min. Assumptions label the
-// value estimated.
+// temperature-dependent K, and records it. paco2 in mm[Hg]; ve in L/min
+// (the published method used ventilator rate x expired tidal volume; the
+// assumption recorded says so without claiming what the caller passed).
+// Assumptions label the value estimated. Interpretation as
+// InterpretDeadSpaceFraction; a value below DeadSpaceFractionFloor is
+// flagged.
 //
 // It refuses what EstimateVCO2 refuses, paco2 outside PaCO2Range, ve
 // outside MinuteVolumeRange, and a result not strictly between 0 and 1.
@@ -181,7 +230,8 @@ func DeadSpaceEstimated(paco2 MmHg, ve LPerMin, e EnergyInput) (Result, error) {
 		return Result{}, err
 	}
 	r.Value = v
-	r.Interpretation = interpretVDVT(v)
+	r.Interpretation = InterpretDeadSpaceFraction(v)
+	r.flagLowVDVT(v, flagVDVTLowVCO2)
 	r.assume(assumeSteadyState)
 	r.assume(assumeVentilatorVE)
 	r.basis(c.basisDeadSpace, c.c0, c.w, float64(e.Weight), c.h, float64(e.Height), c.a, float64(e.Age), ree,
@@ -192,7 +242,7 @@ func DeadSpaceEstimated(paco2 MmHg, ve LPerMin, e EnergyInput) (Result, error) {
 
 // DeadSpaceVolume returns the physiologic dead-space volume per breath, in
 // mL: VD = VD/VT x VT, from a dead-space fraction vdvt (UCUM 1) and a tidal
-// volume vt in mL (expired, BTPS).
+// volume vt in mL (BTPS; the method needs the expired tidal volume).
 //
 // It refuses vdvt not strictly between 0 and 1 (ErrOutOfMeaning) and vt
 // outside TidalVolumeRange.
@@ -212,8 +262,9 @@ func DeadSpaceVolume(vdvt Fraction, vt ML) (Result, error) {
 }
 
 // AlveolarVentilationFromDeadSpace returns the alveolar ventilation, in
-// L/min (BTPS): VA = VE x (1 - VD/VT), from expired minute volume ve
-// (L/min) and a dead-space fraction vdvt (UCUM 1).
+// L/min (BTPS): VA = VE x (1 - VD/VT), from minute volume ve (L/min; the
+// method needs the expired minute volume) and a dead-space fraction vdvt
+// (UCUM 1).
 //
 // It refuses ve outside MinuteVolumeRange and vdvt not strictly between 0
 // and 1 (ErrOutOfMeaning). The result is positive by construction.

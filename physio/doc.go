@@ -14,9 +14,21 @@
 // (name, value, unit, source), every assumption, advisory Flags and a Basis
 // line with the numbers substituted so that a clinician can redo it by
 // hand. Where a published threshold applies, Interpretation carries an HL7
-// v3 ObservationInterpretation code (N, H, L) and names the publication.
-// Values estimated rather than measured are labelled "estimated" in the
-// assumptions.
+// v3 ObservationInterpretation code (N, H) and names the publication; where
+// only group values or a derived band exist (ventilatory ratio, measured
+// minus predicted PaCO2), or the value lies outside what the publication
+// covers (a negative end-tidal gradient, a dead-space fraction below the
+// anatomic dead space), the Interpretation has text and source but no
+// code. The readings are exported (InterpretDeadSpaceFraction,
+// InterpretEndTidalGradient, InterpretAlveolarDeadSpaceFraction,
+// InterpretVentilatoryRatio, InterpretPaCO2Discrepancy) so that a caller
+// that reports a rounded value can read that value, and the reading always
+// matches what is shown. Values estimated rather than measured are labelled
+// "estimated" in the assumptions.
+//
+// Assumptions never claim what kind of input the caller passed (expired or
+// inspired, measured or set): they name what the published method used,
+// and the caller records which kind it supplied.
 //
 // Derivations allocate nothing: constants, assumptions, flags and the basis
 // operands are stored in fixed-size arrays inside the Result, and the
@@ -45,7 +57,9 @@
 //   - Bohr equation, Enghoff modification: VD/VT = (PaCO2 - PECO2) / PaCO2
 //     (DeadSpaceEnghoff); with PECO2 = K x VCO2 / VE from measured VCO2 and
 //     expired minute volume, VD/VT = 1 - K x VCO2 / (VE x PaCO2)
-//     (MixedExpiredPCO2, DeadSpaceFromVCO2).
+//     (MixedExpiredPCO2, DeadSpaceFromVCO2). A fraction below
+//     DeadSpaceFractionFloor (0.15, below the anatomic dead space alone) is
+//     flagged as a likely input error.
 //   - Estimated dead space (Siddiki et al., Crit Care 2010, doi
 //     10.1186/cc9206): VD/VT = 1 - 0.86 x VCO2est / (VE x PaCO2), with K =
 //     0.86 as published (DeadSpaceEstimated). VCO2est = REE / (1.440 x
@@ -61,19 +75,23 @@
 //   - Predicted PaCO2: VA = (VT - VDanat - VDapp) x RR, PaCO2 = K x VCO2 /
 //     VA, with anatomic dead space 2.2 mL/kg PBW unless given (Radford, J
 //     Appl Physiol 1955) and an apparatus dead space that must be declared
-//     (PredictedPaCO2). Measured minus predicted, material beyond +/- 5
-//     mm[Hg] (PaCO2Discrepancy).
+//     (PredictedPaCO2). Measured minus predicted, described as material
+//     beyond +/- 5 mm[Hg], a derived band without interpretation code
+//     (PaCO2Discrepancy).
 //   - Ventilatory ratio (Sinha et al., Br J Anaesth 2009;102:692-697):
-//     VR = VE x PaCO2 / (PBW x 100 mL/kg/min x 37.5 mm[Hg]) (VentilatoryRatio).
+//     VR = VE x PaCO2 / (PBW x 100 mL/kg/min x 37.5 mm[Hg]) (VentilatoryRatio);
+//     compared in words with published group values, without code.
 //   - Arterial to end-tidal gradient PaCO2 - PETCO2 (Nunn & Hill 1960:
 //     normal 4.6 +/- 2.5 mm[Hg]) and alveolar dead-space fraction
 //     (PaCO2 - PETCO2) / PaCO2 (Yehya et al. 2016), read against Tyburski
 //     et al., J Trauma 2002;53:738 (<= 9 mm[Hg], <= 0.20)
-//     (EndTidalGradient, AlveolarDeadSpaceFraction).
+//     (EndTidalGradient, AlveolarDeadSpaceFraction). A negative gradient is
+//     flagged without code; beyond -MaxNegativeEndTidalGradient (5 mm[Hg])
+//     it is refused.
 //   - Ventilation for a target PaCO2 at constant VCO2 and dead space:
 //     RR_new = RR x PaCO2 / target (RateForTarget); VT_new = VD + (VT - VD)
 //     x PaCO2 / target (TidalVolumeForTarget). Flags outside 4-8 mL/kg PBW
-//     and 8-35 /min.
+//     and 8-35 /min. The target is the caller's, recorded as a constant.
 //   - Dead-space fraction readings: about 0.3 in healthy adults (Nunn &
 //     Hill, J Appl Physiol 1960); 0.58 mean at ARDS onset (Nuckton et al.,
 //     NEJM 2002;346:1281-6).
@@ -100,8 +118,9 @@
 //   - ErrImplausible: outside the input's plausible Range, or a computed
 //     value outside its range (the inputs are inconsistent).
 //   - ErrOutOfMeaning: a fraction outside 0..1, a mixed-expired or
-//     end-tidal PCO2 above PaCO2 where that gives a negative fraction, a
-//     tidal volume not above dead space, an unknown enumeration value.
+//     end-tidal PCO2 above PaCO2 where that gives a negative fraction, an
+//     end-tidal PCO2 more than 5 mm[Hg] above PaCO2, a tidal volume not
+//     above dead space, an unknown enumeration value.
 //   - ErrNotGiven: sex or energy equation left at zero, apparatus dead
 //     space not declared.
 //

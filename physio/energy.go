@@ -8,7 +8,7 @@ type EnergyInput struct {
 	Weight   Kg             // actual body weight, WeightRange (the equations were fitted on actual weight)
 	Height   Cm             // HeightRange
 	Equation EnergyEquation // required (ErrNotGiven when zero)
-	RQ       float64        // respiratory quotient, RQRange; 0 means 0.8 (recorded as an assumption)
+	RQ       float64        // respiratory quotient, RQRange; 0 means 0.8 (recorded as assumed); another value is recorded as configured, not measured
 }
 
 // DefaultRQ is the respiratory quotient assumed when EnergyInput.RQ is 0.
@@ -83,13 +83,14 @@ var (
 	weirCO2Def = constDef{name: "Weir CO2 coefficient", unit: "kcal/L", source: "Weir, J Physiol 1949;109:1-9 [published]"}
 	weirDayDef = constDef{name: "minutes per day / mL per L", unit: "L.min/(mL.d)", source: "1440 min/d / 1000 mL/L (Weir gives gases in L/min)"}
 	rqDefault  = constDef{name: "RQ", unit: UnitOne, source: "default 0.8, not measured [common practice]"}
-	rqGiven    = constDef{name: "RQ", unit: UnitOne, source: "given by the caller"}
+	rqGiven    = constDef{name: "RQ", unit: UnitOne, source: "configured by the caller, not measured in this patient"}
 )
 
 const (
-	assumeREE = "estimated: resting energy expenditure from a population equation on actual body weight, not measured by calorimetry"
-	assumeRQ  = "respiratory quotient not measured: 0.8 assumed"
-	assumeVCO = "estimated: VCO2 from resting energy expenditure and the Weir equation, not measured"
+	assumeREE     = "estimated: resting energy expenditure from a population equation on actual body weight, not measured by calorimetry"
+	assumeRQ      = "respiratory quotient not measured: 0.8 assumed"
+	assumeRQGiven = "respiratory quotient not measured: the configured value is used (see the constants)"
+	assumeVCO     = "estimated: VCO2 from resting energy expenditure and the Weir equation, not measured"
 )
 
 // checkEnergy validates an EnergyInput in a fixed order: sex, equation,
@@ -174,6 +175,7 @@ func (r *Result) vco2Est(c *energyCoeffs, e EnergyInput) (ree, rq, vco2 float64,
 		r.assume(assumeRQ)
 	} else {
 		r.addConst(&rqGiven, rq)
+		r.assume(assumeRQGiven)
 	}
 	r.addConst(&weirO2Def, weirO2)
 	r.addConst(&weirCO2Def, weirCO2)

@@ -38,7 +38,7 @@ type InputError struct {
 }
 
 // Error reads like "physio: PaCO2 300 mm[Hg]: physiologically implausible
-// (plausible 8 to 250 mm[Hg])"; for ErrNotGiven the value is left out.
+// (plausible 10 to 250 mm[Hg])"; for ErrNotGiven the value is left out.
 func (e *InputError) Error() string {
 	var b strings.Builder
 	b.WriteString("physio: ")
@@ -124,10 +124,15 @@ var (
 	// PaCO2Range bounds arterial PCO2, in mm[Hg]. Why: the healthy range is
 	// 35-45 mm[Hg] [published textbooks]; maximal hyperventilation and severe
 	// metabolic acidosis reach about 10 mm[Hg], and survival after values
-	// above 200 mm[Hg] in acute severe asthma is reported [memory]. Below 8
-	// the value is most likely a kPa value labelled mm[Hg].
-	PaCO2Range = Range{Min: 8, Max: 250, Unit: UnitMmHg,
-		Why: "healthy 35-45 mm[Hg] [published textbooks]; about 10 in extreme hyperventilation and above 200 in survivors of acute severe asthma [memory]; below 8 most likely kPa sent as mm[Hg]"}
+	// above 200 mm[Hg] in acute severe asthma is reported [memory]. The floor
+	// of 10 is where those two concerns meet: a kPa value labelled mm[Hg]
+	// reads 4.7-6 for a healthy patient and below 10 for any PaCO2 up to 75
+	// mm[Hg] (10 kPa), so 10 refuses most such mislabels, while the lowest
+	// PaCO2 seen clinically is about 10 mm[Hg] [memory]. A kPa value of 10-13
+	// labelled mm[Hg] (severe hypercapnia) still passes as an extreme
+	// hypocapnia; the floor cannot tell them apart [common practice].
+	PaCO2Range = Range{Min: 10, Max: 250, Unit: UnitMmHg,
+		Why: "healthy 35-45 mm[Hg] [published textbooks]; about 10 in extreme hyperventilation and above 200 in survivors of acute severe asthma [memory]; below 10 most likely kPa sent as mm[Hg] (10 kPa = 75 mm[Hg]) [common practice]"}
 
 	// TargetPaCO2Range bounds a target PaCO2 for the ventilation-for-target
 	// advice, in mm[Hg]. Why: targets in practice run from mild
@@ -143,12 +148,15 @@ var (
 	PECO2Range = Range{Min: 1, Max: 250, Unit: UnitMmHg,
 		Why: "alveolar gas diluted by dead-space gas: above 0 and below PaCO2 [published: Bohr-Enghoff]"}
 
-	// PETCO2Range bounds the end-tidal PCO2, in mm[Hg]. Why: below about 5
-	// mm[Hg] the reading means disconnection, a sampling fault or no pulmonary
-	// blood flow, not a steady state [common practice]; the upper bound
-	// matches PaCO2Range.
-	PETCO2Range = Range{Min: 5, Max: 250, Unit: UnitMmHg,
-		Why: "below 5 mm[Hg] means disconnection, sampling fault or no pulmonary flow [common practice]; upper bound as PaCO2"}
+	// PETCO2Range bounds the end-tidal PCO2, in mm[Hg]. Why: below 10
+	// mm[Hg] the reading means disconnection, a sampling fault or very low
+	// pulmonary blood flow (the range seen in cardiac arrest), not a steady
+	// state [common practice]; and a kPa value labelled mm[Hg] reads 4-6.5
+	// for a usual end-tidal PCO2 of 30-49 mm[Hg], so a floor of 10 refuses it
+	// (5.3 kPa sent as "5.3 mm[Hg]" would otherwise give a gradient of about
+	// 40 mm[Hg]) [common practice]. The upper bound matches PaCO2Range.
+	PETCO2Range = Range{Min: 10, Max: 250, Unit: UnitMmHg,
+		Why: "below 10 mm[Hg] means disconnection, sampling fault or very low pulmonary flow, or a kPa value labelled mm[Hg] (usual 4-6.5 kPa) [common practice]; upper bound as PaCO2"}
 
 	// VCO2Range bounds CO2 production, in mL/min (STPD). Why: about 200
 	// mL/min in a resting adult [published textbooks], about 2.5-3 mL/kg/min;
@@ -157,7 +165,7 @@ var (
 	VCO2Range = Range{Min: 40, Max: 1000, Unit: UnitMLPerMin,
 		Why: "about 200 mL/min at rest [published textbooks]; 40 small hypothermic adult to 1000, five times resting [common practice]"}
 
-	// MinuteVolumeRange bounds expired minute ventilation, in L/min (BTPS).
+	// MinuteVolumeRange bounds minute ventilation, in L/min (BTPS).
 	// Why: ventilated adults need about 4-20 L/min [common practice]; 0.5 and
 	// 60 bound a disconnected sensor and a litres/millilitres mix-up.
 	MinuteVolumeRange = Range{Min: 0.5, Max: 60, Unit: UnitLPerMin,

@@ -151,9 +151,14 @@ func TestRangeCheck(t *testing.T) {
 		kind error
 	}{
 		{"40mmHg_ok", 40, nil},
-		{"min_8mmHg_inclusive", 8, nil},
+		{"min_10mmHg_inclusive", 10, nil},
 		{"max_250mmHg_inclusive", 250, nil},
-		{"7.9mmHg", 7.9, physio.ErrImplausible},
+		{"9.9mmHg", 9.9, physio.ErrImplausible},
+		// A kPa PaCO2 labelled mm[Hg]: 8-9.9 kPa (60-74 mm[Hg]) passed the
+		// old floor of 8; 10 kPa = 75.0 mm[Hg] (UCUM factor) still passes
+		// and is documented as a limit of the floor.
+		{"8kPa_sent_as_mmHg", 8, physio.ErrImplausible},
+		{"9.9kPa_sent_as_mmHg", 9.9, physio.ErrImplausible},
 		{"0mmHg", 0, physio.ErrNotPositive},
 		{"NaN", nan, physio.ErrNotFinite},
 	}
@@ -173,7 +178,7 @@ func TestRangeCheck(t *testing.T) {
 	}
 	t.Run("message_names_range", func(t *testing.T) {
 		err := r.Check("PaCO2", 300)
-		if want := "physio: PaCO2 300 mm[Hg]: physiologically implausible (plausible 8 to 250 mm[Hg])"; err.Error() != want {
+		if want := "physio: PaCO2 300 mm[Hg]: physiologically implausible (plausible 10 to 250 mm[Hg])"; err.Error() != want {
 			t.Errorf("message %q, want %q", err, want)
 		}
 	})

@@ -41,7 +41,7 @@ func ExampleDeadSpaceFromVCO2() {
 	}
 	fmt.Printf("%.4f (%s)\n%s\n[%s] %s\n", r.Value, r.Method, r.Basis(), r.Interpretation.Code, r.Interpretation.Source)
 	// Output:
-	// 0.6164 (Bohr-Enghoff, PECO2 from VCO2 and expired minute volume)
+	// 0.6164 (Bohr-Enghoff, PECO2 from VCO2 and minute volume)
 	// VD/VT = 1 - K(37.0 Cel) x VCO2 / (VE x PaCO2) = 1 - 0.863 x 200.0 mL/min / (10.00 L/min x 45.0 mm[Hg]) = 0.6164
 	// [H] Nunn & Hill, J Appl Physiol 1960; Nuckton et al., NEJM 2002;346:1281-6
 }
@@ -73,7 +73,7 @@ func ExampleDeadSpaceEstimated() {
 	// - respiratory quotient not measured: 0.8 assumed
 	// - estimated: VCO2 from resting energy expenditure and the Weir equation, not measured
 	// - steady state: CO2 eliminated equals CO2 produced; no inspired CO2 (PICO2 = 0)
-	// - VE is ventilator rate x expired tidal volume, as in the published method
+	// - VE is the minute volume supplied; the published method used ventilator rate x expired tidal volume
 }
 
 func ExampleVentilatoryRatio() {
@@ -98,13 +98,13 @@ func ExamplePredictedPaCO2() {
 	}
 	diff, _ := physio.PaCO2Discrepancy(45, physio.MmHg(pred.Value))
 	fmt.Println(pred.Basis())
-	fmt.Printf("%.2f %s [%s]\n", diff.Value, diff.Unit, diff.Interpretation.Code)
+	fmt.Printf("%.2f %s: %s\n", diff.Value, diff.Unit, diff.Interpretation.Text)
 
 	_, err = physio.PredictedPaCO2(physio.PredictedInput{VCO2: 200, VT: 420, RR: 20, AnatomicVD: 150})
 	fmt.Println(errors.Is(err, physio.ErrNotGiven), err)
 	// Output:
 	// VA = (VT - VDanat - VDapp) x RR = (420 mL - 150.0 mL - 120 mL) x 20.0 /min = 3.000 L/min; PaCO2 = K(37.0 Cel) x VCO2 / VA = 0.863 x 200.0 mL/min / 3.000 L/min = 57.53 mm[Hg]
-	// -12.53 mm[Hg] [L]
+	// -12.53 mm[Hg]: measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error (tidal volume, rate, units); no published threshold, so no interpretation code
 	// true physio: apparatus dead space: not given (must be configured for the circuit, 0 when there is none; never assumed zero)
 }
 
@@ -126,7 +126,7 @@ func ExampleRange_Check() {
 	fmt.Println(err)
 	fmt.Println(errors.Is(err, physio.ErrImplausible))
 	// Output:
-	// physio: PaCO2 5.3 mm[Hg]: physiologically implausible (plausible 8 to 250 mm[Hg])
+	// physio: PaCO2 5.3 mm[Hg]: physiologically implausible (plausible 10 to 250 mm[Hg])
 	// true
 }
 

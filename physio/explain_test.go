@@ -1,6 +1,7 @@
 package physio_test
 
 import (
+	"errors"
 	"flag"
 	"fmt"
 	"os"
@@ -14,7 +15,8 @@ import (
 
 var update = flag.Bool("update", false, "rewrite the golden files in testdata/")
 
-// Interpretations apply only published thresholds, and name them.
+// Interpretation codes come only from published thresholds, which they
+// name; group values and derived bands explain in words, without a code.
 func TestInterpretations(t *testing.T) {
 	cases := []struct {
 		name       string
@@ -29,16 +31,18 @@ func TestInterpretations(t *testing.T) {
 		{"VDVT_0.6164_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
 		{"VDVT_estimated_0.6404_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceEstimated(45, 10, man) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
 		{"VR_1.0_healthy_no_cutoff", func() (physio.Result, error) { return physio.VentilatoryRatio(7.0566, 37.5, 70.566) }, "", "Sinha", "near 1 in health, no cut-off [published: Sinha 2009]"},
-		{"VR_1.7005_above_non_survivor_mean", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }, "H", "Sinha", "1.55 non-survivors [published: Sinha 2009]"},
-		{"VR_2.1_ARDS_median", func() (physio.Result, error) { return physio.VentilatoryRatio(12.35, 45, 70.566) }, "H", "PETAL-ROSE", "median about 2 in ARDS [published: Crit Care 2022]"},
+		{"VR_1.7005_above_non_survivor_mean_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }, "", "Sinha", "1.55 non-survivors, a group mean, not a cut-off [published: Sinha 2009]"},
+		{"VR_2.1_ARDS_median_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(12.35, 45, 70.566) }, "", "PETAL-ROSE", "median about 2 in ARDS, not a cut-off [published: Crit Care 2022]"},
 		{"gradient_4.6mmHg_normal", func() (physio.Result, error) { return physio.EndTidalGradient(40, 35.4) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]; 4.6 normal [published: Nunn & Hill 1960]"},
 		{"gradient_9mmHg_at_threshold", func() (physio.Result, error) { return physio.EndTidalGradient(45, 36) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]"},
 		{"gradient_10mmHg_high", func() (physio.Result, error) { return physio.EndTidalGradient(45, 35) }, "H", "Tyburski", "> 9 mm[Hg] [published: Tyburski 2002]"},
 		{"AVDSF_0.20_at_threshold", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 36) }, "N", "Tyburski", "<= 0.20 [published: Tyburski 2002]"},
 		{"AVDSF_0.2222_high", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 35) }, "H", "Tyburski", "> 0.20 [published: Tyburski 2002]"},
-		{"discrepancy_plus_15.9mmHg_high", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1) }, "H", "35-45", "5 mm[Hg] [derived; common practice]"},
-		{"discrepancy_minus_8mmHg_low", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41) }, "L", "35-45", "5 mm[Hg] [derived; common practice]"},
-		{"discrepancy_plus_4mmHg_not_material", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41) }, "N", "35-45", "5 mm[Hg] [derived; common practice]"},
+		{"discrepancy_plus_15.9mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"discrepancy_minus_8mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"discrepancy_plus_4mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"gradient_minus_3mmHg_no_code", func() (physio.Result, error) { return physio.EndTidalGradient(35, 38) }, "", "Nunn & Hill", "no published reading of a negative gradient"},
+		{"VDVT_0.06_below_anatomic_no_code", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 47) }, "", "Radford", "below anatomic dead space 2.2 mL/kg [published: Radford 1955; derived]"},
 		{"PaCO2_from_VA_no_threshold", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(200, 4.2, 37) }, "", "", "none: a model output, not a measurement"},
 	}
 	for _, c := range cases {
@@ -60,16 +64,161 @@ func TestInterpretations(t *testing.T) {
 		})
 	}
 	t.Run("discrepancy_names_likely_causes", func(t *testing.T) {
-		r, err := physio.PaCO2Discrepancy(57, 41.1)
-		if err != nil {
-			t.Fatal(err)
-		}
-		for _, cause := range []string{"more dead space than assumed", "higher CO2 production than assumed", "input error"} {
-			if !strings.Contains(r.Interpretation.Text, cause) {
-				t.Errorf("text %q does not name %q", r.Interpretation.Text, cause)
+		for _, c := range []struct {
+			measured, predicted physio.MmHg
+			causes              []string
+		}{
+			{57, 41.1, []string{"more than 5 mm[Hg] above", "more dead space than assumed", "higher CO2 production than assumed", "input error"}},
+			{33, 41, []string{"more than 5 mm[Hg] below", "lower CO2 production than assumed", "less dead space than assumed", "input error"}},
+			{45, 41, []string{"within 5 mm[Hg]"}},
+		} {
+			r, err := physio.PaCO2Discrepancy(c.measured, c.predicted)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, cause := range c.causes {
+				if !strings.Contains(r.Interpretation.Text, cause) {
+					t.Errorf("%v - %v: text %q does not name %q", c.measured, c.predicted, r.Interpretation.Text, cause)
+				}
 			}
 		}
 	})
+}
+
+// TestInterpretBoundaries checks each exported reading at and beside its
+// threshold, so that a caller re-reading a rounded value gets the reading
+// the threshold's publication gives for that value.
+func TestInterpretBoundaries(t *testing.T) {
+	cases := []struct {
+		name   string
+		got    physio.Interpretation
+		code   string
+		text   string // substring of the text
+		source string // the threshold's source, with its label
+	}{
+		{"VDVT_0.149_below_floor", physio.InterpretDeadSpaceFraction(0.149), "", "below 0.15", "floor 0.15 [derived from Radford 1955; common practice]"},
+		{"VDVT_0.150_at_floor_normal", physio.InterpretDeadSpaceFraction(0.150), "N", "at or below about 0.3", "floor 0.15 [derived]; Nunn & Hill 1960 [published]"},
+		{"VDVT_0.300_normal", physio.InterpretDeadSpaceFraction(0.300), "N", "at or below about 0.3", "Nunn & Hill 1960 [published]"},
+		{"VDVT_0.301_high", physio.InterpretDeadSpaceFraction(0.301), "H", "above about 0.3", "Nunn & Hill 1960 [published]"},
+		{"VDVT_0.579_high_not_ARDS", physio.InterpretDeadSpaceFraction(0.579), "H", "above about 0.3", "Nuckton 2002 [published]: 0.58"},
+		{"VDVT_0.580_ARDS_mean", physio.InterpretDeadSpaceFraction(0.580), "H", "0.58, the mean at ARDS onset", "Nuckton 2002 [published]"},
+		{"gradient_-0.1mmHg_negative", physio.InterpretEndTidalGradient(-0.1), "", "negative", "no published reading"},
+		{"gradient_0mmHg_normal", physio.InterpretEndTidalGradient(0), "N", "at or below 9", "Tyburski 2002 [published]"},
+		{"gradient_9.0mmHg_normal", physio.InterpretEndTidalGradient(9.0), "N", "at or below 9", "Tyburski 2002 [published]"},
+		{"gradient_9.1mmHg_high", physio.InterpretEndTidalGradient(9.1), "H", "above 9", "Tyburski 2002 [published]"},
+		{"AVDSF_0.200_normal", physio.InterpretAlveolarDeadSpaceFraction(0.200), "N", "at or below 0.20", "Tyburski 2002 [published]"},
+		{"AVDSF_0.201_high", physio.InterpretAlveolarDeadSpaceFraction(0.201), "H", "above 0.20", "Tyburski 2002 [published]"},
+		{"VR_1.54_below", physio.InterpretVentilatoryRatio(1.54), "", "below 1.55", "Sinha 2009 [published group mean]"},
+		{"VR_1.55_at_mean", physio.InterpretVentilatoryRatio(1.55), "", "at or above 1.55", "Sinha 2009 [published group mean]"},
+		{"VR_1.99_not_median", physio.InterpretVentilatoryRatio(1.99), "", "at or above 1.55", "PETAL-ROSE 2022 [published group median]"},
+		{"VR_2.00_median", physio.InterpretVentilatoryRatio(2.00), "", "at or above 2", "PETAL-ROSE 2022 [published group median]"},
+		{"discrepancy_5.0mmHg_within", physio.InterpretPaCO2Discrepancy(5.0), "", "within 5", "band [derived; common practice]"},
+		{"discrepancy_5.1mmHg_above", physio.InterpretPaCO2Discrepancy(5.1), "", "above predicted", "band [derived; common practice]"},
+		{"discrepancy_-5.0mmHg_within", physio.InterpretPaCO2Discrepancy(-5.0), "", "within 5", "band [derived; common practice]"},
+		{"discrepancy_-5.1mmHg_below", physio.InterpretPaCO2Discrepancy(-5.1), "", "below predicted", "band [derived; common practice]"},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			if c.got.Code != c.code {
+				t.Errorf("%s: code %q, want %q", c.source, c.got.Code, c.code)
+			}
+			if !strings.Contains(c.got.Text, c.text) {
+				t.Errorf("%s: text %q lacks %q", c.source, c.got.Text, c.text)
+			}
+			if c.got.Source == "" {
+				t.Errorf("no source")
+			}
+		})
+	}
+	// The derivations use the same readings on their unrounded value.
+	for _, v := range []physio.MmHg{-4.9, 0, 9, 9.0001, 30} {
+		r, err := physio.EndTidalGradient(40, 40-v)
+		if err != nil {
+			t.Fatalf("gradient %v: %v", v, err)
+		}
+		if r.Interpretation != physio.InterpretEndTidalGradient(physio.MmHg(r.Value)) {
+			t.Errorf("gradient %v: derivation reading %+v differs from InterpretEndTidalGradient", v, r.Interpretation)
+		}
+	}
+}
+
+// A negative end-tidal gradient is returned with a flag and no code down to
+// -MaxNegativeEndTidalGradient (5 mm[Hg], about 4 SD below the normal mean
+// of 4.6 +/- 2.5 mm[Hg], Nunn & Hill 1960 [published; derived]); beyond it
+// the pair is refused as inconsistent.
+func TestEndTidalGradientNegative(t *testing.T) {
+	cases := []struct {
+		name          string
+		paco2, petco2 physio.MmHg
+		refused       bool
+	}{
+		{"minus_3mmHg_flagged", 35, 38, false},
+		{"minus_5mmHg_at_limit_flagged", 35, 40, false},
+		{"minus_5.1mmHg_refused", 35, 40.1, true},
+		{"minus_20mmHg_refused", 20, 40, true},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r, err := physio.EndTidalGradient(c.paco2, c.petco2)
+			if c.refused {
+				if !errors.Is(err, physio.ErrOutOfMeaning) {
+					t.Fatalf("err %v, want ErrOutOfMeaning", err)
+				}
+				return
+			}
+			if err != nil {
+				t.Fatal(err)
+			}
+			if r.Interpretation.Code != "" || !strings.Contains(r.Interpretation.Text, "check sampling") {
+				t.Errorf("interpretation %+v, want no code and a sampling check", r.Interpretation)
+			}
+			if !slices.ContainsFunc(r.Flags(), func(f string) bool { return strings.Contains(f, "end-tidal PCO2 above arterial") }) {
+				t.Errorf("flags %q lack the negative-gradient flag", r.Flags())
+			}
+		})
+	}
+}
+
+// A dead-space fraction below DeadSpaceFractionFloor (0.15: anatomic dead
+// space 2.2 mL/kg [published: Radford 1955] over a VT of 6-8 mL/kg is
+// 0.27-0.37 [derived]) is flagged, judged at the 3 decimals it is reported
+// with.
+func TestDeadSpaceFloorFlag(t *testing.T) {
+	cases := []struct {
+		name    string
+		call    func() (physio.Result, error)
+		flagged bool
+		has     string
+	}{
+		{"enghoff_0.06_flagged", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 47) }, true, "mixed-expired PCO2"},
+		{"enghoff_0.1494_flagged", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 50*(1-0.1494)) }, true, "mixed-expired PCO2"},
+		{"enghoff_0.1496_reported_0.150_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 50*(1-0.1496)) }, false, ""},
+		{"enghoff_0.325_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 27) }, false, ""},
+		// VD/VT = 1 - 0.863 x 200 / (24 x 40) = 0.8202 -> not flagged;
+		// with VE 5.0 and PaCO2 40: 1 - 0.863 x 200 / 200 = 0.137 -> flagged.
+		{"vco2_0.137_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(40, 200, 5, 37) }, true, "minute volume and VCO2"},
+		{"vco2_0.6164_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, false, ""},
+		// Harris-Benedict VCO2 188.16 mL/min: 1 - 0.86 x 188.16 / (4 x 47.5) = 0.148 -> flagged.
+		{"estimated_0.148_flagged", func() (physio.Result, error) { return physio.DeadSpaceEstimated(47.5, 4, man) }, true, "minute volume and VCO2"},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r, err := c.call()
+			if err != nil {
+				t.Fatal(err)
+			}
+			flagged := slices.ContainsFunc(r.Flags(), func(f string) bool { return strings.Contains(f, "below 0.15") })
+			if flagged != c.flagged {
+				t.Fatalf("VD/VT %.5f: flagged %v, want %v (flags %q)", r.Value, flagged, c.flagged, r.Flags())
+			}
+			if c.flagged && !slices.ContainsFunc(r.Flags(), func(f string) bool { return strings.Contains(f, c.has) }) {
+				t.Errorf("flags %q do not point at %q", r.Flags(), c.has)
+			}
+			if c.flagged && r.Interpretation.Code == "N" && r.Value < 0.1495 {
+				t.Errorf("a value below the floor is read as normal")
+			}
+		})
+	}
 }
 
 // Answers outside the advisory bounds are returned unclamped, with flags.
@@ -156,11 +305,16 @@ func TestAssumptionsRecorded(t *testing.T) {
 		e := man
 		e.RQ = 0.85
 		r, _ := physio.EstimateVCO2(e)
-		if has(r, "respiratory quotient not measured") {
+		if has(r, "respiratory quotient not measured: 0.8 assumed") {
 			t.Errorf("default recorded although RQ given: %q", r.Assumptions())
 		}
-		if !slices.ContainsFunc(r.Constants(), func(c physio.Constant) bool { return c.Name == "RQ" && c.Value == 0.85 }) {
-			t.Errorf("RQ 0.85 not among constants %+v", r.Constants())
+		if !has(r, "respiratory quotient not measured: the configured value") {
+			t.Errorf("configured RQ not labelled configured: %q", r.Assumptions())
+		}
+		if !slices.ContainsFunc(r.Constants(), func(c physio.Constant) bool {
+			return c.Name == "RQ" && c.Value == 0.85 && strings.Contains(c.Source, "not measured")
+		}) {
+			t.Errorf("RQ 0.85 not among constants as configured, not measured: %+v", r.Constants())
 		}
 	})
 	t.Run("REE_labelled_estimated", func(t *testing.T) {
@@ -298,4 +452,58 @@ func firstDiff(got, want string) string {
 		}
 	}
 	return ""
+}
+
+// The assumptions must hold whatever kind of input the caller passed (the
+// caller records which kind it was): they may name what the published
+// method used, but never claim that the value passed was of that kind.
+func TestAssumptionsDoNotClaimInputKind(t *testing.T) {
+	calls := map[string]func() (physio.Result, error){
+		"DeadSpaceFromVCO2":  func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) },
+		"DeadSpaceEstimated": func() (physio.Result, error) { return physio.DeadSpaceEstimated(45, 10, man) },
+		"MixedExpiredPCO2":   func() (physio.Result, error) { return physio.MixedExpiredPCO2(200, 10, 37) },
+		"VentilatoryRatio":   func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) },
+		"DeadSpaceVolume":    func() (physio.Result, error) { return physio.DeadSpaceVolume(0.325, 500) },
+		"AlveolarVentilation": func() (physio.Result, error) {
+			return physio.AlveolarVentilationFromDeadSpace(10, 0.61644)
+		},
+		"PredictedPaCO2": func() (physio.Result, error) {
+			return physio.PredictedPaCO2(physio.PredictedInput{VCO2: 200, VT: 420, RR: 20, AnatomicVD: 150, ApparatusVDKnown: true})
+		},
+	}
+	claims := []string{"VE is expired", "VE is measured", "VE is ventilator rate", "RR the total breath rate", "VT is expired", "as in the published method"}
+	for name, call := range calls {
+		t.Run(name, func(t *testing.T) {
+			r, err := call()
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, a := range append(r.Assumptions(), r.Method) {
+				for _, c := range claims {
+					if strings.Contains(a, c) {
+						t.Errorf("%q claims the input kind (%q)", a, c)
+					}
+				}
+			}
+		})
+	}
+}
+
+// The target of the for-target advice is recorded as a constant, so that
+// the notes can say where it came from.
+func TestTargetRecordedAsConstant(t *testing.T) {
+	for _, call := range []func() (physio.Result, error){
+		func() (physio.Result, error) { return physio.RateForTarget(14, 55, 40, 420, 70.566) },
+		func() (physio.Result, error) { return physio.TidalVolumeForTarget(420, 180, 55, 40, 70.566) },
+	} {
+		r, err := call()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !slices.ContainsFunc(r.Constants(), func(c physio.Constant) bool {
+			return c.Name == "target PaCO2" && c.Value == 40 && c.Unit == "mm[Hg]" && strings.Contains(c.Source, "given by the caller")
+		}) {
+			t.Errorf("%s: constants %+v lack the target PaCO2 40 mm[Hg]", r.Method, r.Constants())
+		}
+	}
 }

@@ -18,7 +18,9 @@ const (
 	anatomicMLPerKg = 2.2
 
 	// DiscrepancyThreshold is the measured-minus-predicted PaCO2 difference,
-	// in mm[Hg], above which PaCO2Discrepancy calls the difference material:
+	// in mm[Hg], beyond which PaCO2Discrepancy's text calls the difference
+	// material (no interpretation code: the band is not a published
+	// threshold):
 	// half the width of the healthy 35-45 mm[Hg] range, i.e. the spread of
 	// PaCO2 between healthy people [derived from published textbooks], and
 	// twice the standard deviation (2.5 mm[Hg]) of the arterial to end-tidal
@@ -34,7 +36,7 @@ const (
 	assumeAnatomicPBW  = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed (Radford 1955; a poor predictor for an individual, Brewer & Orr)"
 	assumeNoAlveolarVD = "no alveolar dead space and no shunt: a measured PaCO2 above the predicted one points to them"
 	assumeVCO2Estimate = "estimated: VCO2 not measured"
-	assumePredictedVT  = "VT is expired tidal volume and RR the total breath rate"
+	assumePredictedVT  = "VT and RR are the tidal volume and breath rate supplied (measured or set); the prediction holds for the tidal volume and total breath rate actually delivered"
 	assumeDiscrepancy  = "predicted PaCO2 from the same steady state as the measured one, with the VCO2 and dead space it assumed"
 )
 
@@ -71,8 +73,8 @@ func PredictedBodyWeight(sex Sex, height Cm) (Result, error) {
 type PredictedInput struct {
 	VCO2          MLPerMin // CO2 production, mL/min STPD, VCO2Range
 	VCO2Estimated bool     // true when VCO2 is an estimate (recorded as an assumption)
-	VT            ML       // expired tidal volume, mL, TidalVolumeRange
-	RR            PerMin   // total breath rate, /min, RespRateRange
+	VT            ML       // tidal volume, mL, TidalVolumeRange (expired measured preferred; the caller records what it passed)
+	RR            PerMin   // breath rate, /min, RespRateRange (total measured preferred; the caller records what it passed)
 	// AnatomicVD is the anatomic dead space, mL (AnatomicDeadSpaceRange);
 	// 0 means 2.2 mL/kg of PBW (Radford 1955), recorded as an assumption.
 	AnatomicVD ML
@@ -161,24 +163,44 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 	return r, nil
 }
 
-// Readings of the measured-minus-predicted difference.
+// Readings of the measured-minus-predicted difference. The 5 mm[Hg] band
+// is derived, not a published threshold, so no interpretation code is
+// given; the text names the likely causes.
 var (
-	interpDiscrepancyHigh = Interpretation{Code: "H",
-		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than assumed, or an input error (tidal volume, rate, apparatus dead space, units)",
-		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
-	interpDiscrepancyLow = Interpretation{Code: "L",
-		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error",
-		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
-	interpDiscrepancyNone = Interpretation{Code: "N",
-		Text:   "measured PaCO2 within 5 mm[Hg] of predicted: consistent with the assumed dead space and CO2 production",
-		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+	interpDiscrepancyHigh = Interpretation{Code: "",
+		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than assumed, or an input error (tidal volume, rate, apparatus dead space, units); no published threshold, so no interpretation code",
+		Source: "band 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+	interpDiscrepancyLow = Interpretation{Code: "",
+		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error (tidal volume, rate, units); no published threshold, so no interpretation code",
+		Source: "band 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+	interpDiscrepancyNone = Interpretation{Code: "",
+		Text:   "measured PaCO2 within 5 mm[Hg] of predicted: consistent with the assumed dead space and CO2 production; no published threshold, so no interpretation code",
+		Source: "band 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
 )
 
+// InterpretPaCO2Discrepancy reads a measured-minus-predicted PaCO2
+// difference (mm[Hg]) against the DiscrepancyThreshold band: above it, below
+// its negative, or within. The band is derived, not published, so Code is
+// always empty; the text names the likely causes of a difference (more
+// dead space or CO2 production than assumed, or an input error). A caller
+// that reports a rounded value calls it on that value. It never fails and
+// does not allocate.
+func InterpretPaCO2Discrepancy(v MmHg) Interpretation {
+	switch {
+	case v > DiscrepancyThreshold:
+		return interpDiscrepancyHigh
+	case v < -DiscrepancyThreshold:
+		return interpDiscrepancyLow
+	}
+	return interpDiscrepancyNone
+}
+
 // PaCO2Discrepancy returns measured minus predicted PaCO2, in mm[Hg]. Its
-// Interpretation is H when the difference exceeds DiscrepancyThreshold
-// (naming the likely causes: more dead space than assumed, higher CO2
-// production than assumed, or an input error), L when it is below
-// -DiscrepancyThreshold, N otherwise.
+// Interpretation (InterpretPaCO2Discrepancy) has no code, since the
+// DiscrepancyThreshold band is derived, not published; its text says
+// whether the difference is beyond the band and names the likely causes
+// (more dead space than assumed, higher CO2 production than assumed, or an
+// input error).
 //
 // It refuses measured outside PaCO2Range and predicted outside PaCO2Range.
 func PaCO2Discrepancy(measured, predicted MmHg) (Result, error) {
@@ -189,15 +211,8 @@ func PaCO2Discrepancy(measured, predicted MmHg) (Result, error) {
 		return Result{}, err
 	}
 	v := float64(measured - predicted)
-	r := Result{Value: v, Unit: UnitMmHg, Method: methodDiscrepancy, MethodVersion: MethodVersion}
-	switch th := float64(DiscrepancyThreshold); {
-	case v > th:
-		r.Interpretation = interpDiscrepancyHigh
-	case v < -th:
-		r.Interpretation = interpDiscrepancyLow
-	default:
-		r.Interpretation = interpDiscrepancyNone
-	}
+	r := Result{Value: v, Unit: UnitMmHg, Method: methodDiscrepancy, MethodVersion: MethodVersion,
+		Interpretation: InterpretPaCO2Discrepancy(MmHg(v))}
 	r.addConst(&discrepancyDef, float64(DiscrepancyThreshold))
 	r.assume(assumeDiscrepancy)
 	r.basis("PaCO2 measured - predicted = %.1f mm[Hg] - %.2f mm[Hg] = %.2f mm[Hg] (material beyond +/- %g mm[Hg])",

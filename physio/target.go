@@ -41,6 +41,7 @@ var (
 	minVTDef   = constDef{name: "advisory lower tidal volume", unit: "mL/kg", source: "ARDS Network protocol [memory]"}
 	maxRateDef = constDef{name: "advisory upper rate", unit: UnitPerMin, source: "ARDS Network protocol [memory]"}
 	minRateDef = constDef{name: "advisory lower rate", unit: UnitPerMin, source: "[common practice]"}
+	targetDef  = constDef{name: "target PaCO2", unit: UnitMmHg, source: "given by the caller, not derived; a patient-specific goal only if the caller made it one"}
 )
 
 // flagVT flags a tidal volume outside the advisory bounds per kg PBW.
@@ -61,7 +62,8 @@ func (r *Result) flagVT(vtPerKg float64) {
 // inversely proportional to alveolar ventilation, so RR_new = RR x PaCO2 /
 // target. vt (mL) and pbw (kg) do not enter the formula; they are used to
 // flag the tidal volume per kg PBW. Flags mark an answer above MaxRate or
-// below MinRate and a VT outside MinVTPerKgPBW..MaxVTPerKgPBW.
+// below MinRate and a VT outside MinVTPerKgPBW..MaxVTPerKgPBW. The target
+// is recorded as the constant "target PaCO2" (given by the caller).
 //
 // It refuses rr outside RespRateRange, paco2 outside PaCO2Range, target
 // outside TargetPaCO2Range, vt outside TidalVolumeRange and pbw outside
@@ -85,6 +87,7 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 	v := float64(rr) * float64(paco2) / float64(target)
 	vtPerKg := float64(vt) / float64(pbw)
 	r := Result{Value: v, Unit: UnitPerMin, Method: methodRateForTarget, MethodVersion: MethodVersion}
+	r.addConst(&targetDef, float64(target))
 	r.addConst(&maxRateDef, float64(MaxRate))
 	r.addConst(&minRateDef, float64(MinRate))
 	switch {
@@ -109,6 +112,8 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 // VT_new = VD + (VT - VD) x PaCO2 / target. Scaling VT alone would
 // overestimate the change, since only VT - VD ventilates alveoli. pbw (kg)
 // is used to flag the answer per kg PBW (MinVTPerKgPBW..MaxVTPerKgPBW).
+// The target is recorded as the constant "target PaCO2" (given by the
+// caller).
 //
 // It refuses vt outside TidalVolumeRange, vd outside
 // PhysiologicDeadSpaceRange or not below vt (ErrOutOfMeaning), paco2
@@ -136,6 +141,7 @@ func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error)
 	v := float64(vd) + float64(vt-vd)*float64(paco2)/float64(target)
 	vtPerKg := v / float64(pbw)
 	r := Result{Value: v, Unit: UnitML, Method: methodVTForTarget, MethodVersion: MethodVersion}
+	r.addConst(&targetDef, float64(target))
 	r.flagVT(vtPerKg)
 	r.assume(assumeAdvisory)
 	r.assume(assumeFixedDeadSpaceV)
