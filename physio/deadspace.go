@@ -3,9 +3,12 @@ package physio
 import "math"
 
 const (
-	methodEnghoff          = "Bohr-Enghoff"
-	methodEnghoffVCO2      = "Bohr-Enghoff, PECO2 from VCO2 and minute volume"
-	methodMixedExpired     = "mixed-expired PCO2 from VCO2 and minute volume"
+	methodEnghoff = "Bohr-Enghoff"
+	// The method names name the published method, which uses the expired
+	// minute volume; what the caller supplied is stated by the assumptions
+	// and by the caller.
+	methodEnghoffVCO2      = "Bohr-Enghoff, PECO2 from VCO2 and expired minute volume"
+	methodMixedExpired     = "mixed-expired PCO2 from VCO2 and expired minute volume"
 	methodSiddiki          = "estimated dead-space fraction (Siddiki 2010), VCO2 from resting energy expenditure"
 	methodDeadSpaceVolume  = "dead-space volume VD/VT x VT"
 	methodVAFromDeadSpace  = "alveolar ventilation VE x (1 - VD/VT)"

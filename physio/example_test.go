@@ -41,7 +41,7 @@ func ExampleDeadSpaceFromVCO2() {
 	}
 	fmt.Printf("%.4f (%s)\n%s\n[%s] %s\n", r.Value, r.Method, r.Basis(), r.Interpretation.Code, r.Interpretation.Source)
 	// Output:
-	// 0.6164 (Bohr-Enghoff, PECO2 from VCO2 and minute volume)
+	// 0.6164 (Bohr-Enghoff, PECO2 from VCO2 and expired minute volume)
 	// VD/VT = 1 - K(37.0 Cel) x VCO2 / (VE x PaCO2) = 1 - 0.863 x 200.0 mL/min / (10.00 L/min x 45.0 mm[Hg]) = 0.6164
 	// [H] Nunn & Hill, J Appl Physiol 1960; Nuckton et al., NEJM 2002;346:1281-6
 }
@@ -104,7 +104,7 @@ func ExamplePredictedPaCO2() {
 	fmt.Println(errors.Is(err, physio.ErrNotGiven), err)
 	// Output:
 	// VA = (VT - VDanat - VDapp) x RR = (420 mL - 150.0 mL - 120 mL) x 20.0 /min = 3.000 L/min; PaCO2 = K(37.0 Cel) x VCO2 / VA = 0.863 x 200.0 mL/min / 3.000 L/min = 57.53 mm[Hg]
-	// -12.53 mm[Hg]: measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error (tidal volume, rate, units); no published threshold, so no interpretation code
+	// -12.53 mm[Hg]: measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error
 	// true physio: apparatus dead space: not given (must be configured for the circuit, 0 when there is none; never assumed zero)
 }
 

@@ -49,10 +49,10 @@ var (
 // validated cut-offs, so no interpretation code is given.
 var (
 	interpVRARDS = Interpretation{Code: "",
-		Text:   "at or above 2, the median in ARDS trial patients (and above 1.55, the mean of non-survivors in a general ICU cohort); published group values, not a validated cut-off, so no interpretation code",
+		Text:   "at or above 2, the median in ARDS trial patients (and above 1.55, the mean of non-survivors in a general ICU cohort); published group values, not a validated cut-off",
 		Source: "PETAL-ROSE secondary analysis, Crit Care 2022, doi 10.1186/s13054-022-04179-7; Sinha et al., Br J Anaesth 2009"}
 	interpVRHigh = Interpretation{Code: "",
-		Text:   "at or above 1.55, the mean of non-survivors in a general ICU cohort (survivors 1.32); a published group value, not a validated cut-off, so no interpretation code",
+		Text:   "at or above 1.55, the mean of non-survivors in a general ICU cohort (survivors 1.32); a published group value, not a validated cut-off",
 		Source: "Sinha et al., Br J Anaesth 2009;102:692-697"}
 	interpVRBelow = Interpretation{Code: "",
 		Text:   "below 1.55, the mean of non-survivors in a general ICU cohort (survivors 1.32; near 1 in healthy lungs); no published normal cut-off",

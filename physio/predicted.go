@@ -168,14 +168,14 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 // given; the text names the likely causes.
 var (
 	interpDiscrepancyHigh = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than assumed, or an input error (tidal volume, rate, apparatus dead space, units); no published threshold, so no interpretation code",
-		Source: "band 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than assumed, or an input error (tidal volume, rate, apparatus dead space, units)",
+		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
 	interpDiscrepancyLow = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error (tidal volume, rate, units); no published threshold, so no interpretation code",
-		Source: "band 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error",
+		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
 	interpDiscrepancyNone = Interpretation{Code: "",
-		Text:   "measured PaCO2 within 5 mm[Hg] of predicted: consistent with the assumed dead space and CO2 production; no published threshold, so no interpretation code",
-		Source: "band 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+		Text:   "measured PaCO2 within 5 mm[Hg] of predicted: consistent with the assumed dead space and CO2 production",
+		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
 )
 
 // InterpretPaCO2Discrepancy reads a measured-minus-predicted PaCO2
