@@ -58,12 +58,12 @@ var Catalogue = []KindInfo{
 	},
 	{
 		Code:       KindDeadSpaceVCO2,
-		Display:    "Physiologic dead-space fraction (VD/VT) from measured VCO2 and expired minute volume",
-		Definition: "Dead-space fraction by the Enghoff equation with the mixed-expired PCO2 computed from measured CO2 production and expired minute ventilation (steady state, no inspired CO2).",
+		Display:    "Physiologic dead-space fraction (VD/VT) from measured VCO2 and measured minute volume",
+		Definition: "Dead-space fraction by the Enghoff equation with the mixed-expired PCO2 computed from measured CO2 production and measured minute ventilation (expired preferred; steady state, no inspired CO2).",
 		Unit:       "1", Decimals: 3,
-		Formula: "VD/VT = 1 - K x VCO2 / (VE x PaCO2), K = 0.863 mm[Hg].L/mL",
-		Source:  "Enghoff [published] with the alveolar ventilation equation, K from the ideal gas law (STPD to BTPS at 37 Cel) [derived]",
-		Refused: "no-vco2; no-minute-volume; implausible-input; inconsistent-inputs",
+		Formula: "VD/VT = 1 - K(T) x VCO2 / (VE x PaCO2), K(T) = 0.760 x (273 + T)/273 mm[Hg].L/mL at the measured body temperature T (37 Cel when not measured: K = 0.863)",
+		Source:  "Enghoff [published] with the alveolar ventilation equation, K from the ideal gas law (VCO2 STPD to VE BTPS at body temperature) [derived]",
+		Refused: "no-vco2; no-minute-volume (none measured: a set minute volume is not used); implausible-input; inconsistent-inputs",
 	},
 	{
 		Code:       KindDeadSpaceEstimated,
@@ -72,7 +72,7 @@ var Catalogue = []KindInfo{
 		Unit:       "1", Decimals: 3,
 		Formula: "VD/VT = 1 - 0.86 x VCO2est / (VE x PaCO2); VCO2est = REE / (1.440 x (3.941/RQ + 1.106)), REE by Harris-Benedict 1919 (or Roza-Shizgal 1984 when configured)",
 		Source:  "Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 [published]; Weir, J Physiol 1949;109:1-9 [published]; Harris & Benedict 1919 [published]",
-		Refused: "no-minute-volume; no-sex; no-age; no-height; no-weight; implausible-input; inconsistent-inputs",
+		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-sex; no-age; no-height; no-weight; implausible-input; inconsistent-inputs",
 	},
 	{
 		Code:       KindDeadSpaceVolume,
@@ -81,21 +81,21 @@ var Catalogue = []KindInfo{
 		Unit:       "mL", Decimals: 0,
 		Formula: "VD = VD/VT x VT",
 		Source:  "Enghoff [published]; product with VT [derived]",
-		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form); no-tidal-volume; implausible-input; inconsistent-inputs",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; implausible-input; inconsistent-inputs",
 	},
 	{
 		Code:       KindAlveolarVentilation,
 		Display:    "Alveolar ventilation (VA)",
-		Definition: "Part of the minute ventilation that reaches gas-exchanging alveoli: minute ventilation times one minus the measured dead-space fraction.",
+		Definition: "Part of the minute ventilation that reaches gas-exchanging alveoli: measured minute ventilation times one minus the measured dead-space fraction.",
 		Unit:       "L/min", Decimals: 2,
 		Formula: "VA = VE x (1 - VD/VT)",
 		Source:  "alveolar ventilation equation [published: standard respiratory physiology texts; e.g. Wang et al., Adv Physiol Educ 2020;44:145-152]",
-		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume; implausible-input; inconsistent-inputs",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (none measured: a set minute volume is not used); implausible-input; inconsistent-inputs",
 	},
 	{
 		Code:       KindPredictedPaCO2,
-		Display:    "Predicted PaCO2 from measured VCO2, ventilator settings and predicted dead space",
-		Definition: "PaCO2 expected from the alveolar ventilation equation if dead space were only anatomic (2.2 mL/kg predicted body weight) plus the configured apparatus dead space.",
+		Display:    "Predicted PaCO2 from measured VCO2, tidal volume and rate (measured preferred, settings as fallback) and predicted dead space",
+		Definition: "PaCO2 expected from the alveolar ventilation equation if dead space were only anatomic (2.2 mL/kg predicted body weight) plus the configured apparatus dead space, at the measured tidal volume and breath rate (or the settings, recorded as a fallback).",
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "PaCO2pred = K x VCO2 / ((VT - VDanat - VDapp) x RR / 1000); VDanat = 2.2 mL/kg x PBW; PBW (ARDS Network) from height and sex",
 		Source:  "alveolar ventilation equation [published]; Radford, J Appl Physiol 1955 [published]; ARDS Network, NEJM 2000;342:1301-8 [published]",
@@ -113,11 +113,11 @@ var Catalogue = []KindInfo{
 	{
 		Code:       KindVentilatoryRatio,
 		Display:    "Ventilatory ratio (VR)",
-		Definition: "Ratio of the actual minute ventilation and PaCO2 product to the predicted product (100 mL/kg/min predicted body weight, PaCO2 37.5 mm[Hg]); near 1 in healthy lungs.",
+		Definition: "Ratio of the measured minute ventilation and PaCO2 product to the predicted product (100 mL/kg/min predicted body weight, PaCO2 37.5 mm[Hg]); near 1 in healthy lungs.",
 		Unit:       "1", Decimals: 2,
 		Formula: "VR = (VE[mL/min] x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mm[Hg])",
 		Source:  "Sinha et al., Br J Anaesth 2009;102:692-697 [published]; mm[Hg] form, Sinha et al., AJRCCM 2019 [published]",
-		Refused: "no-minute-volume; no-height; no-sex; implausible-input",
+		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-height; no-sex; implausible-input",
 	},
 	{
 		Code:       KindPaCO2PETCO2Gradient,
@@ -126,7 +126,7 @@ var Catalogue = []KindInfo{
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "Pa-ETCO2 = PaCO2 - PETCO2",
 		Source:  "Nunn & Hill, J Appl Physiol 1960 [published]; Tyburski et al., J Trauma 2002;53:738 [published]",
-		Refused: "no-etco2; implausible-input",
+		Refused: "no-etco2; implausible-input; inconsistent-inputs (PETCO2 more than 5 mm[Hg] above PaCO2)",
 	},
 	{
 		Code:       KindAlveolarDeadSpace,
@@ -140,20 +140,20 @@ var Catalogue = []KindInfo{
 	{
 		Code:       KindRateForTarget,
 		Display:    "Breath rate for the target PaCO2 at the same tidal volume (advisory)",
-		Definition: "Breath rate at which, with unchanged tidal volume, dead space and CO2 production, PaCO2 would reach the site's target. Advisory arithmetic, not an order.",
+		Definition: "Breath rate at which, with unchanged tidal volume, dead space and CO2 production, PaCO2 would reach the site's configured target (not a patient-specific goal). Advisory arithmetic, not an order.",
 		Unit:       "/min", Decimals: 1,
 		Formula: "RRnew = RR x PaCO2 / PaCO2target",
 		Source:  "inverse proportion of PaCO2 and alveolar ventilation at constant VCO2 [derived from the alveolar ventilation equation]",
-		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); implausible-input",
+		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); target-paco2-not-configured; implausible-input",
 	},
 	{
 		Code:       KindTidalVolumeForTarget,
 		Display:    "Tidal volume for the target PaCO2 at the same breath rate (advisory)",
-		Definition: "Tidal volume at which, with unchanged breath rate, physiologic dead-space volume and CO2 production, PaCO2 would reach the site's target. Advisory arithmetic, not an order.",
+		Definition: "Tidal volume at which, with unchanged breath rate, physiologic dead-space volume and CO2 production, PaCO2 would reach the site's configured target (not a patient-specific goal). Advisory arithmetic, not an order.",
 		Unit:       "mL", Decimals: 0,
 		Formula: "VTnew = VD + (VT - VD) x PaCO2 / PaCO2target, VD the measured physiologic dead-space volume",
 		Source:  "alveolar ventilation equation at constant VCO2 and dead-space volume [derived]",
-		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); implausible-input; inconsistent-inputs",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); target-paco2-not-configured; implausible-input; inconsistent-inputs",
 	},
 }
 
@@ -200,6 +200,7 @@ const (
 	ReasonImplausible      = "implausible-input"
 	ReasonInconsistent     = "inconsistent-inputs"
 	ReasonApparatusNotSet  = "apparatus-dead-space-not-configured"
+	ReasonTargetNotSet     = "target-paco2-not-configured"
 )
 
 // ReasonInfo describes one refusal reason.
@@ -214,12 +215,12 @@ var Reasons = []ReasonInfo{
 	{ReasonVenous, "the PCO2 was measured in venous blood; dead-space formulas need arterial blood"},
 	{ReasonCapillary, "the PCO2 was measured in capillary blood; dead-space formulas need arterial blood"},
 	{ReasonMixedVenous, "the PCO2 was measured in mixed venous blood; dead-space formulas need arterial blood"},
-	{ReasonUnknownSpecimen, "the PCO2 code does not name the blood and the Observation's specimen does not say arterial"},
+	{ReasonUnknownSpecimen, "the PCO2 code does not name the blood and no coded Specimen says arterial, or the code, the Specimen and the panel name different blood (the detail says which)"},
 	{ReasonEnteredInError, "the blood gas was entered in error; values derived from it are withdrawn"},
 	{ReasonBloodGasNotUsable, "the blood gas status is registered, cancelled or unknown: there is no result to use"},
 	{ReasonTemperatureAdjusted, "the PaCO2 was adjusted to the patient's temperature; the formulas use PaCO2 measured at 37 Cel"},
 	{ReasonNoVentilatorData, "no usable ventilator reading of the patient (same encounter) lies in the pairing window"},
-	{ReasonNoMinuteVolume, "no minute volume (measured or set) in the pairing window"},
+	{ReasonNoMinuteVolume, "no measured minute volume (expired, unstated or inspired) in the pairing window; a set minute volume is not a measurement of ventilation and is not used"},
 	{ReasonNoVCO2, "no measured CO2 production (VCO2), and for dead-space volume no mixed-expired PCO2 either, in the pairing window"},
 	{ReasonNoPECO2, "no measured mixed-expired PCO2 in the pairing window"},
 	{ReasonNoETCO2, "no end-tidal PCO2 in the pairing window"},
@@ -230,6 +231,7 @@ var Reasons = []ReasonInfo{
 	{ReasonNoAge, "no birth date of the patient: the energy equation needs the age"},
 	{ReasonNoWeight, "no body weight of the patient: the energy equation needs it"},
 	{ReasonImplausible, "an input lies outside its published plausible range (the detail names it)"},
-	{ReasonInconsistent, "the inputs contradict each other (e.g. mixed-expired PCO2 not below PaCO2; the detail says which)"},
+	{ReasonInconsistent, "the inputs contradict each other (e.g. mixed-expired PCO2 not below PaCO2, end-tidal PCO2 more than 5 mm[Hg] above PaCO2; the detail says which)"},
 	{ReasonApparatusNotSet, "the site has not configured its apparatus dead space; it is never assumed to be zero"},
+	{ReasonTargetNotSet, "the site has not configured a target PaCO2; none is assumed, since a usual adult target does not fit chronic hypercapnia or permissive hypercapnia"},
 }

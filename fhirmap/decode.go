@@ -613,6 +613,41 @@ func specimenType(s *specimenJSON) Specimen {
 	return combineSpecimen(SpecimenUnknown, claims...)
 }
 
+// specimenConflictPrefix starts the Detail of a blood value whose sources
+// name different blood (its Specimen is then SpecimenUnknown), e.g.
+// "specimen conflict: arterial (code), capillary (Specimen or panel)".
+const specimenConflictPrefix = "specimen conflict: "
+
+// combineSpecimenNote is combineSpecimen that also returns, when the sources
+// contradict each other, a note naming each definite claim and where it came
+// from, for Fact.Detail; "" otherwise.
+func combineSpecimenNote(code Specimen, claims ...Specimen) (Specimen, string) {
+	got := combineSpecimen(code, claims...)
+	if got != SpecimenUnknown {
+		return got, ""
+	}
+	var parts []string
+	seen := map[Specimen]bool{}
+	if definiteSpecimen(code) {
+		parts = append(parts, string(code)+" (code)")
+		seen[code] = true
+	}
+	for _, c := range claims {
+		if definiteSpecimen(c) && !seen[c] {
+			parts = append(parts, string(c)+" (Specimen or panel)")
+			seen[c] = true
+		}
+	}
+	if len(parts) < 2 {
+		return got, ""
+	}
+	return got, specimenConflictPrefix + strings.Join(parts, ", ")
+}
+
+func definiteSpecimen(s Specimen) bool {
+	return s != SpecimenNone && s != SpecimenUnknown
+}
+
 // combineSpecimen merges what the code and the other sources say about the
 // blood. A value that is not from blood (SpecimenNone) stays so. Otherwise
 // the definite claims (arterial, venous, capillary, mixed venous) are

@@ -211,7 +211,8 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 			d.out.Ignored = append(d.out.Ignored, Ignored{Reference: ref, Reason: "panel"})
 		}
 	case found:
-		if err := d.value(base, ref, info, coding, combineSpecimen(info.Specimen, claims...), obsValues(o), e.entry, e.root); err != nil {
+		spec, note := combineSpecimenNote(info.Specimen, claims...)
+		if err := d.value(base, ref, info, coding, spec, note, obsValues(o), e.entry, e.root); err != nil {
 			return err
 		}
 	case len(o.Component) == 0:
@@ -241,8 +242,8 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 			d.out.Ignored = append(d.out.Ignored, Ignored{Reference: key, Reason: "conflicting-codes"})
 			continue
 		}
-		spec := combineSpecimen(cinfo.Specimen, append([]Specimen{panelClaim}, claims...)...)
-		if err := d.value(base, key, cinfo, ccoding, spec, componentValues(c), e.entry, croot); err != nil {
+		spec, note := combineSpecimenNote(cinfo.Specimen, append([]Specimen{panelClaim}, claims...)...)
+		if err := d.value(base, key, cinfo, ccoding, spec, note, componentValues(c), e.entry, croot); err != nil {
 			return err
 		}
 	}
@@ -300,9 +301,12 @@ func effective(e *obsEntry) (time.Time, *DecodeError) {
 // A retracting status (cancelled, entered-in-error) always yields a fact,
 // with Value 0 when the value is absent or unusable: a retraction must not
 // be lost because the erroneous value was also malformed.
-func (d *decoder) value(base Fact, key string, info CodeInfo, coding Coding, spec Specimen, v values, entry int, root string) *DecodeError {
+func (d *decoder) value(base Fact, key string, info CodeInfo, coding Coding, spec Specimen, specNote string, v values, entry int, root string) *DecodeError {
 	f := base
 	f.Key, f.Quantity, f.Origin, f.Detail = key, info.Quantity, info.Origin, info.Detail
+	if f.Detail == "" {
+		f.Detail = specNote // blood values have no other detail
+	}
 	f.Specimen, f.TempCorrected, f.Code = spec, info.TempCorrected, coding
 	f.Unit = info.Quantity.Unit()
 	retract := f.Status.Retracts()

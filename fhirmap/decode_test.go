@@ -471,3 +471,31 @@ func TestDecodeTruncated(t *testing.T) {
 		})
 	}
 }
+
+// TestCombineSpecimenNote: contradictory specimen claims give
+// SpecimenUnknown with a note naming each claim and its source, so that the
+// refusal can say which blood each source named.
+func TestCombineSpecimenNote(t *testing.T) {
+	tests := []struct {
+		name   string
+		code   Specimen
+		claims []Specimen
+		want   Specimen
+		note   string
+	}{
+		{"arterial_code_agreeing_specimen", SpecimenArterial, []Specimen{SpecimenArterial}, SpecimenArterial, ""},
+		{"unspecified_code_arterial_specimen", SpecimenUnknown, []Specimen{SpecimenArterial}, SpecimenArterial, ""},
+		{"unspecified_code_no_specimen", SpecimenUnknown, []Specimen{SpecimenUnknown}, SpecimenUnknown, ""},
+		{"arterial_code_capillary_specimen", SpecimenArterial, []Specimen{SpecimenCapillary}, SpecimenUnknown, "specimen conflict: arterial (code), capillary (Specimen or panel)"},
+		{"unspecified_code_venous_and_arterial_claims", SpecimenUnknown, []Specimen{SpecimenVenous, SpecimenArterial, SpecimenVenous}, SpecimenUnknown, "specimen conflict: venous (Specimen or panel), arterial (Specimen or panel)"},
+		{"not_blood", SpecimenNone, []Specimen{SpecimenArterial}, SpecimenNone, ""},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			got, note := combineSpecimenNote(tc.code, tc.claims...)
+			if got != tc.want || note != tc.note {
+				t.Errorf("got %q %q, want %q %q", got, note, tc.want, tc.note)
+			}
+		})
+	}
+}

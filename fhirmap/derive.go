@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"slices"
+	"strconv"
 	"strings"
 	"time"
 
@@ -58,6 +59,15 @@ func DeriveBloodGas(key string, facts []Fact, site Site) ([]Derivation, []Refusa
 // A derivation's status is preliminary when any input it used is
 // preliminary, final otherwise; the service turns it into amended or
 // corrected when it supersedes a published version.
+//
+// Rules beyond physio's: the interpretation is read on the value as
+// published (rounded to the kind's Decimals); the dead-space fractions,
+// dead-space volume, alveolar ventilation, the ventilatory ratio and the
+// tidal volume for the target refuse a set minute volume
+// ("no-minute-volume": a setting is not a measurement of ventilation); the
+// for-target kinds are refused with "target-paco2-not-configured" while
+// Site.TargetPaCO2mmHg is 0; the site's RQ is passed as "not given" when it
+// is the default, so that the basis says 0.8 is assumed.
 func Derive(sel Selection, site Site) ([]Derivation, []Refusal) {
 	if len(sel.Inputs) == 0 || sel.Inputs[0].Role != RoleBloodGas {
 		// Not made by Select: refuse rather than guess.
@@ -312,12 +322,28 @@ func (g *gather) measuredVDVT(paco2 physio.MmHg) physio.Fraction {
 		return 0
 	}
 	v, _ := g.need(RoleVCO2)
-	ve, _ := g.need(RoleMinuteVolume)
+	ve, _ := g.measuredVE()
 	t := g.bodyTemp()
 	if g.stop != nil {
 		return 0
 	}
 	return g.step(physio.DeadSpaceFromVCO2(paco2, physio.MLPerMin(v.Fact.Value), physio.LPerMin(ve.Fact.Value), t))
+}
+
+// measuredVE returns the minute volume for a kind that needs a measurement
+// of ventilation (the dead-space fractions, alveolar ventilation, the
+// ventilatory ratio): a set minute volume, which Select takes only when no
+// measured one is in the window, stops the kind with "no-minute-volume". A
+// measured inspired volume is accepted, its fallback recorded by Select.
+func (g *gather) measuredVE() (Input, bool) {
+	in, ok := g.need(RoleMinuteVolume)
+	if ok && isSetting(in.Fact) {
+		w := g.x.sel.Window
+		g.stop = &stop{ReasonNoMinuteVolume, fmt.Sprintf("only a set minute volume (%s) from %s before to %s after the blood gas; a setting is not a measurement of ventilation",
+			in.Fact.Key, formatDuration(w.Before), formatDuration(w.After))}
+		return in, false
+	}
+	return in, ok
 }
 
 // step records an intermediate result and returns its value.
@@ -347,13 +373,13 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		}
 	case KindDeadSpaceVCO2:
 		v, _ := g.need(RoleVCO2)
-		ve, _ := g.need(RoleMinuteVolume)
+		ve, _ := g.measuredVE()
 		t := g.bodyTemp()
 		if g.stop == nil {
 			res, err = physio.DeadSpaceFromVCO2(paco2, physio.MLPerMin(v.Fact.Value), physio.LPerMin(ve.Fact.Value), t)
 		}
 	case KindDeadSpaceEstimated:
-		ve, _ := g.need(RoleMinuteVolume)
+		ve, _ := g.measuredVE()
 		sex := g.sex()
 		age := g.age()
 		h, _ := g.need(RoleHeight)
@@ -361,7 +387,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		if g.stop == nil {
 			res, err = physio.DeadSpaceEstimated(paco2, physio.LPerMin(ve.Fact.Value), physio.EnergyInput{
 				Sex: sex, Age: age, Weight: physio.Kg(w.Fact.Value), Height: physio.Cm(h.Fact.Value),
-				Equation: x.site.Energy, RQ: x.site.RQ,
+				Equation: x.site.Energy, RQ: x.rq(),
 			})
 		}
 	case KindDeadSpaceVolume:
@@ -372,7 +398,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		}
 	case KindAlveolarVentilation:
 		vdvt := g.measuredVDVT(paco2)
-		ve, _ := g.need(RoleMinuteVolume)
+		ve, _ := g.measuredVE()
 		if g.stop == nil {
 			res, err = physio.AlveolarVentilationFromDeadSpace(physio.LPerMin(ve.Fact.Value), vdvt)
 		}
@@ -385,7 +411,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			res, err = physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value))
 		}
 	case KindVentilatoryRatio:
-		ve, _ := g.need(RoleMinuteVolume)
+		ve, _ := g.measuredVE()
 		pbw := g.pbw()
 		if g.stop == nil {
 			res, err = physio.VentilatoryRatio(physio.LPerMin(ve.Fact.Value), paco2, pbw)
@@ -404,6 +430,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		rr, _ := g.need(RoleRespRate)
 		vt, _ := g.need(RoleTidalVolume)
 		pbw := g.pbw()
+		x.needTarget(g)
 		if g.stop == nil {
 			res, err = physio.RateForTarget(physio.PerMin(rr.Fact.Value), paco2, target, physio.ML(vt.Fact.Value), pbw)
 		}
@@ -411,6 +438,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		vdvt := g.measuredVDVT(paco2)
 		vt, _ := g.need(RoleTidalVolume)
 		pbw := g.pbw()
+		x.needTarget(g)
 		if g.stop == nil {
 			var vd physio.Result
 			vd, err = physio.DeadSpaceVolume(vdvt, physio.ML(vt.Fact.Value))
@@ -429,6 +457,24 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		return Derivation{}, x.refusal(kind, g.stop.reason, g.stop.detail, g.used), false
 	}
 	return x.derivation(kind, res, g), Refusal{}, true
+}
+
+// needTarget stops a for-target kind when the site has configured no target
+// PaCO2: none is assumed (Site.TargetPaCO2mmHg).
+func (x *deriver) needTarget(g *gather) {
+	if g.stop == nil && x.site.TargetPaCO2mmHg == 0 {
+		g.stop = &stop{ReasonTargetNotSet, "the site has not configured a target PaCO2; none is assumed (a usual adult target does not fit chronic hypercapnia or a permissive-hypercapnia strategy)"}
+	}
+}
+
+// rq is the respiratory quotient passed to physio: 0 when the site keeps the
+// default, so that the basis says 0.8 is assumed, not measured; the site's
+// value otherwise, recorded as configured.
+func (x *deriver) rq() float64 {
+	if x.site.RQ == DefaultRQ {
+		return 0
+	}
+	return x.site.RQ
 }
 
 // predicted computes the predicted PaCO2 (with its PBW step) or records why not.
@@ -455,8 +501,37 @@ func (x *deriver) predicted(g *gather) physio.Result {
 	return r
 }
 
-// derivation builds and seals the Derivation of a computed result.
+// publishedInterpretation reads the value of a kind as it is published,
+// rounded to the kind's Decimals (FormatValue), with physio's reading of
+// that quantity, so that the interpretation never contradicts the number
+// shown (9.004 is published 9.0 and read "at or below 9"). ok is false for
+// kinds without a reading.
+func publishedInterpretation(kind string, v float64) (physio.Interpretation, bool) {
+	p, err := strconv.ParseFloat(FormatValue(kind, v), 64)
+	if err != nil {
+		return physio.Interpretation{}, false
+	}
+	switch kind {
+	case KindDeadSpaceEnghoff, KindDeadSpaceVCO2, KindDeadSpaceEstimated:
+		return physio.InterpretDeadSpaceFraction(p), true
+	case KindPaCO2PETCO2Gradient:
+		return physio.InterpretEndTidalGradient(physio.MmHg(p)), true
+	case KindAlveolarDeadSpace:
+		return physio.InterpretAlveolarDeadSpaceFraction(p), true
+	case KindVentilatoryRatio:
+		return physio.InterpretVentilatoryRatio(p), true
+	case KindPaCO2Discrepancy:
+		return physio.InterpretPaCO2Discrepancy(physio.MmHg(p)), true
+	}
+	return physio.Interpretation{}, false
+}
+
+// derivation builds and seals the Derivation of a computed result. The
+// interpretation is read again on the published (rounded) value.
 func (x *deriver) derivation(kind string, res physio.Result, g *gather) Derivation {
+	if in, ok := publishedInterpretation(kind, res.Value); ok {
+		res.Interpretation = in
+	}
 	bg := x.sel.BloodGas
 	status := StatusFinal
 	for _, in := range g.used {

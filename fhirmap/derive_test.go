@@ -26,7 +26,9 @@ func byKind(ds []Derivation, rs []Refusal) (map[string]Derivation, map[string]Re
 // of the physiology reference (shared/reference/physiology.md section 11,
 // [derived] from the published formulas) and the section checks it builds on.
 func TestDeriveReferenceVector(t *testing.T) {
-	ds, rs := DeriveAll(vectorFacts(), DefaultSite())
+	site := DefaultSite()
+	site.TargetPaCO2mmHg = 40
+	ds, rs := DeriveAll(vectorFacts(), site)
 	dm, rm := byKind(ds, rs)
 	tests := []struct {
 		name   string
@@ -82,6 +84,7 @@ func TestDeriveReferenceVector(t *testing.T) {
 // physiology reference through selection and derivation.
 func TestDeriveSectionChecks(t *testing.T) {
 	site := DefaultSite()
+	site.TargetPaCO2mmHg = 40
 	tests := []struct {
 		name   string
 		facts  []Fact
@@ -173,6 +176,7 @@ func TestDeriveSectionChecks(t *testing.T) {
 func TestDeriveRefusals(t *testing.T) {
 	site := DefaultSite()
 	site.ApparatusDeadSpaceML, site.ApparatusDeadSpaceConfigured = 50, true
+	site.TargetPaCO2mmHg = 40
 	base := vectorFacts()
 	replace := func(f Fact) []Fact {
 		out := without(base, f.Key)

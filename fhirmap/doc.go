@@ -74,10 +74,11 @@
 // cm[H2O], flows, volumes, rates, FiO2 as a fraction, weight in kg, height
 // in cm, temperature in Cel. The unit is valueQuantity.code when its system
 // is UCUM, else valueQuantity.unit. Factors come from the UCUM definitions
-// (units.go names each). FiO2: a value in (1, 100] labelled "%" is a
+// (units.go names each). FiO2: a value in [21, 100] labelled "%" is a
 // percent; a value in [0.21, 1] labelled "1", or in [0.21, 1) labelled "%",
-// is a fraction; 1.0 labelled "%", anything below 0.21 and anything above 1
-// labelled "1" is refused as ambiguous.
+// is a fraction; 1.0 labelled "%", a value in (1, 21) labelled "%",
+// anything below 0.21 and anything above 1 labelled "1" is refused as
+// ambiguous.
 //
 // # Status and time
 //

@@ -45,8 +45,10 @@ var ErrEncode = errors.New("cannot encode")
 //     service's "derived-physiology"; code in Site.CodeSystemURL;
 //   - subject, encounter and effectiveDateTime of the blood gas;
 //   - valueQuantity with the UCUM system and code, rounded to the kind's
-//     Decimals; interpretation when physio set one (the threshold and its
-//     source in the text); method the published method name and versions;
+//     Decimals; interpretation when the kind has a reading (read on the
+//     rounded value by Derive): the HL7 v3 code only where a published
+//     threshold gives one, the text with its source always; method the
+//     published method name and versions;
 //     device Site.Device; derivedFrom every input Observation;
 //   - a note with the advisory statement, the formula with the numbers, the
 //     constants, the assumptions and fallbacks, each input with its time
@@ -124,15 +126,12 @@ func observation(d Derivation, version int, site Site) (fhir.Observation, error)
 	if !retracted {
 		v := json.Number(FormatValue(k.Code, d.Result.Value))
 		obs.ValueQuantity = &fhir.Quantity{Value: &v, Unit: ptr(k.Unit), System: ptr(systemUCUM), Code: ptr(k.Unit)}
-		if in := d.Result.Interpretation; in.Code != "" {
-			text := in.Text
-			if in.Source != "" {
-				text += " (" + in.Source + ")"
+		if in := d.Result.Interpretation; in.Code != "" || in.Text != "" {
+			cc := fhir.CodeableConcept{Text: ptr(interpretationText(in))}
+			if in.Code != "" {
+				cc.Coding = []fhir.Coding{{System: ptr(systemInterpretation), Code: ptr(in.Code), Display: interpretationDisplay(in.Code)}}
 			}
-			obs.Interpretation = []fhir.CodeableConcept{{
-				Coding: []fhir.Coding{{System: ptr(systemInterpretation), Code: ptr(in.Code), Display: interpretationDisplay(in.Code)}},
-				Text:   ptr(text),
-			}}
+			obs.Interpretation = []fhir.CodeableConcept{cc}
 		}
 	}
 	seen := map[string]bool{}
@@ -203,7 +202,7 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 	if cs := allConstants(d); len(cs) > 0 {
 		parts := make([]string, len(cs))
 		for i, c := range cs {
-			parts[i] = c.Name + " = " + num(c.Value)
+			parts[i] = c.Name + " = " + constNum(c.Value)
 			if c.Unit != "" && c.Unit != "1" {
 				parts[i] += " " + c.Unit
 			}
@@ -223,6 +222,9 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 			assumptions = append(assumptions, in.Fallback)
 		}
 	}
+	if a := targetAssumption(d); a != "" {
+		assumptions = append(assumptions, a)
+	}
 	if len(assumptions) > 0 {
 		notes = append(notes, "Assumptions: "+strings.Join(assumptions, "; ")+".")
 	}
@@ -237,6 +239,21 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 		notes = append(notes, "Flags: "+strings.Join(fl, "; ")+".")
 	}
 	return notes
+}
+
+// targetAssumption states, for the for-target kinds, whose target the
+// advice aims at. The target reaches a derivation only from
+// Site.TargetPaCO2mmHg (physio records it as the constant "target PaCO2").
+func targetAssumption(d Derivation) string {
+	if d.Kind != KindRateForTarget && d.Kind != KindTidalVolumeForTarget {
+		return ""
+	}
+	for _, c := range d.Result.Constants() {
+		if c.Name == "target PaCO2" {
+			return "target PaCO2 " + constNum(c.Value) + " mm[Hg] is the site's configured target, not a patient-specific goal; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target"
+		}
+	}
+	return ""
 }
 
 // appendNew appends the strings of add not yet in list.
@@ -412,6 +429,30 @@ func observationStatus(s Status) (fhir.ObservationStatus, error) {
 	return 0, fmt.Errorf("observation status %q: %w: not a FHIR R4 status", s, ErrEncode)
 }
 
+// interpretationText is the interpretation's text with its source.
+func interpretationText(in physio.Interpretation) string {
+	text := in.Text
+	if in.Source != "" {
+		text += " (" + in.Source + ")"
+	}
+	return text
+}
+
+// InterpretationLine renders the interpretation of a derivation for a
+// reader: "[H] <text> (<source>)", "[-] <text> (<source>)" when no
+// published threshold gives a code, or "" when the kind has no reading.
+func InterpretationLine(d Derivation) string {
+	in := d.Result.Interpretation
+	if in.Code == "" && in.Text == "" {
+		return ""
+	}
+	code := in.Code
+	if code == "" {
+		code = "-"
+	}
+	return "[" + code + "] " + interpretationText(in)
+}
+
 // interpretationDisplay is the display of the HL7 v3 ObservationInterpretation codes physio may set.
 func interpretationDisplay(code string) *string {
 	d, ok := map[string]string{
@@ -507,7 +548,9 @@ func observationRef(id string, version int) string {
 // "incomplete" when data are missing (reasons "no-...") and "business-rule"
 // otherwise ("processing" for a site configuration gap), details.text
 // "<kind> not derived: <reason>: <detail>", diagnostics naming the blood gas
-// and its time, and an expression locating the blood-gas Observation. With
+// and its time, and an expression locating the blood-gas Observation.
+// Site configuration gaps (apparatus dead space, target PaCO2) use
+// "processing". With
 // no refusals the outcome holds one "informational" issue saying so. The id
 // is a version 5 UUID of the refusals' keys and digests.
 func EncodeOutcome(refusals []Refusal) ([]byte, error) {
@@ -526,7 +569,7 @@ func outcome(refusals []Refusal) fhir.OperationOutcome {
 		switch {
 		case strings.HasPrefix(r.Reason, "no-"):
 			code = fhir.IssueTypeIncomplete
-		case r.Reason == ReasonApparatusNotSet:
+		case r.Reason == ReasonApparatusNotSet || r.Reason == ReasonTargetNotSet:
 			code = fhir.IssueTypeProcessing
 		}
 		text := r.Kind + " not derived: " + r.Reason
@@ -730,6 +773,11 @@ func fhirTime(t time.Time) string { return t.UTC().Format(time.RFC3339Nano) }
 func fhirInstant(t time.Time) string {
 	return t.UTC().Truncate(time.Millisecond).Format(time.RFC3339Nano)
 }
+
+// constNum renders a constant with full precision (the shortest decimal
+// that reads back as the same float64), so that a reviewer can redo the
+// arithmetic: K at 37 Cel is 0.863003663003663, not 0.863.
+func constNum(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
 
 // num renders a number for a reader: at most 3 decimals, no trailing zeros.
 func num(v float64) string {

@@ -54,11 +54,12 @@ func checkGolden(t *testing.T, name string, got []byte) {
 	}
 }
 
-// goldenSite is the default site with an apparatus dead space of 50 mL, so
-// that every kind is derived.
+// goldenSite is the default site with an apparatus dead space of 50 mL and
+// a target PaCO2 of 40 mm[Hg], so that every kind is derived.
 func goldenSite() Site {
 	s := DefaultSite()
 	s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 50, true
+	s.TargetPaCO2mmHg = DefaultTargetPaCO2mmHg
 	return s
 }
 
@@ -342,8 +343,8 @@ func TestEncodeOutcomeGolden(t *testing.T) {
 		switch {
 		case strings.HasPrefix(rs[i].Reason, "no-"):
 			wantCode = "incomplete"
-		case rs[i].Reason == ReasonApparatusNotSet:
-			wantCode = "processing"
+		case rs[i].Reason == ReasonApparatusNotSet, rs[i].Reason == ReasonTargetNotSet:
+			wantCode = "processing" // a site configuration gap
 		}
 		if is.Code != wantCode {
 			t.Errorf("issue %d (%s): code %s, want %s", i, rs[i].Reason, is.Code, wantCode)
@@ -496,6 +497,9 @@ func TestSiteValidate(t *testing.T) {
 		{"apparatus_0_mL_ok", func(s *Site) { s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 0, true }, true},
 		{"apparatus_900_mL_refused", func(s *Site) { s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 900, true }, false},
 		{"target_15_mmHg_refused", func(s *Site) { s.TargetPaCO2mmHg = 15 }, false},
+		{"target_0_not_configured_ok", func(s *Site) { s.TargetPaCO2mmHg = 0 }, true},
+		{"target_55_mmHg_ok", func(s *Site) { s.TargetPaCO2mmHg = 55 }, true},
+		{"target_negative_refused", func(s *Site) { s.TargetPaCO2mmHg = -40 }, false},
 		{"rq_0_refused", func(s *Site) { s.RQ = 0 }, false},
 		{"energy_zero_refused", func(s *Site) { s.Energy = 0 }, false},
 		{"relative_url_refused", func(s *Site) { s.CodeSystemURL = "CodeSystem/x" }, false},

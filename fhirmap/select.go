@@ -75,8 +75,8 @@ func (s Selection) Input(r Role) (Input, bool) {
 // roleRule says which facts may fill a role and how they rank.
 type roleRule struct {
 	role Role
-	// patient marks a patient-level role: any time, any encounter, the
-	// latest by Effective wins.
+	// patient marks a patient-level role: any time, any encounter; the
+	// latest at or before the blood gas wins, else the earliest after it.
 	patient bool
 	// ventilator marks readings that count as ventilator data in the window.
 	ventilator bool
@@ -85,6 +85,17 @@ type roleRule struct {
 	rank func(Fact) (int, bool)
 	// labels names each rank, for the fallback text.
 	labels []string
+	// detailLabels names a fact more precisely than its rank's label when
+	// several kinds share a rank (delivered and total tidal volume).
+	detailLabels map[string]string
+}
+
+// label names the kind of f at rank, for the fallback text.
+func (r *roleRule) label(f Fact, rank int) string {
+	if l, ok := r.detailLabels[f.Detail]; ok {
+		return l
+	}
+	return r.labels[rank]
 }
 
 var (
@@ -114,7 +125,11 @@ var (
 			}
 			return 1, true
 		},
-		labels: []string{"measured expired tidal volume", "measured delivered tidal volume", "tidal volume setting"}}
+		labels: []string{"measured expired tidal volume", "measured tidal volume (kind not stated)", "tidal volume setting"},
+		detailLabels: map[string]string{
+			"delivered": "measured delivered tidal volume",
+			"total":     "measured total (spontaneous + mechanical) tidal volume",
+		}}
 	ruleRespRate = roleRule{role: RoleRespRate, ventilator: true,
 		rank: func(f Fact) (int, bool) {
 			switch {
@@ -218,11 +233,21 @@ func (a candidate) better(b candidate) bool {
 	return a.fact.Key < b.fact.Key
 }
 
-// later reports whether a beats b for a patient-level role: the later
-// Effective, then the smaller Key.
-func (a candidate) later(b candidate) bool {
+// patientBetter reports whether a beats b for a patient-level role of a
+// blood gas taken at at: a fact at or before the blood gas (a zero
+// Effective, as for facts from a Patient resource, counts as before) beats
+// one after it; among facts before, the later wins; among facts after, the
+// earlier wins (the nearest to the blood gas either way); then the smaller
+// Key. A weight or height recorded after the blood gas is used only when
+// none was recorded before it.
+func (a candidate) patientBetter(b candidate, at time.Time) bool {
+	aBefore := a.fact.Effective.IsZero() || !a.fact.Effective.After(at)
+	bBefore := b.fact.Effective.IsZero() || !b.fact.Effective.After(at)
+	if aBefore != bBefore {
+		return aBefore
+	}
 	if c := a.fact.Effective.Compare(b.fact.Effective); c != 0 {
-		return c > 0
+		return (c > 0) == aBefore
 	}
 	return a.fact.Key < b.fact.Key
 }
@@ -248,7 +273,9 @@ func (a candidate) later(b candidate) bool {
 //     time, then the earlier, then the smaller Key; a fallback is recorded
 //     in Input.Fallback;
 //   - patient-level facts (sex, birth date, height, weight) come from any
-//     time and encounter: the latest by Effective, then the smaller Key.
+//     time and encounter: the latest at or before the blood gas (a fact with
+//     a zero Effective, from a Patient resource, counts as before), else the
+//     earliest after it, then the smaller Key.
 func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 	sel := Selection{BloodGas: bloodGas, Window: site.Window}
 	sel.Inputs = append(sel.Inputs, Input{Role: RoleBloodGas, Fact: bloodGas})
@@ -279,7 +306,7 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 		}
 		if rule.patient {
 			c := candidate{fact: f, offset: off, rule: rule}
-			if i := roleIndex(rule.role); !has[i] || c.later(best[i]) {
+			if i := roleIndex(rule.role); !has[i] || c.patientBetter(best[i], bloodGas.Effective) {
 				best[i], has[i] = c, true
 			}
 			continue
@@ -318,7 +345,7 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 		}
 		in := Input{Role: c.rule.role, Fact: c.fact, Offset: c.offset}
 		if c.rank > 0 {
-			in.Fallback = fmt.Sprintf("%s used: no %s in the window", c.rule.labels[c.rank], c.rule.labels[0])
+			in.Fallback = fmt.Sprintf("%s used: no %s in the window", c.rule.label(c.fact, c.rank), c.rule.labels[0])
 		}
 		sel.Inputs = append(sel.Inputs, in)
 	}
@@ -361,7 +388,10 @@ func bloodGasRefusal(bg Fact) (reason, detail string) {
 	case SpecimenMixedVenous:
 		return ReasonMixedVenous, "mixed venous PCO2 (code " + bg.Code.Code + "): dead-space and CO2-elimination formulas need arterial blood"
 	default:
-		return ReasonUnknownSpecimen, "PCO2 of unspecified blood (code " + bg.Code.Code + ") and no arterial specimen on the Observation"
+		if claims, ok := strings.CutPrefix(bg.Detail, specimenConflictPrefix); ok {
+			return ReasonUnknownSpecimen, "PCO2 (code " + bg.Code.Code + ") whose sources name different blood: " + claims + "; a contradiction is refused, never resolved by guess"
+		}
+		return ReasonUnknownSpecimen, "PCO2 of unspecified blood (code " + bg.Code.Code + ") and no coded arterial Specimen on the Observation"
 	}
 	if bg.TempCorrected {
 		return ReasonTemperatureAdjusted, "PaCO2 adjusted to the patient's temperature (code " + bg.Code.Code + "); the formulas use PaCO2 measured at 37 Cel"

@@ -120,11 +120,27 @@ func TestSelectPreference(t *testing.T) {
 			newFact("ve-reg", QMinuteVol, 10, -1*time.Minute, detail("expired"), status(StatusRegistered)),
 			newFact("ve-ok", QMinuteVol, 10, -20*time.Minute, detail("expired"), status(StatusPreliminary)),
 		}, "Observation/ve-ok", ""},
-		{"height_latest_by_effective_from_any_time_and_encounter", RoleHeight, []Fact{
+		{"height_latest_before_the_gas_from_any_encounter_beats_a_later_one", RoleHeight, []Fact{
 			newFact("h-old", QHeight, 170, -400*24*time.Hour, encounter("Encounter/demo-enc-0")),
 			newFact("h-new", QHeight, 175, -30*24*time.Hour, encounter("Encounter/demo-enc-0")),
 			newFact("h-future", QHeight, 176, 48*time.Hour),
-		}, "Observation/h-future", ""},
+		}, "Observation/h-new", ""},
+		{"weight_at_the_gas_time_counts_as_before", RoleWeight, []Fact{
+			newFact("w-at", QWeight, 80, 0),
+			newFact("w-after", QWeight, 70, time.Minute),
+		}, "Observation/w-at", ""},
+		{"weight_only_after_the_gas_earliest_wins", RoleWeight, []Fact{
+			newFact("w-late", QWeight, 70, 72*time.Hour),
+			newFact("w-soon", QWeight, 71, 2*time.Hour),
+		}, "Observation/w-soon", ""},
+		{"weight_before_beats_nearer_after", RoleWeight, []Fact{
+			newFact("w-after", QWeight, 70, time.Minute),
+			newFact("w-before", QWeight, 71, -30*24*time.Hour),
+		}, "Observation/w-before", ""},
+		{"patient_resource_fact_zero_time_counts_as_before", RoleSex, []Fact{
+			newFact("sex-later", QSex, 0, 24*time.Hour, text("female")),
+			newFact("sex", QSex, 0, 0, fromPatient("sex"), text("male"), func(f *Fact) { f.Effective = time.Time{} }),
+		}, testPatient + "#sex", ""},
 		{"weight_tie_smaller_key", RoleWeight, []Fact{
 			newFact("w-b", QWeight, 71, -time.Hour),
 			newFact("w-a", QWeight, 70, -time.Hour),
@@ -215,10 +231,12 @@ func TestSelectBloodGasReasons(t *testing.T) {
 		{"registered", arterial("abg", 45, status(StatusRegistered)), ReasonBloodGasNotUsable},
 		{"unknown_status", arterial("abg", 45, status(StatusUnknown)), ReasonBloodGasNotUsable},
 		{"temperature_corrected", arterial("abg", 45, func(f *Fact) { f.TempCorrected = true }), ReasonTemperatureAdjusted},
-		// physio.PaCO2Range is 8 to 250 mm[Hg]: 6 is a kPa value sent as mm[Hg].
+		// physio.PaCO2Range is 10 to 250 mm[Hg]: 6 and 8 are kPa values sent
+		// as mm[Hg] (45 and 60 mm[Hg]; UCUM 1 kPa = 7.500638 mm[Hg]).
 		{"PaCO2_6_mmHg_implausible", arterial("abg", 6), ReasonImplausible},
+		{"PaCO2_8_kPa_as_mmHg_implausible", arterial("abg", 8), ReasonImplausible},
 		{"PaCO2_260_mmHg_implausible", arterial("abg", 260), ReasonImplausible},
-		{"PaCO2_8_mmHg_at_edge_ok", arterial("abg", 8), ""},
+		{"PaCO2_10_mmHg_at_edge_ok", arterial("abg", 10), ""},
 		{"not_a_pco2_fact", newFact("x", QPETCO2, 35, 0), ReasonNotBloodGas},
 	}
 	for _, tc := range tests {

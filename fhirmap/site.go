@@ -24,10 +24,12 @@ const (
 	DefaultDevice = "Device/ventderive"
 	// DefaultDeviceDisplay is the display text of DefaultDevice.
 	DefaultDeviceDisplay = "ventderive derivation service"
-	// DefaultTargetPaCO2mmHg is the target of the ventilation-for-target
-	// advice, in mm[Hg]: the middle of the healthy adult range 35-45 mm[Hg]
-	// [published textbooks]. Patients with chronic hypercapnia or on a
-	// permissive-hypercapnia strategy need a site- or patient-level target.
+	// DefaultTargetPaCO2mmHg is the documented suggestion for a site's
+	// target of the ventilation-for-target advice, in mm[Hg]: the middle of
+	// the healthy adult range 35-45 mm[Hg] [published textbooks]. It is NOT
+	// applied by default (DefaultSite leaves the target unset): patients with
+	// chronic hypercapnia or on a permissive-hypercapnia strategy need their
+	// own target, so a site sets one knowingly or gets no for-target advice.
 	DefaultTargetPaCO2mmHg = 40
 	// DefaultRQ is the respiratory quotient of the estimated-VCO2 method
 	// (Weir step), the usual assumption for a mixed diet [common practice].
@@ -56,11 +58,17 @@ type Site struct {
 	// in the published method (Siddiki et al., Crit Care 2010).
 	Energy physio.EnergyEquation
 	// RQ is the respiratory quotient of the Weir step from energy to VCO2.
-	// Default DefaultRQ (0.8).
+	// Default DefaultRQ (0.8), recorded as assumed (not measured); another
+	// value is recorded as the site's configured value, not measured.
 	RQ float64
 
 	// TargetPaCO2mmHg is the PaCO2 the ventilation-for-target advice aims
-	// at, in mm[Hg], within physio.TargetPaCO2Range. Default 40.
+	// at, in mm[Hg], within physio.TargetPaCO2Range. 0 means not configured
+	// (the default): the two for-target kinds are then refused with
+	// "target-paco2-not-configured", never computed with an assumed target.
+	// When set, every for-target value states that it is the site's target,
+	// not a patient-specific goal. DefaultTargetPaCO2mmHg (40) is the usual
+	// suggestion.
 	TargetPaCO2mmHg float64
 
 	// CodeSystemURL is the canonical URL of the service's CodeSystem: the
@@ -86,18 +94,18 @@ type Site struct {
 }
 
 // DefaultSite returns the documented defaults: apparatus dead space not
-// configured, Harris-Benedict 1919 with RQ 0.8, target PaCO2 40 mm[Hg],
-// the example.org URLs, and a window of 30 min before to 10 min after.
+// configured, Harris-Benedict 1919 with RQ 0.8, target PaCO2 not
+// configured, the example.org URLs, and a window of 30 min before to 10 min
+// after.
 func DefaultSite() Site {
 	return Site{
-		Energy:          physio.HarrisBenedict1919,
-		RQ:              DefaultRQ,
-		TargetPaCO2mmHg: DefaultTargetPaCO2mmHg,
-		CodeSystemURL:   DefaultCodeSystemURL,
-		AlgorithmURL:    DefaultAlgorithmURL,
-		Device:          DefaultDevice,
-		DeviceDisplay:   DefaultDeviceDisplay,
-		Window:          Window{Before: DefaultWindowBefore, After: DefaultWindowAfter},
+		Energy:        physio.HarrisBenedict1919,
+		RQ:            DefaultRQ,
+		CodeSystemURL: DefaultCodeSystemURL,
+		AlgorithmURL:  DefaultAlgorithmURL,
+		Device:        DefaultDevice,
+		DeviceDisplay: DefaultDeviceDisplay,
+		Window:        Window{Before: DefaultWindowBefore, After: DefaultWindowAfter},
 	}
 }
 
@@ -116,8 +124,10 @@ func (s Site) Validate() error {
 	if err := physio.RQRange.Check("RQ", s.RQ); err != nil {
 		errs = append(errs, err)
 	}
-	if err := physio.TargetPaCO2Range.Check("target PaCO2", s.TargetPaCO2mmHg); err != nil {
-		errs = append(errs, err)
+	if s.TargetPaCO2mmHg != 0 {
+		if err := physio.TargetPaCO2Range.Check("target PaCO2", s.TargetPaCO2mmHg); err != nil {
+			errs = append(errs, err)
+		}
 	}
 	for _, u := range [...]struct{ name, url string }{{"code system URL", s.CodeSystemURL}, {"algorithm URL", s.AlgorithmURL}} {
 		if p, err := url.Parse(u.url); err != nil || !p.IsAbs() || p.Host == "" || strings.ContainsAny(u.url, " |#?") {

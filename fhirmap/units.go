@@ -166,8 +166,9 @@ func isPerMinute(unit string) bool {
 
 // FiO2 range limits: room air is 0.21, and a fraction cannot exceed 1.
 const (
-	fio2RoomAir = 0.21
-	fio2Max     = 1.0
+	fio2RoomAir    = 0.21
+	fio2RoomAirPct = 21.0
+	fio2Max        = 1.0
 )
 
 // normalise converts value, received in unit, into q's canonical unit. It
@@ -229,18 +230,19 @@ func fahrenheitToCelsius(f float64) float64 {
 // degFAtCelZero is 0 Cel in [degF]: ucumCelZero/ucumDegFKelvin - ucumDegFZero = 32.
 const degFAtCelZero = 32
 
-// fio2Fraction applies the FiO2 rule. A value in (1, 100] labelled "%" is a
-// percent. A value in [0.21, 1] labelled "1" is a fraction, and so is one in
-// [0.21, 1) labelled "%" (senders are seen to label fractions "%"). Anything
-// else is ambiguous and refused: 1.0 labelled "%" (1 % or 100 %?), values
-// below 0.21 (no patient breathes less than room-air oxygen, so they are
-// neither a plausible fraction nor a plausible percent), and values above
-// 1 labelled "1".
+// fio2Fraction applies the FiO2 rule. A value in [21, 100] labelled "%" is
+// a percent. A value in [0.21, 1] labelled "1" is a fraction, and so is one
+// in [0.21, 1) labelled "%" (senders are seen to label fractions "%").
+// Anything else is ambiguous and refused: 1.0 labelled "%" (1 % or
+// 100 %?), values in (1, 21) labelled "%" (2-20 % is below room air, so it
+// is neither a plausible percent nor, being above 1, a fraction), values
+// below 0.21 (no patient breathes less than room-air oxygen), and values
+// above 1 labelled "1".
 func fio2Fraction(v float64, unit string) (float64, error) {
 	switch unit {
 	case "%":
 		switch {
-		case v > 1 && v <= 100:
+		case v >= fio2RoomAirPct && v <= 100:
 			return v * fracPerPct, nil
 		case v >= fio2RoomAir && v < fio2Max:
 			return v, nil

@@ -142,7 +142,12 @@ func TestFiO2(t *testing.T) {
 		{"21_%_room_air", 21, "%", 0.21, ""},
 		{"40_%", 40, "%", 0.40, ""},
 		{"100_%", 100, "%", 1, ""},
-		{"1.5_%_percent", 1.5, "%", 0.015, ""}, // a percent by the rule; physio refuses it as implausible
+		// 2-20 % is below room air: neither a plausible percent nor (above
+		// 1) a fraction, so ambiguous as the documented rule says.
+		{"1.5_%_ambiguous", 1.5, "%", 0, "ambiguous-value"},
+		{"2_%_ambiguous", 2, "%", 0, "ambiguous-value"},
+		{"20_%_ambiguous", 20, "%", 0, "ambiguous-value"},
+		{"20.9_%_ambiguous", 20.9, "%", 0, "ambiguous-value"},
 		{"0.4_%_fraction_mislabelled", 0.4, "%", 0.4, ""},
 		{"0.21_%_fraction_mislabelled", 0.21, "%", 0.21, ""},
 		{"1.0_%_ambiguous", 1.0, "%", 0, "ambiguous-value"},

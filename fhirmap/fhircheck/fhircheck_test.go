@@ -22,9 +22,12 @@ const aliasFile = "../../cmd/ventderive/testdata/derive/hv-aliases.jsonl"
 
 var recorded = time.Date(2026, 11, 20, 15, 0, 0, 0, time.UTC)
 
+// site configures the apparatus dead space and a target PaCO2 (neither has
+// a default), so that every kind is derived and checked.
 func site() fhirmap.Site {
 	s := fhirmap.DefaultSite()
 	s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 50, true
+	s.TargetPaCO2mmHg = fhirmap.DefaultTargetPaCO2mmHg
 	return s
 }
 
