@@ -55,7 +55,7 @@ func parseDerive(args []string, stderr io.Writer, now time.Time) (deriveConfig, 
 	fs.Float64Var(&apparatus, "apparatus-dead-space-ml", 0, "apparatus dead space beyond the Y-piece in mL (HME, closed suction); unset: predicted PaCO2 is refused, never computed with zero")
 	fs.DurationVar(&c.site.Window.Before, "window-before", c.site.Window.Before, "pairing window before the blood gas")
 	fs.DurationVar(&c.site.Window.After, "window-after", c.site.Window.After, "pairing window after the blood gas")
-	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", c.site.TargetPaCO2mmHg, "target PaCO2 in mm[Hg] for the ventilation-for-target advice")
+	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mm[Hg] for the ventilation-for-target advice (not a patient's goal); 0 or unset: not configured, the for-target values are refused (40 is the usual suggestion)")
 	fs.StringVar(&c.site.CodeSystemURL, "codesystem-url", c.site.CodeSystemURL, "canonical URL of the service CodeSystem")
 	fs.StringVar(&recorded, "recorded", "", "RFC 3339 time written as Provenance.recorded and Bundle.timestamp (default: now)")
 	if err := fs.Parse(args); err != nil {
@@ -184,8 +184,12 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 		apparatus = fmt.Sprintf("%g mL", site.ApparatusDeadSpaceML)
 	}
 	fmt.Fprintf(&b, "ventderive derive, %s. ADVISORY values: not orders; verify at the bedside.\n", fhirmap.Algorithm)
-	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas; apparatus dead space %s; target PaCO2 %g mm[Hg]; %s, RQ %g.\n\n",
-		shortDuration(site.Window.Before), shortDuration(site.Window.After), apparatus, site.TargetPaCO2mmHg, site.Energy, site.RQ)
+	target := "not configured (for-target advice refused)"
+	if site.TargetPaCO2mmHg != 0 {
+		target = fmt.Sprintf("%g mm[Hg] (the site's, not a patient-specific goal)", site.TargetPaCO2mmHg)
+	}
+	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas; apparatus dead space %s; target PaCO2 %s; %s, RQ %g.\n\n",
+		shortDuration(site.Window.Before), shortDuration(site.Window.After), apparatus, target, site.Energy, site.RQ)
 	// Read by patient, then blood-gas time, then kind.
 	ds = slices.Clone(ds)
 	slices.SortStableFunc(ds, func(x, y fhirmap.Derivation) int {
@@ -196,10 +200,16 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 		return cmp.Or(cmp.Compare(x.Patient, y.Patient), x.Effective.Compare(y.Effective), cmp.Compare(x.BloodGas, y.BloodGas), cmp.Compare(x.Kind, y.Kind))
 	})
 
-	rows := [][]string{{"PATIENT", "BLOOD GAS (UTC)", "KIND", "VALUE", "UNIT", "STATUS"}}
+	// INTERP is the HL7 v3 interpretation code: "-" when the kind has a
+	// reading but no published threshold gives a code, "" when it has none.
+	rows := [][]string{{"PATIENT", "BLOOD GAS (UTC)", "KIND", "VALUE", "UNIT", "STATUS", "INTERP"}}
 	for _, d := range ds {
+		code := d.Result.Interpretation.Code
+		if code == "" && d.Result.Interpretation.Text != "" {
+			code = "-"
+		}
 		rows = append(rows, []string{d.Patient, d.Effective.UTC().Format(time.RFC3339), d.Kind,
-			fhirmap.FormatValue(d.Kind, d.Result.Value), d.Result.Unit, string(d.Status)})
+			fhirmap.FormatValue(d.Kind, d.Result.Value), d.Result.Unit, string(d.Status), code})
 	}
 	widths := columnWidths(rows)
 	fmt.Fprintf(&b, "DERIVED (%d)\n", len(ds))
@@ -207,6 +217,9 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 		writeRow(&b, row, widths)
 		if i == 0 {
 			continue
+		}
+		if line := fhirmap.InterpretationLine(ds[i-1]); line != "" {
+			fmt.Fprintf(&b, "    Interpretation: %s\n", line)
 		}
 		for _, note := range fhirmap.BasisNotes(ds[i-1])[1:] { // the advisory line is in the header
 			fmt.Fprintf(&b, "    %s\n", note)
@@ -265,12 +278,14 @@ func columnWidths(rows [][]string) []int {
 }
 
 func writeRow(b *strings.Builder, row []string, widths []int) {
+	var line strings.Builder
 	for i, cell := range row {
 		if i == len(row)-1 {
-			b.WriteString(cell)
+			line.WriteString(cell)
 			break
 		}
-		fmt.Fprintf(b, "%-*s  ", widths[i], cell)
+		fmt.Fprintf(&line, "%-*s  ", widths[i], cell)
 	}
+	b.WriteString(strings.TrimRight(line.String(), " ")) // an empty last cell leaves no trailing blanks
 	b.WriteByte('\n')
 }

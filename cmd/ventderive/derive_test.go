@@ -67,8 +67,9 @@ func checkDeriveGolden(t *testing.T, name, got string) {
 }
 
 // The README example: two invented patients, a Bundle and an NDJSON feed,
-// apparatus dead space 50 mL, a fixed recorded time.
-var exampleArgs = append([]string{"--apparatus-dead-space-ml", "50", "--recorded", "2026-11-20T15:00:00Z"},
+// apparatus dead space 50 mL, the site's target PaCO2 40 mm[Hg], a fixed
+// recorded time.
+var exampleArgs = append([]string{"--apparatus-dead-space-ml", "50", "--target-paco2", "40", "--recorded", "2026-11-20T15:00:00Z"},
 	inDeriveDir("icu-morning.json", "ward-feed.ndjson")...)
 
 func TestDeriveCommandGolden(t *testing.T) {
@@ -190,6 +191,7 @@ func TestDeriveCommandErrors(t *testing.T) {
 		{"negative_window", []string{"--window-before", "-5m", "x.json"}, true, nil},
 		{"apparatus_900_mL", []string{"--apparatus-dead-space-ml", "900", "x.json"}, true, nil},
 		{"target_10_mmHg", []string{"--target-paco2", "10", "x.json"}, true, nil},
+		{"target_negative", []string{"--target-paco2", "-40", "x.json"}, true, nil},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -209,6 +211,84 @@ func TestDeriveCommandErrors(t *testing.T) {
 				t.Errorf("partial output written: %q", out)
 			}
 		})
+	}
+}
+
+// TestDeriveCommandTarget: without --target-paco2 (or with 0) no target is
+// assumed and the for-target kinds are refused with their reason; with it
+// the advice names the site's target.
+func TestDeriveCommandTarget(t *testing.T) {
+	files := inDeriveDir("icu-morning.json", "ward-feed.ndjson")
+	base := []string{"--explain", "--apparatus-dead-space-ml", "50", "--recorded", "2026-11-20T15:00:00Z"}
+	for _, tc := range []struct {
+		name    string
+		flags   []string
+		refused bool
+	}{
+		{"unset_not_configured", nil, true},
+		{"zero_not_configured", []string{"--target-paco2", "0"}, true},
+		{"55_mmHg_configured", []string{"--target-paco2", "55"}, false},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			out, errOut, err := runDeriveCmd(t, nil, append(append(append([]string(nil), base...), tc.flags...), files...)...)
+			if err != nil {
+				t.Fatalf("derive: %v\n%s", err, errOut)
+			}
+			refused := strings.Contains(out, fhirmap.KindRateForTarget+"  ") && strings.Contains(out, fhirmap.ReasonTargetNotSet)
+			if refused != tc.refused {
+				t.Errorf("for-target refused with %s: %v, want %v", fhirmap.ReasonTargetNotSet, refused, tc.refused)
+			}
+			if tc.refused && !strings.Contains(out, "target PaCO2 not configured") {
+				t.Errorf("header does not say the target is not configured")
+			}
+			if !tc.refused && !strings.Contains(out, "target PaCO2 55 mm[Hg] is the site's configured target, not a patient-specific goal") {
+				t.Errorf("advice does not name the site's target")
+			}
+		})
+	}
+}
+
+// TestDeriveCommandExplainShowsInterpretation: every derived row of a kind
+// with a reading carries its code (or "-") and an Interpretation line with
+// the text and source; reference vector VD/VT 0.616 is H, above the 0.58
+// mean at ARDS onset (Nuckton 2002 [published]).
+func TestDeriveCommandExplainShowsInterpretation(t *testing.T) {
+	out, errOut, err := runDeriveCmd(t, nil, append([]string{"--explain"}, exampleArgs...)...)
+	if err != nil {
+		t.Fatalf("derive: %v\n%s", err, errOut)
+	}
+	derived, _, ok := strings.Cut(out, "\nREFUSED (")
+	if !ok {
+		t.Fatalf("no REFUSED section")
+	}
+	lines := strings.Split(derived, "\n")
+	found := false
+	for i, l := range lines {
+		f := strings.Fields(l)
+		if len(f) < 6 || !strings.HasPrefix(f[0], "Patient/") {
+			continue
+		}
+		kind := f[2]
+		switch kind {
+		case fhirmap.KindDeadSpaceVCO2, fhirmap.KindDeadSpaceEstimated, fhirmap.KindDeadSpaceEnghoff, fhirmap.KindVentilatoryRatio,
+			fhirmap.KindPaCO2PETCO2Gradient, fhirmap.KindAlveolarDeadSpace, fhirmap.KindPaCO2Discrepancy:
+			if len(f) != 7 || i+1 >= len(lines) || !strings.HasPrefix(lines[i+1], "    Interpretation: ["+f[6]+"] ") {
+				t.Errorf("row %q lacks its interpretation (next line %q)", l, lines[i+1])
+			}
+		default:
+			if len(f) != 6 || strings.HasPrefix(lines[i+1], "    Interpretation:") {
+				t.Errorf("row %q of a kind without reading shows an interpretation", l)
+			}
+		}
+		if kind == fhirmap.KindDeadSpaceVCO2 && f[1] == "2026-11-20T07:00:00Z" {
+			found = true
+			if f[3] != "0.616" || f[6] != "H" || !strings.Contains(lines[i+1], "Nuckton") {
+				t.Errorf("reference gas row %q / %q, want 0.616 H citing Nuckton", l, lines[i+1])
+			}
+		}
+	}
+	if !found {
+		t.Errorf("reference gas VD/VT row not found")
 	}
 }
 
