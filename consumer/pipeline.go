@@ -31,9 +31,15 @@ type Pipeline struct {
 	log     *slog.Logger
 	metrics *Metrics
 	now     func() time.Time
-	// Workers is how many messages of a fetched batch are processed at
-	// once; messages of one patient serialise on the store's patient lock.
+	// Workers is how many messages (or groups, with group commit) of a
+	// fetched batch are processed at once; messages of one patient
+	// serialise on the store's patient lock.
 	workers int
+	// groupMax and groupWait bound a group commit: at most groupMax
+	// messages, committed groupWait after the group's first message at the
+	// latest (sooner when the fetched batch ends).
+	groupMax  int
+	groupWait time.Duration
 
 	relayKick chan struct{}
 
@@ -65,9 +71,19 @@ type Options struct {
 	Logger  *slog.Logger
 	Metrics *Metrics
 	// Workers bounds concurrent message handling per replica; default 4.
+	// With a BatchStore it is the number of lanes: messages are dealt to a
+	// lane by patient, and each lane commits its messages in groups, one
+	// group at a time.
 	Workers int
-	Now     func() time.Time
-	Hooks   *Hooks
+	// GroupMax is the most messages one group commit records, when the
+	// Store implements BatchStore; default 64. 1 turns group commit off.
+	GroupMax int
+	// GroupWait is how long a group waits for more messages after its first
+	// one before it is committed; default 5 ms. A group is also committed
+	// when the fetched batch ends or GroupMax is reached.
+	GroupWait time.Duration
+	Now       func() time.Time
+	Hooks     *Hooks
 }
 
 // New builds a pipeline. It does not touch the network.
@@ -92,6 +108,12 @@ func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
+	if o.GroupMax <= 0 {
+		o.GroupMax = 64
+	}
+	if o.GroupWait <= 0 {
+		o.GroupWait = 5 * time.Millisecond
+	}
 	site := o.Site
 	site.Window = cfg.Window
 	return &Pipeline{
@@ -105,6 +127,8 @@ func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
 		metrics:   o.Metrics,
 		now:       o.Now,
 		workers:   o.Workers,
+		groupMax:  o.GroupMax,
+		groupWait: o.GroupWait,
 		relayKick: make(chan struct{}, 1),
 		hooks:     o.Hooks,
 	}, nil
@@ -220,18 +244,9 @@ func (p *Pipeline) fetchLoop(ctx context.Context) {
 	for ctx.Err() == nil {
 		batch, err := p.currentConsumer().Fetch(p.cfg.Fetch, jetstream.FetchMaxWait(time.Second))
 		if err == nil {
-			sem := make(chan struct{}, p.workers)
-			var wg sync.WaitGroup
-			for msg := range batch.Messages() {
-				sem <- struct{}{}
-				wg.Go(func() {
-					defer func() { <-sem }()
-					// A message in hand is finished even when shutdown
-					// begins: drain, do not abandon.
-					p.handle(context.WithoutCancel(ctx), msg)
-				})
-			}
-			wg.Wait()
+			// A message in hand is finished even when shutdown begins:
+			// drain, do not abandon.
+			p.process(context.WithoutCancel(ctx), batch.Messages())
 			err = batch.Error()
 		}
 		switch {
@@ -257,28 +272,159 @@ func (p *Pipeline) fetchLoop(ctx context.Context) {
 	}
 }
 
-// handle processes one message and settles it exactly once.
-func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
+// process handles the messages of one fetched batch and returns when every
+// one of them is settled (or abandoned by a simulated crash).
+func (p *Pipeline) process(ctx context.Context, msgs <-chan jetstream.Msg) {
+	bs, grouped := p.store.(BatchStore)
+	if !grouped || p.groupMax <= 1 {
+		sem := make(chan struct{}, p.workers)
+		var wg sync.WaitGroup
+		for msg := range msgs {
+			sem <- struct{}{}
+			wg.Go(func() {
+				defer func() { <-sem }()
+				p.handle(ctx, msg)
+			})
+		}
+		wg.Wait()
+		return
+	}
+	// Group commit: decode here, deal each message to a lane by patient so
+	// that concurrent transactions of this replica rarely wait for each
+	// other's patient locks, and let each lane commit its messages in
+	// groups.
+	lanes := make([]chan *inflight, p.workers)
+	var wg sync.WaitGroup
+	for i := range lanes {
+		lanes[i] = make(chan *inflight, p.groupMax)
+		wg.Go(func() { p.lane(ctx, bs, lanes[i]) })
+	}
+	for msg := range msgs {
+		if it := p.receive(msg); it != nil {
+			lanes[laneOf(it, len(lanes))] <- it
+		}
+	}
+	for _, l := range lanes {
+		close(l)
+	}
+	wg.Wait()
+}
+
+// laneOf picks a message's lane from its first patient (FNV-1a), or from
+// its inbox key when it names none.
+func laneOf(it *inflight, n int) int {
+	key := it.m.InboxKey
+	switch {
+	case len(it.m.Facts) > 0:
+		key = it.m.Facts[0].Patient
+	case len(it.m.Resources) > 0 && it.m.Resources[0].Patient != "":
+		key = it.m.Resources[0].Patient
+	}
+	h := uint32(2166136261)
+	for i := 0; i < len(key); i++ {
+		h = (h ^ uint32(key[i])) * 16777619
+	}
+	return int(h % uint32(n))
+}
+
+// lane commits the messages it receives in groups of up to groupMax, each
+// group groupWait after its first message at the latest, one group at a
+// time. Poison messages are settled on their own in arrival order.
+func (p *Pipeline) lane(ctx context.Context, bs BatchStore, in <-chan *inflight) {
+	var group []*inflight
+	timer := time.NewTimer(p.groupWait)
+	timer.Stop()
+	defer timer.Stop()
+	flush := func() {
+		timer.Stop()
+		if len(group) > 0 {
+			p.commitGroup(ctx, bs, group)
+			group = nil
+		}
+	}
+	for {
+		select {
+		case it, ok := <-in:
+			if !ok {
+				flush()
+				return
+			}
+			if it.reason != "" {
+				p.poison(ctx, it.msg, it.m, it.reason, it.detail, it.log)
+				it.stop()
+				continue
+			}
+			group = append(group, it)
+			if len(group) == 1 {
+				timer.Reset(p.groupWait)
+			}
+			if len(group) >= p.groupMax {
+				flush()
+			}
+		case <-timer.C:
+			flush()
+		}
+	}
+}
+
+// commitGroup records a group in one transaction and settles each message
+// after the COMMIT.
+func (p *Pipeline) commitGroup(ctx context.Context, bs BatchStore, group []*inflight) {
+	msgs := make([]Message, len(group))
+	for i, it := range group {
+		if p.hooks != nil && p.hooks.BeforeIngest != nil {
+			p.hooks.BeforeIngest(it.meta.Sequence.Stream)
+		}
+		msgs[i] = it.m
+	}
+	results := bs.IngestBatch(ctx, msgs, p.planFunc(p.now().UTC()))
+	outbox := 0
+	for i, it := range group {
+		if len(results) != len(group) {
+			// A store bug must not lose messages: retry them later.
+			p.finish(ctx, it, IngestResult{}, fmt.Errorf("ingest group: %d results for %d messages: %w", len(results), len(group), ErrTransient), false)
+			continue
+		}
+		p.finish(ctx, it, results[i].IngestResult, results[i].Err, false)
+		outbox += results[i].Outbox
+	}
+	if outbox > 0 {
+		p.kickRelay()
+	}
+}
+
+// inflight is one received message on its way through the pipeline.
+type inflight struct {
+	msg   jetstream.Msg
+	meta  *jetstream.MsgMetadata
+	m     Message
+	log   *slog.Logger
+	start time.Time
+	stop  func() // stops the InProgress ticker
+	// reason and detail are set for a message that did not decode.
+	reason, detail string
+}
+
+// receive reads a message's metadata, starts its InProgress ticker and
+// decodes it. It returns nil for a message it cannot settle.
+func (p *Pipeline) receive(msg jetstream.Msg) *inflight {
 	start := p.now()
 	meta, err := msg.Metadata()
 	if err != nil {
 		// Not a JetStream message: nothing to settle against.
 		p.log.Error("message without metadata", "err", err)
-		return
+		return nil
 	}
 	if meta.NumDelivered > 1 {
 		p.metrics.Redeliveries.Inc()
 	}
-	if p.hooks != nil && p.hooks.BeforeIngest != nil {
-		p.hooks.BeforeIngest(meta.Sequence.Stream)
-	}
+	it := &inflight{msg: msg, meta: meta, start: start}
 	// Work that may outlast AckWait tells the server it is alive.
-	stopProgress := p.inProgress(msg)
-	defer stopProgress()
+	it.stop = p.inProgress(msg)
 
 	raw := msg.Data()
 	sum := sha256.Sum256(raw)
-	m := Message{
+	it.m = Message{
 		InboxKey:  hex.EncodeToString(sum[:]),
 		Subject:   msg.Subject(),
 		StreamSeq: meta.Sequence.Stream,
@@ -287,26 +433,54 @@ func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
 		Window:    p.cfg.Window,
 		Horizon:   p.cfg.Horizon,
 	}
-	log := p.log.With("stream_seq", meta.Sequence.Stream, "delivery", meta.NumDelivered)
+	it.log = p.log.With("stream_seq", meta.Sequence.Stream, "delivery", meta.NumDelivered)
 
 	decoded, err := fhirmap.Decode(raw, p.codes)
 	if err != nil {
-		reason, detail := decodeReason(err)
-		p.poison(ctx, msg, m, reason, detail, log)
-		return
+		it.reason, it.detail = decodeReason(err)
+		return it
 	}
-	m.Resources, m.Facts = decoded.Resources, decoded.Facts
+	it.m.Resources, it.m.Facts = decoded.Resources, decoded.Facts
 	for _, ig := range decoded.Ignored {
 		p.metrics.Ignored.WithLabelValues(ig.Reason).Inc()
 	}
+	return it
+}
 
-	recorded := p.now().UTC()
-	res, err := p.store.Ingest(ctx, m, func(s Snapshot) (Changes, error) {
+// planFunc is the PlanFunc of one ingest, with the hook tests use.
+func (p *Pipeline) planFunc(recorded time.Time) PlanFunc {
+	return func(s Snapshot) (Changes, error) {
 		if p.hooks != nil && p.hooks.DuringPlan != nil {
 			p.hooks.DuringPlan(s.Patient)
 		}
 		return p.planner.Plan(s, recorded)
-	})
+	}
+}
+
+// handle processes one message on its own and settles it exactly once.
+func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
+	it := p.receive(msg)
+	if it == nil {
+		return
+	}
+	if it.reason != "" {
+		p.poison(ctx, it.msg, it.m, it.reason, it.detail, it.log)
+		it.stop()
+		return
+	}
+	if p.hooks != nil && p.hooks.BeforeIngest != nil {
+		p.hooks.BeforeIngest(it.meta.Sequence.Stream)
+	}
+	res, err := p.store.Ingest(ctx, it.m, p.planFunc(p.now().UTC()))
+	p.finish(ctx, it, res, err, true)
+}
+
+// finish settles a message after its ingest: ack (after COMMIT, or for a
+// duplicate), nak with delay (transient), or dead letter (refused by the
+// store). kick says whether to wake the relay for this message's outbox rows.
+func (p *Pipeline) finish(ctx context.Context, it *inflight, res IngestResult, err error, kick bool) {
+	defer it.stop()
+	msg, meta, log := it.msg, it.meta, it.log
 	switch {
 	case errors.Is(err, ErrDuplicate):
 		p.metrics.Inputs.WithLabelValues("duplicate").Inc()
@@ -322,7 +496,7 @@ func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
 		// The store refused the content itself (a constraint): retrying
 		// cannot help. Keep it as a dead letter for review.
 		log.Error("store refused message", "err", err)
-		p.poison(ctx, msg, m, "store-rejected", storeDetail(err), log)
+		p.poison(ctx, msg, it.m, "store-rejected", storeDetail(err), log)
 		return
 	}
 	if p.hooks != nil && p.hooks.AfterCommit != nil {
@@ -333,7 +507,7 @@ func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
 	p.ack(msg, log)
 	p.metrics.Inputs.WithLabelValues("accepted").Inc()
 	p.metrics.Latency.Observe(p.now().Sub(meta.Timestamp).Seconds())
-	p.metrics.Handling.Observe(p.now().Sub(start).Seconds())
+	p.metrics.Handling.Observe(p.now().Sub(it.start).Seconds())
 	for kind, n := range res.DerivedKinds {
 		p.metrics.Derived.WithLabelValues(kind).Add(float64(n))
 	}
@@ -341,7 +515,7 @@ func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
 		p.metrics.Refusals.WithLabelValues(reason).Add(float64(n))
 	}
 	p.metrics.Retractions.Add(float64(res.Retractions))
-	if res.Outbox > 0 {
+	if kick && res.Outbox > 0 {
 		p.kickRelay()
 	}
 }

@@ -121,11 +121,16 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 		slices.Sort(refs)
 		refs = slices.Compact(refs)
 		b := &pgx.Batch{}
+		b.Queue(pointLookupsSQL)
 		if len(refs) > 0 {
 			b.Queue(lockPatientsSQL, refs)
 		}
 		b.Queue(claimInboxesSQL, keys, subjects, seqs, received, nres, nfacts, ords, now)
 		br := tx.SendBatch(ctx, b)
+		if _, err := br.Exec(); err != nil {
+			br.Close()
+			return fmt.Errorf("plan settings: %w", err)
+		}
 		if len(refs) > 0 {
 			if _, err := br.Exec(); err != nil {
 				br.Close()

@@ -78,6 +78,16 @@ func (s *Store) inTx(ctx context.Context, op string, fn func(pgx.Tx) error) erro
 var patientLevel = []string{string(fhirmap.QSex), string(fhirmap.QBirthDate), string(fhirmap.QHeight), string(fhirmap.QWeight)}
 
 const (
+	// pointLookupsSQL starts every ingest transaction. Its statements are
+	// point lookups through indexes by design, and pgx prepares them, so
+	// PostgreSQL may cache a generic plan per connection. A plan made
+	// while a table was small (a new database) picks sequential scans and
+	// keeps them for the life of the connection, while the table grows:
+	// each message then reads whole tables. Sequential scans are never the
+	// right plan here, so the transaction rules them out; other sessions
+	// and transactions are not affected.
+	pointLookupsSQL = `SET LOCAL enable_seqscan = off`
+
 	claimInboxSQL = `
 INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
 VALUES ($1, $2, $3, $4, $5, $6, $7)
@@ -115,11 +125,21 @@ ON CONFLICT (key, digest) DO NOTHING`
 	// patient-level quantities, $7 the blood-gas quantity, $8 the inbox key.
 	// changed holds every stored version of each key that this message
 	// brought a new version of (new rows carry this message's inbox key).
+	//
+	// Facts are looked up by key (the unique index on key, digest) and only
+	// then filtered by patient, in MATERIALIZED steps the planner cannot
+	// reorder: a plan that found them through the patient's index and
+	// filtered by key read the patient's whole history for every message,
+	// which grows without bound (a ventilated patient adds thousands of
+	// facts a day).
 	affectedCTE = `
-WITH changed AS (
-    SELECT c.quantity, c.effective, c.key FROM fact c
-    WHERE c.patient_hash = $1 AND c.key = ANY($2::text[])
-      AND EXISTS (SELECT 1 FROM fact n WHERE n.key = c.key AND n.patient_hash = $1 AND n.inbox_key = $8)
+WITH cand AS MATERIALIZED (
+    SELECT f.quantity, f.effective, f.key, f.patient_hash, f.inbox_key FROM fact f
+    WHERE f.key = ANY($2::text[])
+), changed AS (
+    SELECT c.quantity, c.effective, c.key FROM cand c
+    WHERE c.patient_hash = $1
+      AND EXISTS (SELECT 1 FROM cand n WHERE n.key = c.key AND n.patient_hash = $1 AND n.inbox_key = $8)
 ), affected AS (
     SELECT key FROM changed WHERE quantity = $7::text
     UNION
@@ -140,17 +160,22 @@ WITH changed AS (
 SELECT DISTINCT key FROM affected ORDER BY key`
 
 	snapshotFactsSQL = affectedCTE + `,
-win AS (
-    SELECT b.effective - $3::bigint * interval '1 microsecond' AS lo,
-           b.effective + $4::bigint * interval '1 microsecond' AS hi
-    FROM fact b WHERE b.patient_hash = $1 AND b.key IN (SELECT key FROM affected)
+gas AS MATERIALIZED (
+    SELECT b.effective, b.patient_hash FROM fact b WHERE b.key = ANY(ARRAY(SELECT key FROM affected))
+), win AS (
+    SELECT g.effective - $3::bigint * interval '1 microsecond' AS lo,
+           g.effective + $4::bigint * interval '1 microsecond' AS hi
+    FROM gas g WHERE g.patient_hash = $1
 ), keys AS (
     SELECT key FROM affected
     UNION SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.quantity = ANY($6::text[])
     UNION SELECT f.key FROM win JOIN fact f ON f.patient_hash = $1 AND f.effective BETWEEN win.lo AND win.hi
+), found AS MATERIALIZED (
+    SELECT id, patient_hash, ` + factColumns + `
+    FROM fact WHERE key = ANY(ARRAY(SELECT key FROM keys)) AND EXISTS (SELECT 1 FROM affected)
 )
 SELECT ` + factColumns + `
-FROM fact WHERE patient_hash = $1 AND key IN (SELECT key FROM keys) AND EXISTS (SELECT 1 FROM affected)
+FROM found WHERE patient_hash = $1
 ORDER BY id`
 
 	snapshotHeadsSQL = affectedCTE + `
@@ -259,6 +284,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		// affect (later statements of a batch see the earlier ones' rows).
 		order := patientPlans(s, msg)
 		b := &pgx.Batch{}
+		b.Queue(pointLookupsSQL)
 		b.Queue(claimInboxSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), msg.Received.UTC(), now,
 			len(msg.Resources), len(msg.Facts))
 		for _, p := range order {
@@ -267,6 +293,9 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		s.queueInput(b, msg, order, now)
 		br := tx.SendBatch(ctx, b)
 		defer br.Close()
+		if _, err := br.Exec(); err != nil {
+			return fmt.Errorf("plan settings: %w", err)
+		}
 		tag, err := br.Exec()
 		if err != nil {
 			return fmt.Errorf("claim inbox: %w", err)
