@@ -88,8 +88,9 @@ type Site struct {
 	// the staleness limit: a ventilator reading outside it is not used, so
 	// a blood gas without ventilator readings in it is refused with
 	// "no-ventilator-data-in-window". Patient-level facts (sex, birth date,
-	// height, weight) are taken from any time. Default 30 min before to
-	// 10 min after.
+	// height, weight) are taken from any time: the latest at or before the
+	// blood gas, else the earliest after it (see Select). Default 30 min
+	// before to 10 min after.
 	Window Window
 }
 
