@@ -25,6 +25,7 @@ var KnownEnv = []string{
 	"VENTDERIVE_WINDOW_BEFORE",           // pairing window before a blood gas, Go duration
 	"VENTDERIVE_WINDOW_AFTER",            // pairing window after a blood gas, Go duration
 	"VENTDERIVE_APPARATUS_DEAD_SPACE_ML", // site apparatus dead space, mL
+	"VENTDERIVE_TARGET_PACO2",            // site target PaCO2, mm[Hg]; unset: not configured
 	"VENTDERIVE_CODE_ALIASES",            // file: the site's code aliases
 	"VENTDERIVE_CODESYSTEM_URL",          // canonical URL of the service's CodeSystem
 	"VENTDERIVE_PATIENT_HASH_KEY",        // secret: key of the patient hash in logs and lookups

@@ -27,6 +27,7 @@ import (
 	"github.com/ventderive/ventderive/cmd/ventderive/internal/scenario"
 	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/fhirmap"
 )
 
 func init() {
@@ -158,12 +159,15 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	c.httpAddr = "127.0.0.1:0"
 	c.migrate = true
 	c.apparatusDeadSpaceML = scenario.ApparatusDeadSpaceML
+	// The invented site's target; a real site configures its own, and no
+	// target suits every patient (chronic or permissive hypercapnia).
+	c.targetPaCO2mmHg = fhirmap.DefaultTargetPaCO2mmHg
 	c.pipeline.Window.Before, c.pipeline.Window.After = scenario.PairingBefore, scenario.PairingAfter
 	key := make([]byte, 32)
 	_, _ = rand.Read(key)
 	c.patientHashKey = hex.EncodeToString(key)
-	fmt.Fprintf(out, "  service   apparatus dead space %g mL, pairing window %s before to %s after each blood gas; logs in %s\n",
-		c.apparatusDeadSpaceML, c.pipeline.Window.Before, c.pipeline.Window.After, logPath)
+	fmt.Fprintf(out, "  service   apparatus dead space %g mL, site target PaCO2 %g mm[Hg] (not a patient's goal), pairing window %s before to %s after each blood gas; logs in %s\n",
+		c.apparatusDeadSpaceML, c.targetPaCO2mmHg, c.pipeline.Window.Before, c.pipeline.Window.After, logPath)
 
 	svcCtx, stopSvc := context.WithCancel(ctx)
 	ready := make(chan *consumer.Pipeline, 1)

@@ -45,6 +45,7 @@ type serveConfig struct {
 	codeSystemURL                              string
 	patientHashKey                             string
 	apparatusDeadSpaceML                       float64 // < 0: not configured
+	targetPaCO2mmHg                            float64 // 0: not configured
 	migrate                                    bool
 	workers                                    int
 	pipeline                                   consumer.Config
@@ -174,6 +175,7 @@ func bindServe(fs *flag.FlagSet, getenv func(string) string, c *serveConfig) (*s
 		s.dur(&c.pipeline.Window.Before, "window-before", fhirmap.DefaultSite().Window.Before, "pair ventilator data up to this long before a blood gas"),
 		s.dur(&c.pipeline.Window.After, "window-after", fhirmap.DefaultSite().Window.After, "pair ventilator data up to this long after a blood gas"),
 		s.num(&c.apparatusDeadSpaceML, "apparatus-dead-space-ml", -1, "apparatus dead space of the site's circuits in mL (HME, closed suction); negative: not configured, and derivations that need it are refused"),
+		s.num(&c.targetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mm[Hg] for the ventilation-for-target values (not a patient's goal); 0: not configured, and those values are refused (40 is the usual adult suggestion)"),
 	}
 	s.str(&c.codeAliases, "code-aliases", "", "site code-alias file mapping local codes onto known quantities")
 	s.str(&c.codeSystemURL, "codesystem-url", fhirmap.DefaultSite().CodeSystemURL, "canonical URL of the service's CodeSystem for derived values")
@@ -235,6 +237,10 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	if c.apparatusDeadSpaceML >= 0 {
 		site.ApparatusDeadSpaceML = c.apparatusDeadSpaceML
 		site.ApparatusDeadSpaceConfigured = true
+	}
+	site.TargetPaCO2mmHg = c.targetPaCO2mmHg
+	if err := site.Validate(); err != nil {
+		return fmt.Errorf("site settings: %w", err)
 	}
 	codes := fhirmap.DefaultCodes()
 	if c.codeAliases != "" {
