@@ -1,0 +1,138 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"regexp"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// TestBenchSmall runs the whole bench command at a tiny size against a real
+// PostgreSQL and an embedded NATS server, and checks that every row of the
+// table carries measured, plausible numbers. (The memory check starts this
+// binary as 'serve', which a test binary cannot be, so it is left out here.)
+func TestBenchSmall(t *testing.T) {
+	admin := pgtest.AdminURL(t)
+	var out, errOut bytes.Buffer
+	e := env{getenv: func(k string) string {
+		if k == "DATABASE_URL" {
+			return admin
+		}
+		return ""
+	}, stdout: &out, stderr: &errOut}
+	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute)
+	defer cancel()
+	err := run(ctx, []string{"bench", "--inputs", "400", "--copies", "1", "--rate", "200", "--paced", "2s",
+		"--replicas", "1", "--patients", "0", "--dir", t.TempDir()}, e)
+	if err != nil {
+		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
+	}
+	report := out.String()
+	t.Log("\n" + report)
+	for _, name := range []string{"floor", "pipeline, 1 replica(s)"} {
+		re := regexp.MustCompile(`(?m)^\s*` + regexp.QuoteMeta(name) + `((?:\s+[0-9.]+)+)\s*$`)
+		m := re.FindStringSubmatch(report)
+		if m == nil {
+			t.Errorf("no table row %q", name)
+			continue
+		}
+		var v []float64
+		for f := range strings.FieldsSeq(m[1]) {
+			x, _ := strconv.ParseFloat(f, 64)
+			v = append(v, x)
+		}
+		// inputs/s, p50, p99, CPU, PostgreSQL CPU, machine CPU, allocs, RSS, ratio
+		if len(v) != 9 {
+			t.Errorf("%s: %d numbers, want 9: %v", name, len(v), v)
+			continue
+		}
+		if v[0] <= 0 || v[1] <= 0 || v[2] < v[1] || v[3] <= 0 || v[6] <= 0 || v[7] <= 0 || v[8] <= 0 {
+			t.Errorf("%s: implausible measurements %v (inputs/s, p50, p99 >= p50, CPU, allocs, RSS and ratio must be positive)", name, v)
+		}
+	}
+	if !strings.Contains(report, "produced derived Observations") {
+		t.Error("no latency note for the pipeline")
+	}
+	if strings.Contains(report, " 0 of ") {
+		t.Error("the paced run produced no derived Observation: its latency measures nothing")
+	}
+}
+
+// Copies of the invented unit must be distinct patients as the service's
+// decoder sees them, with distinct payloads (inbox keys) and message ids.
+func TestBenchMessagesAreDistinctCopies(t *testing.T) {
+	msgs := benchMessages(1, 3, 3000)
+	if len(msgs) != 3000 {
+		t.Fatalf("%d messages, want 3000", len(msgs))
+	}
+	patients, ids := map[string]bool{}, map[string]bool{}
+	for _, m := range msgs {
+		if ids[m.msgID] {
+			t.Fatalf("message id %s repeated", m.msgID)
+		}
+		ids[m.msgID] = true
+		d, err := fhirmap.Decode(m.payload, fhirmap.DefaultCodes())
+		if err != nil {
+			continue // the unit's malformed messages stay malformed
+		}
+		for _, f := range d.Facts {
+			patients[f.Patient] = true
+			if f.Patient != m.patient {
+				t.Fatalf("fact of %s in a message of %s", f.Patient, m.patient)
+			}
+		}
+	}
+	if len(patients) != 30 {
+		t.Errorf("%d distinct patients in 3 copies of a 10-bed unit, want 30", len(patients))
+	}
+}
+
+func TestMemoryMessages(t *testing.T) {
+	msgs := memoryMessages(1, 40)
+	patients := map[string]int{}
+	gases := 0
+	for _, m := range msgs {
+		patients[m.patient]++
+		d, err := fhirmap.Decode(m.payload, fhirmap.DefaultCodes())
+		if err != nil {
+			t.Fatalf("memory message does not decode: %v", err)
+		}
+		for _, f := range d.Facts {
+			if f.Quantity == fhirmap.QPCO2 {
+				gases++
+			}
+		}
+	}
+	if len(patients) != 40 {
+		t.Errorf("%d patients, want 40", len(patients))
+	}
+	if gases < 40 {
+		t.Errorf("%d blood gases for 40 patients, want one each at least", gases)
+	}
+}
+
+func TestPercentile(t *testing.T) {
+	var ds []time.Duration
+	for i := 1; i <= 100; i++ {
+		ds = append(ds, time.Duration(i)*time.Millisecond)
+	}
+	// Nearest-rank definition: the smallest value with at least q of the
+	// sample at or below it.
+	for _, c := range []struct {
+		q    float64
+		want time.Duration
+	}{{0.5, 50 * time.Millisecond}, {0.99, 99 * time.Millisecond}, {1, 100 * time.Millisecond}} {
+		if got := percentile(ds, c.q); got != c.want {
+			t.Errorf("percentile(1..100 ms, %g) = %s, want %s", c.q, got, c.want)
+		}
+	}
+	if percentile(nil, 0.5) != 0 {
+		t.Error("percentile of nothing is not 0")
+	}
+}
