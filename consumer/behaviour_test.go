@@ -275,3 +275,42 @@ func TestHealthAndMetricsEndpoints(t *testing.T) {
 		t.Error("/metrics carries a patient identifier")
 	}
 }
+
+// A blood gas whose corrected version names another patient (the sample
+// was labelled with the wrong patient) moves: the first patient's values
+// from it are withdrawn and the second patient's are derived.
+func TestBloodGasMovedToAnotherPatient(t *testing.T) {
+	h := newHarness(t)
+	h.startReplica(nil)
+	msgs := generate(genOpts{patients: 2, gases: 1})
+	h.publish(msgs)
+	h.waitSettled(30 * time.Second)
+	if s := h.gasHeads(0, 0)[fhirmap.KindDeadSpaceVCO2]; s.refused {
+		t.Fatalf("patient 0 not derived before the move: %+v", s)
+	}
+
+	// Version 2 of patient 0's blood gas, now naming patient 1, at patient
+	// 1's ventilator data (same time, same id).
+	moved := observation(gasID(0, 0), patientRef(1), "2019-8", "mm[Hg]", 47, gasTime(0),
+		map[string]any{"status": "corrected", "meta": map[string]any{"versionId": "2"}})
+	msg := msgOf("fhir.input.lab", moved)
+	h.publish([]testMsg{msg})
+	h.waitSettled(30 * time.Second)
+
+	for kind, s := range h.gasHeads(0, 0) {
+		if !s.refused && s.status != string(fhirmap.StatusEnteredInError) {
+			t.Errorf("patient 0 keeps %s from a blood gas that is no longer theirs: %+v", kind, s)
+		}
+	}
+	prefix := patientRef(1) + "|Observation/" + gasID(0, 0) + "|"
+	found := false
+	for k, s := range h.heads() {
+		if k == prefix+fhirmap.KindDeadSpaceVCO2 {
+			found = !s.refused
+		}
+	}
+	if !found {
+		t.Error("patient 1 has no dead-space fraction from the moved blood gas")
+	}
+	h.reconcile(append(msgs, msg))
+}

@@ -26,22 +26,32 @@ type Planner struct {
 // new version with status entered-in-error, published like any other.
 // recorded is the time written into Provenance.recorded.
 func (p Planner) Plan(snap Snapshot, recorded time.Time) (Changes, error) {
-	facts := fhirmap.Current(snap.Facts)
+	// Current versions, then only this patient's: a fact whose current
+	// version names another patient (a corrected subject) no longer counts
+	// here, and what it supported is recomputed or withdrawn.
+	var facts []fhirmap.Fact
+	for _, f := range fhirmap.Current(snap.Facts) {
+		if f.Patient == snap.Patient {
+			facts = append(facts, f)
+		}
+	}
 	current := make(map[string]Stored, len(snap.Current))
 	for _, s := range snap.Current {
 		current[s.Key] = s
 	}
 	// bloodGas holds, per key, the fact a retraction names and takes its
-	// time from: the current version, whatever it now measures (a blood gas
-	// re-coded by the lab is no longer a PCO2 but its derived values must
-	// still be withdrawn), else the latest stored version.
-	bloodGas := make(map[string]fhirmap.Fact, len(snap.Affected))
+	// time and encounter from: this patient's latest version, whatever it
+	// now measures (a blood gas re-coded by the lab is no longer a PCO2,
+	// and one moved to another patient is no longer this patient's, but
+	// the values derived from it here must still be withdrawn).
+	var own []fhirmap.Fact
 	for _, f := range snap.Facts {
-		if old, ok := bloodGas[f.Key]; !ok || f.Effective.After(old.Effective) {
-			bloodGas[f.Key] = f
+		if f.Patient == snap.Patient {
+			own = append(own, f)
 		}
 	}
-	for _, f := range facts {
+	bloodGas := make(map[string]fhirmap.Fact, len(snap.Affected))
+	for _, f := range fhirmap.Current(own) {
 		bloodGas[f.Key] = f
 	}
 

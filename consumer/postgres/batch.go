@@ -190,14 +190,23 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 						return err
 					}
 				}
+				var others []string
 				if i < n {
-					if err := readInput(br, msgs[i], orders[i], &res[i]); err != nil {
+					var err error
+					if others, err = readInput(br, msgs[i], orders[i], &res[i]); err != nil {
 						br.Close()
 						return err
 					}
 				}
 				if err := br.Close(); err != nil {
 					return fmt.Errorf("store group: %w", err)
+				}
+				if len(others) > 0 {
+					moved, err := s.loadMoved(ctx, tx, msgs[i], others)
+					if err != nil {
+						return err
+					}
+					orders[i] = append(orders[i], moved...)
 				}
 			}
 			if i < n {

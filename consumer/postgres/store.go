@@ -123,8 +123,10 @@ ON CONFLICT (key, digest) DO NOTHING`
 	// $1 patient hash, $2 keys of the message's facts, $3 window before and
 	// $4 window after (microseconds), $5 horizon (microseconds), $6
 	// patient-level quantities, $7 the blood-gas quantity, $8 the inbox key.
-	// changed holds every stored version of each key that this message
-	// brought a new version of (new rows carry this message's inbox key).
+	// changed holds the patient's stored versions of each key that this
+	// message brought a new version of (new rows carry this message's inbox
+	// key), whatever patient the new version names: a fact moved to another
+	// patient (a corrected subject) changes its old patient too.
 	//
 	// Facts are looked up by key (the unique index on key, digest) and only
 	// then filtered by patient, in MATERIALIZED steps the planner cannot
@@ -139,7 +141,7 @@ WITH cand AS MATERIALIZED (
 ), changed AS (
     SELECT c.quantity, c.effective, c.key FROM cand c
     WHERE c.patient_hash = $1
-      AND EXISTS (SELECT 1 FROM cand n WHERE n.key = c.key AND n.patient_hash = $1 AND n.inbox_key = $8)
+      AND EXISTS (SELECT 1 FROM cand n WHERE n.key = c.key AND n.inbox_key = $8)
 ), affected AS (
     SELECT key FROM changed WHERE quantity = $7::text
     UNION
@@ -155,6 +157,15 @@ WITH cand AS MATERIALIZED (
                          AND c.effective + $3::bigint * interval '1 microsecond'
     WHERE c.quantity <> $7::text AND NOT c.quantity = ANY($6::text[])
 )`
+
+	// otherPatientsSQL lists the patients, other than the message's, that
+	// hold a version of one of the message's fact keys: a new version that
+	// names another patient moves the fact, and its old patient's values
+	// must be recomputed (or withdrawn) too.
+	otherPatientsSQL = `
+SELECT DISTINCT patient_ref FROM fact
+WHERE key = ANY($1::text[]) AND patient_ref <> ALL($2::text[])
+ORDER BY 1`
 
 	affectedSQL = affectedCTE + `
 SELECT DISTINCT key FROM affected ORDER BY key`
@@ -175,7 +186,7 @@ gas AS MATERIALIZED (
     FROM fact WHERE key = ANY(ARRAY(SELECT key FROM keys)) AND EXISTS (SELECT 1 FROM affected)
 )
 SELECT ` + factColumns + `
-FROM found WHERE patient_hash = $1
+FROM found WHERE patient_hash = $1 OR key = ANY($2::text[])
 ORDER BY id`
 
 	snapshotHeadsSQL = affectedCTE + `
@@ -308,11 +319,19 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 				return fmt.Errorf("lock patient: %w", err)
 			}
 		}
-		if err := readInput(br, msg, order, &res); err != nil {
+		others, err := readInput(br, msg, order, &res)
+		if err != nil {
 			return err
 		}
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
+		}
+		if len(others) > 0 {
+			moved, err := s.loadMoved(ctx, tx, msg, others)
+			if err != nil {
+				return err
+			}
+			order = append(order, moved...)
 		}
 
 		// Plan, outside the database.
@@ -363,28 +382,73 @@ func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientP
 	}
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
+		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
 		s.queueSnapshots(b, msg, order)
 	}
 }
 
-// readInput reads the results of what queueInput queued.
-func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, res *consumer.IngestResult) error {
+// factKeys lists the fact keys of a message, once each.
+func factKeys(msg consumer.Message) []string {
+	keys := make([]string, 0, len(msg.Facts))
+	for _, f := range msg.Facts {
+		keys = append(keys, f.Key)
+	}
+	slices.Sort(keys)
+	return slices.Compact(keys)
+}
+
+// loadMoved locks and loads the patients a message moved facts away from
+// (rare: a corrected subject). They are locked after the message's own
+// patients, out of sorted order; a deadlock this could cause is detected by
+// PostgreSQL and the transaction is retried (retryInPlace).
+func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, others []string) ([]*patientPlan, error) {
+	plans := make([]*patientPlan, len(others))
+	for i, ref := range others {
+		plans[i] = &patientPlan{ref: ref, hash: s.hash(ref)}
+	}
+	b := &pgx.Batch{}
+	b.Queue(lockPatientsSQL, others)
+	s.queueSnapshots(b, msg, plans)
+	br := tx.SendBatch(ctx, b)
+	defer br.Close()
+	if _, err := br.Exec(); err != nil {
+		return nil, fmt.Errorf("lock moved patients: %w", err)
+	}
+	if err := readSnapshots(br, plans); err != nil {
+		return nil, err
+	}
+	if err := br.Close(); err != nil {
+		return nil, fmt.Errorf("load moved patients: %w", err)
+	}
+	return plans, nil
+}
+
+// readInput reads the results of what queueInput queued. others are the
+// patients the message moved facts away from (see loadMoved).
+func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, res *consumer.IngestResult) (others []string, err error) {
 	if len(msg.Resources) > 0 {
 		if _, err := br.Exec(); err != nil {
-			return fmt.Errorf("insert resources: %w", err)
+			return nil, fmt.Errorf("insert resources: %w", err)
 		}
 	}
 	if len(msg.Facts) > 0 {
 		tag, err := br.Exec()
 		if err != nil {
-			return fmt.Errorf("insert facts: %w", err)
+			return nil, fmt.Errorf("insert facts: %w", err)
 		}
 		res.Facts = int(tag.RowsAffected())
+		rows, err := br.Query()
+		if err != nil {
+			return nil, fmt.Errorf("other patients: %w", err)
+		}
+		if others, err = pgx.CollectRows(rows, pgx.RowTo[string]); err != nil {
+			return nil, fmt.Errorf("other patients: %w", err)
+		}
 		if err := readSnapshots(br, order); err != nil {
-			return err
+			return nil, err
 		}
 	}
-	return nil
+	return others, nil
 }
 
 // planPatients calls plan for every patient with affected blood gases and
@@ -465,13 +529,8 @@ func optTime(t time.Time) pgtype.Timestamptz {
 // snapshot facts and the heads (three statements sharing affectedCTE).
 func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
 	before, after, horizon := msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(), msg.Horizon.Microseconds()
+	keys := factKeys(msg)
 	for _, p := range order {
-		var keys []string
-		for _, f := range msg.Facts {
-			if f.Patient == p.ref {
-				keys = append(keys, f.Key)
-			}
-		}
 		args := []any{p.hash, keys, before, after, horizon, patientLevel, string(fhirmap.QPCO2), msg.InboxKey}
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
