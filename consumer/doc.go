@@ -13,6 +13,12 @@
 //     window a late ventilator reading falls into, all recent gases for a
 //     patient-level fact) with the data around it; Plan the changes; write
 //     derivations, refusals and outbox rows; COMMIT.
+//     With a store that implements BatchStore (PostgreSQL does), the
+//     messages of a pull are dealt to lanes by patient and each lane records
+//     up to GroupMax messages (default 64, or what arrived within GroupWait,
+//     5 ms) in one transaction, each exactly as Ingest would in order: group
+//     commit. A message the store refuses is isolated by recording that group
+//     again message by message.
 //  3. Ack only after COMMIT. A transient failure is naked with a bounded,
 //     growing delay; a message the store refuses outright becomes a dead
 //     letter.
