@@ -622,40 +622,20 @@ func (b *bench) newDatabase(ctx context.Context) (string, error) {
 
 // publishAll publishes msgs asynchronously and waits for every PubAck.
 func (b *bench) publishAll(ctx context.Context, msgs []benchMsg) error {
-	futures := make([]jetstream.PubAckFuture, 0, 512)
-	flush := func() error {
-		for _, f := range futures {
-			select {
-			case <-f.Ok():
-			case err := <-f.Err():
-				return fmt.Errorf("publish: %w", err)
-			case <-ctx.Done():
-				return ctx.Err()
-			}
-		}
-		futures = futures[:0]
-		return nil
-	}
+	pub := newAsyncPublisher(b.js, 512)
 	for _, m := range msgs {
-		nm := nats.NewMsg(m.subject)
-		nm.Data = m.payload
-		f, err := b.js.PublishMsgAsync(nm, jetstream.WithMsgID(m.msgID))
-		if err != nil {
-			return fmt.Errorf("publish: %w", err)
-		}
-		if futures = append(futures, f); len(futures) == cap(futures) {
-			if err := flush(); err != nil {
-				return err
-			}
+		if err := pub.publish(ctx, m.subject, m.msgID, m.payload); err != nil {
+			return err
 		}
 	}
-	return flush()
+	return pub.flush(ctx)
 }
 
 // publishPaced publishes msgs at rate per second, each at its due time.
 func (b *bench) publishPaced(ctx context.Context, msgs []benchMsg, rate float64) error {
 	start := time.Now()
-	var futures []jetstream.PubAckFuture
+	// A window as large as the run: pacing must not wait for acknowledgements.
+	pub := newAsyncPublisher(b.js, len(msgs)+1)
 	for i, m := range msgs {
 		due := start.Add(time.Duration(float64(i) / rate * float64(time.Second)))
 		if wait := time.Until(due); wait > 0 {
@@ -665,24 +645,11 @@ func (b *bench) publishPaced(ctx context.Context, msgs []benchMsg, rate float64)
 			case <-time.After(wait):
 			}
 		}
-		nm := nats.NewMsg(m.subject)
-		nm.Data = m.payload
-		f, err := b.js.PublishMsgAsync(nm, jetstream.WithMsgID(m.msgID))
-		if err != nil {
-			return fmt.Errorf("publish: %w", err)
-		}
-		futures = append(futures, f)
-	}
-	for _, f := range futures {
-		select {
-		case <-f.Ok():
-		case err := <-f.Err():
-			return fmt.Errorf("publish: %w", err)
-		case <-ctx.Done():
-			return ctx.Err()
+		if err := pub.publish(ctx, m.subject, m.msgID, m.payload); err != nil {
+			return err
 		}
 	}
-	return nil
+	return pub.flush(ctx)
 }
 
 // streamTimes reads a stream whole: stream sequence -> timestamp and

@@ -293,25 +293,12 @@ func withDatabase(admin, name string) string {
 func feed(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool, sc scenario.Scenario, speed float64, out io.Writer) error {
 	realStart := time.Now()
 	lastShown := time.Time{}
-	futures := make([]jetstream.PubAckFuture, 0, 256)
-	flush := func() error {
-		for _, f := range futures {
-			select {
-			case <-f.Ok():
-			case err := <-f.Err():
-				return fmt.Errorf("publish: %w", err)
-			case <-ctx.Done():
-				return ctx.Err()
-			}
-		}
-		futures = futures[:0]
-		return nil
-	}
+	pub := newAsyncPublisher(js, 256)
 	for i, m := range sc.Messages {
 		if speed > 0 {
 			due := realStart.Add(time.Duration(float64(m.At.Sub(sc.Start)) / speed))
 			if wait := time.Until(due); wait > 0 {
-				if err := flush(); err != nil {
+				if err := pub.flush(ctx); err != nil {
 					return err
 				}
 				select {
@@ -321,24 +308,15 @@ func feed(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool, sc sc
 				}
 			}
 		}
-		nm := nats.NewMsg(m.Subject)
-		nm.Data = m.Payload
-		f, err := js.PublishMsgAsync(nm, jetstream.WithMsgID(m.MsgID))
-		if err != nil {
-			return fmt.Errorf("publish: %w", err)
-		}
-		futures = append(futures, f)
-		if len(futures) == cap(futures) {
-			if err := flush(); err != nil {
-				return err
-			}
+		if err := pub.publish(ctx, m.Subject, m.MsgID, m.Payload); err != nil {
+			return err
 		}
 		if time.Since(lastShown) > time.Second || i == len(sc.Messages)-1 {
 			lastShown = time.Now()
 			progress(ctx, pool, out, m.At, i+1, len(sc.Messages))
 		}
 	}
-	if err := flush(); err != nil {
+	if err := pub.flush(ctx); err != nil {
 		return err
 	}
 	fmt.Fprintln(out)
