@@ -28,7 +28,10 @@ func (h *harness) gasHeads(i, j int) map[string]headState {
 		}
 	}
 	if len(out) == 0 {
-		h.t.Fatalf("no derivation keys for %s", prefix)
+		var inbox, facts, heads, dead int
+		_ = h.pool.QueryRow(context.Background(), `SELECT (SELECT count(*) FROM inbox), (SELECT count(*) FROM fact),
+			(SELECT count(*) FROM head), (SELECT count(*) FROM dead_letter)`).Scan(&inbox, &facts, &heads, &dead)
+		h.t.Fatalf("no derivation keys for %s (store: %d inputs, %d facts, %d heads, %d dead letters)", prefix, inbox, facts, heads, dead)
 	}
 	return out
 }

@@ -10,6 +10,7 @@ import (
 	"math"
 	"net"
 	"slices"
+	"strings"
 	"sync"
 	"testing"
 	"time"
@@ -97,6 +98,7 @@ type harness struct {
 
 	mu       sync.Mutex
 	replicas []*replica
+	sent     map[string]bool   // inbox keys of every payload published
 	metrics  *consumer.Metrics // for the next replica started; nil: unregistered metrics
 }
 
@@ -150,6 +152,17 @@ func newHarness(t *testing.T, opts ...harnessOpt) *harness {
 	h.site.ApparatusDeadSpaceML = 50
 	h.site.ApparatusDeadSpaceConfigured = true
 	t.Cleanup(h.stopAll)
+	t.Cleanup(func() {
+		// On failure, show the service's warnings and errors (they carry no
+		// payloads or identifiers, which assertNoPHI checks).
+		if t.Failed() {
+			for _, line := range strings.Split(h.logs.String(), "\n") {
+				if strings.Contains(line, `"level":"WARN"`) || strings.Contains(line, `"level":"ERROR"`) {
+					t.Log(line)
+				}
+			}
+		}
+	})
 	return h
 }
 
@@ -230,6 +243,12 @@ type testMsg struct {
 func (h *harness) publish(msgs []testMsg) {
 	h.t.Helper()
 	for _, m := range msgs {
+		h.mu.Lock()
+		if h.sent == nil {
+			h.sent = map[string]bool{}
+		}
+		h.sent[inboxKey(m.payload)] = true
+		h.mu.Unlock()
 		nm := nats.NewMsg(m.subject)
 		nm.Data = m.payload
 		var opts []jetstream.PublishOpt
@@ -264,13 +283,21 @@ func (h *harness) waitSettled(timeout time.Duration) {
 		} else {
 			pending = 1
 		}
-		var backlog int64
-		_ = h.pool.QueryRow(ctx, `SELECT count(*) FROM outbox WHERE published_at IS NULL`).Scan(&backlog)
-		if pending == 0 && ackPending == 0 && backlog == 0 {
+		// Every distinct payload published must be recorded (inbox) or
+		// dead-lettered: the consumer's counters alone can read zero for a
+		// moment while a message is between the server and the replica.
+		var backlog, recorded int64 = 1, 0
+		_ = h.pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM outbox WHERE published_at IS NULL),
+			(SELECT count(*) FROM inbox) + (SELECT count(*) FROM dead_letter)`).Scan(&backlog, &recorded)
+		h.mu.Lock()
+		want := int64(len(h.sent))
+		h.mu.Unlock()
+		if pending == 0 && ackPending == 0 && backlog == 0 && recorded >= want {
 			return
 		}
 		if time.Now().After(deadline) {
-			h.t.Fatalf("not settled after %s: pending %d, ack pending %d, outbox backlog %d", timeout, pending, ackPending, backlog)
+			h.t.Fatalf("not settled after %s: pending %d, ack pending %d, outbox backlog %d, recorded %d of %d distinct inputs",
+				timeout, pending, ackPending, backlog, recorded, want)
 		}
 		time.Sleep(100 * time.Millisecond)
 	}

@@ -195,7 +195,7 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	if err := feed(ctx, js, pool, sc, f.speed, out); err != nil {
 		return err
 	}
-	if err := waitSettled(ctx, js, pool, 3*time.Minute); err != nil {
+	if err := waitSettled(ctx, js, pool, 3*time.Minute, distinctInputs(sc)); err != nil {
 		return err
 	}
 	problems, err := summarise(ctx, pool, js, sc, out)
@@ -332,7 +332,7 @@ func progress(ctx context.Context, pool *pgxpool.Pool, out io.Writer, at time.Ti
 
 // waitSettled waits until the service has settled every input and
 // published every outbox row.
-func waitSettled(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool, timeout time.Duration) error {
+func waitSettled(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool, timeout time.Duration, want int64) error {
 	deadline := time.Now().Add(timeout)
 	for {
 		var pending, ackPending uint64 = 1, 1
@@ -341,13 +341,18 @@ func waitSettled(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool
 				pending, ackPending = ci.NumPending, uint64(ci.NumAckPending)
 			}
 		}
-		var backlog int64 = 1
-		_ = pool.QueryRow(ctx, `SELECT count(*) FROM outbox WHERE published_at IS NULL`).Scan(&backlog)
-		if pending == 0 && ackPending == 0 && backlog == 0 {
+		// Every distinct message must also be recorded (inbox or dead
+		// letter): the consumer's counters can read zero for a moment while
+		// a message is on its way to the service.
+		var backlog, recorded int64 = 1, 0
+		_ = pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM outbox WHERE published_at IS NULL),
+			(SELECT count(*) FROM inbox) + (SELECT count(*) FROM dead_letter)`).Scan(&backlog, &recorded)
+		if pending == 0 && ackPending == 0 && backlog == 0 && recorded >= want {
 			return nil
 		}
 		if time.Now().After(deadline) {
-			return fmt.Errorf("service did not settle in %s: %d pending, %d in flight, %d unpublished", timeout, pending, ackPending, backlog)
+			return fmt.Errorf("service did not settle in %s: %d pending, %d in flight, %d unpublished, %d of %d inputs recorded",
+				timeout, pending, ackPending, backlog, recorded, want)
 		}
 		select {
 		case <-ctx.Done():
@@ -573,4 +578,14 @@ func formatLatest(m map[string]string) string {
 		parts[i] = k + " " + strings.TrimSuffix(m[k], " 1") // UCUM "1": a plain number
 	}
 	return strings.Join(parts, "; ")
+}
+
+// distinctInputs counts the different payloads of a scenario: what the
+// inbox and the dead letters must hold once the service has settled.
+func distinctInputs(sc scenario.Scenario) int64 {
+	seen := make(map[[32]byte]bool, len(sc.Messages))
+	for _, m := range sc.Messages {
+		seen[sha256.Sum256(m.Payload)] = true
+	}
+	return int64(len(seen))
 }
