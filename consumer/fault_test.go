@@ -26,6 +26,33 @@ import (
 
 var errCrash = errors.New("simulated crash")
 
+// crasher simulates a process death once at each sequence number it is
+// told to: the first time a chosen sequence passes the hook.
+type crasher struct {
+	choose  func(seq int64) bool
+	crashed sync.Map
+	n       atomic.Int64
+}
+
+func newCrasher(choose func(seq int64) bool) *crasher { return &crasher{choose: choose} }
+
+func (c *crasher) at(seq int64) error {
+	if c.choose(seq) {
+		if _, seen := c.crashed.LoadOrStore(seq, true); !seen {
+			c.n.Add(1)
+			return errCrash
+		}
+	}
+	return nil
+}
+
+func (c *crasher) mustHaveCrashed(t testing.TB) {
+	t.Helper()
+	if c.n.Load() == 0 {
+		t.Fatal("no crash was simulated")
+	}
+}
+
 // 1. Baseline: many inputs, several patients, three replicas.
 func TestFaultBaselineThreeReplicas(t *testing.T) {
 	h := newHarness(t)
@@ -68,22 +95,11 @@ func TestFaultDuplicates(t *testing.T) {
 func TestFaultCrashAfterCommitBeforeAck(t *testing.T) {
 	h := newHarness(t)
 	msgs := generate(genOpts{patients: 3, gases: 2})
-	var crashed sync.Map
-	var n atomic.Int64
-	h.startReplica(&consumer.Hooks{AfterCommit: func(seq uint64) error {
-		if seq%5 == 0 {
-			if _, seen := crashed.LoadOrStore(seq, true); !seen {
-				n.Add(1)
-				return errCrash
-			}
-		}
-		return nil
-	}})
+	c := newCrasher(func(seq int64) bool { return seq%5 == 0 })
+	h.startReplica(&consumer.Hooks{AfterCommit: func(seq uint64) error { return c.at(int64(seq)) }})
 	h.publish(msgs)
 	h.waitSettled(90 * time.Second)
-	if n.Load() == 0 {
-		t.Fatal("no crash was simulated")
-	}
+	c.mustHaveCrashed(t)
 	h.reconcile(msgs)
 }
 
@@ -92,22 +108,11 @@ func TestFaultCrashAfterCommitBeforeAck(t *testing.T) {
 func TestFaultCrashAfterPublishBeforeMark(t *testing.T) {
 	h := newHarness(t)
 	msgs := generate(genOpts{patients: 3, gases: 2})
-	var crashed sync.Map
-	var n atomic.Int64
-	h.startReplica(&consumer.Hooks{AfterPublish: func(seq int64) error {
-		if seq%3 == 0 && seq < 40 {
-			if _, seen := crashed.LoadOrStore(seq, true); !seen {
-				n.Add(1)
-				return errCrash
-			}
-		}
-		return nil
-	}})
+	c := newCrasher(func(seq int64) bool { return seq%3 == 0 && seq < 40 })
+	h.startReplica(&consumer.Hooks{AfterPublish: c.at})
 	h.publish(msgs)
 	h.waitSettled(90 * time.Second)
-	if n.Load() == 0 {
-		t.Fatal("no crash was simulated")
-	}
+	c.mustHaveCrashed(t)
 	h.reconcile(msgs)
 }
 

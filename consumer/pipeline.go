@@ -137,52 +137,30 @@ func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
 // withDefaults fills zero fields from DefaultConfig.
 func (c Config) withDefaults() Config {
 	d := DefaultConfig()
-	if c.InputStream == "" {
-		c.InputStream = d.InputStream
-	}
-	if c.Durable == "" {
-		c.Durable = d.Durable
-	}
-	if c.ObservationSub == "" {
-		c.ObservationSub = d.ObservationSub
-	}
-	if c.ProvenanceSub == "" {
-		c.ProvenanceSub = d.ProvenanceSub
-	}
-	if c.DeadLetterSub == "" {
-		c.DeadLetterSub = d.DeadLetterSub
-	}
-	if c.Window == (fhirmap.Window{}) {
-		c.Window = d.Window
-	}
-	if c.Horizon == 0 {
-		c.Horizon = d.Horizon
-	}
-	if c.AckWait == 0 {
-		c.AckWait = d.AckWait
-	}
-	if c.MaxAckPending == 0 {
-		c.MaxAckPending = d.MaxAckPending
-	}
-	if c.Fetch == 0 {
-		c.Fetch = d.Fetch
-	}
-	if c.RetryBase == 0 {
-		c.RetryBase = d.RetryBase
-	}
-	if c.RetryMax == 0 {
-		c.RetryMax = d.RetryMax
-	}
-	if c.MaxDeliver == 0 {
-		c.MaxDeliver = d.MaxDeliver
-	}
-	if c.RelayInterval == 0 {
-		c.RelayInterval = d.RelayInterval
-	}
-	if c.StallAfter == 0 {
-		c.StallAfter = d.StallAfter
-	}
+	orDefault(&c.InputStream, d.InputStream)
+	orDefault(&c.Durable, d.Durable)
+	orDefault(&c.ObservationSub, d.ObservationSub)
+	orDefault(&c.ProvenanceSub, d.ProvenanceSub)
+	orDefault(&c.DeadLetterSub, d.DeadLetterSub)
+	orDefault(&c.Window, d.Window)
+	orDefault(&c.Horizon, d.Horizon)
+	orDefault(&c.AckWait, d.AckWait)
+	orDefault(&c.MaxAckPending, d.MaxAckPending)
+	orDefault(&c.Fetch, d.Fetch)
+	orDefault(&c.RetryBase, d.RetryBase)
+	orDefault(&c.RetryMax, d.RetryMax)
+	orDefault(&c.MaxDeliver, d.MaxDeliver)
+	orDefault(&c.RelayInterval, d.RelayInterval)
+	orDefault(&c.StallAfter, d.StallAfter)
 	return c
+}
+
+// orDefault sets *v to def when *v is its type's zero value.
+func orDefault[T comparable](v *T, def T) {
+	var zero T
+	if *v == zero {
+		*v = def
+	}
 }
 
 // Config returns the resolved configuration.

@@ -151,16 +151,8 @@ func newBench(ctx context.Context, f benchFlags, e env) (_ *bench, err error) {
 	} else if err := os.MkdirAll(b.dir, 0o755); err != nil {
 		return nil, err
 	}
-	b.ns, err = server.NewServer(&server.Options{
-		Host: "127.0.0.1", Port: -1, JetStream: true, StoreDir: filepath.Join(b.dir, "nats"),
-		NoLog: true, NoSigs: true,
-	})
-	if err != nil {
-		return nil, fmt.Errorf("embedded nats: %w", err)
-	}
-	b.ns.Start()
-	if !b.ns.ReadyForConnections(10 * time.Second) {
-		return nil, errors.New("embedded nats did not start")
+	if b.ns, err = startEmbeddedNATS(filepath.Join(b.dir, "nats")); err != nil {
+		return nil, err
 	}
 	if b.nc, err = nats.Connect(b.ns.ClientURL()); err != nil {
 		return nil, err
@@ -596,19 +588,11 @@ func (b *bench) resetStreams(ctx context.Context) error {
 
 // newDatabase creates and migrates a fresh database, dropped at the end.
 func (b *bench) newDatabase(ctx context.Context) (string, error) {
-	var rnd [4]byte
-	_, _ = rand.Read(rnd[:])
-	name := "ventderive_bench_" + hex.EncodeToString(rnd[:])
-	c, err := pgx.Connect(ctx, b.admin)
+	name, url, err := createDatabase(ctx, b.admin, "ventderive_bench_")
 	if err != nil {
-		return "", fmt.Errorf("database: %w", err)
-	}
-	defer c.Close(ctx)
-	if _, err := c.Exec(ctx, "CREATE DATABASE "+pgx.Identifier{name}.Sanitize()); err != nil {
-		return "", fmt.Errorf("create database: %w", err)
+		return "", err
 	}
 	b.dbs = append(b.dbs, name)
-	url := withDatabase(b.admin, name)
 	pool, err := pgxpool.New(ctx, url)
 	if err != nil {
 		return "", err
@@ -694,39 +678,9 @@ func (b *bench) streamTimes(ctx context.Context, stream string) (map[uint64]time
 	return bySeq, byID, nil
 }
 
-// waitDrained waits until the durable has nothing pending or in flight and,
-// when pool is not nil, the outbox is empty.
+// waitDrained waits until durable has settled everything (see waitSettled).
 func (b *bench) waitDrained(ctx context.Context, durable string, pool *pgxpool.Pool, timeout time.Duration, want int64) error {
-	deadline := time.Now().Add(timeout)
-	for {
-		var pending, ackPending uint64 = 1, 1
-		if c, err := b.js.Consumer(ctx, consumer.DefaultInputStream, durable); err == nil {
-			if ci, err := c.Info(ctx); err == nil {
-				pending, ackPending = ci.NumPending, uint64(ci.NumAckPending)
-			}
-		}
-		// With a store, every distinct input must also be recorded (inbox or
-		// dead letter): the consumer's counters can read zero for a moment
-		// while a message is on its way to a replica.
-		var backlog, recorded int64 = 0, want
-		if pool != nil && pending == 0 && ackPending == 0 {
-			if err := pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM outbox WHERE published_at IS NULL),
-				(SELECT count(*) FROM inbox) + (SELECT count(*) FROM dead_letter)`).Scan(&backlog, &recorded); err != nil {
-				backlog = 1
-			}
-		}
-		if pending == 0 && ackPending == 0 && backlog == 0 && recorded >= want {
-			return nil
-		}
-		if time.Now().After(deadline) {
-			return fmt.Errorf("not drained after %s: %d pending, %d in flight, %d unpublished", timeout, pending, ackPending, backlog)
-		}
-		select {
-		case <-ctx.Done():
-			return ctx.Err()
-		case <-time.After(10 * time.Millisecond):
-		}
-	}
+	return waitSettled(ctx, b.js, durable, pool, want, timeout, 10*time.Millisecond)
 }
 
 // ---- the floor ----
@@ -1090,7 +1044,7 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	from := b.takeUsage(true)
 	rs, err := b.startReplicas(ctx, url, n)
 	if err == nil {
-		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, 5*time.Minute, distinctPayloads(b.msgs))
+		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, 5*time.Minute, benchPayloads(b.msgs))
 	}
 	to := b.takeUsage(false)
 	if serr := stopReplicas(rs); err == nil {
@@ -1126,7 +1080,7 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 		err = b.publishPaced(ctx, paced, b.f.rate)
 	}
 	if err == nil {
-		err = b.waitDrained(ctx, consumer.DefaultDurable, ppool, 2*time.Minute, distinctPayloads(paced))
+		err = b.waitDrained(ctx, consumer.DefaultDurable, ppool, 2*time.Minute, benchPayloads(paced))
 	}
 	if serr := stopReplicas(rs); err == nil {
 		err = serr
@@ -1281,7 +1235,7 @@ func (b *bench) memory(ctx context.Context) error {
 	start := time.Now()
 	err = b.publishAll(ctx, msgs)
 	if err == nil {
-		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, 5*time.Minute, distinctPayloads(msgs))
+		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, 5*time.Minute, benchPayloads(msgs))
 	}
 	el := time.Since(start)
 	hwm, rss := procStatusKB(pid, "VmHWM"), procStatusKB(pid, "VmRSS")
@@ -1303,12 +1257,7 @@ func (b *bench) memory(ctx context.Context) error {
 	return nil
 }
 
-// distinctPayloads counts the different payloads of msgs: the inbox rows
-// (or dead letters) a drained run must hold.
-func distinctPayloads(msgs []benchMsg) int64 {
-	seen := make(map[[32]byte]bool, len(msgs))
-	for _, m := range msgs {
-		seen[sha256.Sum256(m.payload)] = true
-	}
-	return int64(len(seen))
+// benchPayloads counts the different payloads of msgs.
+func benchPayloads(msgs []benchMsg) int64 {
+	return distinctPayloads(len(msgs), func(i int) []byte { return msgs[i].payload })
 }

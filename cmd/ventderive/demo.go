@@ -18,9 +18,7 @@ import (
 	"text/tabwriter"
 	"time"
 
-	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgxpool"
-	"github.com/nats-io/nats-server/v2/server"
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 
@@ -106,19 +104,12 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	fmt.Fprintln(out, "All patients, identifiers and values are invented. Derived values are advisory, never orders.")
 
 	// NATS: an embedded server with JetStream on a temporary store.
-	ns, err := server.NewServer(&server.Options{
-		Host: "127.0.0.1", Port: -1, JetStream: true, StoreDir: filepath.Join(f.dir, "nats"),
-		NoLog: true, NoSigs: true,
-	})
+	ns, err := startEmbeddedNATS(filepath.Join(f.dir, "nats"))
 	if err != nil {
-		return fmt.Errorf("embedded nats: %w", err)
+		return err
 	}
-	ns.Start()
 	defer ns.WaitForShutdown()
 	defer ns.Shutdown()
-	if !ns.ReadyForConnections(10 * time.Second) {
-		return errors.New("embedded nats did not start")
-	}
 	fmt.Fprintf(out, "  NATS      embedded JetStream at %s\n", ns.ClientURL())
 
 	// PostgreSQL: a fresh database on DATABASE_URL's server, or a
@@ -195,7 +186,8 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	if err := feed(ctx, js, pool, sc, f.speed, out); err != nil {
 		return err
 	}
-	if err := waitSettled(ctx, js, pool, 3*time.Minute, distinctInputs(sc)); err != nil {
+	want := distinctPayloads(len(sc.Messages), func(i int) []byte { return sc.Messages[i].Payload })
+	if err := waitSettled(ctx, js, consumer.DefaultDurable, pool, want, 3*time.Minute, 200*time.Millisecond); err != nil {
 		return err
 	}
 	problems, err := summarise(ctx, pool, js, sc, out)
@@ -221,7 +213,6 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 // demoDatabase returns the URL of an empty database for the demo and a
 // function that removes it.
 func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (string, func(), error) {
-	name := fmt.Sprintf("ventderive_demo_%d", time.Now().UnixNano())
 	admin := e.getenv("DATABASE_URL")
 	var cluster *pgtest.Cluster
 	if admin == "" {
@@ -236,57 +227,24 @@ func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (strin
 		admin = cluster.URL()
 		fmt.Fprintf(out, "  PostgreSQL throwaway cluster in %s\n", filepath.Join(f.dir, "postgres"))
 	}
-	conn, err := pgx.Connect(ctx, admin)
+	name, url, err := createDatabase(ctx, admin, "ventderive_demo_")
 	if err != nil {
 		if cluster != nil {
 			_ = cluster.Close()
 		}
-		return "", nil, fmt.Errorf("database: %w", err)
-	}
-	defer conn.Close(ctx)
-	if _, err := conn.Exec(ctx, "CREATE DATABASE "+pgx.Identifier{name}.Sanitize()); err != nil {
-		if cluster != nil {
-			_ = cluster.Close()
-		}
-		return "", nil, fmt.Errorf("create demo database: %w", err)
-	}
-	cfg, err := pgx.ParseConfig(admin)
-	if err != nil {
 		return "", nil, err
 	}
-	url := withDatabase(admin, name)
 	if cluster == nil {
-		fmt.Fprintf(out, "  PostgreSQL database %s on %s:%d\n", name, cfg.Host, cfg.Port)
+		fmt.Fprintf(out, "  PostgreSQL database %s on the server DATABASE_URL names\n", name)
 	}
 	cleanup := func() {
-		cctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
-		defer cancel()
 		if cluster != nil {
 			_ = cluster.Close()
 			return
 		}
-		if c, err := pgx.Connect(cctx, admin); err == nil {
-			_, _ = c.Exec(cctx, "DROP DATABASE IF EXISTS "+pgx.Identifier{name}.Sanitize()+" WITH (FORCE)")
-			c.Close(cctx)
-		}
+		dropDatabase(admin, name)
 	}
 	return url, cleanup, nil
-}
-
-// withDatabase replaces the database of a postgres:// URL.
-func withDatabase(admin, name string) string {
-	cfg, err := pgx.ParseConfig(admin)
-	if err != nil {
-		return admin
-	}
-	u := fmt.Sprintf("postgres://%s@%s:%d/%s", cfg.User, cfg.Host, cfg.Port, name)
-	if cfg.Password != "" {
-		u = fmt.Sprintf("postgres://%s:%s@%s:%d/%s", cfg.User, cfg.Password, cfg.Host, cfg.Port, name)
-	}
-	if cfg.TLSConfig == nil {
-		u += "?sslmode=disable"
-	}
-	return u
 }
 
 // feed publishes the scenario at the requested speed with a progress line.
@@ -328,38 +286,6 @@ func progress(ctx context.Context, pool *pgxpool.Pool, out io.Writer, at time.Ti
 	_ = pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM derivation), (SELECT count(*) FROM refusal), (SELECT count(*) FROM dead_letter)`).Scan(&derived, &refused, &dead)
 	fmt.Fprintf(out, "\r  simulated %s  sent %5d/%d  derived %5d  refused %5d  dead letters %d   ",
 		at.Format("Jan 2 15:04"), sent, total, derived, refused, dead)
-}
-
-// waitSettled waits until the service has settled every input and
-// published every outbox row.
-func waitSettled(ctx context.Context, js jetstream.JetStream, pool *pgxpool.Pool, timeout time.Duration, want int64) error {
-	deadline := time.Now().Add(timeout)
-	for {
-		var pending, ackPending uint64 = 1, 1
-		if c, err := js.Consumer(ctx, consumer.DefaultInputStream, consumer.DefaultDurable); err == nil {
-			if ci, err := c.Info(ctx); err == nil {
-				pending, ackPending = ci.NumPending, uint64(ci.NumAckPending)
-			}
-		}
-		// Every distinct message must also be recorded (inbox or dead
-		// letter): the consumer's counters can read zero for a moment while
-		// a message is on its way to the service.
-		var backlog, recorded int64 = 1, 0
-		_ = pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM outbox WHERE published_at IS NULL),
-			(SELECT count(*) FROM inbox) + (SELECT count(*) FROM dead_letter)`).Scan(&backlog, &recorded)
-		if pending == 0 && ackPending == 0 && backlog == 0 && recorded >= want {
-			return nil
-		}
-		if time.Now().After(deadline) {
-			return fmt.Errorf("service did not settle in %s: %d pending, %d in flight, %d unpublished, %d of %d inputs recorded",
-				timeout, pending, ackPending, backlog, recorded, want)
-		}
-		select {
-		case <-ctx.Done():
-			return ctx.Err()
-		case <-time.After(200 * time.Millisecond):
-		}
-	}
 }
 
 // patientSummary is what the store says of one patient.
@@ -578,14 +504,4 @@ func formatLatest(m map[string]string) string {
 		parts[i] = k + " " + strings.TrimSuffix(m[k], " 1") // UCUM "1": a plain number
 	}
 	return strings.Join(parts, "; ")
-}
-
-// distinctInputs counts the different payloads of a scenario: what the
-// inbox and the dead letters must hold once the service has settled.
-func distinctInputs(sc scenario.Scenario) int64 {
-	seen := make(map[[32]byte]bool, len(sc.Messages))
-	for _, m := range sc.Messages {
-		seen[sha256.Sum256(m.Payload)] = true
-	}
-	return int64(len(seen))
 }
