@@ -64,7 +64,7 @@ func TestLateVentilatorReadingCompletesEarlierGas(t *testing.T) {
 	h.waitSettled(30 * time.Second)
 	before := h.gasHeads(0, 0)
 	for kind, s := range before {
-		if !s.refused && true {
+		if !s.refused {
 			t.Errorf("%s derived without ventilator data: %+v", kind, s)
 		}
 	}
@@ -105,8 +105,9 @@ func TestAmendedGasSupersedesDerivations(t *testing.T) {
 	if second.status != "amended" || second.value <= first.value {
 		t.Errorf("after amendment %+v (before %+v): want status amended and a higher VD/VT for a higher PaCO2", second, first)
 	}
-	// 1 - 0.863*200/(10*50) = 0.6548 [derived from physiology.md §2].
-	if math.Abs(second.value-(1-0.863004*200/(10*50))) > 1e-4 {
+	// 1 - 0.863*200/(10*50) = 0.6548 [derived from physiology.md §2;
+	// K = 0.863 (§1), tolerance 1e-4 covers K's fourth digit].
+	if math.Abs(second.value-0.6548) > 1e-4 {
 		t.Errorf("VD/VT %v after PaCO2 50, want 0.6548", second.value)
 	}
 	var versions int

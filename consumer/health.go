@@ -12,7 +12,8 @@ import (
 )
 
 // Ready reports whether the replica can do its work: NATS connected,
-// PostgreSQL reachable and the consumer active. The error names what is not.
+// PostgreSQL reachable and the consumer active. It returns what is not ready,
+// by component (nats, postgres, consumer); empty means ready.
 func (p *Pipeline) Ready(ctx context.Context) map[string]string {
 	problems := map[string]string{}
 	if p.nc.Status() != nats.CONNECTED {

@@ -47,7 +47,6 @@ type Pipeline struct {
 	consumer jetstream.Consumer
 	active   atomic.Bool  // the consumer exists and the last fetch did not fail
 	progress atomic.Int64 // messages settled (acked, naked or terminated)
-	stalls   atomic.Int64
 
 	// hooks lets tests inject faults at named points; nil in production.
 	hooks *Hooks
@@ -406,7 +405,7 @@ func (p *Pipeline) receive(msg jetstream.Msg) *inflight {
 		InboxKey:  hex.EncodeToString(sum[:]),
 		Subject:   msg.Subject(),
 		StreamSeq: meta.Sequence.Stream,
-		Received:  p.now().UTC(),
+		Received:  start.UTC(),
 		Raw:       raw,
 		Window:    p.cfg.Window,
 		Horizon:   p.cfg.Horizon,

@@ -2,7 +2,7 @@ package consumer
 
 import (
 	"context"
-	"errors"
+	"fmt"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -59,6 +59,7 @@ func (p *Pipeline) relayAll(ctx context.Context) {
 // duplicate, which counts as published.
 func (p *Pipeline) publishBatch(ctx context.Context, msgs []OutboxMessage) ([]int64, error) {
 	futures := make([]jetstream.PubAckFuture, len(msgs))
+	var sendErr error
 	for i, m := range msgs {
 		nm := nats.NewMsg(m.Subject)
 		nm.Data = m.Payload
@@ -67,7 +68,7 @@ func (p *Pipeline) publishBatch(ctx context.Context, msgs []OutboxMessage) ([]in
 		}
 		f, err := p.js.PublishMsgAsync(nm, jetstream.WithMsgID(m.MsgID))
 		if err != nil {
-			futures = futures[:i]
+			futures, sendErr = futures[:i], fmt.Errorf("publish %s: %w", m.Subject, err)
 			break
 		}
 		futures[i] = f
@@ -88,13 +89,15 @@ func (p *Pipeline) publishBatch(ctx context.Context, msgs []OutboxMessage) ([]in
 			if len(done) == 0 {
 				return nil, err
 			}
+			// Mark what was acknowledged; the rest goes in the next round.
+			p.log.Warn("outbox publish failed after a partial batch", "err", err, "published", len(done))
 			return done, nil
 		case <-ctx.Done():
 			return done, nil
 		}
 	}
-	if len(futures) < len(msgs) && len(done) == 0 {
-		return nil, errors.New("publish: nothing could be sent")
+	if sendErr != nil && len(done) == 0 {
+		return nil, sendErr
 	}
 	return done, nil
 }

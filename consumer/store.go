@@ -113,7 +113,7 @@ type Changes struct {
 type OutboxMessage struct {
 	Seq     int64 // assigned by the store
 	Subject string
-	MsgID   string // Nats-Msg-Id: deterministic from the derivation's key and digest
+	MsgID   string // Nats-Msg-Id: deterministic, "<type>/<derivation id>/_history/<version>"
 	Header  map[string]string
 	Payload []byte
 }

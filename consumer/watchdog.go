@@ -2,7 +2,10 @@ package consumer
 
 import (
 	"context"
+	"errors"
 	"time"
+
+	"github.com/nats-io/nats.go/jetstream"
 )
 
 // watchdog notices a consumer that has pending input but makes no progress
@@ -29,15 +32,24 @@ func (p *Pipeline) watchdog(ctx context.Context) {
 		ictx, cancel := context.WithTimeout(ctx, 5*time.Second)
 		info, err := p.currentConsumer().Info(ictx)
 		cancel()
+		if errors.Is(err, jetstream.ErrConsumerNotFound) {
+			// Deleted between two pulls: the next pull only times out, so
+			// the fetch loop never sees ErrConsumerDeleted. Recreate here.
+			p.log.Warn("consumer gone; recreating", "durable", p.cfg.Durable)
+			if err := p.ensureConsumer(ctx); err != nil {
+				p.log.Error("recreate consumer", "err", err)
+			}
+			lastChange = time.Now()
+			continue
+		}
 		if err != nil {
-			// Deleted or unreachable: the fetch loop handles both.
+			// Unreachable: the fetch loop backs off and retries.
 			continue
 		}
 		if info.NumPending == 0 && info.NumAckPending == 0 {
 			lastChange = time.Now()
 			continue
 		}
-		p.stalls.Add(1)
 		p.metrics.Stalls.Inc()
 		p.log.Warn("consumer stalled; rebuilding", "pending", info.NumPending, "ack_pending", info.NumAckPending)
 		if err := p.ensureConsumer(ctx); err != nil {

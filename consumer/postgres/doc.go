@@ -4,18 +4,22 @@
 //
 // # Ingest
 //
-// Store.Ingest handles one input message in one transaction and three
+// Store.Ingest handles one input message in one transaction and two
 // batched round trips (besides BEGIN and COMMIT):
 //
 //  1. claim the inbox key (nothing claimed: consumer.ErrDuplicate, nothing
 //     written), take each patient's transaction-scoped advisory lock in
-//     sorted order, store the resources and facts, keeping only new
-//     (identity, digest) pairs;
-//  2. per patient with new facts: work out the affected blood gases, load
-//     the snapshot and the current head of their derivation keys;
-//  3. after calling the plan once per patient with affected blood gases,
+//     sorted order, store the resources and facts (keeping only new
+//     identity and digest pairs), and per patient work out the affected
+//     blood gases and load their snapshot and current heads;
+//  2. after calling the plan once per patient with affected blood gases,
 //     write the derivation versions with their inputs, the refusals with
 //     the inputs they considered, the head updates and the outbox rows.
+//
+// A message that moves a fact to another patient (a corrected subject) costs
+// one more round trip: the old patient is locked and loaded too. IngestBatch
+// (group commit) records several messages in one transaction, each as
+// Ingest would, with one round trip per message.
 //
 // A blood gas (a pco2 fact of any specimen) is affected by a new version of
 // itself; by a new patient-level fact (sex, birth date, height, weight) when
@@ -32,7 +36,8 @@
 //
 // Driver errors are translated at this package's edge: connection loss,
 // serialization failure (40001), deadlock (40P01), administrator shutdown
-// (57P01..57P03), class 08 and a COMMIT whose outcome is unknown are wrapped
+// (57P01..57P03), lock and statement timeouts (55P03, 57014), class 08 and
+// a COMMIT whose outcome is unknown are wrapped
 // with consumer.ErrTransient (the inbox key makes a retry safe). Other server
 // errors become a *DBError carrying only the SQLSTATE, constraint, table and
 // column names: the server's message and detail can echo key values (patient

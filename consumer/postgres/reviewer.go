@@ -11,6 +11,8 @@ import (
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgtype"
 	"github.com/jackc/pgx/v5/pgxpool"
+
+	"github.com/ventderive/ventderive/fhirmap"
 )
 
 // Reviewer answers audit questions for clinical reviewers. It reads only the
@@ -25,13 +27,6 @@ func NewReviewer(pool *pgxpool.Pool) *Reviewer { return &Reviewer{pool: pool} }
 
 // ErrNotFound reports that no derivation has the id or key asked for.
 var ErrNotFound = errors.New("not found")
-
-// Codes of the service's catalogue the reviewer queries single out (the
-// same as fhirmap.KindPaCO2Discrepancy and fhirmap.KindPredictedPaCO2).
-const (
-	KindPaCO2Discrepancy = "paco2-measured-minus-predicted"
-	KindPredictedPaCO2   = "paco2-predicted"
-)
 
 // Filter narrows a reviewer query. Zero fields do not filter.
 type Filter struct {
@@ -403,7 +398,7 @@ LIMIT $6`
 // Discrepancies returns current measured-minus-predicted PaCO2 values whose
 // size is at least thresholdMmHg (mm[Hg]), largest first.
 func (r *Reviewer) Discrepancies(ctx context.Context, thresholdMmHg float64, f Filter) ([]Discrepancy, error) {
-	args := append(f.args(), KindPaCO2Discrepancy, KindPredictedPaCO2, thresholdMmHg)
+	args := append(f.args(), fhirmap.KindPaCO2Discrepancy, fhirmap.KindPredictedPaCO2, thresholdMmHg)
 	out, err := queryRows(ctx, r.pool, discrepanciesSQL, func(row pgx.CollectableRow) (Discrepancy, error) {
 		var d Discrepancy
 		err := row.Scan(&d.Key, &d.ObservationID, &d.Patient, &d.BloodGas, &d.Effective, &d.Version, &d.Status,

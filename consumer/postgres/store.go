@@ -624,14 +624,6 @@ func checkChanges(patient string, ch consumer.Changes) error {
 	return nil
 }
 
-// jsonConstant is how a constant is kept in derivation.constants.
-type jsonConstant struct {
-	Name   string  `json:"name"`
-	Value  float64 `json:"value"`
-	Unit   string  `json:"unit"`
-	Source string  `json:"source"`
-}
-
 func jsonList[T any](v []T) ([]byte, error) {
 	if v == nil {
 		v = []T{}
@@ -656,9 +648,9 @@ func lineageOf(in []fhirmap.Input) lineage {
 
 func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, now time.Time) ([]any, error) {
 	r := d.Result
-	var consts []jsonConstant
+	var consts []Constant
 	for _, c := range r.Constants() {
-		consts = append(consts, jsonConstant{Name: c.Name, Value: c.Value, Unit: c.Unit, Source: c.Source})
+		consts = append(consts, Constant{Name: c.Name, Value: c.Value, Unit: c.Unit, Source: c.Source})
 	}
 	cj, err := jsonList(consts)
 	if err != nil {

@@ -60,7 +60,7 @@ func AdminURL(t testing.TB) string {
 		defer cancel()
 		c, err := StartCluster(ctx, t.TempDir())
 		if err != nil {
-			noServer(t, err)
+			NoServer(t, err)
 		}
 		perTest.Store(t, c)
 		t.Cleanup(func() { perTest.Delete(t); c.Close() })
@@ -80,12 +80,15 @@ func AdminURL(t testing.TB) string {
 		}
 	}
 	if sharedErr != nil {
-		noServer(t, sharedErr)
+		NoServer(t, sharedErr)
 	}
 	return shared.URL()
 }
 
-func noServer(t testing.TB, err error) {
+// NoServer ends a test that needs a PostgreSQL it could not have: a loud
+// skip when the server binaries are missing and CI is not set, a failure
+// otherwise (CI must never pass by skipping).
+func NoServer(t testing.TB, err error) {
 	t.Helper()
 	if errors.Is(err, ErrNoServer) && os.Getenv("CI") == "" {
 		t.Skipf("SKIPPED, NO DATABASE: %v (or set DATABASE_URL to an admin URL)", err)
