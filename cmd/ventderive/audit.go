@@ -8,6 +8,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"slices"
 	"strconv"
 	"strings"
 	"text/tabwriter"
@@ -36,6 +37,9 @@ flags common to all: --database-url URL (default $DATABASE_URL; normally the rev
   --format table|json|csv (default table) --limit N (default 1000)
 times: RFC 3339 (2026-03-01T08:00:00Z) or a UTC date (2026-03-01); --to is exclusive.
 The audit reads only the review_* views and opens read-only transactions.`
+
+// auditQuestions are the questions runAudit answers.
+var auditQuestions = []string{"show", "list", "refusals", "discrepancies", "changes", "daily", "deadletters"}
 
 // runAudit answers one reviewer question. Queries live in
 // consumer/postgres (Reviewer); this file parses flags and formats.
@@ -80,6 +84,9 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	usageErr := func(msg string) error {
 		fmt.Fprintf(e.stderr, "ventderive audit: %s\n", msg)
 		return errUsage
+	}
+	if !slices.Contains(auditQuestions, question) {
+		return usageErr(fmt.Sprintf("unknown question %q", question))
 	}
 	var err error
 	if f.From, err = parseAuditTime(from); err != nil {

@@ -343,13 +343,15 @@ func TestAuditUsage(t *testing.T) {
 	tests := []struct {
 		name string
 		args []string
+		says string // in the message, when set
 	}{
-		{"no question", []string{"audit"}},
-		{"unknown question", []string{"audit", "frobnicate", "--database-url", "postgres://x@127.0.0.1:1/x"}},
-		{"show without id", []string{"audit", "show", "--database-url", "postgres://x@127.0.0.1:1/x"}},
-		{"bad format", []string{"audit", "list", "--format", "xml", "--database-url", "postgres://x@127.0.0.1:1/x"}},
-		{"bad time", []string{"audit", "list", "--from", "yesterday", "--database-url", "postgres://x@127.0.0.1:1/x"}},
-		{"no database", []string{"audit", "list"}},
+		{"no question", []string{"audit"}, ""},
+		{"unknown question without a database", []string{"audit", "frobnicate"}, "unknown question"},
+		{"unknown question", []string{"audit", "frobnicate", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
+		{"show without id", []string{"audit", "show", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
+		{"bad format", []string{"audit", "list", "--format", "xml", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
+		{"bad time", []string{"audit", "list", "--from", "yesterday", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
+		{"no database", []string{"audit", "list"}, ""},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -357,6 +359,9 @@ func TestAuditUsage(t *testing.T) {
 			err := run(context.Background(), tc.args, env{getenv: func(string) string { return "" }, stdout: &out, stderr: &out})
 			if err != errUsage {
 				t.Errorf("err = %v, want usage error", err)
+			}
+			if !strings.Contains(out.String(), tc.says) {
+				t.Errorf("message %q does not say %q", out.String(), tc.says)
 			}
 		})
 	}

@@ -186,11 +186,12 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	if err := feed(ctx, js, pool, sc, f.speed, out); err != nil {
 		return err
 	}
-	want := distinctPayloads(len(sc.Messages), func(i int) []byte { return sc.Messages[i].Payload })
+	good, poison := scenarioInputs(sc)
+	want := int64(len(good) + len(poison))
 	if err := waitSettled(ctx, js, consumer.DefaultDurable, pool, want, 3*time.Minute, 200*time.Millisecond); err != nil {
 		return err
 	}
-	problems, err := summarise(ctx, pool, js, sc, out)
+	problems, err := summarise(ctx, pool, js, sc, len(good), len(poison), out)
 	if err != nil {
 		return err
 	}
@@ -290,18 +291,17 @@ func progress(ctx context.Context, pool *pgxpool.Pool, out io.Writer, at time.Ti
 
 // patientSummary is what the store says of one patient.
 type patientSummary struct {
-	gases       int
-	derived     int // current, valid derived values
-	retracted   int // current heads retracted
-	amended     int // derivation versions amended or corrected
-	refusals    map[string]int
-	deadLetters int
-	latest      map[string]string // kind -> value of the latest blood gas
+	gases     int
+	derived   int // current, valid derived values
+	retracted int // current heads retracted
+	amended   int // derivation versions amended or corrected
+	refusals  map[string]int
+	latest    map[string]string // kind -> value of the latest blood gas
 }
 
 // summarise prints what happened per patient and checks every story's
 // expectation and the message accounting; it returns the problems found.
-func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, sc scenario.Scenario, out io.Writer) ([]string, error) {
+func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, sc scenario.Scenario, good, poison int, out io.Writer) ([]string, error) {
 	const headsSQL = `
 		SELECT h.patient_ref, h.blood_gas_key, h.kind, h.refused, coalesce(r.reason, ''),
 		       coalesce(d.status, ''), coalesce(d.value, 0), coalesce(d.unit, ''), coalesce(d.effective, r.effective)
@@ -375,6 +375,9 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 		s := get(p.Ref)
 		want := p.Expect
 		var bad []string
+		if s.gases != want.BloodGases {
+			bad = append(bad, fmt.Sprintf("%d blood gases in the store, %d sent", s.gases, want.BloodGases))
+		}
 		if s.derived < want.MinDerived {
 			bad = append(bad, fmt.Sprintf("%d derived values, expected at least %d", s.derived, want.MinDerived))
 		}
@@ -408,15 +411,6 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 
 	// Accounting: every message is in the inbox or a dead letter, every
 	// derivation version was published once with its Provenance.
-	good, poison := map[string]bool{}, map[string]bool{}
-	for _, m := range sc.Messages {
-		k := sha256.Sum256(m.Payload)
-		if m.Malformed {
-			poison[hex.EncodeToString(k[:])] = true
-		} else {
-			good[hex.EncodeToString(k[:])] = true
-		}
-	}
 	var inbox, dead, versions, unpublished int
 	if err := pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM inbox), (SELECT count(*) FROM dead_letter),
 		(SELECT count(*) FROM derivation), (SELECT count(*) FROM outbox WHERE published_at IS NULL)`).Scan(&inbox, &dead, &versions, &unpublished); err != nil {
@@ -427,12 +421,12 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 		return nil, err
 	}
 	fmt.Fprintf(out, "\nAccounting: %d distinct inputs sent, %d recorded; %d malformed sent, %d dead letters; %d derivation versions, %d output messages (Observation + Provenance each, plus dead-letter copies); %d unpublished\n",
-		len(good), inbox, len(poison), dead, versions, out2, unpublished)
-	if inbox != len(good) {
-		problems = append(problems, fmt.Sprintf("%d inputs recorded of %d sent", inbox, len(good)))
+		good, inbox, poison, dead, versions, out2, unpublished)
+	if inbox != good {
+		problems = append(problems, fmt.Sprintf("%d inputs recorded of %d sent", inbox, good))
 	}
-	if dead != len(poison) {
-		problems = append(problems, fmt.Sprintf("%d dead letters of %d malformed sent", dead, len(poison)))
+	if dead != poison {
+		problems = append(problems, fmt.Sprintf("%d dead letters of %d malformed sent", dead, poison))
 	}
 	if out2 != 2*versions+dead {
 		problems = append(problems, fmt.Sprintf("%d output messages, expected %d", out2, 2*versions+dead))
@@ -504,4 +498,18 @@ func formatLatest(m map[string]string) string {
 		parts[i] = k + " " + strings.TrimSuffix(m[k], " 1") // UCUM "1": a plain number
 	}
 	return strings.Join(parts, "; ")
+}
+
+// scenarioInputs returns the distinct payloads of a scenario by inbox key
+// (SHA-256), split into good ones and malformed ones.
+func scenarioInputs(sc scenario.Scenario) (good, poison map[[32]byte]bool) {
+	good, poison = map[[32]byte]bool{}, map[[32]byte]bool{}
+	for _, m := range sc.Messages {
+		if m.Malformed {
+			poison[sha256.Sum256(m.Payload)] = true
+		} else {
+			good[sha256.Sum256(m.Payload)] = true
+		}
+	}
+	return good, poison
 }

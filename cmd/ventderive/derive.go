@@ -98,17 +98,9 @@ func runDerive(ctx context.Context, args []string, e env) error {
 	if err != nil {
 		return err
 	}
-	codes := fhirmap.DefaultCodes()
-	if c.aliases != "" {
-		f, err := os.Open(c.aliases)
-		if err != nil {
-			return fmt.Errorf("open aliases: %w", err)
-		}
-		codes, err = codes.WithAliases(f)
-		f.Close()
-		if err != nil {
-			return fmt.Errorf("read aliases %s: %w", c.aliases, err)
-		}
+	codes, err := loadCodes(c.aliases)
+	if err != nil {
+		return err
 	}
 	var facts []fhirmap.Fact
 	for _, name := range c.files {
@@ -144,7 +136,8 @@ func runDerive(ctx context.Context, args []string, e env) error {
 	return nil
 }
 
-// maxInput bounds one input file, as the service bounds a message.
+// maxInput bounds one input file (an NDJSON file holds many messages; the
+// service bounds one message at fhirmap.MaxResourceBytes).
 const maxInput = 64 << 20
 
 func readInput(name string, stdin io.Reader) ([]byte, error) {

@@ -135,13 +135,27 @@ func (s *settings) resolved() []any {
 	return out
 }
 
-// maskURL hides a password in a URL (or in a key=value DSN).
+// maskURL hides the passwords of a URL, of a comma-separated list of URLs
+// (as --nats-url takes), or of a key=value DSN. A URL it cannot parse is
+// replaced whole, since it may hold a password.
 func maskURL(raw string) string {
-	if u, err := url.Parse(raw); err == nil && u.User != nil {
-		if _, ok := u.User.Password(); ok {
-			u.User = url.UserPassword(u.User.Username(), "****")
+	if strings.Contains(raw, "://") {
+		parts := strings.Split(raw, ",")
+		for i, p := range parts {
+			u, err := url.Parse(strings.TrimSpace(p))
+			switch {
+			case err != nil:
+				parts[i] = "(unparsable url)"
+			case u.User != nil:
+				if _, ok := u.User.Password(); ok {
+					u.User = url.UserPassword(u.User.Username(), "****")
+				}
+				parts[i] = u.String()
+			default:
+				parts[i] = u.String()
+			}
 		}
-		return u.String()
+		return strings.Join(parts, ",")
 	}
 	if strings.Contains(raw, "password=") {
 		fields := strings.Fields(raw)
@@ -228,8 +242,8 @@ func newLogger(e env, level string) (*slog.Logger, error) {
 	return slog.New(slog.NewJSONHandler(e.stderr, &slog.HandlerOptions{Level: l})), nil
 }
 
-// serve runs the service until ctx ends. ready, when not nil, is closed once
-// the pipeline consumes (the demo waits for it).
+// serve runs the service until ctx ends. ready, when not nil, receives the
+// pipeline once it consumes (the demo waits for it).
 func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *consumer.Pipeline) error {
 	site := fhirmap.DefaultSite()
 	site.Window = c.pipeline.Window
@@ -242,17 +256,9 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	if err := site.Validate(); err != nil {
 		return fmt.Errorf("site settings: %w", err)
 	}
-	codes := fhirmap.DefaultCodes()
-	if c.codeAliases != "" {
-		f, err := os.Open(c.codeAliases)
-		if err != nil {
-			return fmt.Errorf("code aliases: %w", err)
-		}
-		codes, err = codes.WithAliases(f)
-		f.Close()
-		if err != nil {
-			return fmt.Errorf("code aliases %s: %w", c.codeAliases, err)
-		}
+	codes, err := loadCodes(c.codeAliases)
+	if err != nil {
+		return err
 	}
 
 	// Start order: database, NATS, pipeline, HTTP. Stop in reverse.
@@ -344,12 +350,33 @@ func connectNATS(c serveConfig, log *slog.Logger) (*nats.Conn, error) {
 	return nc, nil
 }
 
+// loadCodes returns the standard code table, extended with the site's
+// alias file when path is not empty (serve --code-aliases, derive --aliases).
+func loadCodes(path string) (*fhirmap.CodeTable, error) {
+	codes := fhirmap.DefaultCodes()
+	if path == "" {
+		return codes, nil
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, fmt.Errorf("code aliases: %w", err)
+	}
+	defer f.Close()
+	if codes, err = codes.WithAliases(f); err != nil {
+		return nil, fmt.Errorf("code aliases %s: %w", path, err)
+	}
+	return codes, nil
+}
+
 // natsAuth turns the credentials and TLS settings shared by serve and
 // simulate into connection options.
 func natsAuth(creds, caFile, certFile, keyFile string) ([]nats.Option, error) {
 	var opts []nats.Option
 	if creds != "" {
 		opts = append(opts, nats.UserCredentials(creds))
+	}
+	if (certFile == "") != (keyFile == "") {
+		return nil, errors.New("nats tls: a client certificate needs its key, and a key its certificate")
 	}
 	if caFile == "" && certFile == "" {
 		return opts, nil

@@ -70,6 +70,9 @@ func TestMaskURL(t *testing.T) {
 		{"postgres://svc:pw@db/x", "postgres://svc:%2A%2A%2A%2A@db/x"},
 		{"postgres://svc@db/x", "postgres://svc@db/x"},
 		{"host=db user=svc password=pw dbname=x", "host=db user=svc password=**** dbname=x"},
+		// --nats-url takes a list; every member's password is hidden.
+		{"nats://u:secret@a:4222,nats://u:secret@b:4222", "nats://u:%2A%2A%2A%2A@a:4222,nats://u:%2A%2A%2A%2A@b:4222"},
+		{"nats://a:4222, nats://u:secret@b:4222", "nats://a:4222,nats://u:%2A%2A%2A%2A@b:4222"},
 	} {
 		if got := maskURL(tc.in); got != tc.want {
 			t.Errorf("maskURL(%q) = %q, want %q", tc.in, got, tc.want)

@@ -9,7 +9,6 @@ import (
 	"io"
 	"log/slog"
 	"maps"
-	"net/url"
 	"slices"
 	"strings"
 	"time"
@@ -88,7 +87,7 @@ func runSimulate(ctx context.Context, args []string, e env) error {
 	if c.dryRun {
 		return dryRun(e.stdout, sc, c.prefix)
 	}
-	log.Info("simulate", "nats_url", redactURLs(c.natsURL), "creds", c.creds, "tls_ca", c.tlsCA,
+	log.Info("simulate", "nats_url", maskURL(c.natsURL), "creds", c.creds, "tls_ca", c.tlsCA,
 		"seed", c.seed, "start", sc.Start.Format(time.RFC3339), "duration", sc.Duration.String(),
 		"vent_every", c.ventEvery.String(), "speed", c.speed, "subject_prefix", c.prefix,
 		"messages", len(sc.Messages), "patients", len(sc.Patients))
@@ -326,17 +325,4 @@ func sleepUntil(ctx context.Context, t time.Time) error {
 	case <-tm.C:
 		return nil
 	}
-}
-
-// redactURLs masks the password of each comma-separated URL for logging.
-func redactURLs(raw string) string {
-	parts := strings.Split(raw, ",")
-	for i, p := range parts {
-		if u, err := url.Parse(strings.TrimSpace(p)); err == nil {
-			parts[i] = u.Redacted()
-		} else {
-			parts[i] = "(unparsable url)"
-		}
-	}
-	return strings.Join(parts, ",")
 }
