@@ -448,7 +448,8 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			}
 		}
 	default:
-		g.stop = &stop{ReasonNotBloodGas, "unknown kind " + kind}
+		// Kinds come from Catalogue; another is a programming error.
+		panic("fhirmap: derive: unknown kind " + kind)
 	}
 	if err != nil {
 		g.fail(err)

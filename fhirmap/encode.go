@@ -18,7 +18,6 @@ import (
 
 // Code systems of FHIR R4 and HL7 terminology used in the output.
 const (
-	systemUCUM             = "http://unitsofmeasure.org"
 	systemObsCategory      = "http://terminology.hl7.org/CodeSystem/observation-category"
 	systemInterpretation   = "http://terminology.hl7.org/CodeSystem/v3-ObservationInterpretation"
 	systemObservationValue = "http://terminology.hl7.org/CodeSystem/v3-ObservationValue"
@@ -125,7 +124,7 @@ func observation(d Derivation, version int, site Site) (fhir.Observation, error)
 	}
 	if !retracted {
 		v := json.Number(FormatValue(k.Code, d.Result.Value))
-		obs.ValueQuantity = &fhir.Quantity{Value: &v, Unit: ptr(k.Unit), System: ptr(systemUCUM), Code: ptr(k.Unit)}
+		obs.ValueQuantity = &fhir.Quantity{Value: &v, Unit: ptr(k.Unit), System: ptr(UCUMSystem), Code: ptr(k.Unit)}
 		if in := d.Result.Interpretation; in.Code != "" || in.Text != "" {
 			cc := fhir.CodeableConcept{Text: ptr(interpretationText(in))}
 			if in.Code != "" {

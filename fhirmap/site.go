@@ -33,7 +33,7 @@ const (
 	DefaultTargetPaCO2mmHg = 40
 	// DefaultRQ is the respiratory quotient of the estimated-VCO2 method
 	// (Weir step), the usual assumption for a mixed diet [common practice].
-	DefaultRQ = 0.8
+	DefaultRQ = physio.DefaultRQ
 	// DefaultWindowBefore and DefaultWindowAfter bound the pairing window
 	// around a blood gas; see the README section "Pairing window" for why.
 	DefaultWindowBefore = 30 * time.Minute

@@ -3,6 +3,8 @@ package fhirmap
 import (
 	"math"
 	"strings"
+
+	"github.com/ventderive/ventderive/physio"
 )
 
 // UCUMSystem is the FHIR system URI of UCUM unit codes.
@@ -13,8 +15,8 @@ const UCUMSystem = "http://unitsofmeasure.org"
 // check it against the specification line by line.
 const (
 	// ucumMHgKPa: m[Hg] "meter of mercury column" = 133.3220 kPa (UCUM, class
-	// clinical). Hence 1 mm[Hg] = 133.322 Pa.
-	ucumMHgKPa = 133.3220
+	// clinical). Hence 1 mm[Hg] = 133.322 Pa, the value physio converts with.
+	ucumMHgKPa = physio.PascalPerMmHg
 	// ucumMH2OKPa: m[H2O] "meter of water column" = 9.80665 kPa (UCUM, class
 	// clinical). Hence 1 cm[H2O] = 98.0665 Pa.
 	ucumMH2OKPa = 9.80665
@@ -34,14 +36,13 @@ const (
 
 // Derived conversion factors into the canonical units.
 const (
-	mmHgPerKPa   = 1 / (ucumMHgKPa / 1000)             // 1 mm[Hg] = 0.133322 kPa -> 7.500638 mm[Hg] per kPa
-	kgPerPound   = ucumPoundGrains * ucumGrainMg / 1e6 // 453.59237 g -> 0.45359237 kg
-	cmPerInch    = ucumInchCm                          // 2.54
-	mLPerL       = 1000.0                              // UCUM L = dm3; mL = 1e-3 L
-	cmPerM       = 100.0                               // UCUM prefix c = 1e-2
-	kgPerG       = 1e-3                                // UCUM prefix k = 1e3
-	fracPerPct   = 1e-2                                // UCUM % = 10*-2
-	cmH2OPerMmHg = ucumMHgKPa / ucumMH2OKPa / 10       // 1 mm[Hg] = 1.359510 cm[H2O]; kept for reference and tests
+	mmHgPerKPa = 1 / (ucumMHgKPa / 1000)             // 1 mm[Hg] = 0.133322 kPa -> 7.500638 mm[Hg] per kPa
+	kgPerPound = ucumPoundGrains * ucumGrainMg / 1e6 // 453.59237 g -> 0.45359237 kg
+	cmPerInch  = ucumInchCm                          // 2.54
+	mLPerL     = 1000.0                              // UCUM L = dm3; mL = 1e-3 L
+	cmPerM     = 100.0                               // UCUM prefix c = 1e-2
+	kgPerG     = 1e-3                                // UCUM prefix k = 1e3
+	fracPerPct = 1e-2                                // UCUM % = 10*-2
 )
 
 // Unit returns the canonical UCUM unit of q: the unit of Fact.Value for

@@ -6,6 +6,9 @@ import (
 	"testing"
 )
 
+// cmH2OPerMmHg: 1 mm[Hg] = 1.359510 cm[H2O], from the UCUM definitions in units.go.
+const cmH2OPerMmHg = ucumMHgKPa / ucumMH2OKPa / 10
+
 func near(a, b, tol float64) bool { return math.Abs(a-b) <= tol }
 
 // TestUCUMFactors checks each conversion factor against the published

@@ -194,8 +194,7 @@ func TestDeadSpaceFloorFlag(t *testing.T) {
 		{"enghoff_0.1494_flagged", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 50*(1-0.1494)) }, true, "mixed-expired PCO2"},
 		{"enghoff_0.1496_reported_0.150_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 50*(1-0.1496)) }, false, ""},
 		{"enghoff_0.325_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 27) }, false, ""},
-		// VD/VT = 1 - 0.863 x 200 / (24 x 40) = 0.8202 -> not flagged;
-		// with VE 5.0 and PaCO2 40: 1 - 0.863 x 200 / 200 = 0.137 -> flagged.
+		// VE 5.0 L/min and PaCO2 40 mm[Hg]: 1 - 0.863 x 200 / 200 = 0.137 -> flagged.
 		{"vco2_0.137_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(40, 200, 5, 37) }, true, "minute volume and VCO2"},
 		{"vco2_0.6164_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, false, ""},
 		// Harris-Benedict VCO2 188.16 mL/min: 1 - 0.86 x 188.16 / (4 x 47.5) = 0.148 -> flagged.
