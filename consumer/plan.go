@@ -3,6 +3,7 @@ package consumer
 import (
 	"fmt"
 	"slices"
+	"strings"
 	"time"
 
 	"github.com/ventderive/ventderive/fhirmap"
@@ -96,22 +97,17 @@ func (p Planner) Plan(snap Snapshot, recorded time.Time) (Changes, error) {
 			ch.Refusals = append(ch.Refusals, r)
 		}
 		// Keys derived before that this run produced nothing for at all.
+		prefix := fhirmap.DerivationKey(snap.Patient, key, "") // "<patient>|<blood gas>|"
 		for _, cur := range snap.Current {
-			if seen[cur.Key] || cur.Refused || cur.Status == fhirmap.StatusEnteredInError || !sameBloodGas(cur.Key, snap.Patient, key) {
+			if seen[cur.Key] || cur.Refused || cur.Status == fhirmap.StatusEnteredInError || !strings.HasPrefix(cur.Key, prefix) {
 				continue
 			}
-			if err := p.emit(&ch, retraction(cur, bloodGas[key], snap.Patient, "basis-withdrawn"), cur.Version+1, recorded); err != nil {
+			if err := p.emit(&ch, retraction(cur, bloodGas[key], snap.Patient, fhirmap.ReasonBasisWithdrawn), cur.Version+1, recorded); err != nil {
 				return Changes{}, err
 			}
 		}
 	}
 	return ch, nil
-}
-
-// sameBloodGas reports whether a derivation key belongs to the blood gas.
-func sameBloodGas(derivationKey, patient, bloodGasKey string) bool {
-	prefix := patient + "|" + bloodGasKey + "|"
-	return len(derivationKey) > len(prefix) && derivationKey[:len(prefix)] == prefix
 }
 
 func nextVersion(cur Stored, ok bool) int {
