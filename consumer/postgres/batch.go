@@ -63,19 +63,10 @@ func (s *Store) IngestBatch(ctx context.Context, msgs []consumer.Message, plan c
 	if len(msgs) == 0 {
 		return out
 	}
-	var err error
-	for attempt := 1; ; attempt++ {
+	err := s.retry(ctx, "group ingest", func() error {
 		clear(out)
-		err = s.ingestBatchOnce(ctx, msgs, plan, out)
-		if err == nil || attempt == s.tries || !retryInPlace(err) || ctx.Err() != nil {
-			break
-		}
-		s.log.Debug("group ingest retried", "attempt", attempt, "messages", len(msgs), "error", err)
-		select {
-		case <-time.After(time.Duration(attempt) * 20 * time.Millisecond):
-		case <-ctx.Done():
-		}
-	}
+		return s.ingestBatchOnce(ctx, msgs, plan, out)
+	})
 	if err == nil {
 		return out
 	}

@@ -19,11 +19,10 @@ import (
 
 // Store is the PostgreSQL provenance store. It is safe for concurrent use.
 type Store struct {
-	pool  *pgxpool.Pool
-	key   []byte
-	log   *slog.Logger
-	now   func() time.Time
-	tries int
+	pool *pgxpool.Pool
+	key  []byte
+	log  *slog.Logger
+	now  func() time.Time
 }
 
 var _ consumer.Store = (*Store)(nil)
@@ -44,7 +43,7 @@ type Options struct {
 // New returns a Store over pool. The pool's role needs the rights
 // deploy/postgres/roles.sql gives ventderive_writer.
 func New(pool *pgxpool.Pool, opts Options) *Store {
-	s := &Store{pool: pool, key: opts.PatientKey, log: opts.Logger, now: opts.Now, tries: 3}
+	s := &Store{pool: pool, key: opts.PatientKey, log: opts.Logger, now: opts.Now}
 	if s.log == nil {
 		s.log = slog.New(slog.DiscardHandler)
 	}
@@ -261,19 +260,32 @@ ON CONFLICT (msg_id) DO NOTHING`
 // transient failures are returned wrapped with consumer.ErrTransient.
 func (s *Store) Ingest(ctx context.Context, msg consumer.Message, plan consumer.PlanFunc) (consumer.IngestResult, error) {
 	var res consumer.IngestResult
-	var err error
-	for attempt := 1; ; attempt++ {
+	err := s.retry(ctx, "ingest", func() (err error) {
 		res, err = s.ingestOnce(ctx, msg, plan)
-		if err == nil || attempt == s.tries || !retryInPlace(err) || ctx.Err() != nil {
-			break
+		return err
+	})
+	return res, err
+}
+
+// ingestTries bounds the attempts at one transaction that failed with a
+// serialization failure or a deadlock.
+const ingestTries = 3
+
+// retry runs fn until it succeeds, fails with an error retryInPlace does not
+// accept, or has been tried ingestTries times, waiting 20 ms, then 40 ms
+// between attempts.
+func (s *Store) retry(ctx context.Context, op string, fn func() error) error {
+	for attempt := 1; ; attempt++ {
+		err := fn()
+		if err == nil || attempt == ingestTries || !retryInPlace(err) || ctx.Err() != nil {
+			return err
 		}
-		s.log.Debug("ingest retried", "attempt", attempt, "error", err)
+		s.log.Debug(op+" retried", "attempt", attempt, "error", err)
 		select {
 		case <-time.After(time.Duration(attempt) * 20 * time.Millisecond):
 		case <-ctx.Done():
 		}
 	}
-	return res, err
 }
 
 // retryInPlace reports serialization failures and deadlocks: the
