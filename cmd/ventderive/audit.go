@@ -8,15 +8,19 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"math"
+	"regexp"
 	"slices"
 	"strconv"
 	"strings"
 	"text/tabwriter"
 	"time"
 
+	"github.com/google/uuid"
 	"github.com/jackc/pgx/v5/pgxpool"
 
 	"github.com/ventderive/ventderive/consumer/postgres"
+	"github.com/ventderive/ventderive/fhirmap"
 )
 
 func init() {
@@ -24,25 +28,56 @@ func init() {
 }
 
 const auditUsage = `usage: ventderive audit <question> [flags]
-questions:
+questions (time basis: the blood gas's effective time, except deadletters):
   show <observation-id or key>  one derived value: every version, its inputs, times, offsets,
                                 constants, assumptions, basis, what superseded what, refusals
   list           derivation versions       [--patient REF] [--from T] [--to T] [--kind K] [--algorithm V]
-  refusals       refusals by reason code   [--patient REF] [--from T] [--to T] [--kind K]
-  discrepancies  measured minus predicted PaCO2 at or above --threshold mm[Hg] (default 5)
-  changes        values changed by amendment, correction or retraction
-  daily          derivations, retractions, refusals and dead letters per UTC day (by recording time)
-  deadletters    poison messages (without their bytes)
+  refusals       refusals counted by reason and kind  [--patient] [--from] [--to] [--kind] [--reason R]
+  discrepancies  current measured minus predicted PaCO2 at or beyond --threshold mmHg (default 5)
+                 [--patient] [--from] [--to] [--algorithm]
+  changes        values changed by amendment, correction, recomputation or retraction
+                 [--patient] [--from] [--to] [--kind] [--algorithm]
+  daily          blood gases, derivation versions, retractions and refusals per UTC day of the
+                 blood gas  [--patient] [--from] [--to] [--kind] [--algorithm]
+  deadletters    poison messages (without their bytes), by RECORDING time  [--from] [--to] [--reason]
 flags common to all: --database-url URL (default $DATABASE_URL; normally the reviewer role)
-  --format table|json|csv (default table) --limit N (default 1000)
-times: RFC 3339 (2026-03-01T08:00:00Z) or a UTC date (2026-03-01); --to is exclusive.
+  --format table|json|csv (default table)
+paging (all but show): --limit N rows (default 1000, at most 10000) --offset N rows skipped;
+  when more rows exist the table ends with a "more rows" line naming the next --offset, CSV with a
+  "# more rows" comment line, JSON with "more": true and "nextOffset".
+times: RFC 3339 (2026-03-01T08:00:00Z) or a UTC date (2026-03-01); --from inclusive, --to
+  exclusive, --from before --to. Every row also shows its recording time in its own column.
+values: as published (rounded to the kind's decimals, display units); JSON and CSV add the stored
+  full precision. A retraction (entered-in-error) was published without a value and shows none.
 The audit reads only the review_* views and opens read-only transactions.`
 
-// auditQuestions are the questions runAudit answers.
-var auditQuestions = []string{"show", "list", "refusals", "discrepancies", "changes", "daily", "deadletters"}
+// auditQuestion says which filters a question takes: a filter given to a
+// question that cannot apply it is a usage error, not silently ignored.
+type auditQuestion struct {
+	name  string
+	flags []string // filter flags it accepts besides the common ones
+}
+
+var auditQuestions = []auditQuestion{
+	{"show", nil},
+	{"list", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
+	{"refusals", []string{"patient", "from", "to", "kind", "reason", "limit", "offset"}},
+	{"discrepancies", []string{"patient", "from", "to", "algorithm", "threshold", "limit", "offset"}},
+	{"changes", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
+	{"daily", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
+	{"deadletters", []string{"from", "to", "reason", "limit", "offset"}},
+}
+
+var (
+	// patientRefRE is the store's CHECK on patient references.
+	patientRefRE = regexp.MustCompile(`^Patient/[A-Za-z0-9.-]{1,64}$`)
+	// codeRE is the store's CHECK on reason codes.
+	codeRE = regexp.MustCompile(`^[a-z0-9]+(-[a-z0-9]+)*$`)
+)
 
 // runAudit answers one reviewer question. Queries live in
-// consumer/postgres (Reviewer); this file parses flags and formats.
+// consumer/postgres (Reviewer); this file checks arguments and formats.
+// Every argument is checked before connecting.
 func runAudit(ctx context.Context, args []string, e env) error {
 	if len(args) == 0 || args[0] == "-h" || args[0] == "--help" || args[0] == "help" {
 		fmt.Fprintln(e.stderr, auditUsage)
@@ -51,7 +86,16 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		}
 		return nil
 	}
+	usageErr := func(msg string) error {
+		fmt.Fprintf(e.stderr, "ventderive audit: %s\n", msg)
+		return errUsage
+	}
 	question, args := args[0], args[1:]
+	qi := slices.IndexFunc(auditQuestions, func(q auditQuestion) bool { return q.name == question })
+	if qi < 0 {
+		return usageErr(fmt.Sprintf("unknown question %q (want one of %s)", question, questionNames()))
+	}
+	q := auditQuestions[qi]
 	fs := flag.NewFlagSet("audit "+question, flag.ContinueOnError)
 	fs.SetOutput(e.stderr)
 	fs.Usage = func() { fmt.Fprintln(e.stderr, auditUsage) }
@@ -60,12 +104,14 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	var f postgres.Filter
 	var from, to string
 	fs.StringVar(&f.Patient, "patient", "", "patient reference, e.g. Patient/lg-icu-0001")
-	fs.StringVar(&from, "from", "", "start time (inclusive)")
-	fs.StringVar(&to, "to", "", "end time (exclusive)")
+	fs.StringVar(&from, "from", "", "start of the period (inclusive)")
+	fs.StringVar(&to, "to", "", "end of the period (exclusive)")
 	fs.StringVar(&f.Kind, "kind", "", "derivation kind code")
 	fs.StringVar(&f.Algorithm, "algorithm", "", "algorithm version")
-	fs.IntVar(&f.Limit, "limit", 1000, "maximum rows")
-	threshold := fs.Float64("threshold", 5, "discrepancies: minimum |measured - predicted| in mm[Hg]")
+	fs.StringVar(&f.Reason, "reason", "", "refusal or dead-letter reason code")
+	fs.IntVar(&f.Limit, "limit", postgres.DefaultLimit, "rows per page")
+	fs.IntVar(&f.Offset, "offset", 0, "rows to skip")
+	threshold := fs.Float64("threshold", 5, "discrepancies: minimum |measured - predicted| in mmHg")
 	// Flags may follow the positional argument of show.
 	var positional []string
 	for {
@@ -81,36 +127,21 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		positional = append(positional, fs.Arg(0))
 		args = fs.Args()[1:]
 	}
-	usageErr := func(msg string) error {
-		fmt.Fprintf(e.stderr, "ventderive audit: %s\n", msg)
-		return errUsage
+	var bad []string
+	fs.Visit(func(fl *flag.Flag) {
+		if fl.Name != "database-url" && fl.Name != "format" && !slices.Contains(q.flags, fl.Name) {
+			bad = append(bad, "--"+fl.Name)
+		}
+	})
+	if len(bad) > 0 {
+		return usageErr(fmt.Sprintf("%s does not apply to %s", strings.Join(bad, ", "), question))
 	}
-	if !slices.Contains(auditQuestions, question) {
-		return usageErr(fmt.Sprintf("unknown question %q", question))
-	}
-	var err error
-	if f.From, err = parseAuditTime(from); err != nil {
-		return usageErr("--from: " + err.Error())
-	}
-	if f.To, err = parseAuditTime(to); err != nil {
-		return usageErr("--to: " + err.Error())
-	}
-	switch *format {
-	case "table", "json", "csv":
-	default:
-		return usageErr("--format must be table, json or csv")
+	if err := checkAuditArgs(q, &f, from, to, *format, *threshold, positional); err != nil {
+		return usageErr(err.Error())
 	}
 	if *dbURL == "" {
 		return usageErr("no database: set --database-url or DATABASE_URL")
 	}
-	wantArgs := 0
-	if question == "show" {
-		wantArgs = 1
-	}
-	if len(positional) != wantArgs {
-		return usageErr(fmt.Sprintf("%s takes %d argument(s)", question, wantArgs))
-	}
-
 	cfg, err := pgxpool.ParseConfig(*dbURL)
 	if err != nil {
 		return usageErr("--database-url: cannot parse")
@@ -138,64 +169,129 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		}
 		return out.show(h)
 	case "list":
-		vs, err := r.List(ctx, f)
+		p, err := r.List(ctx, f)
 		if err != nil {
 			return fmt.Errorf("audit list: %w", err)
 		}
-		return writeRows(out, vs, []string{"RECORDED", "PATIENT", "BLOOD GAS", "EFFECTIVE", "KIND", "VERSION", "STATUS", "VALUE", "UNIT", "METHOD", "ALGORITHM", "CURRENT", "OBSERVATION"},
-			func(v postgres.Version) []string {
-				return []string{ts(v.Recorded), v.Patient, v.BloodGas, ts(v.Effective), v.Kind, strconv.Itoa(v.Version), v.Status,
-					num(v.Value), v.Unit, v.Method + " v" + v.MethodVersion, v.Algorithm, yes(v.Current), v.ObservationID}
-			})
+		return writePage(out, p, listColumns)
 	case "refusals":
-		cs, err := r.Refusals(ctx, f)
+		p, err := r.Refusals(ctx, f)
 		if err != nil {
 			return fmt.Errorf("audit refusals: %w", err)
 		}
-		return writeRows(out, cs, []string{"REASON", "KIND", "COUNT", "CURRENT", "PATIENTS", "FIRST BLOOD GAS", "LAST BLOOD GAS"},
-			func(c postgres.ReasonCount) []string {
-				return []string{c.Reason, c.Kind, strconv.Itoa(c.Count), strconv.Itoa(c.Current), strconv.Itoa(c.Patients), ts(c.First), ts(c.Last)}
-			})
+		return writePage(out, p, refusalCountColumns)
 	case "discrepancies":
-		ds, err := r.Discrepancies(ctx, *threshold, f)
+		p, err := r.Discrepancies(ctx, *threshold, f)
 		if err != nil {
 			return fmt.Errorf("audit discrepancies: %w", err)
 		}
-		return writeRows(out, ds, []string{"PATIENT", "BLOOD GAS", "EFFECTIVE", "MEASURED-PREDICTED mm[Hg]", "MEASURED", "PREDICTED", "STATUS", "VERSION", "INTERPRETATION"},
-			func(d postgres.Discrepancy) []string {
-				return []string{d.Patient, d.BloodGas, ts(d.Effective), num(d.DifferenceMmHg), optNum(d.MeasuredMmHg), optNum(d.PredictedMmHg),
-					d.Status, strconv.Itoa(d.Version), d.Interpretation}
-			})
+		return writePage(out, p, discrepancyColumns)
 	case "changes":
-		cs, err := r.Changes(ctx, f)
+		p, err := r.Changes(ctx, f)
 		if err != nil {
 			return fmt.Errorf("audit changes: %w", err)
 		}
-		return writeRows(out, cs, []string{"RECORDED", "PATIENT", "BLOOD GAS", "KIND", "VERSIONS", "FROM", "TO", "UNIT", "STATUS", "RETRACTED"},
-			func(c postgres.Change) []string {
-				return []string{ts(c.Recorded), c.Patient, c.BloodGas, c.Kind, fmt.Sprintf("%d->%d", c.FromVersion, c.ToVersion),
-					num(c.FromValue), num(c.ToValue), c.Unit, c.FromStatus + "->" + c.ToStatus, c.Retracted}
-			})
+		return writePage(out, p, changeColumns)
 	case "daily":
-		ds, err := r.Daily(ctx, f)
+		p, err := r.Daily(ctx, f)
 		if err != nil {
 			return fmt.Errorf("audit daily: %w", err)
 		}
-		return writeRows(out, ds, []string{"DAY (UTC)", "DERIVATIONS", "RETRACTIONS", "REFUSALS", "DEAD LETTERS"},
-			func(d postgres.DayCount) []string {
-				return []string{d.Day, strconv.Itoa(d.Derivations), strconv.Itoa(d.Retractions), strconv.Itoa(d.Refusals), strconv.Itoa(d.DeadLetters)}
-			})
+		return writePage(out, p, dailyColumns)
 	case "deadletters":
-		ds, err := r.DeadLetters(ctx, f)
+		p, err := r.DeadLetters(ctx, f)
 		if err != nil {
 			return fmt.Errorf("audit deadletters: %w", err)
 		}
-		return writeRows(out, ds, []string{"RECORDED", "SUBJECT", "STREAM SEQ", "BYTES", "REASON", "DETAIL", "INBOX KEY"},
-			func(d postgres.DeadLetterRecord) []string {
-				return []string{ts(d.Recorded), d.Subject, strconv.FormatInt(d.StreamSeq, 10), strconv.Itoa(d.SizeBytes), d.Reason, d.Detail, d.InboxKey}
-			})
+		return writePage(out, p, deadLetterColumns)
 	}
 	return usageErr(fmt.Sprintf("unknown question %q", question))
+}
+
+func questionNames() string {
+	names := make([]string, len(auditQuestions))
+	for i, q := range auditQuestions {
+		names[i] = q.name
+	}
+	return strings.Join(names, ", ")
+}
+
+// checkAuditArgs checks every argument of question q, naming the one at
+// fault; it fills f.From and f.To.
+func checkAuditArgs(q auditQuestion, f *postgres.Filter, from, to, format string, threshold float64, positional []string) error {
+	switch format {
+	case "table", "json", "csv":
+	default:
+		return fmt.Errorf("--format %q: want table, json or csv", format)
+	}
+	if f.Patient != "" && !patientRefRE.MatchString(f.Patient) {
+		return fmt.Errorf("--patient %q: want a FHIR reference Patient/<id> (id: 1-64 of A-Z a-z 0-9 . -)", f.Patient)
+	}
+	if f.Kind != "" {
+		if _, ok := fhirmap.LookupKind(f.Kind); !ok {
+			return fmt.Errorf("--kind %q: not a kind of the catalogue (ventderive derive --help lists them)", f.Kind)
+		}
+	}
+	if f.Reason != "" && !codeRE.MatchString(f.Reason) {
+		return fmt.Errorf("--reason %q: want a reason code in lower-case-with-dashes", f.Reason)
+	}
+	if f.Algorithm != "" && strings.TrimSpace(f.Algorithm) != f.Algorithm {
+		return fmt.Errorf("--algorithm %q: surrounding spaces", f.Algorithm)
+	}
+	var err error
+	if f.From, err = parseAuditTime(from); err != nil {
+		return fmt.Errorf("--from: %w", err)
+	}
+	if f.To, err = parseAuditTime(to); err != nil {
+		return fmt.Errorf("--to: %w", err)
+	}
+	if !f.From.IsZero() && !f.To.IsZero() && !f.From.Before(f.To) {
+		return fmt.Errorf("--from %s is not before --to %s (--to is exclusive)", from, to)
+	}
+	if f.Limit < 1 || f.Limit > postgres.MaxLimit {
+		return fmt.Errorf("--limit %d: want 1 to %d", f.Limit, postgres.MaxLimit)
+	}
+	if f.Offset < 0 {
+		return fmt.Errorf("--offset %d: want 0 or more", f.Offset)
+	}
+	if math.IsNaN(threshold) || math.IsInf(threshold, 0) || threshold < 0 {
+		return fmt.Errorf("--threshold %g: want a finite number of mmHg, 0 or more", threshold)
+	}
+	want := 0
+	if q.name == "show" {
+		want = 1
+	}
+	if len(positional) != want {
+		if want == 1 {
+			return fmt.Errorf("show takes one argument, an Observation id or a key <Patient/id>|<blood-gas reference>|<kind>")
+		}
+		return fmt.Errorf("%s takes no argument, got %q", q.name, positional[0])
+	}
+	if want == 1 {
+		return checkShowArg(positional[0])
+	}
+	return nil
+}
+
+// checkShowArg accepts an Observation id (a UUID) or a derivation key.
+func checkShowArg(s string) error {
+	if _, err := uuid.Parse(s); err == nil {
+		return nil
+	}
+	parts := strings.Split(s, "|")
+	if len(parts) != 3 {
+		return fmt.Errorf("show %q: want an Observation id (UUID) or a key <Patient/id>|<blood-gas reference>|<kind>", s)
+	}
+	if !patientRefRE.MatchString(parts[0]) {
+		return fmt.Errorf("show: the key's patient %q is not a reference Patient/<id>", parts[0])
+	}
+	if parts[1] == "" {
+		return fmt.Errorf("show: the key has no blood-gas reference")
+	}
+	if _, ok := fhirmap.LookupKind(parts[2]); !ok {
+		return fmt.Errorf("show: the key's kind %q is not a kind of the catalogue", parts[2])
+	}
+	return nil
 }
 
 // parseAuditTime reads RFC 3339 or a UTC date; "" is no bound.
@@ -218,6 +314,13 @@ func ts(t time.Time) string {
 		return ""
 	}
 	return t.UTC().Format(time.RFC3339Nano)
+}
+
+func optTS(t *time.Time) string {
+	if t == nil {
+		return ""
+	}
+	return ts(*t)
 }
 
 func num(v float64) string { return strconv.FormatFloat(v, 'f', -1, 64) }
@@ -247,32 +350,94 @@ func (o auditOutput) json(v any) error {
 	return enc.Encode(v)
 }
 
-// writeRows writes a list as a table, CSV or a JSON array.
-func writeRows[T any](o auditOutput, items []T, header []string, cells func(T) []string) error {
+// column is one column of a question's output: in the table (human, as
+// published), in the CSV, or both.
+type column[T any] struct {
+	name  string // table header; the CSV header is its lower-case_with_underscores form unless csv is set
+	csv   string
+	where int // 0 both, tableOnly, csvOnly
+	cell  func(T) string
+}
+
+const (
+	both = iota
+	tableOnly
+	csvOnly
+)
+
+func (c column[T]) csvName() string {
+	if c.csv != "" {
+		return c.csv
+	}
+	return strings.ReplaceAll(strings.ToLower(c.name), " ", "_")
+}
+
+// writePage writes one page as a table, CSV or a JSON object (the page:
+// rows, offset, limit, more, nextOffset). When more rows exist the table
+// ends with a line and the CSV with a "#" comment line naming the next
+// offset.
+func writePage[T any](o auditOutput, p postgres.Page[T], cols []column[T]) error {
 	switch o.format {
 	case "json":
-		if items == nil {
-			items = []T{}
-		}
-		return o.json(items)
+		return o.json(p)
 	case "csv":
 		w := csv.NewWriter(o.w)
+		var header []string
+		for _, c := range cols {
+			if c.where != tableOnly {
+				header = append(header, c.csvName())
+			}
+		}
 		w.Write(header)
-		for _, it := range items {
-			w.Write(cells(it))
+		for _, it := range p.Rows {
+			var cells []string
+			for _, c := range cols {
+				if c.where != tableOnly {
+					cells = append(cells, c.cell(it))
+				}
+			}
+			w.Write(cells)
 		}
 		w.Flush()
-		return w.Error()
+		if err := w.Error(); err != nil {
+			return err
+		}
+		if p.More {
+			_, err := fmt.Fprintf(o.w, "# more rows: this page has rows %d-%d; next page --offset %d\n",
+				p.Offset+1, p.Offset+len(p.Rows), p.NextOffset)
+			return err
+		}
+		return nil
 	}
 	tw := tabwriter.NewWriter(o.w, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, strings.Join(header, "\t"))
-	for _, it := range items {
-		fmt.Fprintln(tw, strings.Join(clean(cells(it)), "\t"))
+	var header []string
+	for _, c := range cols {
+		if c.where != csvOnly {
+			header = append(header, c.name)
+		}
 	}
-	if len(items) == 0 {
+	fmt.Fprintln(tw, strings.Join(header, "\t"))
+	for _, it := range p.Rows {
+		var cells []string
+		for _, c := range cols {
+			if c.where != csvOnly {
+				cells = append(cells, c.cell(it))
+			}
+		}
+		fmt.Fprintln(tw, strings.Join(clean(cells), "\t"))
+	}
+	if len(p.Rows) == 0 {
 		fmt.Fprintln(tw, "(none)")
 	}
-	return tw.Flush()
+	if err := tw.Flush(); err != nil {
+		return err
+	}
+	if p.More {
+		_, err := fmt.Fprintf(o.w, "more rows: this page has rows %d-%d; next page --offset %d\n",
+			p.Offset+1, p.Offset+len(p.Rows), p.NextOffset)
+		return err
+	}
+	return nil
 }
 
 // clean keeps tabs and newlines of stored text from breaking a table.
@@ -283,6 +448,112 @@ func clean(cells []string) []string {
 	return cells
 }
 
+// valueText is a published value for people: "none (retracted)" for a
+// retraction.
+func valueText(published string, status string) string {
+	if status == string(fhirmap.StatusEnteredInError) {
+		return "none (retracted)"
+	}
+	return published
+}
+
+var listColumns = []column[postgres.Version]{
+	{name: "BLOOD GAS TIME", csv: "blood_gas_time", cell: func(v postgres.Version) string { return ts(v.Effective) }},
+	{name: "PATIENT", cell: func(v postgres.Version) string { return v.Patient }},
+	{name: "BLOOD GAS", cell: func(v postgres.Version) string { return v.BloodGas }},
+	{name: "KIND", cell: func(v postgres.Version) string { return v.Kind }},
+	{name: "VERSION", cell: func(v postgres.Version) string { return strconv.Itoa(v.Version) }},
+	{name: "STATUS", cell: func(v postgres.Version) string { return v.Status }},
+	{name: "VALUE", where: tableOnly, cell: func(v postgres.Version) string { return valueText(v.Published, v.Status) }},
+	{name: "VALUE", where: csvOnly, csv: "value", cell: func(v postgres.Version) string { return v.Published }},
+	{name: "UNROUNDED", csv: "value_unrounded", where: csvOnly, cell: func(v postgres.Version) string { return optNum(v.Value) }},
+	{name: "UNIT", cell: func(v postgres.Version) string { return v.DisplayUnit }},
+	{name: "UCUM", csv: "unit_ucum", where: csvOnly, cell: func(v postgres.Version) string { return v.Unit }},
+	{name: "INTERP", csv: "interpretation_code", cell: func(v postgres.Version) string { return v.Interpretation.Code }},
+	{name: "METHOD", cell: func(v postgres.Version) string { return v.Method + " v" + v.MethodVersion }},
+	{name: "ALGORITHM", cell: func(v postgres.Version) string { return v.Algorithm }},
+	{name: "CURRENT", cell: func(v postgres.Version) string { return yes(v.Current) }},
+	{name: "RECORDED", cell: func(v postgres.Version) string { return ts(v.Recorded) }},
+	{name: "OBSERVATION", csv: "observation_id", cell: func(v postgres.Version) string { return v.ObservationID }},
+}
+
+var refusalCountColumns = []column[postgres.ReasonCount]{
+	{name: "REASON", cell: func(c postgres.ReasonCount) string { return c.Reason }},
+	{name: "KIND", cell: func(c postgres.ReasonCount) string { return c.Kind }},
+	{name: "COUNT", cell: func(c postgres.ReasonCount) string { return strconv.Itoa(c.Count) }},
+	{name: "CURRENT", cell: func(c postgres.ReasonCount) string { return strconv.Itoa(c.Current) }},
+	{name: "PATIENTS", cell: func(c postgres.ReasonCount) string { return strconv.Itoa(c.Patients) }},
+	{name: "FIRST BLOOD GAS TIME", csv: "first_blood_gas_time", cell: func(c postgres.ReasonCount) string { return ts(c.First) }},
+	{name: "LAST BLOOD GAS TIME", csv: "last_blood_gas_time", cell: func(c postgres.ReasonCount) string { return ts(c.Last) }},
+}
+
+var discrepancyColumns = []column[postgres.Discrepancy]{
+	{name: "BLOOD GAS TIME", csv: "blood_gas_time", cell: func(d postgres.Discrepancy) string { return ts(d.Effective) }},
+	{name: "PATIENT", cell: func(d postgres.Discrepancy) string { return d.Patient }},
+	{name: "BLOOD GAS", cell: func(d postgres.Discrepancy) string { return d.BloodGas }},
+	{name: "MEASURED-PREDICTED mmHg", csv: "difference_mmhg", cell: func(d postgres.Discrepancy) string { return d.Difference }},
+	{name: "UNROUNDED", csv: "difference_mmhg_unrounded", where: csvOnly, cell: func(d postgres.Discrepancy) string { return num(d.DifferenceMmHg) }},
+	{name: "MEASURED mmHg", csv: "measured_mmhg", cell: func(d postgres.Discrepancy) string { return d.Measured }},
+	{name: "UNROUNDED", csv: "measured_mmhg_unrounded", where: csvOnly, cell: func(d postgres.Discrepancy) string { return optNum(d.MeasuredMmHg) }},
+	{name: "PREDICTED mmHg", csv: "predicted_mmhg", cell: func(d postgres.Discrepancy) string { return d.Predicted }},
+	{name: "UNROUNDED", csv: "predicted_mmhg_unrounded", where: csvOnly, cell: func(d postgres.Discrepancy) string { return optNum(d.PredictedMmHg) }},
+	{name: "STATUS", cell: func(d postgres.Discrepancy) string { return d.Status }},
+	{name: "VERSION", cell: func(d postgres.Discrepancy) string { return strconv.Itoa(d.Version) }},
+	{name: "INTERP", csv: "interpretation_code", cell: func(d postgres.Discrepancy) string { return d.InterpCode }},
+	{name: "INTERPRETATION", cell: func(d postgres.Discrepancy) string { return d.Interpretation }},
+	{name: "RECORDED", cell: func(d postgres.Discrepancy) string { return ts(d.Recorded) }},
+}
+
+var changeColumns = []column[postgres.Change]{
+	{name: "BLOOD GAS TIME", csv: "blood_gas_time", cell: func(c postgres.Change) string { return ts(c.Effective) }},
+	{name: "PATIENT", cell: func(c postgres.Change) string { return c.Patient }},
+	{name: "BLOOD GAS", cell: func(c postgres.Change) string { return c.BloodGas }},
+	{name: "KIND", cell: func(c postgres.Change) string { return c.Kind }},
+	{name: "VERSIONS", cell: func(c postgres.Change) string { return fmt.Sprintf("%d->%d", c.FromVersion, c.ToVersion) }},
+	{name: "FROM", where: tableOnly, cell: func(c postgres.Change) string { return valueText(c.FromPublished, c.FromStatus) }},
+	{name: "TO", where: tableOnly, cell: func(c postgres.Change) string { return valueText(c.ToPublished, c.ToStatus) }},
+	{name: "FROM", csv: "from_value", where: csvOnly, cell: func(c postgres.Change) string { return c.FromPublished }},
+	{name: "FROM", csv: "from_value_unrounded", where: csvOnly, cell: func(c postgres.Change) string { return optNum(c.FromValue) }},
+	{name: "TO", csv: "to_value", where: csvOnly, cell: func(c postgres.Change) string { return c.ToPublished }},
+	{name: "TO", csv: "to_value_unrounded", where: csvOnly, cell: func(c postgres.Change) string { return optNum(c.ToValue) }},
+	{name: "UNIT", cell: func(c postgres.Change) string { return c.DisplayUnit }},
+	{name: "UCUM", csv: "unit_ucum", where: csvOnly, cell: func(c postgres.Change) string { return c.Unit }},
+	{name: "STATUS", cell: func(c postgres.Change) string { return c.FromStatus + "->" + c.ToStatus }},
+	{name: "RETRACTED", csv: "retraction_reason", cell: func(c postgres.Change) string { return c.Retracted }},
+	{name: "RECORDED", cell: func(c postgres.Change) string { return ts(c.Recorded) }},
+}
+
+var dailyColumns = []column[postgres.DayCount]{
+	{name: "BLOOD GAS DAY (UTC)", csv: "blood_gas_day", cell: func(d postgres.DayCount) string { return d.Day }},
+	{name: "BLOOD GASES", cell: func(d postgres.DayCount) string { return strconv.Itoa(d.BloodGases) }},
+	{name: "DERIVATIONS", cell: func(d postgres.DayCount) string { return strconv.Itoa(d.Derivations) }},
+	{name: "RETRACTIONS", cell: func(d postgres.DayCount) string { return strconv.Itoa(d.Retractions) }},
+	{name: "REFUSALS", cell: func(d postgres.DayCount) string { return strconv.Itoa(d.Refusals) }},
+}
+
+var deadLetterColumns = []column[postgres.DeadLetterRecord]{
+	{name: "RECORDED", cell: func(d postgres.DeadLetterRecord) string { return ts(d.Recorded) }},
+	{name: "SUBJECT", cell: func(d postgres.DeadLetterRecord) string { return d.Subject }},
+	{name: "STREAM SEQ", cell: func(d postgres.DeadLetterRecord) string { return strconv.FormatInt(d.StreamSeq, 10) }},
+	{name: "BYTES", cell: func(d postgres.DeadLetterRecord) string { return strconv.Itoa(d.SizeBytes) }},
+	{name: "REASON", cell: func(d postgres.DeadLetterRecord) string { return d.Reason }},
+	{name: "DETAIL", cell: func(d postgres.DeadLetterRecord) string { return d.Detail }},
+	{name: "INBOX KEY", cell: func(d postgres.DeadLetterRecord) string { return d.InboxKey }},
+}
+
+// withUnit joins a value and a display unit ("" for dimensionless).
+func withUnit(v, unit string) string {
+	if unit == "" || v == "" {
+		return v
+	}
+	return v + " " + unit
+}
+
+// constantUnit shows a constant's unit for people.
+func constantUnit(ucum string) string {
+	return strings.NewReplacer("mm[Hg]", "mmHg", "Cel", "°C", ".", "·").Replace(postgres.DisplayUnit(ucum))
+}
+
 // show writes one derived value's history.
 func (o auditOutput) show(h postgres.History) error {
 	switch o.format {
@@ -290,23 +561,27 @@ func (o auditOutput) show(h postgres.History) error {
 		return o.json(h)
 	case "csv":
 		w := csv.NewWriter(o.w)
-		w.Write([]string{"record", "version_or_refusal", "status_or_reason", "value", "unit", "recorded", "input", "role", "fact_key", "fact_digest", "resource", "quantity", "input_value", "input_unit", "input_status", "input_effective", "offset", "fallback"})
+		w.Write([]string{"record", "version_or_refusal", "status_or_reason", "value", "value_unrounded", "unit", "unit_ucum",
+			"blood_gas_time", "recorded", "input", "role", "fact_key", "fact_digest", "resource", "quantity",
+			"input_value", "input_value_unrounded", "input_unit", "input_unit_ucum", "input_sent_as", "input_status",
+			"input_patient_level", "input_effective", "offset", "fallback"})
 		for _, v := range h.Versions {
-			base := []string{"version", strconv.Itoa(v.Version), v.Status, num(v.Value), v.Unit, ts(v.Recorded)}
+			base := []string{"version", strconv.Itoa(v.Version), v.Status, v.Published, optNum(v.Value), v.DisplayUnit, v.Unit,
+				ts(v.Effective), ts(v.Recorded)}
 			if len(v.Inputs) == 0 {
-				w.Write(append(base, make([]string, 12)...))
+				w.Write(append(base, make([]string, 16)...))
 			}
 			for _, in := range v.Inputs {
-				w.Write(append(append([]string{}, base...), inputCells(in)...))
+				w.Write(append(slices.Clone(base), inputCells(in)...))
 			}
 		}
 		for _, r := range h.Refusals {
-			base := []string{"refusal", strconv.FormatInt(r.ID, 10), r.Reason, "", "", ts(r.Recorded)}
+			base := []string{"refusal", strconv.FormatInt(r.ID, 10), r.Reason, "", "", "", "", ts(r.Effective), ts(r.Recorded)}
 			if len(r.Considered) == 0 {
-				w.Write(append(base, make([]string, 12)...))
+				w.Write(append(base, make([]string, 16)...))
 			}
 			for _, in := range r.Considered {
-				w.Write(append(append([]string{}, base...), inputCells(in)...))
+				w.Write(append(slices.Clone(base), inputCells(in)...))
 			}
 		}
 		w.Flush()
@@ -326,15 +601,23 @@ func (o auditOutput) show(h postgres.History) error {
 		if v.Current {
 			b.WriteString("  (current)")
 		}
-		fmt.Fprintf(&b, "\n  recorded        %s\n", ts(v.Recorded))
+		fmt.Fprintf(&b, "\n  blood gas       %s at %s\n", v.BloodGas, ts(v.Effective))
+		fmt.Fprintf(&b, "  recorded        %s\n", ts(v.Recorded))
 		fmt.Fprintf(&b, "  observation     %s\n", v.ObservationID)
-		fmt.Fprintf(&b, "  patient         %s %s\n", v.Patient, v.Encounter)
-		fmt.Fprintf(&b, "  blood gas       %s at %s\n", v.BloodGas, ts(v.Effective))
-		fmt.Fprintf(&b, "  value           %s %s\n", num(v.Value), v.Unit)
+		fmt.Fprintf(&b, "  patient         %s", v.Patient)
+		if v.Encounter != "" {
+			fmt.Fprintf(&b, "  encounter %s", v.Encounter)
+		}
+		b.WriteString("\n")
+		if v.Value == nil {
+			fmt.Fprintf(&b, "  value           none: withdrawn (%s), published without a value\n", v.Retracted)
+		} else {
+			fmt.Fprintf(&b, "  value           %s  (stored unrounded: %s)\n", withUnit(v.Published, v.DisplayUnit), num(*v.Value))
+		}
 		fmt.Fprintf(&b, "  method          %s (method version %s; algorithm %s)\n", v.Method, v.MethodVersion, v.Algorithm)
 		fmt.Fprintf(&b, "  basis           %s\n", v.Basis)
 		for _, c := range v.Constants {
-			fmt.Fprintf(&b, "  constant        %s = %s %s (%s)\n", c.Name, num(c.Value), c.Unit, c.Source)
+			fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(num(c.Value), constantUnit(c.Unit)), c.Source)
 		}
 		for _, a := range v.Assumptions {
 			fmt.Fprintf(&b, "  assumption      %s\n", a)
@@ -345,9 +628,6 @@ func (o auditOutput) show(h postgres.History) error {
 		for _, f := range v.Flags {
 			fmt.Fprintf(&b, "  flag            %s\n", f)
 		}
-		if v.Retracted != "" {
-			fmt.Fprintf(&b, "  retracted       %s\n", v.Retracted)
-		}
 		fmt.Fprintf(&b, "  digest          %s\n", v.Digest)
 		writeInputs(&b, "inputs", v.Inputs)
 	}
@@ -356,8 +636,8 @@ func (o auditOutput) show(h postgres.History) error {
 		if r.Current {
 			b.WriteString("  (current)")
 		}
-		fmt.Fprintf(&b, "\n  recorded        %s\n", ts(r.Recorded))
-		fmt.Fprintf(&b, "  blood gas       %s at %s\n", r.BloodGas, ts(r.Effective))
+		fmt.Fprintf(&b, "\n  blood gas       %s at %s\n", r.BloodGas, ts(r.Effective))
+		fmt.Fprintf(&b, "  recorded        %s\n", ts(r.Recorded))
 		fmt.Fprintf(&b, "  detail          %s\n", r.Detail)
 		writeInputs(&b, "considered", r.Considered)
 	}
@@ -365,9 +645,17 @@ func (o auditOutput) show(h postgres.History) error {
 	return err
 }
 
+func sentAs(in postgres.Input) string {
+	if in.SourceValue == nil {
+		return ""
+	}
+	return withUnit(num(*in.SourceValue), postgres.DisplayUnit(in.SourceUnit))
+}
+
 func inputCells(in postgres.Input) []string {
 	return []string{strconv.Itoa(in.Ordinal), in.Role, in.FactKey, in.FactDigest, in.Resource, in.Quantity,
-		num(in.Value), in.Unit, in.Status, ts(in.Effective), in.Offset.String(), in.Fallback}
+		in.Shown, optNum(in.Value), in.DisplayUnit, in.Unit, sentAs(in), in.Status, yes(in.PatientLevel),
+		optTS(in.Effective), in.OffsetText(), in.Fallback}
 }
 
 func writeInputs(b *strings.Builder, title string, ins []postgres.Input) {
@@ -376,10 +664,14 @@ func writeInputs(b *strings.Builder, title string, ins []postgres.Input) {
 	}
 	fmt.Fprintf(b, "  %s:\n", title)
 	tw := tabwriter.NewWriter(b, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, "    ROLE\tFACT\tVALUE\tUNIT\tSTATUS\tEFFECTIVE\tOFFSET\tFALLBACK")
+	fmt.Fprintln(tw, "    ROLE\tFACT\tVALUE\tUNIT\tSENT AS\tSTATUS\tEFFECTIVE\tOFFSET\tFALLBACK")
 	for _, in := range ins {
-		fmt.Fprintf(tw, "    %s\n", strings.Join(clean([]string{in.Role, in.FactKey, num(in.Value), in.Unit, in.Status,
-			ts(in.Effective), in.Offset.String(), in.Fallback}), "\t"))
+		when, offset := optTS(in.Effective), in.OffsetText()
+		if in.PatientLevel {
+			when, offset = "patient-level (no time)", "-"
+		}
+		fmt.Fprintf(tw, "    %s\n", strings.Join(clean([]string{in.Role, in.FactKey, in.Shown, in.DisplayUnit, sentAs(in), in.Status,
+			when, offset, in.Fallback}), "\t"))
 	}
 	tw.Flush()
 }

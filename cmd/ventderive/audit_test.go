@@ -5,6 +5,7 @@ import (
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
+	"encoding/json"
 	"flag"
 	"fmt"
 	"net/url"
@@ -62,11 +63,17 @@ type auditObs struct {
 	unit        string
 	specimen    fhirmap.Specimen
 	status      fhirmap.Status
+	sentValue   float64 // as sent, when sent in another unit
+	sentUnit    string
 }
 
 func (o auditObs) message(seq uint64) consumer.Message {
+	sentValue, sentUnit := o.value, o.unit
+	if o.sentUnit != "" {
+		sentValue, sentUnit = o.sentValue, o.sentUnit
+	}
 	raw := fmt.Appendf(nil, `{"resourceType":"Observation","id":%q,"meta":{"versionId":%q},"status":%q,"subject":{"reference":%q},"effectiveDateTime":%q,"valueQuantity":{"value":%s,"unit":%q}}`,
-		o.id, o.version, o.status, o.patient, o.at.Format(time.RFC3339), strconv.FormatFloat(o.value, 'f', -1, 64), o.unit)
+		o.id, o.version, o.status, o.patient, o.at.Format(time.RFC3339), strconv.FormatFloat(sentValue, 'f', -1, 64), sentUnit)
 	ref := "Observation/" + o.id
 	r := fhirmap.Resource{Type: "Observation", Reference: ref, VersionID: o.version, Patient: o.patient, Digest: auditSHA(raw), Raw: raw}
 	origin := fhirmap.OriginMeasured
@@ -74,10 +81,25 @@ func (o auditObs) message(seq uint64) consumer.Message {
 		origin = ""
 	}
 	f := fhirmap.Fact{Key: ref, Resource: ref, VersionID: o.version, Digest: r.Digest, Patient: o.patient,
-		Quantity: o.q, Origin: origin, Specimen: o.specimen, Value: o.value, Unit: o.unit, SourceValue: o.value,
-		SourceUnit: o.unit, Code: fhirmap.Coding{System: "http://loinc.org", Code: "2019-8"}, Status: o.status, Effective: o.at}
+		Quantity: o.q, Origin: origin, Specimen: o.specimen, Value: o.value, Unit: o.unit, SourceValue: sentValue,
+		SourceUnit: sentUnit, Code: fhirmap.Coding{System: "http://loinc.org", Code: "2019-8"}, Status: o.status, Effective: o.at}
 	return consumer.Message{InboxKey: auditSHA(raw), Subject: "fhir.input.lab", StreamSeq: seq, Received: o.at.Add(10 * time.Minute),
 		Raw: raw, Resources: []fhirmap.Resource{r}, Facts: []fhirmap.Fact{f},
+		Window: fhirmap.Window{Before: 30 * time.Minute, After: 10 * time.Minute}, Horizon: 14 * 24 * time.Hour}
+}
+
+// patientMessage is a Patient resource with sex and birth date: two
+// patient-level facts, which have no time of their own.
+func patientMessage(patient, sex, birthDate string, seq uint64) consumer.Message {
+	id := strings.TrimPrefix(patient, "Patient/")
+	raw := fmt.Appendf(nil, `{"resourceType":"Patient","id":%q,"gender":%q,"birthDate":%q}`, id, sex, birthDate)
+	r := fhirmap.Resource{Type: "Patient", Reference: patient, Patient: patient, Digest: auditSHA(raw), Raw: raw}
+	base := fhirmap.Fact{Resource: patient, Patient: patient, Digest: r.Digest, Status: fhirmap.StatusFinal}
+	sf, bf := base, base
+	sf.Key, sf.Quantity, sf.Text, sf.Code = patient+"#sex", fhirmap.QSex, sex, fhirmap.Coding{Code: fhirmap.PatientGender, Display: "administrative gender"}
+	bf.Key, bf.Quantity, bf.Text, bf.Code = patient+"#birth-date", fhirmap.QBirthDate, birthDate, fhirmap.Coding{Code: fhirmap.PatientBirthday, Display: "birth date"}
+	return consumer.Message{InboxKey: auditSHA(raw), Subject: "fhir.input.adt", StreamSeq: seq, Received: auditT0.Add(-time.Hour),
+		Raw: raw, Resources: []fhirmap.Resource{r}, Facts: []fhirmap.Fact{sf, bf},
 		Window: fhirmap.Window{Before: 30 * time.Minute, After: 10 * time.Minute}, Horizon: 14 * 24 * time.Hour}
 }
 
@@ -175,12 +197,24 @@ func auditPlan(s consumer.Snapshot) (consumer.Changes, error) {
 		}
 		veIn := fhirmap.Input{Role: "minute-volume", Fact: *ve, Offset: ve.Effective.Sub(bg.Effective)}
 		etIn := fhirmap.Input{Role: "end-tidal-co2", Fact: *et, Offset: et.Effective.Sub(bg.Effective)}
+		// The predicted PaCO2 also lists the patient-level facts, as the
+		// real planner does for a predicted body weight.
+		var patientIns []fhirmap.Input
+		for _, x := range s.Facts {
+			if x.Quantity == fhirmap.QSex || x.Quantity == fhirmap.QBirthDate {
+				patientIns = append(patientIns, fhirmap.Input{Role: fhirmap.Role(x.Quantity), Fact: x, Offset: x.Effective.Sub(bg.Effective)})
+			}
+		}
 		for i, r := range []physio.Result{vdvt, grad, pred, disc} {
 			kind := kinds[i]
 			dkey := s.Patient + "|" + key + "|" + kind
+			ins := []fhirmap.Input{{Role: "blood-gas", Fact: bg}, veIn, etIn}
+			if kind == "paco2-predicted" {
+				ins = append(ins, patientIns...)
+			}
 			d := fhirmap.Derivation{Key: dkey, ID: uuid.NewSHA1(uuid.NameSpaceURL, []byte(dkey)).String(), Kind: kind,
 				Patient: s.Patient, Effective: bg.Effective, BloodGas: key, Result: r,
-				Inputs: []fhirmap.Input{{Role: "blood-gas", Fact: bg}, veIn, etIn}, Status: fhirmap.StatusFinal, Algorithm: "ventderive-derive/1"}
+				Inputs: ins, Status: fhirmap.StatusFinal, Algorithm: "ventderive-derive/1"}
 			d.Digest = auditSHA(fmt.Appendf(nil, "%s|%.4f|%s|%s|%s", dkey, r.Value, bg.Digest, ve.Digest, et.Digest))
 			cur, ok := current[dkey]
 			if ok && !cur.Refused && cur.Digest == d.Digest {
@@ -227,6 +261,12 @@ func seedAudit(t *testing.T, ctx context.Context, u string) {
 		return time.Date(2026, 3, 1, 9, 0, 0, 0, time.UTC).Add(time.Duration(tick.Add(1)) * 7 * time.Minute)
 	}
 	store := postgres.New(pool, postgres.Options{PatientKey: []byte("audit-test-key"), Now: clock})
+	if _, err := store.Ingest(ctx, patientMessage(patA, "female", "1961-04-12", 1000), auditPlan); err != nil {
+		t.Fatalf("ingest patient: %v", err)
+	}
+	// abg-b2 was sent in kPa: 5.9 kPa is 44.25 mm[Hg] (7.500638 mm[Hg]/kPa, UCUM).
+	kpaGas := gas(patB, "abg-b2", "1", auditT0.Add(26*time.Hour), 5.9*7.500638, fhirmap.SpecimenArterial, fhirmap.StatusFinal)
+	kpaGas.sentValue, kpaGas.sentUnit = 5.9, "kPa"
 	msgs := []auditObs{
 		reading(patA, "ve-a1", fhirmap.QMinuteVol, auditT0.Add(-6*time.Minute), 9.5, "L/min"),
 		reading(patA, "et-a1", fhirmap.QPETCO2, auditT0.Add(-2*time.Minute), 31, "mm[Hg]"),
@@ -237,7 +277,7 @@ func seedAudit(t *testing.T, ctx context.Context, u string) {
 		gas(patA, "abg-a2", "1", auditT0.Add(4*time.Hour), 41, fhirmap.SpecimenArterial, fhirmap.StatusFinal),
 		gas(patA, "abg-a2", "2", auditT0.Add(4*time.Hour), 41, fhirmap.SpecimenArterial, fhirmap.StatusEnteredInError),
 		gas(patB, "vbg-b1", "1", auditT0.Add(time.Hour), 50, fhirmap.SpecimenVenous, fhirmap.StatusFinal),
-		gas(patB, "abg-b2", "1", auditT0.Add(26*time.Hour), 44, fhirmap.SpecimenArterial, fhirmap.StatusFinal),
+		kpaGas,
 	}
 	for i, o := range msgs {
 		if _, err := store.Ingest(ctx, o.message(uint64(i+1)), auditPlan); err != nil {
@@ -286,16 +326,27 @@ func TestAuditGolden(t *testing.T) {
 	}{
 		{"show-key", []string{"show", key}},
 		{"show-retracted-by-id", []string{"show", obsID}},
+		{"show-patient-level-inputs", []string{"show", patA + "|Observation/abg-a1|paco2-predicted"}},
+		{"show-refused-kpa-input", []string{"show", patB + "|Observation/abg-b2|paco2-petco2-gradient"}},
+		{"list-page-1", []string{"list", "--limit", "6"}},
+		{"list-page-2", []string{"list", "--limit", "6", "--offset", "6"}},
+		{"list-page-last", []string{"list", "--limit", "6", "--offset", "12"}},
+		{"list-page-beyond-end", []string{"list", "--limit", "6", "--offset", "18"}},
 		{"list", []string{"list"}},
 		{"list-patient-kind", []string{"list", "--patient", patA, "--kind", "paco2-predicted"}},
 		{"list-from-to", []string{"list", "--from", "2026-03-01T10:00:00Z", "--to", "2026-03-02"}},
 		{"refusals", []string{"refusals"}},
 		{"refusals-patient", []string{"refusals", "--patient", patB}},
+		{"refusals-reason-page", []string{"refusals", "--reason", "no-ventilator-data-in-window", "--limit", "2"}},
+		{"discrepancies-page", []string{"discrepancies", "--threshold", "0", "--limit", "1"}},
 		{"discrepancies", []string{"discrepancies", "--threshold", "5"}},
 		{"discrepancies-high-threshold", []string{"discrepancies", "--threshold", "50"}},
 		{"changes", []string{"changes"}},
+		{"changes-page", []string{"changes", "--limit", "3", "--offset", "3"}},
 		{"daily", []string{"daily"}},
+		{"daily-page", []string{"daily", "--limit", "1"}},
 		{"deadletters", []string{"deadletters"}},
+		{"deadletters-page", []string{"deadletters", "--limit", "1", "--offset", "1"}},
 	}
 	for _, q := range questions {
 		for _, format := range []string{"table", "json", "csv"} {
@@ -339,19 +390,44 @@ func checkAuditGolden(t *testing.T, name string, got []byte) {
 	}
 }
 
+// TestAuditUsage checks that every malformed argument is refused with a
+// message naming it, before connecting: the database URL points at a port
+// where nothing listens, so a connection attempt would fail differently.
 func TestAuditUsage(t *testing.T) {
+	const nowhere = "postgres://x@127.0.0.1:1/x"
 	tests := []struct {
 		name string
 		args []string
-		says string // in the message, when set
+		says string
 	}{
-		{"no question", []string{"audit"}, ""},
-		{"unknown question without a database", []string{"audit", "frobnicate"}, "unknown question"},
-		{"unknown question", []string{"audit", "frobnicate", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
-		{"show without id", []string{"audit", "show", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
-		{"bad format", []string{"audit", "list", "--format", "xml", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
-		{"bad time", []string{"audit", "list", "--from", "yesterday", "--database-url", "postgres://x@127.0.0.1:1/x"}, ""},
-		{"no database", []string{"audit", "list"}, ""},
+		{"no question", []string{"audit"}, "usage: ventderive audit"},
+		{"unknown question without a database", []string{"audit", "frobnicate"}, `unknown question "frobnicate"`},
+		{"unknown question", []string{"audit", "frobnicate", "--database-url", nowhere}, `unknown question "frobnicate"`},
+		{"show without id", []string{"audit", "show", "--database-url", nowhere}, "show takes one argument"},
+		{"show with two ids", []string{"audit", "show", "a", "b", "--database-url", nowhere}, "show takes one argument"},
+		{"show malformed key", []string{"audit", "show", "lg-icu-0003|Observation/abg-a1|paco2-predicted", "--database-url", nowhere}, "not a reference Patient/<id>"},
+		{"show key of unknown kind", []string{"audit", "show", "Patient/lg-icu-0003|Observation/abg-a1|paco2-guessed", "--database-url", nowhere}, `kind "paco2-guessed"`},
+		{"show neither id nor key", []string{"audit", "show", "abg-a1", "--database-url", nowhere}, `show "abg-a1"`},
+		{"list with an argument", []string{"audit", "list", "extra", "--database-url", nowhere}, `list takes no argument, got "extra"`},
+		{"bad format", []string{"audit", "list", "--format", "xml", "--database-url", nowhere}, `--format "xml"`},
+		{"bad time", []string{"audit", "list", "--from", "yesterday", "--database-url", nowhere}, "--from"},
+		{"bad end time", []string{"audit", "list", "--to", "2026-13-01", "--database-url", nowhere}, "--to"},
+		{"reversed period", []string{"audit", "list", "--from", "2026-03-02", "--to", "2026-03-01", "--database-url", nowhere}, "--from 2026-03-02 is not before --to 2026-03-01"},
+		{"empty period", []string{"audit", "changes", "--from", "2026-03-01", "--to", "2026-03-01T00:00:00Z", "--database-url", nowhere}, "is not before --to"},
+		{"unknown kind", []string{"audit", "list", "--kind", "deadspace", "--database-url", nowhere}, `--kind "deadspace"`},
+		{"patient without Patient/", []string{"audit", "list", "--patient", "lg-icu-0003", "--database-url", nowhere}, `--patient "lg-icu-0003"`},
+		{"patient of another type", []string{"audit", "daily", "--patient", "Encounter/e1", "--database-url", nowhere}, "--patient"},
+		{"malformed reason", []string{"audit", "refusals", "--reason", "No Data", "--database-url", nowhere}, `--reason "No Data"`},
+		{"zero limit", []string{"audit", "list", "--limit", "0", "--database-url", nowhere}, "--limit 0"},
+		{"limit too large", []string{"audit", "list", "--limit", "10001", "--database-url", nowhere}, "--limit 10001"},
+		{"negative offset", []string{"audit", "list", "--offset", "-1", "--database-url", nowhere}, "--offset -1"},
+		{"negative threshold", []string{"audit", "discrepancies", "--threshold", "-5", "--database-url", nowhere}, "--threshold -5"},
+		{"NaN threshold", []string{"audit", "discrepancies", "--threshold", "NaN", "--database-url", nowhere}, "--threshold NaN"},
+		{"threshold for list", []string{"audit", "list", "--threshold", "8", "--database-url", nowhere}, "--threshold does not apply to list"},
+		{"patient for deadletters", []string{"audit", "deadletters", "--patient", "Patient/lg-icu-0003", "--database-url", nowhere}, "--patient does not apply to deadletters"},
+		{"algorithm for refusals", []string{"audit", "refusals", "--algorithm", "ventderive-derive/1", "--database-url", nowhere}, "--algorithm does not apply to refusals"},
+		{"paging for show", []string{"audit", "show", "--limit", "5", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--database-url", nowhere}, "--limit does not apply to show"},
+		{"no database", []string{"audit", "list"}, "no database"},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -365,6 +441,177 @@ func TestAuditUsage(t *testing.T) {
 			}
 		})
 	}
+}
+
+// auditRun runs one audit command against the reviewer URL ru.
+func auditRun(t *testing.T, ctx context.Context, ru string, args ...string) string {
+	t.Helper()
+	var stdout, stderr bytes.Buffer
+	e := env{getenv: func(k string) string {
+		if k == "DATABASE_URL" {
+			return ru
+		}
+		return ""
+	}, stdout: &stdout, stderr: &stderr}
+	if err := run(ctx, append([]string{"audit"}, args...), e); err != nil {
+		t.Fatalf("ventderive audit %s: %v\n%s", strings.Join(args, " "), err, stderr.String())
+	}
+	return stdout.String()
+}
+
+// TestAuditReportedBugs has one subtest per fault found when the audit was
+// tried as a reviewer would, over the fixture as the reviewer role.
+func TestAuditReportedBugs(t *testing.T) {
+	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute)
+	defer cancel()
+	u := pgtest.NewDatabase(t)
+	rolesSQL, err := os.ReadFile("../../deploy/postgres/roles.sql")
+	if err != nil {
+		t.Fatal(err)
+	}
+	pgtest.ApplyRoles(t, u, string(rolesSQL))
+	seedAudit(t, ctx, u)
+	ru := reviewerURL(t, u)
+
+	t.Run("values are printed as published, full precision only in JSON and CSV", func(t *testing.T) {
+		// The stored dead-space fraction is 48 mm[Hg]-based 0.6025641...;
+		// the kind publishes 3 decimals (fhirmap catalogue).
+		table := auditRun(t, ctx, ru, "list", "--kind", "deadspace-fraction-vco2", "--patient", patA)
+		if !strings.Contains(table, " 0.603 ") || strings.Contains(table, "0.6025641025641026") {
+			t.Errorf("table does not show the published 0.603 alone:\n%s", table)
+		}
+		var page struct {
+			Rows []struct {
+				Value     *float64 `json:"value"`
+				Published string   `json:"published"`
+			} `json:"rows"`
+		}
+		if err := json.Unmarshal([]byte(auditRun(t, ctx, ru, "list", "--kind", "deadspace-fraction-vco2", "--patient", patA, "--format", "json")), &page); err != nil {
+			t.Fatal(err)
+		}
+		if len(page.Rows) == 0 || page.Rows[0].Published != "0.603" || page.Rows[0].Value == nil || *page.Rows[0].Value != 1-0.8630036630036629*210/(9.5*48) {
+			t.Errorf("JSON first row = %+v, want published 0.603 beside the full value", page.Rows)
+		}
+		disc := auditRun(t, ctx, ru, "discrepancies", "--threshold", "0")
+		if !strings.Contains(disc, "MEASURED-PREDICTED mmHg") || strings.Contains(disc, "mm[Hg]  ") || !strings.Contains(disc, " 10.8 ") {
+			t.Errorf("discrepancies not in mmHg as published:\n%s", disc)
+		}
+	})
+
+	t.Run("sex and birth date are shown as such, never as sentinels", func(t *testing.T) {
+		for _, format := range []string{"table", "csv", "json"} {
+			out := auditRun(t, ctx, ru, "show", patA+"|Observation/abg-a1|paco2-predicted", "--format", format)
+			for _, bad := range []string{"0001-01-01", "2562047h", "-9223372036854775808", "9223372036854775807"} {
+				if strings.Contains(out, bad) {
+					t.Errorf("%s shows the sentinel %q", format, bad)
+				}
+			}
+			for _, want := range []string{"female", "1961-04-12"} {
+				if !strings.Contains(out, want) {
+					t.Errorf("%s does not show %q", format, want)
+				}
+			}
+		}
+		var h postgres.History
+		if err := json.Unmarshal([]byte(auditRun(t, ctx, ru, "show", patA+"|Observation/abg-a1|paco2-predicted", "--format", "json")), &h); err != nil {
+			t.Fatal(err)
+		}
+		for _, in := range h.Versions[0].Inputs {
+			patientLevel := in.Quantity == "sex" || in.Quantity == "birth-date"
+			if in.PatientLevel != patientLevel || patientLevel && (in.Value != nil || in.Effective != nil || in.Offset != nil || in.Text == "") {
+				t.Errorf("input %s: %+v", in.Role, in)
+			}
+		}
+	})
+
+	t.Run("retractions print no value", func(t *testing.T) {
+		key := patA + "|Observation/abg-a2|paco2-petco2-gradient"
+		var h postgres.History
+		if err := json.Unmarshal([]byte(auditRun(t, ctx, ru, "show", key, "--format", "json")), &h); err != nil {
+			t.Fatal(err)
+		}
+		if len(h.Versions) != 2 || h.Versions[1].Status != "entered-in-error" || h.Versions[1].Value != nil || h.Versions[1].Published != "" {
+			t.Fatalf("retraction version = %+v, want no value", h.Versions[len(h.Versions)-1])
+		}
+		table := auditRun(t, ctx, ru, "show", key)
+		v2 := table[strings.Index(table, "\nversion 2"):]
+		if !strings.Contains(v2, "value           none") || strings.Contains(v2[:strings.Index(v2, "inputs:")], "8.0") {
+			t.Errorf("show prints a value for the retraction:\n%s", v2)
+		}
+		changes := auditRun(t, ctx, ru, "changes", "--kind", "paco2-petco2-gradient", "--format", "csv")
+		for _, line := range strings.Split(changes, "\n") {
+			if strings.Contains(line, "entered-in-error") && !strings.Contains(line, ",8.0,8,,,mmHg,") {
+				t.Errorf("changes CSV row of a retraction carries a to-value: %s", line)
+			}
+		}
+	})
+
+	t.Run("paging walks every row once and says when more exist", func(t *testing.T) {
+		type page struct {
+			Rows []struct {
+				ID int64 `json:"id"`
+			} `json:"rows"`
+			More       bool `json:"more"`
+			NextOffset int  `json:"nextOffset"`
+		}
+		var all page
+		if err := json.Unmarshal([]byte(auditRun(t, ctx, ru, "list", "--format", "json")), &all); err != nil {
+			t.Fatal(err)
+		}
+		if all.More || len(all.Rows) < 10 {
+			t.Fatalf("whole list: %d rows, more=%v", len(all.Rows), all.More)
+		}
+		var walked []int64
+		offset := 0
+		for pages := 0; ; pages++ {
+			if pages > len(all.Rows) {
+				t.Fatal("paging does not end")
+			}
+			var p page
+			if err := json.Unmarshal([]byte(auditRun(t, ctx, ru, "list", "--format", "json", "--limit", "3", "--offset", strconv.Itoa(offset))), &p); err != nil {
+				t.Fatal(err)
+			}
+			for _, r := range p.Rows {
+				walked = append(walked, r.ID)
+			}
+			if !p.More {
+				break
+			}
+			if len(p.Rows) != 3 || p.NextOffset != offset+3 {
+				t.Fatalf("page at %d: %d rows, next %d", offset, len(p.Rows), p.NextOffset)
+			}
+			offset = p.NextOffset
+		}
+		var want []int64
+		for _, r := range all.Rows {
+			want = append(want, r.ID)
+		}
+		if fmt.Sprint(walked) != fmt.Sprint(want) {
+			t.Errorf("pages gave %v, the whole list %v", walked, want)
+		}
+		for _, format := range []string{"table", "csv"} {
+			out := auditRun(t, ctx, ru, "list", "--format", format, "--limit", "2")
+			if !strings.Contains(out, "more rows") || !strings.Contains(out, "--offset 2") {
+				t.Errorf("%s with --limit 2 does not say more rows exist:\n%s", format, out)
+			}
+			if out := auditRun(t, ctx, ru, "list", "--format", format); strings.Contains(out, "more rows") {
+				t.Errorf("%s says more rows on the last page", format)
+			}
+		}
+	})
+
+	t.Run("daily counts by blood-gas day, as list filters", func(t *testing.T) {
+		// abg-b2 was taken on 2 March and recorded on 1 March: it counts on
+		// the day of the blood gas, like list --from/--to.
+		daily := auditRun(t, ctx, ru, "daily", "--patient", patB, "--format", "csv")
+		want := "blood_gas_day,blood_gases,derivations,retractions,refusals\n2026-03-01,1,0,0,4\n2026-03-02,1,0,0,4\n"
+		if daily != want {
+			t.Errorf("daily = %q, want %q", daily, want)
+		}
+		if !strings.Contains(auditUsage, "time basis: the blood gas's effective time") || !strings.Contains(auditUsage, "deadletters") {
+			t.Error("the help does not name the time basis")
+		}
+	})
 }
 
 func TestMigrateCommand(t *testing.T) {

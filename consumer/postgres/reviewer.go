@@ -5,6 +5,8 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"math"
+	"strconv"
 	"time"
 
 	"github.com/google/uuid"
@@ -28,33 +30,82 @@ func NewReviewer(pool *pgxpool.Pool) *Reviewer { return &Reviewer{pool: pool} }
 // ErrNotFound reports that no derivation has the id or key asked for.
 var ErrNotFound = errors.New("not found")
 
-// Filter narrows a reviewer query. Zero fields do not filter.
+// Filter narrows a reviewer query and chooses its page. Zero fields do not
+// filter.
+//
+// Time basis: From and To are blood-gas effective times for every question
+// about derived values and refusals (List, Refusals, Refused, Discrepancies,
+// Changes, Daily); dead letters have no blood gas, so DeadLetters uses their
+// recorded time. Recorded times are returned as their own field.
 type Filter struct {
 	Patient   string    // FHIR reference, e.g. "Patient/lg-icu-0001"
-	From      time.Time // inclusive; blood-gas effective time (List, Refusals, Discrepancies, Changes) or recorded time (Daily, DeadLetters)
+	From      time.Time // inclusive
 	To        time.Time // exclusive
 	Kind      string    // derivation kind code
 	Algorithm string    // algorithm version, e.g. "ventderive-derive/1"
-	Limit     int       // maximum rows; 0 means 1000
+	Reason    string    // refusal reason code (Refusals, Refused)
+	Limit     int       // rows per page; 0 means DefaultLimit, at most MaxLimit
+	Offset    int       // rows of the same ordering to skip (the next page starts at Page.NextOffset)
 }
 
-func (f Filter) args() []any {
-	limit := f.Limit
-	if limit <= 0 {
-		limit = 1000
+// DefaultLimit and MaxLimit bound the rows of one page.
+const (
+	DefaultLimit = 1000
+	MaxLimit     = 10000
+)
+
+func (f Filter) limit() int {
+	switch {
+	case f.Limit <= 0:
+		return DefaultLimit
+	case f.Limit > MaxLimit:
+		return MaxLimit
 	}
-	return []any{f.Patient, optTime(f.From), optTime(f.To), f.Kind, f.Algorithm, limit}
+	return f.Limit
 }
+
+// args are $1..$8 of every paged query: the filter, then one row more than
+// the page (to learn whether more rows exist) and the offset.
+func (f Filter) args() []any {
+	return []any{f.Patient, optTime(f.From), optTime(f.To), f.Kind, f.Algorithm, f.limit() + 1, max(f.Offset, 0), f.Reason}
+}
+
+// Page is one page of a question's rows in its stated order. More reports
+// that rows follow; NextOffset is then the Filter.Offset of the next page.
+// Nothing is cut off silently: a caller that ignores More still has it.
+type Page[T any] struct {
+	Rows       []T  `json:"rows"`
+	Offset     int  `json:"offset"`
+	Limit      int  `json:"limit"`
+	More       bool `json:"more"`
+	NextOffset int  `json:"nextOffset,omitempty"`
+}
+
+func pageOf[T any](rows []T, f Filter) Page[T] {
+	p := Page[T]{Rows: rows, Offset: max(f.Offset, 0), Limit: f.limit()}
+	if p.Rows == nil {
+		p.Rows = []T{}
+	}
+	if len(p.Rows) > p.Limit {
+		p.Rows, p.More, p.NextOffset = p.Rows[:p.Limit], true, p.Offset+p.Limit
+	}
+	return p
+}
+
+// pageSQL ends every paged query ($6 is the page size plus one, $7 the offset).
+const pageSQL = `
+LIMIT $6 OFFSET $7`
 
 // filterSQL is the WHERE clause of Filter over a view with patient_ref,
-// effective, kind and algorithm columns ($1..$5; $6 is the limit).
+// effective, kind and algorithm columns ($1..$5).
 const filterSQL = `($1 = '' OR patient_ref = $1)
   AND ($2::timestamptz IS NULL OR effective >= $2)
   AND ($3::timestamptz IS NULL OR effective < $3)
   AND ($4 = '' OR kind = $4)
   AND ($5 = '' OR algorithm = $5)`
 
-// Constant is a constant as recorded with a derivation.
+// Constant is a constant as recorded with a derivation, at full precision
+// (as the published note writes it).
 type Constant struct {
 	Name   string  `json:"name"`
 	Value  float64 `json:"value"`
@@ -70,6 +121,12 @@ type Interpretation struct {
 }
 
 // Version is one stored version of a derived value.
+//
+// Value is the stored value at full precision and Published the same value
+// as it was published (valueQuantity.value: rounded to the kind's decimals,
+// fhirmap.FormatValue). A retraction (status entered-in-error) was
+// published without a value, so both are empty for it; the withdrawn value
+// is the superseded version's.
 type Version struct {
 	ID             int64          `json:"id"`
 	Key            string         `json:"key"`
@@ -79,9 +136,11 @@ type Version struct {
 	Patient        string         `json:"patient"`
 	Encounter      string         `json:"encounter,omitempty"`
 	BloodGas       string         `json:"bloodGas"`
-	Effective      time.Time      `json:"effective"`
-	Value          float64        `json:"value"`
-	Unit           string         `json:"unit"`
+	Effective      time.Time      `json:"effective"` // blood-gas time
+	Value          *float64       `json:"value,omitempty"`
+	Published      string         `json:"published,omitempty"`
+	Unit           string         `json:"unit"` // UCUM
+	DisplayUnit    string         `json:"displayUnit,omitempty"`
 	Method         string         `json:"method"`
 	MethodVersion  string         `json:"methodVersion"`
 	Constants      []Constant     `json:"constants"`
@@ -101,23 +160,44 @@ type Version struct {
 }
 
 // Input is one fact a derivation used or a refusal considered.
+//
+// A patient-level fact (sex, birth date: from the Patient resource) has no
+// time of its own: PatientLevel is true and Effective and Offset are nil.
+// Coded and date facts (sex, birth date) have Text and no Value. Shown is
+// the value as the published note writes it (at most 3 decimals, or the
+// text).
 type Input struct {
-	Ordinal    int           `json:"ordinal"`
-	Role       string        `json:"role"`
-	FactKey    string        `json:"factKey"`
-	FactDigest string        `json:"factDigest"`
-	Resource   string        `json:"resource"`
-	VersionID  string        `json:"versionId,omitempty"`
-	Quantity   string        `json:"quantity"`
-	Origin     string        `json:"origin,omitempty"`
-	Detail     string        `json:"detail,omitempty"`
-	Specimen   string        `json:"specimen,omitempty"`
-	Value      float64       `json:"value"`
-	Unit       string        `json:"unit"`
-	Status     string        `json:"status"`
-	Effective  time.Time     `json:"effective"`
-	Offset     time.Duration `json:"offsetNs"`
-	Fallback   string        `json:"fallback,omitempty"`
+	Ordinal      int            `json:"ordinal"`
+	Role         string         `json:"role"`
+	FactKey      string         `json:"factKey"`
+	FactDigest   string         `json:"factDigest"`
+	Resource     string         `json:"resource"`
+	VersionID    string         `json:"versionId,omitempty"`
+	Quantity     string         `json:"quantity"`
+	Origin       string         `json:"origin,omitempty"`
+	Detail       string         `json:"detail,omitempty"`
+	Specimen     string         `json:"specimen,omitempty"`
+	Value        *float64       `json:"value,omitempty"` // canonical unit, full precision
+	Text         string         `json:"text,omitempty"`
+	Shown        string         `json:"shown"`
+	Unit         string         `json:"unit,omitempty"` // UCUM, canonical
+	DisplayUnit  string         `json:"displayUnit,omitempty"`
+	SourceValue  *float64       `json:"sourceValue,omitempty"` // as sent, when sent in another unit
+	SourceUnit   string         `json:"sourceUnit,omitempty"`
+	Status       string         `json:"status"`
+	PatientLevel bool           `json:"patientLevel,omitempty"`
+	Effective    *time.Time     `json:"effective,omitempty"`
+	Offset       *time.Duration `json:"offsetNs,omitempty"` // input time minus blood-gas time
+	Fallback     string         `json:"fallback,omitempty"`
+}
+
+// OffsetText is the offset as a duration ("-6m0s"), "" for a
+// patient-level input.
+func (in Input) OffsetText() string {
+	if in.Offset == nil {
+		return ""
+	}
+	return in.Offset.String()
 }
 
 // Refusal is one stored refusal.
@@ -127,13 +207,13 @@ type Refusal struct {
 	Kind       string    `json:"kind"`
 	Patient    string    `json:"patient"`
 	BloodGas   string    `json:"bloodGas"`
-	Effective  time.Time `json:"effective"`
+	Effective  time.Time `json:"effective"` // blood-gas time
 	Reason     string    `json:"reason"`
 	Detail     string    `json:"detail"`
 	Digest     string    `json:"digest"`
 	Current    bool      `json:"current"`
 	Recorded   time.Time `json:"recorded"`
-	Considered []Input   `json:"considered,omitempty"`
+	Considered []Input   `json:"considered"`
 }
 
 // History is everything recorded under one derivation key, oldest first.
@@ -141,6 +221,39 @@ type History struct {
 	Key      string    `json:"key"`
 	Versions []Version `json:"versions"`
 	Refusals []Refusal `json:"refusals"`
+}
+
+// DisplayUnit is the unit as people read it (mmHg, °C, L/min, mL) for a
+// UCUM code; "" for the dimensionless "1". Codes it does not know are
+// returned as they are.
+func DisplayUnit(ucum string) string {
+	switch ucum {
+	case "1", "":
+		return ""
+	case "mm[Hg]":
+		return "mmHg"
+	case "Cel":
+		return "°C"
+	case "cm[H2O]":
+		return "cmH2O"
+	case "{breaths}/min":
+		return "breaths/min"
+	case "mm[Hg].L/mL":
+		return "mmHg·L/mL"
+	case "a":
+		return "years"
+	}
+	return ucum
+}
+
+// Shown renders an input value as the published notes do: at most 3
+// decimals, no trailing zeros.
+func shownNumber(v float64) string {
+	r := math.Round(v*1000) / 1000
+	if r == 0 {
+		r = 0
+	}
+	return strconv.FormatFloat(r, 'f', -1, 64)
 }
 
 const (
@@ -157,12 +270,18 @@ LIMIT 2`
 	showVersionsSQL = `SELECT ` + versionColumns + `
 FROM review_derivation WHERE key = $1 ORDER BY version`
 
+	// inputColumns read an input with the fact's text and value as sent
+	// (review_fact; (key, digest) is unique).
+	inputColumns = `i.ordinal, i.role, i.fact_key, i.fact_digest, i.resource_ref, i.version_id, i.quantity,
+       i.origin, i.detail, i.specimen, i.value, i.unit, f.text, f.source_value, f.source_unit, i.status,
+       i.effective, i.time_offset, i.fallback`
+
 	showInputsSQL = `
-SELECT derivation_id, ordinal, role, fact_key, fact_digest, resource_ref, version_id, quantity, origin,
-       detail, specimen, value, unit, status, effective, time_offset, fallback
-FROM review_derivation_input
-WHERE derivation_id IN (SELECT id FROM review_derivation WHERE key = $1)
-ORDER BY derivation_id, ordinal`
+SELECT i.derivation_id, ` + inputColumns + `
+FROM review_derivation_input i
+JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+WHERE i.derivation_id IN (SELECT id FROM review_derivation WHERE key = $1)
+ORDER BY i.derivation_id, i.ordinal`
 
 	showRefusalsSQL = `
 SELECT id, key, kind, patient_ref, blood_gas_key, effective, reason, detail, digest,
@@ -170,18 +289,19 @@ SELECT id, key, kind, patient_ref, blood_gas_key, effective, reason, detail, dig
 FROM review_refusal WHERE key = $1 ORDER BY id`
 
 	showConsideredSQL = `
-SELECT refusal_id, ordinal, role, fact_key, fact_digest, resource_ref, version_id, quantity, origin,
-       detail, specimen, value, unit, status, effective, time_offset, fallback
-FROM review_refusal_input
-WHERE refusal_id IN (SELECT id FROM review_refusal WHERE key = $1)
-ORDER BY refusal_id, ordinal`
+SELECT i.refusal_id, ` + inputColumns + `
+FROM review_refusal_input i
+JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+WHERE i.refusal_id IN (SELECT id FROM review_refusal WHERE key = $1)
+ORDER BY i.refusal_id, i.ordinal`
 )
 
 // Show returns the full history of one derived value, found by its
 // Observation id (a UUID) or its key ("<patient>|<blood-gas key>|<kind>"):
 // every version with its inputs, constants, assumptions and basis, what
 // superseded what, and every refusal with the inputs it considered. It
-// returns ErrNotFound when nothing matches.
+// returns ErrNotFound when nothing matches. A key's history is not paged:
+// it is one value's versions, each bounded by the inputs of one blood gas.
 func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	id := ""
 	if u, err := uuid.Parse(idOrKey); err == nil {
@@ -218,13 +338,7 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	}
 	rows, err = br.Query()
 	if err == nil {
-		h.Refusals, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (Refusal, error) {
-			var x Refusal
-			err := row.Scan(&x.ID, &x.Key, &x.Kind, &x.Patient, &x.BloodGas, &x.Effective, &x.Reason, &x.Detail,
-				&x.Digest, &x.Current, &x.Recorded)
-			x.Effective, x.Recorded = x.Effective.UTC(), x.Recorded.UTC()
-			return x, err
-		})
+		h.Refusals, err = pgx.CollectRows(rows, scanRefusal)
 	}
 	if err != nil {
 		return History{}, fmt.Errorf("read refusals: %w", err)
@@ -235,6 +349,9 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	}
 	for i := range h.Refusals {
 		h.Refusals[i].Considered = considered[h.Refusals[i].ID]
+		if h.Refusals[i].Considered == nil {
+			h.Refusals[i].Considered = []Input{}
+		}
 	}
 	if h.Versions == nil {
 		h.Versions = []Version{}
@@ -245,6 +362,15 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	return h, br.Close()
 }
 
+func scanRefusal(row pgx.CollectableRow) (Refusal, error) {
+	var x Refusal
+	err := row.Scan(&x.ID, &x.Key, &x.Kind, &x.Patient, &x.BloodGas, &x.Effective, &x.Reason, &x.Detail,
+		&x.Digest, &x.Current, &x.Recorded)
+	x.Effective, x.Recorded = x.Effective.UTC(), x.Recorded.UTC()
+	return x, err
+}
+
+// collectInputs reads rows of an owner id followed by inputColumns.
 func collectInputs(br pgx.BatchResults) (map[int64][]Input, error) {
 	rows, err := br.Query()
 	if err != nil {
@@ -253,31 +379,70 @@ func collectInputs(br pgx.BatchResults) (map[int64][]Input, error) {
 	out := map[int64][]Input{}
 	var owner int64
 	var in Input
+	var value, sourceValue float64
+	var effective time.Time
 	var offset pgtype.Interval
 	_, err = pgx.ForEachRow(rows, []any{&owner, &in.Ordinal, &in.Role, &in.FactKey, &in.FactDigest, &in.Resource,
-		&in.VersionID, &in.Quantity, &in.Origin, &in.Detail, &in.Specimen, &in.Value, &in.Unit, &in.Status,
-		&in.Effective, &offset, &in.Fallback}, func() error {
-		x := in
-		x.Effective = x.Effective.UTC()
-		x.Offset = time.Duration(offset.Microseconds)*time.Microsecond +
-			time.Duration(offset.Days)*24*time.Hour + time.Duration(offset.Months)*30*24*time.Hour
-		out[owner] = append(out[owner], x)
+		&in.VersionID, &in.Quantity, &in.Origin, &in.Detail, &in.Specimen, &value, &in.Unit, &in.Text,
+		&sourceValue, &in.SourceUnit, &in.Status, &effective, &offset, &in.Fallback}, func() error {
+		out[owner] = append(out[owner], makeInput(in, value, sourceValue, effective, offset))
 		return nil
 	})
 	return out, err
 }
 
+// makeInput fills what the stored row implies: a coded or date fact shows
+// its text (its stored value 0 means nothing); a fact without a time of its
+// own (stored as the zero time, 0001-01-01) is patient-level and has no
+// offset (the stored one is the saturated difference to year 1).
+func makeInput(in Input, value, sourceValue float64, effective time.Time, offset pgtype.Interval) Input {
+	switch fhirmap.Quantity(in.Quantity) {
+	case fhirmap.QSex, fhirmap.QBirthDate:
+		in.Shown, in.Unit, in.SourceUnit = in.Text, "", ""
+	default:
+		in.Value = &value
+		in.Shown = shownNumber(value)
+		in.DisplayUnit = DisplayUnit(in.Unit)
+		if in.SourceUnit != "" && in.SourceUnit != in.Unit {
+			in.SourceValue = &sourceValue
+		} else {
+			in.SourceUnit = ""
+		}
+	}
+	if effective = effective.UTC(); effective.IsZero() {
+		in.PatientLevel = true
+		return in
+	}
+	in.Effective = &effective
+	d := time.Duration(offset.Microseconds)*time.Microsecond +
+		time.Duration(offset.Days)*24*time.Hour + time.Duration(offset.Months)*30*24*time.Hour
+	in.Offset = &d
+	return in
+}
+
+// published sets Value and Published from the stored value, or clears
+// them for a retraction (published without a value).
+func published(kind, status string, v float64) (*float64, string) {
+	if status == string(fhirmap.StatusEnteredInError) {
+		return nil, ""
+	}
+	return &v, fhirmap.FormatValue(kind, v)
+}
+
 func scanVersion(row pgx.CollectableRow) (Version, error) {
 	var v Version
+	var value float64
 	var consts, assumptions, flags string
 	err := row.Scan(&v.ID, &v.Key, &v.Version, &v.ObservationID, &v.Kind, &v.Patient, &v.Encounter, &v.BloodGas,
-		&v.Effective, &v.Value, &v.Unit, &v.Method, &v.MethodVersion, &consts, &assumptions, &v.Basis,
+		&v.Effective, &value, &v.Unit, &v.Method, &v.MethodVersion, &consts, &assumptions, &v.Basis,
 		&v.Interpretation.Code, &v.Interpretation.Text, &v.Interpretation.Source, &flags, &v.Status, &v.Retracted,
 		&v.Algorithm, &v.Digest, &v.Supersedes, &v.SupersededBy, &v.Current, &v.Recorded)
 	if err != nil {
 		return v, err
 	}
 	v.Effective, v.Recorded = v.Effective.UTC(), v.Recorded.UTC()
+	v.Value, v.Published = published(v.Kind, v.Status, value)
+	v.DisplayUnit = DisplayUnit(v.Unit)
 	for _, j := range []struct {
 		text string
 		into any
@@ -301,19 +466,28 @@ func queryRows[T any](ctx context.Context, pool *pgxpool.Pool, sql string, fn pg
 	return out, err
 }
 
+// queryPage runs a paged query (args from Filter.args plus extra) and cuts
+// the extra row off into Page.More.
+func queryPage[T any](ctx context.Context, pool *pgxpool.Pool, sql string, fn pgx.RowToFunc[T], f Filter, extra ...any) (Page[T], error) {
+	rows, err := queryRows(ctx, pool, sql, fn, append(f.args(), extra...)...)
+	if err != nil {
+		return Page[T]{}, err
+	}
+	return pageOf(rows, f), nil
+}
+
 const listSQL = `SELECT ` + versionColumns + `
 FROM review_derivation
-WHERE ` + filterSQL + `
-ORDER BY effective, key, version
-LIMIT $6`
+WHERE ` + filterSQL + ` AND $8 = $8
+ORDER BY effective, key, version` + pageSQL
 
 // List returns derivation versions (all versions, not only current ones)
-// matching f by blood-gas effective time, oldest blood gas first, without
-// their inputs.
-func (r *Reviewer) List(ctx context.Context, f Filter) ([]Version, error) {
-	out, err := queryRows(ctx, r.pool, listSQL, scanVersion, f.args()...)
+// whose blood gas falls in f's period, oldest blood gas first (then key and
+// version), without their inputs.
+func (r *Reviewer) List(ctx context.Context, f Filter) (Page[Version], error) {
+	out, err := queryPage(ctx, r.pool, listSQL, scanVersion, f)
 	if err != nil {
-		return nil, fmt.Errorf("list derivations: %w", err)
+		return out, fmt.Errorf("list derivations: %w", err)
 	}
 	return out, nil
 }
@@ -325,8 +499,8 @@ type ReasonCount struct {
 	Count    int       `json:"count"`
 	Current  int       `json:"current"` // of which still the key's latest state
 	Patients int       `json:"patients"`
-	First    time.Time `json:"first"` // earliest blood-gas effective time
-	Last     time.Time `json:"last"`
+	First    time.Time `json:"first"` // earliest blood-gas time
+	Last     time.Time `json:"last"`  // latest blood-gas time
 }
 
 const refusalsSQL = `
@@ -338,97 +512,120 @@ WHERE ($1 = '' OR patient_ref = $1)
   AND ($3::timestamptz IS NULL OR effective < $3)
   AND ($4 = '' OR kind = $4)
   AND $5 = $5
+  AND ($8 = '' OR reason = $8)
 GROUP BY reason, kind
-ORDER BY count(*) DESC, reason, kind
-LIMIT $6`
+ORDER BY count(*) DESC, reason, kind` + pageSQL
 
 // Refusals summarises refusals by reason code and kind, most frequent
-// first. Filter.Algorithm does not apply (refusals carry no algorithm).
-func (r *Reviewer) Refusals(ctx context.Context, f Filter) ([]ReasonCount, error) {
-	out, err := queryRows(ctx, r.pool, refusalsSQL, func(row pgx.CollectableRow) (ReasonCount, error) {
+// first, by blood-gas time. Filter.Algorithm does not apply (refusals carry
+// no algorithm).
+func (r *Reviewer) Refusals(ctx context.Context, f Filter) (Page[ReasonCount], error) {
+	out, err := queryPage(ctx, r.pool, refusalsSQL, func(row pgx.CollectableRow) (ReasonCount, error) {
 		var c ReasonCount
 		err := row.Scan(&c.Reason, &c.Kind, &c.Count, &c.Current, &c.Patients, &c.First, &c.Last)
 		c.First, c.Last = c.First.UTC(), c.Last.UTC()
 		return c, err
-	}, f.args()...)
+	}, f)
 	if err != nil {
-		return nil, fmt.Errorf("summarise refusals: %w", err)
+		return out, fmt.Errorf("summarise refusals: %w", err)
 	}
 	return out, nil
 }
 
 // Discrepancy is a current measured-minus-predicted PaCO2 at or beyond a
-// threshold, with the predicted and measured values when recorded.
+// threshold, with the predicted and measured values when recorded. The
+// *MmHg fields are full precision; Difference and Predicted are as
+// published (rounded to their kinds' decimals), Measured as the published
+// note shows the input.
 type Discrepancy struct {
 	Key            string    `json:"key"`
 	ObservationID  string    `json:"observationId"`
 	Patient        string    `json:"patient"`
 	BloodGas       string    `json:"bloodGas"`
-	Effective      time.Time `json:"effective"`
+	Effective      time.Time `json:"effective"` // blood-gas time
 	Version        int       `json:"version"`
 	Status         string    `json:"status"`
 	DifferenceMmHg float64   `json:"differenceMmHg"`
+	Difference     string    `json:"difference"`
 	PredictedMmHg  *float64  `json:"predictedMmHg"`
+	Predicted      string    `json:"predicted,omitempty"`
 	MeasuredMmHg   *float64  `json:"measuredMmHg"`
+	Measured       string    `json:"measured,omitempty"`
+	InterpCode     string    `json:"interpretationCode,omitempty"`
 	Interpretation string    `json:"interpretation"`
 	Basis          string    `json:"basis"`
+	Recorded       time.Time `json:"recorded"`
 }
 
 const discrepanciesSQL = `
 SELECT d.key, d.observation_id::text, d.patient_ref, d.blood_gas_key, d.effective, d.version, d.status,
-       d.value, p.value, m.value, d.interp_text, d.basis
+       d.value, CASE WHEN p.status <> 'entered-in-error' THEN p.value END, m.value, d.interp_code, d.interp_text,
+       d.basis, d.created_at
 FROM review_derivation d
 LEFT JOIN review_derivation p
        ON p.patient_ref = d.patient_ref AND p.blood_gas_key = d.blood_gas_key
-      AND p.kind = $8 AND p.is_current
+      AND p.kind = $10 AND p.is_current
 LEFT JOIN LATERAL (
     SELECT i.value FROM review_derivation_input i
     WHERE i.derivation_id = d.id AND i.fact_key = d.blood_gas_key
     ORDER BY i.ordinal LIMIT 1) m ON true
 WHERE d.is_current AND d.status <> 'entered-in-error'
-  AND ($4 = '' OR d.kind = $4) AND d.kind = $7
-  AND abs(d.value) >= $9
+  AND ($4 = '' OR d.kind = $4) AND d.kind = $9
+  AND abs(d.value) >= $11
   AND ($1 = '' OR d.patient_ref = $1)
   AND ($2::timestamptz IS NULL OR d.effective >= $2)
   AND ($3::timestamptz IS NULL OR d.effective < $3)
   AND ($5 = '' OR d.algorithm = $5)
-ORDER BY abs(d.value) DESC, d.effective, d.key
-LIMIT $6`
+  AND $8 = $8
+ORDER BY abs(d.value) DESC, d.effective, d.key` + pageSQL
 
 // Discrepancies returns current measured-minus-predicted PaCO2 values whose
-// size is at least thresholdMmHg (mm[Hg]), largest first.
-func (r *Reviewer) Discrepancies(ctx context.Context, thresholdMmHg float64, f Filter) ([]Discrepancy, error) {
-	args := append(f.args(), fhirmap.KindPaCO2Discrepancy, fhirmap.KindPredictedPaCO2, thresholdMmHg)
-	out, err := queryRows(ctx, r.pool, discrepanciesSQL, func(row pgx.CollectableRow) (Discrepancy, error) {
+// size is at least thresholdMmHg (mm[Hg]), largest first, by blood-gas
+// time.
+func (r *Reviewer) Discrepancies(ctx context.Context, thresholdMmHg float64, f Filter) (Page[Discrepancy], error) {
+	out, err := queryPage(ctx, r.pool, discrepanciesSQL, func(row pgx.CollectableRow) (Discrepancy, error) {
 		var d Discrepancy
 		err := row.Scan(&d.Key, &d.ObservationID, &d.Patient, &d.BloodGas, &d.Effective, &d.Version, &d.Status,
-			&d.DifferenceMmHg, &d.PredictedMmHg, &d.MeasuredMmHg, &d.Interpretation, &d.Basis)
-		d.Effective = d.Effective.UTC()
+			&d.DifferenceMmHg, &d.PredictedMmHg, &d.MeasuredMmHg, &d.InterpCode, &d.Interpretation, &d.Basis, &d.Recorded)
+		d.Effective, d.Recorded = d.Effective.UTC(), d.Recorded.UTC()
+		d.Difference = fhirmap.FormatValue(fhirmap.KindPaCO2Discrepancy, d.DifferenceMmHg)
+		if d.PredictedMmHg != nil {
+			d.Predicted = fhirmap.FormatValue(fhirmap.KindPredictedPaCO2, *d.PredictedMmHg)
+		}
+		if d.MeasuredMmHg != nil {
+			d.Measured = shownNumber(*d.MeasuredMmHg)
+		}
 		return d, err
-	}, args...)
+	}, f, fhirmap.KindPaCO2Discrepancy, fhirmap.KindPredictedPaCO2, thresholdMmHg)
 	if err != nil {
-		return nil, fmt.Errorf("find discrepancies: %w", err)
+		return out, fmt.Errorf("find discrepancies: %w", err)
 	}
 	return out, nil
 }
 
 // Change is a derived value changed by a later version: amended,
-// corrected, retracted, or recomputed to another value.
+// corrected, retracted, or recomputed to another value. From and To values
+// follow Version: full precision in *Value, as published in *Published,
+// none for a retraction (on either side: a value derived again after a
+// retraction comes from none).
 type Change struct {
-	Key         string    `json:"key"`
-	Kind        string    `json:"kind"`
-	Patient     string    `json:"patient"`
-	BloodGas    string    `json:"bloodGas"`
-	Effective   time.Time `json:"effective"`
-	FromVersion int       `json:"fromVersion"`
-	ToVersion   int       `json:"toVersion"`
-	FromValue   float64   `json:"fromValue"`
-	ToValue     float64   `json:"toValue"`
-	Unit        string    `json:"unit"`
-	FromStatus  string    `json:"fromStatus"`
-	ToStatus    string    `json:"toStatus"`
-	Retracted   string    `json:"retracted,omitempty"`
-	Recorded    time.Time `json:"recorded"`
+	Key           string    `json:"key"`
+	Kind          string    `json:"kind"`
+	Patient       string    `json:"patient"`
+	BloodGas      string    `json:"bloodGas"`
+	Effective     time.Time `json:"effective"` // blood-gas time
+	FromVersion   int       `json:"fromVersion"`
+	ToVersion     int       `json:"toVersion"`
+	FromValue     *float64  `json:"fromValue,omitempty"`
+	FromPublished string    `json:"fromPublished,omitempty"`
+	ToValue       *float64  `json:"toValue,omitempty"`
+	ToPublished   string    `json:"toPublished,omitempty"`
+	Unit          string    `json:"unit"` // UCUM
+	DisplayUnit   string    `json:"displayUnit,omitempty"`
+	FromStatus    string    `json:"fromStatus"`
+	ToStatus      string    `json:"toStatus"`
+	Retracted     string    `json:"retracted,omitempty"`
+	Recorded      time.Time `json:"recorded"` // when the later version was recorded
 }
 
 const changesSQL = `
@@ -438,68 +635,69 @@ FROM review_derivation
 WHERE supersedes_version IS NOT NULL
   AND (status IN ('amended', 'corrected', 'entered-in-error') OR value <> supersedes_value
        OR status <> supersedes_status)
-  AND ` + filterSQL + `
-ORDER BY created_at, key, version
-LIMIT $6`
+  AND ` + filterSQL + ` AND $8 = $8
+ORDER BY effective, key, version` + pageSQL
 
 // Changes returns every version that changed a previously recorded value
-// (by amendment, correction, retraction or recomputation), in recording
-// order.
-func (r *Reviewer) Changes(ctx context.Context, f Filter) ([]Change, error) {
-	out, err := queryRows(ctx, r.pool, changesSQL, func(row pgx.CollectableRow) (Change, error) {
+// (by amendment, correction, retraction or recomputation), by blood-gas
+// time (then key and version).
+func (r *Reviewer) Changes(ctx context.Context, f Filter) (Page[Change], error) {
+	out, err := queryPage(ctx, r.pool, changesSQL, func(row pgx.CollectableRow) (Change, error) {
 		var c Change
+		var from, to float64
 		err := row.Scan(&c.Key, &c.Kind, &c.Patient, &c.BloodGas, &c.Effective, &c.FromVersion, &c.ToVersion,
-			&c.FromValue, &c.ToValue, &c.Unit, &c.FromStatus, &c.ToStatus, &c.Retracted, &c.Recorded)
+			&from, &to, &c.Unit, &c.FromStatus, &c.ToStatus, &c.Retracted, &c.Recorded)
 		c.Effective, c.Recorded = c.Effective.UTC(), c.Recorded.UTC()
+		c.FromValue, c.FromPublished = published(c.Kind, c.FromStatus, from)
+		c.ToValue, c.ToPublished = published(c.Kind, c.ToStatus, to)
+		c.DisplayUnit = DisplayUnit(c.Unit)
 		return c, err
-	}, f.args()...)
+	}, f)
 	if err != nil {
-		return nil, fmt.Errorf("list changes: %w", err)
+		return out, fmt.Errorf("list changes: %w", err)
 	}
 	return out, nil
 }
 
-// DayCount is what was recorded on one UTC day.
+// DayCount is what was recorded for the blood gases of one UTC day.
 type DayCount struct {
-	Day         string `json:"day"` // YYYY-MM-DD, UTC
-	Derivations int    `json:"derivations"`
+	Day         string `json:"day"` // YYYY-MM-DD, UTC, of the blood-gas time
+	BloodGases  int    `json:"bloodGases"`
+	Derivations int    `json:"derivations"` // versions, retractions included
 	Retractions int    `json:"retractions"`
 	Refusals    int    `json:"refusals"`
-	DeadLetters int    `json:"deadLetters"`
 }
 
 const dailySQL = `
 WITH ev AS (
-    SELECT created_at, 1 AS derivation, (status = 'entered-in-error')::int AS retraction, 0 AS refusal, 0 AS dead
+    SELECT effective, patient_ref, blood_gas_key, 1 AS derivation, (status = 'entered-in-error')::int AS retraction, 0 AS refusal
     FROM review_derivation
     WHERE ($1 = '' OR patient_ref = $1) AND ($4 = '' OR kind = $4) AND ($5 = '' OR algorithm = $5)
     UNION ALL
-    SELECT created_at, 0, 0, 1, 0 FROM review_refusal
+    SELECT effective, patient_ref, blood_gas_key, 0, 0, 1 FROM review_refusal
     WHERE ($1 = '' OR patient_ref = $1) AND ($4 = '' OR kind = $4) AND $5 = ''
-    UNION ALL
-    SELECT created_at, 0, 0, 0, 1 FROM review_dead_letter
-    WHERE $1 = '' AND $4 = '' AND $5 = ''
 )
-SELECT to_char(created_at AT TIME ZONE 'UTC', 'YYYY-MM-DD') AS day,
-       sum(derivation), sum(retraction), sum(refusal), sum(dead)
+SELECT to_char(effective AT TIME ZONE 'UTC', 'YYYY-MM-DD') AS day,
+       count(DISTINCT (patient_ref, blood_gas_key)), sum(derivation), sum(retraction), sum(refusal)
 FROM ev
-WHERE ($2::timestamptz IS NULL OR created_at >= $2) AND ($3::timestamptz IS NULL OR created_at < $3)
+WHERE ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
+  AND $8 = $8
 GROUP BY day
-ORDER BY day
-LIMIT $6`
+ORDER BY day` + pageSQL
 
-// Daily counts, per UTC day of recording, the derivation versions (and
-// among them retractions), refusals and dead letters. Filter.From and To
-// apply to the recorded time; a patient, kind or algorithm filter leaves out
-// what does not carry one (dead letters; refusals for an algorithm).
-func (r *Reviewer) Daily(ctx context.Context, f Filter) ([]DayCount, error) {
-	out, err := queryRows(ctx, r.pool, dailySQL, func(row pgx.CollectableRow) (DayCount, error) {
+// Daily counts, per UTC day of blood-gas time, the blood gases with any
+// record, the derivation versions (and among them retractions) and the
+// refusals. A kind or algorithm filter leaves out what does not carry one
+// (refusals for an algorithm). Dead letters have no blood gas: see
+// DeadLetters.
+func (r *Reviewer) Daily(ctx context.Context, f Filter) (Page[DayCount], error) {
+	out, err := queryPage(ctx, r.pool, dailySQL, func(row pgx.CollectableRow) (DayCount, error) {
 		var d DayCount
-		err := row.Scan(&d.Day, &d.Derivations, &d.Retractions, &d.Refusals, &d.DeadLetters)
+		err := row.Scan(&d.Day, &d.BloodGases, &d.Derivations, &d.Retractions, &d.Refusals)
 		return d, err
-	}, f.args()...)
+	}, f)
 	if err != nil {
-		return nil, fmt.Errorf("count per day: %w", err)
+		return out, fmt.Errorf("count per day: %w", err)
 	}
 	return out, nil
 }
@@ -520,21 +718,21 @@ const deadLettersSQL = `
 SELECT id, inbox_key, subject, stream_seq, size_bytes, reason, detail, created_at
 FROM review_dead_letter
 WHERE ($2::timestamptz IS NULL OR created_at >= $2) AND ($3::timestamptz IS NULL OR created_at < $3)
-  AND $1 = $1 AND $4 = $4 AND $5 = $5
-ORDER BY id
-LIMIT $6`
+  AND $1 = $1 AND $4 = $4 AND $5 = $5 AND ($8 = '' OR reason = $8)
+ORDER BY id` + pageSQL
 
-// DeadLetters lists poison messages by recorded time (Filter.From, To and
-// Limit apply), oldest first.
-func (r *Reviewer) DeadLetters(ctx context.Context, f Filter) ([]DeadLetterRecord, error) {
-	out, err := queryRows(ctx, r.pool, deadLettersSQL, func(row pgx.CollectableRow) (DeadLetterRecord, error) {
+// DeadLetters lists poison messages by recorded time (their only time:
+// they were never understood), oldest first. Filter.Patient, Kind and
+// Algorithm do not apply.
+func (r *Reviewer) DeadLetters(ctx context.Context, f Filter) (Page[DeadLetterRecord], error) {
+	out, err := queryPage(ctx, r.pool, deadLettersSQL, func(row pgx.CollectableRow) (DeadLetterRecord, error) {
 		var d DeadLetterRecord
 		err := row.Scan(&d.ID, &d.InboxKey, &d.Subject, &d.StreamSeq, &d.SizeBytes, &d.Reason, &d.Detail, &d.Recorded)
 		d.Recorded = d.Recorded.UTC()
 		return d, err
-	}, f.args()...)
+	}, f)
 	if err != nil {
-		return nil, fmt.Errorf("list dead letters: %w", err)
+		return out, fmt.Errorf("list dead letters: %w", err)
 	}
 	return out, nil
 }
