@@ -3,6 +3,7 @@ package migrations_test
 import (
 	"context"
 	"errors"
+	"path/filepath"
 	"slices"
 	"strings"
 	"sync"
@@ -113,8 +114,14 @@ func TestApplyConcurrent(t *testing.T) {
 	if err := conn.QueryRow(ctx, `SELECT count(*) FROM schema_version`).Scan(&rows); err != nil {
 		t.Fatal(err)
 	}
-	if rows != migrations.Latest() {
-		t.Errorf("schema_version has %d rows, want one per migration (%d)", rows, migrations.Latest())
+	// Versions may have gaps (branches number their files apart), so the
+	// rows are counted against the files.
+	files, err := filepath.Glob("*.sql")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if rows != len(files) {
+		t.Errorf("schema_version has %d rows, want one per migration file (%d)", rows, len(files))
 	}
 }
 

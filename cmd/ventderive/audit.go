@@ -33,6 +33,12 @@ questions (time basis: the blood gas's effective time, except deadletters):
                                 constants, assumptions, basis, what superseded what, refusals
   list           derivation versions       [--patient REF] [--from T] [--to T] [--kind K] [--algorithm V]
   refusals       refusals counted by reason and kind  [--patient] [--from] [--to] [--kind] [--reason R]
+  refused        refusals one by one, per blood gas: reason, detail, inputs considered, and the
+                 nearest ventilator reading for no-ventilator-data-in-window
+                 [--patient] [--from] [--to] [--kind] [--reason R]
+  published <observation-id or key> [--version N] [--type Observation|Provenance]
+                 the exact bytes published for one version (default: the latest, Observation);
+                 the digest is in show
   discrepancies  current measured minus predicted PaCO2 at or beyond --threshold mmHg (default 5)
                  [--patient] [--from] [--to] [--algorithm]
   changes        values changed by amendment, correction, recomputation or retraction
@@ -62,6 +68,8 @@ var auditQuestions = []auditQuestion{
 	{"show", nil},
 	{"list", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
 	{"refusals", []string{"patient", "from", "to", "kind", "reason", "limit", "offset"}},
+	{"refused", []string{"patient", "from", "to", "kind", "reason", "limit", "offset"}},
+	{"published", []string{"version", "type"}},
 	{"discrepancies", []string{"patient", "from", "to", "algorithm", "threshold", "limit", "offset"}},
 	{"changes", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
 	{"daily", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
@@ -112,6 +120,8 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	fs.IntVar(&f.Limit, "limit", postgres.DefaultLimit, "rows per page")
 	fs.IntVar(&f.Offset, "offset", 0, "rows to skip")
 	threshold := fs.Float64("threshold", 5, "discrepancies: minimum |measured - predicted| in mmHg")
+	version := fs.Int("version", 0, "published: version (default the latest)")
+	resourceType := fs.String("type", "Observation", "published: Observation or Provenance")
 	// Flags may follow the positional argument of show.
 	var positional []string
 	for {
@@ -138,6 +148,12 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	}
 	if err := checkAuditArgs(q, &f, from, to, *format, *threshold, positional); err != nil {
 		return usageErr(err.Error())
+	}
+	if *version < 0 {
+		return usageErr(fmt.Sprintf("--version %d: want 1 or more", *version))
+	}
+	if *resourceType != "Observation" && *resourceType != "Provenance" {
+		return usageErr(fmt.Sprintf("--type %q: want Observation or Provenance", *resourceType))
 	}
 	if *dbURL == "" {
 		return usageErr("no database: set --database-url or DATABASE_URL")
@@ -168,6 +184,26 @@ func runAudit(ctx context.Context, args []string, e env) error {
 			return fmt.Errorf("audit show: %w", err)
 		}
 		return out.show(h)
+	case "published":
+		h, err := r.Show(ctx, positional[0])
+		if errors.Is(err, postgres.ErrNotFound) {
+			return fmt.Errorf("audit published: no derivation with that id or key")
+		}
+		if err != nil {
+			return fmt.Errorf("audit published: %w", err)
+		}
+		m, err := pickPublished(h, *version, *resourceType)
+		if err != nil {
+			return fmt.Errorf("audit published: %w", err)
+		}
+		_, err = e.stdout.Write(m.Payload)
+		return err
+	case "refused":
+		p, err := r.Refused(ctx, f)
+		if err != nil {
+			return fmt.Errorf("audit refused: %w", err)
+		}
+		return writePage(out, p, refusedColumns)
 	case "list":
 		p, err := r.List(ctx, f)
 		if err != nil {
@@ -258,12 +294,12 @@ func checkAuditArgs(q auditQuestion, f *postgres.Filter, from, to, format string
 		return fmt.Errorf("--threshold %g: want a finite number of mmHg, 0 or more", threshold)
 	}
 	want := 0
-	if q.name == "show" {
+	if q.name == "show" || q.name == "published" {
 		want = 1
 	}
 	if len(positional) != want {
 		if want == 1 {
-			return fmt.Errorf("show takes one argument, an Observation id or a key <Patient/id>|<blood-gas reference>|<kind>")
+			return fmt.Errorf("%s takes one argument, an Observation id or a key <Patient/id>|<blood-gas reference>|<kind>", q.name)
 		}
 		return fmt.Errorf("%s takes no argument, got %q", q.name, positional[0])
 	}
@@ -292,6 +328,28 @@ func checkShowArg(s string) error {
 		return fmt.Errorf("show: the key's kind %q is not a kind of the catalogue", parts[2])
 	}
 	return nil
+}
+
+// pickPublished finds the message of resourceType published for version
+// (0: the latest version).
+func pickPublished(h postgres.History, version int, resourceType string) (postgres.PublishedMessage, error) {
+	if len(h.Versions) == 0 {
+		return postgres.PublishedMessage{}, errors.New("the key was refused and never derived: nothing was published")
+	}
+	v := h.Versions[len(h.Versions)-1]
+	if version > 0 {
+		i := slices.IndexFunc(h.Versions, func(x postgres.Version) bool { return x.Version == version })
+		if i < 0 {
+			return postgres.PublishedMessage{}, fmt.Errorf("no version %d (the latest is %d)", version, v.Version)
+		}
+		v = h.Versions[i]
+	}
+	for _, m := range v.Messages {
+		if m.ResourceType == resourceType {
+			return m, nil
+		}
+	}
+	return postgres.PublishedMessage{}, fmt.Errorf("version %d has no %s in the outbox", v.Version, resourceType)
 }
 
 // parseAuditTime reads RFC 3339 or a UTC date; "" is no bound.
@@ -477,6 +535,59 @@ var listColumns = []column[postgres.Version]{
 	{name: "OBSERVATION", csv: "observation_id", cell: func(v postgres.Version) string { return v.ObservationID }},
 }
 
+// inputsText is the inputs of a row in one cell: role value unit, ...
+func inputsText(ins []postgres.Input) string {
+	parts := make([]string, len(ins))
+	for i, in := range ins {
+		parts[i] = in.Role + " " + withUnit(in.Shown, in.DisplayUnit)
+		if s := sentAs(in); s != "" {
+			parts[i] += " (sent as " + s + ")"
+		}
+		if in.PatientLevel {
+			parts[i] += " (patient-level)"
+		} else {
+			parts[i] += " at " + in.OffsetText()
+		}
+		parts[i] += " " + in.FactKey
+	}
+	return strings.Join(parts, "; ")
+}
+
+func nearestText(n *postgres.NearestReading) string {
+	if n == nil {
+		return ""
+	}
+	return fmt.Sprintf("%s %s at %s (%s)", n.Quantity, withUnit(n.Shown, n.DisplayUnit), n.Offset, n.FactKey)
+}
+
+func nearestCell(f func(n *postgres.NearestReading) string) func(postgres.RefusalRow) string {
+	return func(r postgres.RefusalRow) string {
+		if r.Nearest == nil {
+			return ""
+		}
+		return f(r.Nearest)
+	}
+}
+
+var refusedColumns = []column[postgres.RefusalRow]{
+	{name: "BLOOD GAS TIME", csv: "blood_gas_time", cell: func(r postgres.RefusalRow) string { return ts(r.Effective) }},
+	{name: "PATIENT", cell: func(r postgres.RefusalRow) string { return r.Patient }},
+	{name: "BLOOD GAS", cell: func(r postgres.RefusalRow) string { return r.BloodGas }},
+	{name: "KIND", cell: func(r postgres.RefusalRow) string { return r.Kind }},
+	{name: "REASON", cell: func(r postgres.RefusalRow) string { return r.Reason }},
+	{name: "DETAIL", cell: func(r postgres.RefusalRow) string { return r.Detail }},
+	{name: "NEAREST VENTILATOR READING", where: tableOnly, cell: func(r postgres.RefusalRow) string { return nearestText(r.Nearest) }},
+	{name: "NEAREST", csv: "nearest_fact", where: csvOnly, cell: nearestCell(func(n *postgres.NearestReading) string { return n.FactKey })},
+	{name: "NEAREST", csv: "nearest_quantity", where: csvOnly, cell: nearestCell(func(n *postgres.NearestReading) string { return n.Quantity })},
+	{name: "NEAREST", csv: "nearest_value", where: csvOnly, cell: nearestCell(func(n *postgres.NearestReading) string { return num(n.Value) })},
+	{name: "NEAREST", csv: "nearest_unit", where: csvOnly, cell: nearestCell(func(n *postgres.NearestReading) string { return n.DisplayUnit })},
+	{name: "NEAREST", csv: "nearest_effective", where: csvOnly, cell: nearestCell(func(n *postgres.NearestReading) string { return ts(n.Effective) })},
+	{name: "NEAREST", csv: "nearest_offset", where: csvOnly, cell: nearestCell(func(n *postgres.NearestReading) string { return n.Offset.String() })},
+	{name: "CONSIDERED", cell: func(r postgres.RefusalRow) string { return inputsText(r.Considered) }},
+	{name: "CURRENT", cell: func(r postgres.RefusalRow) string { return yes(r.Current) }},
+	{name: "RECORDED", cell: func(r postgres.RefusalRow) string { return ts(r.Recorded) }},
+}
+
 var refusalCountColumns = []column[postgres.ReasonCount]{
 	{name: "REASON", cell: func(c postgres.ReasonCount) string { return c.Reason }},
 	{name: "KIND", cell: func(c postgres.ReasonCount) string { return c.Kind }},
@@ -629,6 +740,13 @@ func (o auditOutput) show(h postgres.History) error {
 			fmt.Fprintf(&b, "  flag            %s\n", f)
 		}
 		fmt.Fprintf(&b, "  digest          %s\n", v.Digest)
+		for _, m := range v.Messages {
+			state := "not yet published"
+			if m.PublishedAt != nil {
+				state = "published " + ts(*m.PublishedAt)
+			}
+			fmt.Fprintf(&b, "  published       %s, %d bytes, SHA-256 %s, %s\n", m.ResourceType, m.SizeBytes, m.Digest, state)
+		}
 		writeInputs(&b, "inputs", v.Inputs)
 	}
 	for _, r := range h.Refusals {

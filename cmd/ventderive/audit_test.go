@@ -241,11 +241,25 @@ func unitOf(kind string) string {
 	return "mm[Hg]"
 }
 
+// emit records a version with its Observation and Provenance encoded as
+// the service encodes them, under the service's message ids, so that the
+// published bytes the audit shows are real ones.
 func emit(ch *consumer.Changes, d fhirmap.Derivation, version int) {
 	ch.Derivations = append(ch.Derivations, d)
 	ch.Versions = append(ch.Versions, version)
-	ch.Outbox = append(ch.Outbox, consumer.OutboxMessage{Subject: consumer.DefaultObservationSub,
-		MsgID: auditSHA([]byte(d.Key + d.Digest)), Header: map[string]string{consumer.HeaderKind: d.Kind}, Payload: []byte("{}")})
+	obs, err := fhirmap.EncodeObservation(d, version, fhirmap.Site{})
+	if err != nil {
+		panic(fmt.Sprintf("encode observation %s: %v", d.Kind, err))
+	}
+	prov, err := fhirmap.EncodeProvenance(d, version, auditT0.Add(2*time.Hour), fhirmap.Site{})
+	if err != nil {
+		panic(fmt.Sprintf("encode provenance %s: %v", d.Kind, err))
+	}
+	id := fmt.Sprintf("%s/_history/%d", d.ID, version)
+	header := map[string]string{consumer.HeaderKind: d.Kind}
+	ch.Outbox = append(ch.Outbox,
+		consumer.OutboxMessage{Subject: consumer.DefaultObservationSub, MsgID: "Observation/" + id, Header: header, Payload: obs},
+		consumer.OutboxMessage{Subject: consumer.DefaultObservationSub, MsgID: "Provenance/" + id, Header: header, Payload: prov})
 }
 
 // seedAudit records the fixture through the Store with a fixed clock.
@@ -277,6 +291,10 @@ func seedAudit(t *testing.T, ctx context.Context, u string) {
 		gas(patA, "abg-a2", "1", auditT0.Add(4*time.Hour), 41, fhirmap.SpecimenArterial, fhirmap.StatusFinal),
 		gas(patA, "abg-a2", "2", auditT0.Add(4*time.Hour), 41, fhirmap.SpecimenArterial, fhirmap.StatusEnteredInError),
 		gas(patB, "vbg-b1", "1", auditT0.Add(time.Hour), 50, fhirmap.SpecimenVenous, fhirmap.StatusFinal),
+		// Outside abg-b2's window (30 min before to 10 min after): the
+		// nearest reading of its refusal, 50 min before.
+		reading(patB, "ve-b0", fhirmap.QMinuteVol, auditT0.Add(26*time.Hour-50*time.Minute), 8.25, "L/min"),
+		reading(patB, "et-b0", fhirmap.QPETCO2, auditT0.Add(26*time.Hour+55*time.Minute), 36, "mm[Hg]"),
 		kpaGas,
 	}
 	for i, o := range msgs {
@@ -328,6 +346,7 @@ func TestAuditGolden(t *testing.T) {
 		{"show-retracted-by-id", []string{"show", obsID}},
 		{"show-patient-level-inputs", []string{"show", patA + "|Observation/abg-a1|paco2-predicted"}},
 		{"show-refused-kpa-input", []string{"show", patB + "|Observation/abg-b2|paco2-petco2-gradient"}},
+		{"published-bytes", []string{"published", patA + "|Observation/abg-a1|paco2-petco2-gradient", "--version", "1"}},
 		{"list-page-1", []string{"list", "--limit", "6"}},
 		{"list-page-2", []string{"list", "--limit", "6", "--offset", "6"}},
 		{"list-page-last", []string{"list", "--limit", "6", "--offset", "12"}},
@@ -337,6 +356,9 @@ func TestAuditGolden(t *testing.T) {
 		{"list-from-to", []string{"list", "--from", "2026-03-01T10:00:00Z", "--to", "2026-03-02"}},
 		{"refusals", []string{"refusals"}},
 		{"refusals-patient", []string{"refusals", "--patient", patB}},
+		{"refused", []string{"refused"}},
+		{"refused-reason-kind", []string{"refused", "--reason", "no-ventilator-data-in-window", "--kind", "paco2-predicted"}},
+		{"refused-patient-period-page", []string{"refused", "--patient", patA, "--from", "2026-03-01T11:00:00Z", "--to", "2026-03-01T13:00:00Z", "--limit", "2", "--offset", "1"}},
 		{"refusals-reason-page", []string{"refusals", "--reason", "no-ventilator-data-in-window", "--limit", "2"}},
 		{"discrepancies-page", []string{"discrepancies", "--threshold", "0", "--limit", "1"}},
 		{"discrepancies", []string{"discrepancies", "--threshold", "5"}},
@@ -427,6 +449,11 @@ func TestAuditUsage(t *testing.T) {
 		{"patient for deadletters", []string{"audit", "deadletters", "--patient", "Patient/lg-icu-0003", "--database-url", nowhere}, "--patient does not apply to deadletters"},
 		{"algorithm for refusals", []string{"audit", "refusals", "--algorithm", "ventderive-derive/1", "--database-url", nowhere}, "--algorithm does not apply to refusals"},
 		{"paging for show", []string{"audit", "show", "--limit", "5", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--database-url", nowhere}, "--limit does not apply to show"},
+		{"published without a key", []string{"audit", "published", "--database-url", nowhere}, "published takes one argument"},
+		{"published of another type", []string{"audit", "published", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--type", "Bundle", "--database-url", nowhere}, `--type "Bundle"`},
+		{"published negative version", []string{"audit", "published", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--version", "-1", "--database-url", nowhere}, "--version -1"},
+		{"version for list", []string{"audit", "list", "--version", "2", "--database-url", nowhere}, "--version does not apply to list"},
+		{"refused with an algorithm", []string{"audit", "refused", "--algorithm", "ventderive-derive/1", "--database-url", nowhere}, "--algorithm does not apply to refused"},
 		{"no database", []string{"audit", "list"}, "no database"},
 	}
 	for _, tc := range tests {
@@ -600,6 +627,73 @@ func TestAuditReportedBugs(t *testing.T) {
 		}
 	})
 
+	t.Run("refusals are listed per blood gas with detail, inputs considered and nearest reading", func(t *testing.T) {
+		var page struct {
+			Rows []postgres.RefusalRow `json:"rows"`
+			More bool                  `json:"more"`
+		}
+		out := auditRun(t, ctx, ru, "refused", "--patient", patB, "--reason", "no-ventilator-data-in-window", "--format", "json")
+		if err := json.Unmarshal([]byte(out), &page); err != nil {
+			t.Fatal(err)
+		}
+		if len(page.Rows) != 4 || page.More {
+			t.Fatalf("%d refusals (more %v), want one per kind of abg-b2", len(page.Rows), page.More)
+		}
+		for _, r := range page.Rows {
+			// ve-b0 is 50 min before, et-b0 55 min after: the earlier and
+			// nearer wins.
+			n := r.Nearest
+			if r.BloodGas != "Observation/abg-b2" || r.Detail == "" || len(r.Considered) != 1 ||
+				n == nil || n.FactKey != "Observation/ve-b0" || n.Offset != -50*time.Minute || n.Value != 8.25 {
+				t.Errorf("refusal %+v, nearest %+v", r.Refusal, n)
+			}
+		}
+		out = auditRun(t, ctx, ru, "refused", "--patient", patB, "--reason", "venous-specimen", "--format", "json")
+		page.Rows = nil // a fresh slice: Unmarshal would keep the old rows' pointers
+		if err := json.Unmarshal([]byte(out), &page); err != nil {
+			t.Fatal(err)
+		}
+		if len(page.Rows) != 4 || page.Rows[0].Nearest != nil {
+			t.Errorf("venous refusals: %d, first nearest %+v; want 4 without a nearest reading", len(page.Rows), page.Rows[0].Nearest)
+		}
+	})
+
+	t.Run("the exact published bytes are readable with their digest", func(t *testing.T) {
+		key := patA + "|Observation/abg-a1|deadspace-fraction-vco2"
+		var h postgres.History
+		if err := json.Unmarshal([]byte(auditRun(t, ctx, ru, "show", key, "--format", "json")), &h); err != nil {
+			t.Fatal(err)
+		}
+		for _, v := range h.Versions {
+			if len(v.Messages) != 2 {
+				t.Fatalf("version %d has %d published messages, want Observation and Provenance", v.Version, len(v.Messages))
+			}
+			for _, m := range v.Messages {
+				raw := auditRun(t, ctx, ru, "published", key, "--version", strconv.Itoa(v.Version), "--type", m.ResourceType)
+				if auditSHA([]byte(raw)) != m.Digest || raw != m.PayloadText || len(raw) != m.SizeBytes {
+					t.Errorf("version %d %s: bytes do not match the digest shown", v.Version, m.ResourceType)
+				}
+				var res struct {
+					ResourceType  string `json:"resourceType"`
+					ValueQuantity *struct {
+						Value json.Number `json:"value"`
+					} `json:"valueQuantity"`
+				}
+				if err := json.Unmarshal([]byte(raw), &res); err != nil || res.ResourceType != m.ResourceType {
+					t.Fatalf("version %d %s: %v, resourceType %q", v.Version, m.ResourceType, err, res.ResourceType)
+				}
+				// The value the audit prints is the value the Observation carries.
+				if m.ResourceType == "Observation" && (res.ValueQuantity == nil || res.ValueQuantity.Value.String() != v.Published) {
+					t.Errorf("version %d: published %v, audit prints %s", v.Version, res.ValueQuantity, v.Published)
+				}
+			}
+		}
+		latest := auditRun(t, ctx, ru, "published", key)
+		if latest != h.Versions[len(h.Versions)-1].Messages[0].PayloadText {
+			t.Error("published without --version is not the latest version's Observation")
+		}
+	})
+
 	t.Run("daily counts by blood-gas day, as list filters", func(t *testing.T) {
 		// abg-b2 was taken on 2 March and recorded on 1 March: it counts on
 		// the day of the blood gas, like list --from/--to.
@@ -639,8 +733,13 @@ func TestMigrateCommand(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer conn.Close(ctx)
+	// One row per migration file (versions may have gaps).
+	files, err := filepath.Glob("../../migrations/*.sql")
+	if err != nil {
+		t.Fatal(err)
+	}
 	var n int
-	if err := conn.QueryRow(ctx, "SELECT count(*) FROM schema_version").Scan(&n); err != nil || n != migrations.Latest() {
-		t.Errorf("schema_version rows = %d, %v; want %d", n, err, migrations.Latest())
+	if err := conn.QueryRow(ctx, "SELECT count(*) FROM schema_version").Scan(&n); err != nil || n != len(files) {
+		t.Errorf("schema_version rows = %d, %v; want %d", n, err, len(files))
 	}
 }

@@ -157,6 +157,25 @@ type Version struct {
 	Current        bool           `json:"current"`                // the key's latest state is this version
 	Recorded       time.Time      `json:"recorded"`
 	Inputs         []Input        `json:"inputs,omitempty"`
+	// Messages are the resources published for this version (Observation
+	// and Provenance), exact bytes with their digests; Show fills them.
+	Messages []PublishedMessage `json:"messages,omitempty"`
+}
+
+// PublishedMessage is one message published for a derivation version, as
+// the outbox kept it: the relay publishes these bytes unchanged.
+type PublishedMessage struct {
+	ResourceType string            `json:"resourceType"` // Observation or Provenance
+	Seq          int64             `json:"seq"`
+	Subject      string            `json:"subject"`
+	MsgID        string            `json:"msgId"`
+	Headers      map[string]string `json:"headers"`
+	Payload      []byte            `json:"-"`
+	PayloadText  string            `json:"payload"`       // the exact bytes, as a JSON string
+	Digest       string            `json:"payloadSha256"` // hex SHA-256 of Payload
+	SizeBytes    int               `json:"sizeBytes"`
+	Recorded     time.Time         `json:"recorded"`
+	PublishedAt  *time.Time        `json:"publishedAt,omitempty"` // nil until the relay had a PubAck
 }
 
 // Input is one fact a derivation used or a refusal considered.
@@ -283,6 +302,11 @@ JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
 WHERE i.derivation_id IN (SELECT id FROM review_derivation WHERE key = $1)
 ORDER BY i.derivation_id, i.ordinal`
 
+	showPublishedSQL = `
+SELECT derivation_id, resource_type, seq, subject, msg_id, headers::text, payload, payload_digest, size_bytes,
+       created_at, published_at
+FROM review_published WHERE key = $1 ORDER BY version, resource_type`
+
 	showRefusalsSQL = `
 SELECT id, key, kind, patient_ref, blood_gas_key, effective, reason, detail, digest,
        coalesce(is_current, false), created_at
@@ -318,6 +342,7 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	b := &pgx.Batch{}
 	b.Queue(showVersionsSQL, h.Key)
 	b.Queue(showInputsSQL, h.Key)
+	b.Queue(showPublishedSQL, h.Key)
 	b.Queue(showRefusalsSQL, h.Key)
 	b.Queue(showConsideredSQL, h.Key)
 	br := r.pool.SendBatch(ctx, b)
@@ -335,6 +360,13 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	}
 	for i := range h.Versions {
 		h.Versions[i].Inputs = inputs[h.Versions[i].ID]
+	}
+	messages, err := collectPublished(br)
+	if err != nil {
+		return History{}, fmt.Errorf("read published messages: %w", err)
+	}
+	for i := range h.Versions {
+		h.Versions[i].Messages = messages[h.Versions[i].ID]
 	}
 	rows, err = br.Query()
 	if err == nil {
@@ -360,6 +392,36 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 		h.Refusals = []Refusal{}
 	}
 	return h, br.Close()
+}
+
+func collectPublished(br pgx.BatchResults) (map[int64][]PublishedMessage, error) {
+	rows, err := br.Query()
+	if err != nil {
+		return nil, err
+	}
+	out := map[int64][]PublishedMessage{}
+	var owner int64
+	var m PublishedMessage
+	var headers string
+	var published *time.Time
+	_, err = pgx.ForEachRow(rows, []any{&owner, &m.ResourceType, &m.Seq, &m.Subject, &m.MsgID, &headers, &m.Payload,
+		&m.Digest, &m.SizeBytes, &m.Recorded, &published}, func() error {
+		x := m
+		x.Headers = nil
+		if err := json.Unmarshal([]byte(headers), &x.Headers); err != nil {
+			return fmt.Errorf("outbox %d headers: %w", x.Seq, err)
+		}
+		x.Payload = append([]byte(nil), m.Payload...)
+		x.PayloadText = string(x.Payload)
+		x.Recorded = x.Recorded.UTC()
+		if published != nil {
+			t := published.UTC()
+			x.PublishedAt = &t
+		}
+		out[owner] = append(out[owner], x)
+		return nil
+	})
+	return out, err
 }
 
 func scanRefusal(row pgx.CollectableRow) (Refusal, error) {
@@ -414,10 +476,16 @@ func makeInput(in Input, value, sourceValue float64, effective time.Time, offset
 		return in
 	}
 	in.Effective = &effective
-	d := time.Duration(offset.Microseconds)*time.Microsecond +
-		time.Duration(offset.Days)*24*time.Hour + time.Duration(offset.Months)*30*24*time.Hour
+	d := intervalDuration(offset)
 	in.Offset = &d
 	return in
+}
+
+// intervalDuration converts a stored interval (days of 24 h, months of 30
+// days: the store writes microseconds only).
+func intervalDuration(i pgtype.Interval) time.Duration {
+	return time.Duration(i.Microseconds)*time.Microsecond +
+		time.Duration(i.Days)*24*time.Hour + time.Duration(i.Months)*30*24*time.Hour
 }
 
 // published sets Value and Published from the stored value, or clears
@@ -735,4 +803,102 @@ func (r *Reviewer) DeadLetters(ctx context.Context, f Filter) (Page[DeadLetterRe
 		return out, fmt.Errorf("list dead letters: %w", err)
 	}
 	return out, nil
+}
+
+// RefusalRow is one refusal listed with the inputs it considered and, for
+// a refusal for want of ventilator data, the nearest usable ventilator
+// reading recorded by then (review_refusal_nearest).
+type RefusalRow struct {
+	Refusal
+	Nearest *NearestReading `json:"nearest,omitempty"`
+}
+
+// NearestReading is the ventilator reading nearest to a refused blood gas.
+type NearestReading struct {
+	FactKey     string        `json:"factKey"`
+	Resource    string        `json:"resource"`
+	Quantity    string        `json:"quantity"`
+	Origin      string        `json:"origin,omitempty"`
+	Value       float64       `json:"value"`
+	Shown       string        `json:"shown"`
+	Unit        string        `json:"unit"` // UCUM
+	DisplayUnit string        `json:"displayUnit,omitempty"`
+	Status      string        `json:"status"`
+	Effective   time.Time     `json:"effective"`
+	Offset      time.Duration `json:"offsetNs"` // reading time minus blood-gas time
+}
+
+const refusedSQL = `
+WITH page AS (
+    SELECT id, key, kind, patient_ref, blood_gas_key, effective, reason, detail, digest,
+           coalesce(is_current, false) AS is_current, created_at
+    FROM review_refusal
+    WHERE ($1 = '' OR patient_ref = $1)
+      AND ($2::timestamptz IS NULL OR effective >= $2)
+      AND ($3::timestamptz IS NULL OR effective < $3)
+      AND ($4 = '' OR kind = $4)
+      AND $5 = $5
+      AND ($8 = '' OR reason = $8)
+    ORDER BY effective, patient_ref, blood_gas_key, kind, id` + pageSQL + `
+)
+SELECT p.id, p.key, p.kind, p.patient_ref, p.blood_gas_key, p.effective, p.reason, p.detail, p.digest,
+       p.is_current, p.created_at,
+       n.fact_key, n.resource_ref, n.quantity, n.origin, n.value, n.unit, n.status, n.effective, n.time_offset
+FROM page p
+LEFT JOIN review_refusal_nearest n ON n.refusal_id = p.id
+ORDER BY p.effective, p.patient_ref, p.blood_gas_key, p.kind, p.id`
+
+const refusedInputsSQL = `
+SELECT i.refusal_id, ` + inputColumns + `
+FROM review_refusal_input i
+JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+WHERE i.refusal_id = ANY($1::bigint[])
+ORDER BY i.refusal_id, i.ordinal`
+
+// Refused lists refusals one by one, by blood-gas time (then patient,
+// blood gas and kind: the refusals of one blood gas are together), with
+// their reason, detail, the inputs considered and the nearest ventilator
+// reading where the reason is no-ventilator-data-in-window. Filter.Reason,
+// Kind, Patient, From and To apply; Algorithm does not (refusals carry
+// none).
+func (r *Reviewer) Refused(ctx context.Context, f Filter) (Page[RefusalRow], error) {
+	rows, err := queryRows(ctx, r.pool, refusedSQL, func(row pgx.CollectableRow) (RefusalRow, error) {
+		var x RefusalRow
+		var key, resource, quantity, origin, unit, status *string
+		var value *float64
+		var effective *time.Time
+		var offset pgtype.Interval
+		err := row.Scan(&x.ID, &x.Key, &x.Kind, &x.Patient, &x.BloodGas, &x.Effective, &x.Reason, &x.Detail,
+			&x.Digest, &x.Current, &x.Recorded, &key, &resource, &quantity, &origin, &value, &unit, &status, &effective, &offset)
+		x.Effective, x.Recorded = x.Effective.UTC(), x.Recorded.UTC()
+		if err == nil && key != nil {
+			x.Nearest = &NearestReading{FactKey: *key, Resource: *resource, Quantity: *quantity, Origin: *origin,
+				Value: *value, Shown: shownNumber(*value), Unit: *unit, DisplayUnit: DisplayUnit(*unit), Status: *status,
+				Effective: effective.UTC(), Offset: intervalDuration(offset)}
+		}
+		return x, err
+	}, f.args()...)
+	if err != nil {
+		return Page[RefusalRow]{}, fmt.Errorf("list refusals: %w", err)
+	}
+	page := pageOf(rows, f)
+	ids := make([]int64, len(page.Rows))
+	for i, x := range page.Rows {
+		ids[i] = x.ID
+	}
+	b := &pgx.Batch{}
+	b.Queue(refusedInputsSQL, ids)
+	br := r.pool.SendBatch(ctx, b)
+	defer br.Close()
+	considered, err := collectInputs(br)
+	if err != nil {
+		return Page[RefusalRow]{}, fmt.Errorf("read considered inputs: %w", err)
+	}
+	for i := range page.Rows {
+		page.Rows[i].Considered = considered[page.Rows[i].ID]
+		if page.Rows[i].Considered == nil {
+			page.Rows[i].Considered = []Input{}
+		}
+	}
+	return page, br.Close()
 }
