@@ -7,7 +7,11 @@ import (
 	"testing"
 	"time"
 
+	"github.com/jackc/pgx/v5/pgxpool"
+
 	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/migrations"
 )
 
 // deepPoison is an Observation with an unknown field at the bottom of an
@@ -110,5 +114,72 @@ func (h *harness) assertDeadLetters(n int, reason, inDetail string) {
 	}
 	if got != n {
 		h.t.Errorf("%d dead letters, want %d", got, n)
+	}
+}
+
+// ownCluster starts a throwaway PostgreSQL cluster (never the shared
+// server: the test reconfigures it), migrated, and returns its admin URL.
+func ownCluster(t *testing.T) *pgtest.Cluster {
+	t.Helper()
+	ctx := context.Background()
+	cluster, err := pgtest.StartCluster(ctx, t.TempDir())
+	if err != nil {
+		pgtest.NoServer(t, err)
+	}
+	t.Cleanup(func() { _ = cluster.Close() })
+	pool, err := pgxpool.New(ctx, cluster.URL())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer pool.Close()
+	if _, err := migrations.Apply(ctx, pool, nil); err != nil {
+		t.Fatal(err)
+	}
+	return cluster
+}
+
+// setReadOnly makes every new transaction of the cluster read-only, as a
+// primary demoted in a failover (or default_transaction_read_only) does.
+func (h *harness) setReadOnly(on bool) {
+	h.t.Helper()
+	ctx := context.Background()
+	if _, err := h.pool.Exec(ctx, fmt.Sprintf(`ALTER SYSTEM SET default_transaction_read_only = %v`, on)); err != nil {
+		h.t.Fatal(err)
+	}
+	if _, err := h.pool.Exec(ctx, `SELECT pg_reload_conf()`); err != nil {
+		h.t.Fatal(err)
+	}
+}
+
+// waitLog waits until the captured logs contain s.
+func (h *harness) waitLog(s string, timeout time.Duration) {
+	h.t.Helper()
+	deadline := time.Now().Add(timeout)
+	for !strings.Contains(h.logs.String(), s) {
+		if time.Now().After(deadline) {
+			h.t.Fatalf("no log line with %q within %s", s, timeout)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+}
+
+// A read-only PostgreSQL (SQLSTATE 25006) under load is transient: the
+// inputs are retried with back-off, none becomes a dead letter, and
+// everything reconciles once the server takes writes again.
+func TestFaultPostgresReadOnly(t *testing.T) {
+	cluster := ownCluster(t)
+	h := newHarness(t, withDatabaseURL(cluster.URL()))
+	msgs := generate(genOpts{patients: 4, gases: 3})
+	h.startReplica(nil)
+	h.publish(msgs[:len(msgs)/3])
+	h.setReadOnly(true)
+	h.publish(msgs[len(msgs)/3:])
+	h.waitLog("postgres error 25006", 60*time.Second) // the read-only state was met
+	time.Sleep(time.Second)                           // let more naks and retries happen
+	h.setReadOnly(false)
+	h.waitSettled(120 * time.Second)
+	h.reconcile(msgs) // no dead letters: none of the inputs is poison
+	if strings.Contains(h.logs.String(), "store refused message") {
+		t.Error("a valid input was refused as if its content were at fault")
 	}
 }
