@@ -19,6 +19,11 @@ type Metrics struct {
 	Latency       prometheus.Histogram // input publish to ack, seconds
 	Handling      prometheus.Histogram // handler time, seconds
 	Stalls        prometheus.Counter
+	// DeadLetterCopyFailures counts failed publishes of dead-letter copies;
+	// DeadLetterFailing is 1 while the dead-letter path (copy or record)
+	// fails, 0 once a dead letter went through again.
+	DeadLetterCopyFailures prometheus.Counter
+	DeadLetterFailing      prometheus.Gauge
 }
 
 // NewMetrics creates the metrics and registers them with reg when it is not nil.
@@ -61,10 +66,17 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		Stalls: prometheus.NewCounter(prometheus.CounterOpts{
 			Name: "ventderive_consumer_stalls_total", Help: "Times the watchdog found pending input with no progress and rebuilt the consumer.",
 		}),
+		DeadLetterCopyFailures: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_dead_letter_copy_failures_total", Help: "Failed publishes of a dead-letter copy (retried, or recorded without the copy after a few deliveries).",
+		}),
+		DeadLetterFailing: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_dead_letter_failing", Help: "1 while the dead-letter path (copy or record) fails, else 0.",
+		}),
 	}
 	if reg != nil {
 		reg.MustRegister(m.Inputs, m.Ignored, m.Derived, m.Retractions, m.Refusals, m.DeadLetters,
-			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls)
+			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls,
+			m.DeadLetterCopyFailures, m.DeadLetterFailing)
 	}
 	return m
 }

@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -47,6 +48,9 @@ type Pipeline struct {
 	consumer jetstream.Consumer
 	active   atomic.Bool  // the consumer exists and the last fetch did not fail
 	progress atomic.Int64 // messages settled (acked, naked or terminated)
+	// dlFailingSince is when the dead-letter path (copy or record) began
+	// to fail, in Unix nanoseconds; 0 while it works.
+	dlFailingSince atomic.Int64
 
 	// hooks lets tests inject faults at named points; nil in production.
 	hooks *Hooks
@@ -497,34 +501,110 @@ func (p *Pipeline) finish(ctx context.Context, it *inflight, res IngestResult, e
 	}
 }
 
-// poison records a message that can never succeed, copies it to the
-// dead-letter subject and terminates it. If recording fails the message is
-// naked, so a poison message is never dropped unrecorded.
+// poison copies a message that can never succeed to the dead-letter
+// subject, records it and terminates it. The copy is tried on a few
+// deliveries (deadLetterCopyAttempts, with the bounded back-off); when it
+// still cannot be published (a subject the permissions deny, no stream
+// behind it) the record says so and the message is terminated all the
+// same, so a poison message can never circle forever and fill the
+// consumer's in-flight limit. Only a failure to record it, which a
+// PostgreSQL outage causes, makes the message come back.
 func (p *Pipeline) poison(ctx context.Context, msg jetstream.Msg, m Message, reason, detail string, log *slog.Logger) {
+	reason, detail = boundText(reason, maxReasonBytes), boundText(detail, MaxDetailBytes)
+	attempt := 1
+	if meta, err := msg.Metadata(); err == nil {
+		attempt = int(meta.NumDelivered)
+	}
+	if err := p.publishDeadLetter(ctx, m, reason, detail); err != nil {
+		p.metrics.DeadLetterCopyFailures.Inc()
+		if attempt < deadLetterCopyAttempts && !permanentPublishError(err) {
+			p.deadLetterFailing(true)
+			delay := backoff(p.cfg.RetryBase, p.cfg.RetryMax, attempt)
+			log.Warn("publish dead letter failed; retrying", "err", err, "delay", delay)
+			p.settle(msg.NakWithDelay(delay), "nak", log)
+			return
+		}
+		log.Error("publish dead letter failed; recording and terminating without the copy", "err", err, "attempt", attempt)
+		detail = boundText(detail+"; copy not published: "+err.Error(), MaxDetailBytes)
+	}
 	if err := p.store.DeadLetter(ctx, m, reason, detail); err != nil {
-		log.Warn("record dead letter failed; retrying", "err", err)
-		p.settle(msg.NakWithDelay(backoff(p.cfg.RetryBase, p.cfg.RetryMax, 2)), "nak", log)
+		p.deadLetterFailing(true)
+		delay := backoff(p.cfg.RetryBase, p.cfg.RetryMax, attempt)
+		log.Warn("record dead letter failed; retrying", "err", err, "delay", delay)
+		p.settle(msg.NakWithDelay(delay), "nak", log)
 		return
 	}
+	p.deadLetterFailing(false)
+	log.Warn("dead letter", "reason", reason, "detail", detail)
+	p.metrics.Inputs.WithLabelValues("dead-letter").Inc()
+	p.metrics.DeadLetters.WithLabelValues(reason).Inc()
+	p.settle(msg.TermWithReason(reason), "term", log)
+}
+
+// deadLetterCopyAttempts is how many deliveries of a poison message try to
+// publish its dead-letter copy before it is recorded without one.
+const deadLetterCopyAttempts = 3
+
+// publishDeadLetter publishes the copy of a poison message, with bounded
+// headers (JetStream refuses headers over 64 KB) and a deterministic
+// message id, so that a retry is dropped as a duplicate.
+func (p *Pipeline) publishDeadLetter(ctx context.Context, m Message, reason, detail string) error {
 	dl := nats.NewMsg(p.cfg.DeadLetterSub)
 	dl.Data = m.Raw
 	dl.Header.Set(HeaderReason, reason)
 	dl.Header.Set(HeaderDetail, detail)
 	dl.Header.Set(HeaderStreamSeq, fmt.Sprint(m.StreamSeq))
-	pctx, cancel := context.WithTimeout(ctx, 5*time.Second)
+	pctx, cancel := context.WithTimeout(ctx, publishTimeout)
+	defer cancel()
 	_, err := p.js.PublishMsg(pctx, dl, jetstream.WithMsgID("deadletter/"+m.InboxKey))
-	cancel()
 	if err != nil {
-		// The record is durable; the copy is a convenience. Retry the
-		// message so the copy is made (both steps are idempotent).
-		log.Warn("publish dead letter failed; retrying", "err", err)
-		p.settle(msg.NakWithDelay(backoff(p.cfg.RetryBase, p.cfg.RetryMax, 2)), "nak", log)
+		return fmt.Errorf("publish %s: %w", p.cfg.DeadLetterSub, err)
+	}
+	return nil
+}
+
+// publishTimeout bounds one publish's wait for its PubAck. A publish the
+// server's permissions deny gets no PubAck at all.
+const publishTimeout = 5 * time.Second
+
+// permanentPublishError reports publish errors that a retry cannot mend.
+func permanentPublishError(err error) bool {
+	return errors.Is(err, nats.ErrPermissionViolation) || errors.Is(err, nats.ErrMaxPayload) ||
+		errors.Is(err, nats.ErrBadSubject) || errors.Is(err, nats.ErrHeadersNotSupported)
+}
+
+// MaxDetailBytes bounds the detail of a dead letter, stored and in its
+// header; maxReasonBytes bounds its reason code.
+const (
+	MaxDetailBytes = 512
+	maxReasonBytes = 64
+)
+
+// boundText makes s safe for a NATS header, a log line and the dead-letter
+// table: printable ASCII only (anything else becomes '?', so no header
+// can be split by a line break), cut to at most n bytes with "...".
+func boundText(s string, n int) string {
+	if len(s) > n {
+		s = s[:n-3] + "..."
+	}
+	b := []byte(s)
+	for i, c := range b {
+		if c < 0x20 || c > 0x7e {
+			b[i] = '?'
+		}
+	}
+	return string(b)
+}
+
+// deadLetterFailing notes whether the dead-letter path just failed.
+func (p *Pipeline) deadLetterFailing(failed bool) {
+	if !failed {
+		p.dlFailingSince.Store(0)
+		p.metrics.DeadLetterFailing.Set(0)
 		return
 	}
-	log.Warn("dead letter", "reason", reason, "detail", detail)
-	p.metrics.Inputs.WithLabelValues("dead-letter").Inc()
-	p.metrics.DeadLetters.WithLabelValues(reason).Inc()
-	p.settle(msg.TermWithReason(reason), "term", log)
+	p.dlFailingSince.CompareAndSwap(0, p.now().UnixNano())
+	p.metrics.DeadLetterFailing.Set(1)
 }
 
 func (p *Pipeline) ack(msg jetstream.Msg, log *slog.Logger) { p.settle(msg.Ack(), "ack", log) }
@@ -556,14 +636,23 @@ func (p *Pipeline) inProgress(msg jetstream.Msg) (stop func()) {
 	return func() { close(done) }
 }
 
-// decodeReason extracts the stable reason code and a payload-free detail.
+// decodeReason extracts the stable reason code and a payload-free detail:
+// the entry, the field path and the decoder's sentence (which quotes at
+// most a bounded unit, code or field name, e.g. the byte offset of a JSON
+// syntax error).
 func decodeReason(err error) (reason, detail string) {
 	if de, ok := errors.AsType[*fhirmap.DecodeError](err); ok {
-		detail = de.Field
+		var parts []string
 		if de.Entry >= 0 {
-			detail = fmt.Sprintf("entry %d: %s", de.Entry, de.Field)
+			parts = append(parts, fmt.Sprintf("entry %d", de.Entry))
 		}
-		return de.Reason, detail
+		if de.Field != "" {
+			parts = append(parts, de.Field)
+		}
+		if de.Detail != "" {
+			parts = append(parts, de.Detail)
+		}
+		return de.Reason, boundText(strings.Join(parts, ": "), MaxDetailBytes)
 	}
 	return "malformed", "undecodable message"
 }
@@ -571,13 +660,7 @@ func decodeReason(err error) (reason, detail string) {
 // storeDetail keeps what is safe to record of a store error: the store
 // reduces driver errors to SQLSTATE and constraint names (never the
 // server's detail, which echoes values).
-func storeDetail(err error) string {
-	d := err.Error()
-	if len(d) > 200 {
-		d = d[:200]
-	}
-	return d
-}
+func storeDetail(err error) string { return boundText(err.Error(), 200) }
 
 func (p *Pipeline) kickRelay() {
 	select {

@@ -64,7 +64,8 @@ type Ignored struct {
 // effective[x], id, value), duplicate-value, unsupported-extension,
 // unknown-unit, ambiguous-value (a FiO2 neither clearly percent nor clearly
 // fraction), not-finite, negative-value, bad-time, bad-reference, oversized,
-// too-many-entries, empty.
+// too-deep (nesting beyond MaxNestingDepth), too-many-entries, empty. Field
+// is at most MaxFieldPath bytes.
 type DecodeError struct {
 	Entry  int    // index of the Bundle entry, -1 when not in a Bundle
 	Line   int    // NDJSON line (1-based), 0 otherwise
@@ -242,7 +243,9 @@ func syntaxDetail(raw []byte) string {
 // strictUnmarshal checks raw against s and then fills v.
 func strictUnmarshal(raw []byte, s *jsonSchema, root string, entry int, v any) *DecodeError {
 	if de := checkStrict(raw, s, root); de != nil {
-		if !json.Valid(raw) {
+		// Too deep is said as such even where encoding/json would call it a
+		// syntax error (it stops at 10,000 levels).
+		if de.Reason != "too-deep" && !json.Valid(raw) {
 			return refuse(entry, "", "malformed-json", syntaxDetail(raw))
 		}
 		de.Entry = entry

@@ -12,7 +12,10 @@ package fhirmap
 //   - a key given twice, or two variants of one choice element such as
 //     valueQuantity and valueString ("duplicate-value"),
 //   - null, or a JSON type the element cannot hold ("malformed-json"),
-//   - an invalid code for a coded element such as status ("malformed-json").
+//   - an invalid code for a coded element such as status ("malformed-json"),
+//   - objects and arrays nested deeper than MaxNestingDepth ("too-deep"):
+//     FHIR's recursive types (extension in extension) would otherwise let a
+//     small message carry a field path of any length into logs and headers.
 //
 // The pass does not validate JSON syntax (encoding/json does, right after;
 // scanning twice would cost a sixth of the decode time), but it is safe on
@@ -226,14 +229,48 @@ type pathSeg struct {
 
 // walker checks one JSON value against a schema.
 type walker struct {
-	data []byte
-	pos  int
-	root string    // e.g. "Observation" or "Bundle.entry[2].resource"
-	path []pathSeg // below root
-	err  *DecodeError
+	data  []byte
+	pos   int
+	root  string    // e.g. "Observation" or "Bundle.entry[2].resource"
+	path  []pathSeg // below root
+	depth int       // objects and arrays open at w.pos
+	err   *DecodeError
+}
+
+// MaxNestingDepth bounds how deeply objects and arrays may nest in one
+// message, counting both (a Bundle entry's Observation with a coded
+// component holding an extension is about 12 deep). Deeper input is refused
+// as "too-deep".
+const MaxNestingDepth = 64
+
+// MaxFieldPath bounds DecodeError.Field in bytes: a longer path keeps its
+// start and its end with "..." between them.
+const MaxFieldPath = 240
+
+// enter opens one level of nesting, refusing input nested too deeply.
+func (w *walker) enter() bool {
+	if w.depth++; w.depth > MaxNestingDepth {
+		return w.fail("too-deep", "", "objects and arrays nested deeper than "+strconv.Itoa(MaxNestingDepth)+" levels")
+	}
+	return true
 }
 
 func (w *walker) where(extra string) string {
+	return shortenPath(w.path0(extra))
+}
+
+// shortenPath cuts a field path longer than MaxFieldPath in the middle.
+func shortenPath(p string) string {
+	if len(p) <= MaxFieldPath {
+		return p
+	}
+	const ellipsis = "..."
+	head := (MaxFieldPath - len(ellipsis)) / 3
+	tail := MaxFieldPath - len(ellipsis) - head
+	return p[:head] + ellipsis + p[len(p)-tail:]
+}
+
+func (w *walker) path0(extra string) string {
 	var b strings.Builder
 	b.WriteString(w.root)
 	for _, s := range w.path {
@@ -295,6 +332,16 @@ func (w *walker) ws() {
 
 // object walks an object; w.pos is at '{'.
 func (w *walker) object(s *jsonSchema) bool {
+	if !w.enter() {
+		return false
+	}
+	ok := w.members(s)
+	w.depth--
+	return ok
+}
+
+// members walks the members of an object; w.pos is at '{'.
+func (w *walker) members(s *jsonSchema) bool {
 	w.pos++
 	var seenBuf [24]*jsonField
 	seen := seenBuf[:0]
@@ -404,6 +451,16 @@ func (w *walker) value(f *jsonField) bool {
 	if c != '[' {
 		return w.fail("malformed-json", "", "expected an array")
 	}
+	if !w.enter() {
+		return false
+	}
+	ok := w.elements(f)
+	w.depth--
+	return ok
+}
+
+// elements walks the elements of an array of field f; w.pos is at '['.
+func (w *walker) elements(f *jsonField) bool {
 	w.pos++
 	for i := 0; ; i++ {
 		w.ws()
@@ -518,7 +575,8 @@ func (w *walker) skipLiteral() {
 }
 
 // skipValue moves past any JSON value; it reports false when it could not
-// advance (a stray delimiter or the end of the input).
+// advance (a stray delimiter or the end of the input) or when the value
+// nests deeper than MaxNestingDepth (w.err then says "too-deep").
 func (w *walker) skipValue() bool {
 	start := w.pos
 	switch w.peek() {
@@ -534,7 +592,10 @@ func (w *walker) skipValue() bool {
 				w.skipString()
 				continue
 			case '{', '[':
-				depth++
+				if depth++; w.depth+depth > MaxNestingDepth {
+					w.fail("too-deep", "", "objects and arrays nested deeper than "+strconv.Itoa(MaxNestingDepth)+" levels")
+					return false
+				}
 			case '}', ']':
 				depth--
 				if depth == 0 {

@@ -373,7 +373,7 @@ func FuzzDecode(f *testing.F) {
 	}
 	reasons := []string{"malformed-json", "wrong-resource-type", "unknown-field", "missing-field",
 		"duplicate-value", "unsupported-extension", "unknown-unit", "ambiguous-value", "not-finite",
-		"negative-value", "bad-time", "bad-reference", "oversized", "too-many-entries", "empty"}
+		"negative-value", "bad-time", "bad-reference", "oversized", "too-deep", "too-many-entries", "empty"}
 	f.Fuzz(func(t *testing.T, raw []byte) {
 		d, err := Decode(raw, nil)
 		if err != nil {

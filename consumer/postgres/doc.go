@@ -34,14 +34,17 @@
 //
 // # Errors
 //
-// Driver errors are translated at this package's edge: connection loss,
-// serialization failure (40001), deadlock (40P01), administrator shutdown
-// (57P01..57P03), lock and statement timeouts (55P03, 57014), class 08 and
-// a COMMIT whose outcome is unknown are wrapped
-// with consumer.ErrTransient (the inbox key makes a retry safe). Other server
-// errors become a *DBError carrying only the SQLSTATE, constraint, table and
-// column names: the server's message and detail can echo key values (patient
-// references) and are neither returned nor logged.
+// Driver errors are translated at this package's edge. Only errors the
+// input can cause are permanent: data exceptions (class 22), integrity
+// constraint violations (23) and program limits (54). Every other server
+// error (read-only transaction 25006 during a failover, shutdowns
+// 57P01..57P03, class 08, serialization failure 40001, deadlock 40P01, lock
+// and statement timeouts 55P03 and 57014, ...), connection loss and a
+// COMMIT whose outcome is unknown are wrapped with consumer.ErrTransient
+// (the inbox key makes a retry safe). Server errors become a *DBError
+// carrying only the SQLSTATE, constraint, table and column names: the
+// server's message and detail can echo key values (patient references) and
+// are neither returned nor logged.
 //
 // # Times
 //

@@ -38,19 +38,23 @@ func (e *DBError) Error() string {
 	return b.String()
 }
 
-// transientCode reports the SQLSTATEs worth a retry of the same message.
+// transientCode reports the SQLSTATEs worth a retry of the same message:
+// every error that the message's content cannot have caused. Only data
+// exceptions (class 22), integrity constraint violations (23) and program
+// limits (54, e.g. a row too large) come from the input; they are
+// permanent and make a dead letter. Everything else is the server's state
+// and passes: a failover's read-only transaction (25006) and shutdowns
+// (57P01..57P03), connection exceptions (08), serialization failures
+// (40001), deadlocks (40P01), lock and statement timeouts (55P03, 57014),
+// too many connections or a full disk (53), a missing grant (42501) or
+// table (42P01) while a migration or role is being fixed. A message whose
+// store is broken must wait for it, not be lost to the dead-letter table.
 func transientCode(code string) bool {
-	switch code {
-	case "40001", // serialization_failure
-		"40P01", // deadlock_detected
-		"57P01", // admin_shutdown
-		"57P02", // crash_shutdown
-		"57P03", // cannot_connect_now
-		"55P03", // lock_not_available (lock_timeout of the service role)
-		"57014": // query_canceled (statement_timeout)
-		return true
+	switch code[:min(2, len(code))] {
+	case "22", "23", "54":
+		return false
 	}
-	return strings.HasPrefix(code, "08") // connection exceptions
+	return true
 }
 
 // translate turns a driver error into what callers of the store see; op

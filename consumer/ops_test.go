@@ -1,0 +1,185 @@
+package consumer_test
+
+import (
+	"context"
+	"fmt"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/jackc/pgx/v5/pgxpool"
+
+	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/migrations"
+)
+
+// deepPoison is an Observation with an unknown field at the bottom of an
+// extension nested levels deep (twice as many JSON levels): the decoder's
+// field path of it was once longer than JetStream allows for a header.
+func deepPoison(i, levels int) testMsg {
+	ext := strings.Repeat(`{"url":"http://example.org/x","extension":[`, levels-1) +
+		`{"url":"http://example.org/x","notAnElement":1}` + strings.Repeat(`]}`, levels-1)
+	raw := fmt.Sprintf(`{"resourceType":"Observation","id":"t-bad-deep-%d","status":"final",`+
+		`"code":{"coding":[{"system":"http://loinc.org","code":"2019-8"}]},"subject":{"reference":"%s"},`+
+		`"effectiveDateTime":"2026-11-20T08:00:00Z","extension":[%s]}`, i, patientRef(900), ext)
+	return testMsg{subject: "fhir.input.lab", payload: []byte(raw), poison: "too-deep"}
+}
+
+// interleave puts one bad message before the good ones, the rest after.
+func interleave(bad, good []testMsg) []testMsg {
+	return append(append(append([]testMsg{}, bad[:1]...), good...), bad[1:]...)
+}
+
+// More deeply nested poison messages than the consumer's in-flight limit:
+// each is dead-lettered once with a bounded detail and its copy, and the
+// good input behind them is processed.
+func TestPoisonDeepNestingDoesNotHaltIntake(t *testing.T) {
+	h := newHarness(t)
+	h.cfg.MaxAckPending = 8
+	var bad []testMsg
+	for i := range 12 {
+		bad = append(bad, deepPoison(i, 4900))
+	}
+	msgs := interleave(bad, generate(genOpts{patients: 2, gases: 1}))
+	h.startReplica(nil)
+	h.publish(msgs)
+	h.waitSettled(120 * time.Second)
+	h.reconcile(msgs)
+	h.assertDeadLetters(len(bad), "too-deep", "")
+	assertNoPHI(t, h.logs.String())
+}
+
+// A dead-letter copy that can never be published (here: no stream takes
+// the subject) must not bring the message back forever: after a few
+// deliveries it is recorded, saying the copy is missing, and terminated,
+// and intake goes on although there are more such messages than the
+// in-flight limit.
+func TestDeadLetterCopyUnpublishable(t *testing.T) {
+	h := newHarness(t)
+	h.cfg.MaxAckPending = 4
+	h.cfg.DeadLetterSub = "nostream.deadletter"
+	bad := poisonMsgs()
+	bad = append(bad, deepPoison(1, 3), deepPoison(2, 3))
+	good := generate(genOpts{patients: 2, gases: 1})
+	msgs := interleave(bad, good)
+	h.startReplica(nil)
+	h.publish(msgs)
+	h.waitSettled(120 * time.Second)
+
+	var inbox int
+	if err := h.pool.QueryRow(context.Background(), `SELECT count(*) FROM inbox`).Scan(&inbox); err != nil {
+		t.Fatal(err)
+	}
+	if inbox != len(good) {
+		t.Errorf("inbox holds %d, want the %d good inputs", inbox, len(good))
+	}
+	h.assertDeadLetters(len(bad), "", "copy not published")
+	compareHeads(t, h.heads(), expectedHeads(t, h.site, msgs))
+	if ci := h.consumerInfo(); ci.NumAckPending != 0 || ci.NumPending != 0 {
+		t.Errorf("consumer: %d pending, %d ack pending; want none", ci.NumPending, ci.NumAckPending)
+	}
+	assertNoPHI(t, h.logs.String())
+}
+
+// assertDeadLetters checks the dead-letter table: n rows, each detail at
+// most consumer.MaxDetailBytes, the reason (when given) and a part of the
+// detail (when given).
+func (h *harness) assertDeadLetters(n int, reason, inDetail string) {
+	h.t.Helper()
+	rows, err := h.pool.Query(context.Background(), `SELECT reason, detail FROM dead_letter`)
+	if err != nil {
+		h.t.Fatal(err)
+	}
+	defer rows.Close()
+	got := 0
+	for rows.Next() {
+		var r, d string
+		if err := rows.Scan(&r, &d); err != nil {
+			h.t.Fatal(err)
+		}
+		got++
+		if len(d) > consumer.MaxDetailBytes {
+			h.t.Errorf("dead letter %s: detail of %d bytes, want at most %d", r, len(d), consumer.MaxDetailBytes)
+		}
+		if reason != "" && r != reason {
+			h.t.Errorf("dead letter reason %q, want %q", r, reason)
+		}
+		if inDetail != "" && !strings.Contains(d, inDetail) {
+			h.t.Errorf("dead letter %s: detail %q lacks %q", r, d, inDetail)
+		}
+	}
+	if err := rows.Err(); err != nil {
+		h.t.Fatal(err)
+	}
+	if got != n {
+		h.t.Errorf("%d dead letters, want %d", got, n)
+	}
+}
+
+// ownCluster starts a throwaway PostgreSQL cluster (never the shared
+// server: the test reconfigures it), migrated, and returns its admin URL.
+func ownCluster(t *testing.T) *pgtest.Cluster {
+	t.Helper()
+	ctx := context.Background()
+	cluster, err := pgtest.StartCluster(ctx, t.TempDir())
+	if err != nil {
+		pgtest.NoServer(t, err)
+	}
+	t.Cleanup(func() { _ = cluster.Close() })
+	pool, err := pgxpool.New(ctx, cluster.URL())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer pool.Close()
+	if _, err := migrations.Apply(ctx, pool, nil); err != nil {
+		t.Fatal(err)
+	}
+	return cluster
+}
+
+// setReadOnly makes every new transaction of the cluster read-only, as a
+// primary demoted in a failover (or default_transaction_read_only) does.
+func (h *harness) setReadOnly(on bool) {
+	h.t.Helper()
+	ctx := context.Background()
+	if _, err := h.pool.Exec(ctx, fmt.Sprintf(`ALTER SYSTEM SET default_transaction_read_only = %v`, on)); err != nil {
+		h.t.Fatal(err)
+	}
+	if _, err := h.pool.Exec(ctx, `SELECT pg_reload_conf()`); err != nil {
+		h.t.Fatal(err)
+	}
+}
+
+// waitLog waits until the captured logs contain s.
+func (h *harness) waitLog(s string, timeout time.Duration) {
+	h.t.Helper()
+	deadline := time.Now().Add(timeout)
+	for !strings.Contains(h.logs.String(), s) {
+		if time.Now().After(deadline) {
+			h.t.Fatalf("no log line with %q within %s", s, timeout)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+}
+
+// A read-only PostgreSQL (SQLSTATE 25006) under load is transient: the
+// inputs are retried with back-off, none becomes a dead letter, and
+// everything reconciles once the server takes writes again.
+func TestFaultPostgresReadOnly(t *testing.T) {
+	cluster := ownCluster(t)
+	h := newHarness(t, withDatabaseURL(cluster.URL()))
+	msgs := generate(genOpts{patients: 4, gases: 3})
+	h.startReplica(nil)
+	h.publish(msgs[:len(msgs)/3])
+	h.setReadOnly(true)
+	h.publish(msgs[len(msgs)/3:])
+	h.waitLog("postgres error 25006", 60*time.Second) // the read-only state was met
+	time.Sleep(time.Second)                           // let more naks and retries happen
+	h.setReadOnly(false)
+	h.waitSettled(120 * time.Second)
+	h.reconcile(msgs) // no dead letters: none of the inputs is poison
+	if strings.Contains(h.logs.String(), "store refused message") {
+		t.Error("a valid input was refused as if its content were at fault")
+	}
+}

@@ -1,0 +1,69 @@
+package fhirmap
+
+import (
+	"errors"
+	"strings"
+	"testing"
+)
+
+// nestedExtension returns an extension nested depth levels deep (each level
+// an array and an object), with an unknown field at the bottom.
+func nestedExtension(depth int) string {
+	return `"extension":` + strings.Repeat(`[{"url":"http://example.org/x","extension":`, depth-1) +
+		`[{"url":"http://example.org/x","notAnElement":1}]` + strings.Repeat(`}]`, depth-1)
+}
+
+// A field path grows with nesting (extension in extension has no limit in
+// FHIR's types): the decoder refuses deep input and bounds every path, so a
+// small hostile message cannot make a dead-letter header or log line of any
+// size.
+func TestDecodeNestingBounds(t *testing.T) {
+	t.Run("9800 JSON levels refused as too-deep", func(t *testing.T) {
+		raw := obsText(`,` + nestedExtension(4900))
+		if len(raw) > MaxResourceBytes {
+			t.Fatalf("test input of %d bytes is over the size limit", len(raw))
+		}
+		_, err := Decode(raw, nil)
+		de, ok := errors.AsType[*DecodeError](err)
+		if !ok || de.Reason != "too-deep" {
+			t.Fatalf("got %v, want too-deep", err)
+		}
+		if len(de.Field) > MaxFieldPath || len(de.Error()) > 2*MaxFieldPath {
+			t.Errorf("field path %d bytes, error %d bytes: want at most %d and %d", len(de.Field), len(de.Error()), MaxFieldPath, 2*MaxFieldPath)
+		}
+	})
+	t.Run("deep raw value in a Bundle refused as too-deep", func(t *testing.T) {
+		raw := []byte(`{"resourceType":"Bundle","type":"collection","entry":[{"fullUrl":"urn:uuid:00000000-0000-4000-8000-000000000002","resource":` +
+			strings.Repeat(`{"a":`, 5000) + `1` + strings.Repeat(`}`, 5000) + `}]}`)
+		_, err := Decode(raw, nil)
+		de, ok := errors.AsType[*DecodeError](err)
+		if !ok || de.Reason != "too-deep" {
+			t.Fatalf("got %v, want too-deep", err)
+		}
+	})
+	t.Run("20000 JSON levels refused as too-deep, not malformed", func(t *testing.T) {
+		_, err := Decode(obsText(`,`+nestedExtension(10000)), nil)
+		if de, ok := errors.AsType[*DecodeError](err); !ok || de.Reason != "too-deep" {
+			t.Fatalf("got %v, want too-deep", err)
+		}
+	})
+	t.Run("30 levels: unknown field, path cut in the middle", func(t *testing.T) {
+		raw := obsText(`,` + nestedExtension(30))
+		_, err := Decode(raw, nil)
+		de, ok := errors.AsType[*DecodeError](err)
+		if !ok || de.Reason != "unknown-field" {
+			t.Fatalf("got %v, want unknown-field", err)
+		}
+		if len(de.Field) > MaxFieldPath || !strings.Contains(de.Field, "...") {
+			t.Errorf("field %q (%d bytes): want at most %d bytes, cut with ...", de.Field, len(de.Field), MaxFieldPath)
+		}
+		if !strings.HasPrefix(de.Field, "Observation.extension[0]") || !strings.HasSuffix(de.Field, ".notAnElement") {
+			t.Errorf("field %q: want the start and the end of the path kept", de.Field)
+		}
+	})
+	t.Run("4 levels: full path", func(t *testing.T) {
+		raw := obsText(`,` + nestedExtension(4))
+		wantRefusal(t, raw, "unknown-field",
+			"Observation.extension[0].extension[0].extension[0].extension[0].notAnElement", -1)
+	})
+}
