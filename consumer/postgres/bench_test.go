@@ -127,3 +127,91 @@ func BenchmarkIngest(b *testing.B) {
 		})
 	}
 }
+
+// stayMessages is a ventilated stay of one patient over hours: a reading
+// a minute (minute volume, tidal volume, rate, end-tidal CO2: four facts),
+// an arterial blood gas every hour at half past the minute, in time order.
+// gases are the effective times of the blood gases.
+func stayMessages(patient string, hours int) (msgs []consumer.Message, gases []time.Time) {
+	start := t0.Add(-time.Duration(hours) * time.Hour)
+	for m := range hours * 60 {
+		at := start.Add(time.Duration(m) * time.Minute)
+		id := fmt.Sprintf("stay-%d", m)
+		msgs = append(msgs, message("fhir.input.device", uint64(len(msgs)+1),
+			vent(patient, id+"-ve", fhirmap.QMinuteVol, at, 9+float64(m%7)/10, "L/min"),
+			vent(patient, id+"-vt", fhirmap.QTidalVol, at, 450, "mL"),
+			vent(patient, id+"-rr", fhirmap.QRespRate, at, 18, "/min"),
+			vent(patient, id+"-et", fhirmap.QPETCO2, at, 35, "mm[Hg]")))
+		if m%60 == 30 {
+			g := at.Add(30 * time.Second)
+			msgs = append(msgs, message("fhir.input.lab", uint64(len(msgs)+1), abg(patient, id+"-abg", g, 45)))
+			gases = append(gases, g)
+		}
+	}
+	return msgs, gases
+}
+
+// BenchmarkIngestLongStay measures one message of a patient with a long
+// stay: a ventilator reading 45 s after one of the patient's eight latest
+// blood gases (so its snapshot is loaded and planned), with a stay of 8 h
+// (about 2,000 facts) and of 96 h (about 23,000 facts) stored before. The
+// store is then used through a new pool, as after a restart or the pool's
+// hourly renewal, so the generic plans are made on the grown store; with
+// stats=analysed the store is ANALYZEd first, as autovacuum would. The cost
+// per message must not depend on the stay: compare ns/op across
+// sub-benchmarks of one run. facts/op is the snapshot size handed to the
+// plan, the same in every case.
+func BenchmarkIngestLongStay(b *testing.B) {
+	cases := []struct {
+		name     string
+		hours    int
+		analysed bool
+	}{
+		{"stay=8h", 8, false},
+		{"stay=96h", 96, false},
+		{"stay=96h/stats=analysed", 96, true},
+	}
+	for _, c := range cases {
+		b.Run(c.name, func(b *testing.B) {
+			f := newFixture(b)
+			var p testPlan
+			history, gases := stayMessages(p1, c.hours)
+			for i := 0; i < len(history); i += 64 {
+				for j, r := range f.store.IngestBatch(f.ctx, history[i:min(i+64, len(history))], p.plan) {
+					if r.Err != nil {
+						b.Fatalf("history message %d: %v", i+j, r.Err)
+					}
+				}
+				p.snaps = nil
+			}
+			if c.analysed {
+				if _, err := f.pool.Exec(f.ctx, "ANALYZE"); err != nil {
+					b.Fatal(err)
+				}
+			}
+			pool, err := pgxpool.New(f.ctx, f.url)
+			if err != nil {
+				b.Fatal(err)
+			}
+			defer pool.Close()
+			store := postgres.New(pool, postgres.Options{PatientKey: testKey})
+			last := gases[len(gases)-8:]
+			facts, n := 0, 0
+			for b.Loop() {
+				g := last[n%len(last)]
+				m := message("fhir.input.device", uint64(len(history)+n+1),
+					vent(p1, fmt.Sprintf("late-%d", n), fhirmap.QMinuteVol, g.Add(45*time.Second), 9.5, "L/min"))
+				n++
+				if _, err := store.Ingest(f.ctx, m, p.plan); err != nil {
+					b.Fatal(err)
+				}
+				if len(p.snaps) != 1 || len(p.snaps[0].Affected) != 1 {
+					b.Fatalf("reading after a blood gas gave %d snapshots", len(p.snaps))
+				}
+				facts += len(p.snaps[0].Facts)
+				p.snaps = nil
+			}
+			b.ReportMetric(float64(facts)/float64(n), "facts/op")
+		})
+	}
+}
