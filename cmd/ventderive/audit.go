@@ -48,7 +48,7 @@ questions (time basis: the blood gas's effective time, except deadletters):
   deadletters    poison messages (without their bytes), by RECORDING time  [--from] [--to] [--reason]
 flags common to all: --database-url URL (default $DATABASE_URL; normally the reviewer role)
   --format table|json|csv (default table)
-paging (all but show): --limit N rows (default 1000, at most 10000) --offset N rows skipped;
+paging (all but show and published): --limit N rows (default 1000, at most 10000) --offset N rows skipped;
   when more rows exist the table ends with a "more rows" line naming the next --offset, CSV with a
   "# more rows" comment line, JSON with "more": true and "nextOffset".
 times: RFC 3339 (2026-03-01T08:00:00Z) or a UTC date (2026-03-01); --from inclusive, --to

@@ -37,7 +37,17 @@ func TestRefusedNearestReading(t *testing.T) {
 		t.Fatal(err)
 	}
 	pgtest.ApplyRoles(t, f.url, string(rolesSQL))
-	reviewer := postgres.NewReviewer(poolAs(t, f.ctx, f.url, "ventderive_reviewer"))
+	reviewerPool := poolAs(t, f.ctx, f.url, "ventderive_reviewer")
+	reviewer := postgres.NewReviewer(reviewerPool)
+	// 0005's views are the reviewer's alone, and reach no table for it.
+	writer := poolAs(t, f.ctx, f.url, "ventderive_writer")
+	for _, view := range []string{"review_published", "review_refusal_nearest"} {
+		if _, err := reviewerPool.Exec(f.ctx, "SELECT * FROM "+view); err != nil {
+			t.Errorf("reviewer reads %s: %v", view, err)
+		}
+		_, err := writer.Exec(f.ctx, "SELECT * FROM "+view)
+		wantDenied(t, "writer reads "+view, err)
+	}
 
 	ingest := func(os ...obs) {
 		t.Helper()
