@@ -46,8 +46,9 @@ func init() {
 	register(command{name: "bench", summary: "measure the pipeline against the bare JetStream and PostgreSQL floor on this machine", run: runBench})
 }
 
-// benchFlags are the sizes of a bench run. The defaults fit in under two
-// minutes (about 1 min 45 s measured) on a 2-core machine.
+// benchFlags are the sizes of a bench run. With the defaults it takes about
+// 1 min 45 s on a 2-core machine, plus about a minute for the long-stay
+// comparison.
 type benchFlags struct {
 	inputs   int
 	copies   int
