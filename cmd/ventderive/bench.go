@@ -46,8 +46,9 @@ func init() {
 	register(command{name: "bench", summary: "measure the pipeline against the bare JetStream and PostgreSQL floor on this machine", run: runBench})
 }
 
-// benchFlags are the sizes of a bench run. The defaults fit in under two
-// minutes (about 1 min 45 s measured) on a 2-core machine.
+// benchFlags are the sizes of a bench run. With the defaults it takes about
+// 1 min 45 s on a 2-core machine, plus about a minute for the long-stay
+// comparison.
 type benchFlags struct {
 	inputs   int
 	copies   int
@@ -60,6 +61,13 @@ type benchFlags struct {
 	seed     int64
 	dir      string
 	cpuprof  string
+	stayH    int
+	stayN    int
+	// stayAnalyze runs ANALYZE after storing the stay, as autovacuum
+	// would; without it the new replica plans on a store without
+	// statistics (a server with autovacuum off, or a restart before
+	// autovacuum's first pass).
+	stayAnalyze bool
 }
 
 func runBench(ctx context.Context, args []string, e env) error {
@@ -77,6 +85,9 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.Int64Var(&f.seed, "seed", 1, "scenario seed")
 	fs.StringVar(&f.dir, "dir", "", "working directory for the embedded NATS store and a throwaway cluster (default: a new temporary directory)")
 	fs.StringVar(&f.cpuprof, "cpuprofile", "", "write a CPU profile of the pipeline throughput runs to this file")
+	fs.IntVar(&f.stayH, "stay-hours", 24, "hours of the dense long-stay run (one copy of the unit), compared with the same inputs spread over copies of 6 h stays (0: skip both)")
+	fs.IntVar(&f.stayN, "stay-inputs", 5000, "inputs measured in each long-stay run, after the rest of the stay is stored")
+	fs.BoolVar(&f.stayAnalyze, "stay-analyze", false, "run ANALYZE after storing each long stay, before the measured part (as autovacuum would; default: no statistics, as on a server with autovacuum off)")
 	if err := fs.Parse(args); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
 			return nil
@@ -84,8 +95,8 @@ func runBench(ctx context.Context, args []string, e env) error {
 		return errUsage
 	}
 	replicas, err := parseCounts(f.replicas)
-	if err != nil || f.inputs < 1 || f.copies < 1 || f.rate <= 0 || f.workers < 1 {
-		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers must be positive and --replicas a list of positive counts")
+	if err != nil || f.inputs < 1 || f.copies < 1 || f.rate <= 0 || f.workers < 1 || f.stayH < 0 || (f.stayH > 0 && f.stayN < 1) {
+		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers, --stay-inputs must be positive, --stay-hours not negative and --replicas a list of positive counts")
 		return errUsage
 	}
 	b, err := newBench(ctx, f, e)
@@ -171,7 +182,7 @@ func newBench(ctx context.Context, f benchFlags, e env) (_ *bench, err error) {
 	b.site = fhirmap.DefaultSite()
 	b.site.Window.Before, b.site.Window.After = scenario.PairingBefore, scenario.PairingAfter
 	b.site.ApparatusDeadSpaceML, b.site.ApparatusDeadSpaceConfigured = scenario.ApparatusDeadSpaceML, true
-	b.msgs = benchMessages(f.seed, f.copies, f.inputs)
+	b.msgs = benchMessages(f.seed, f.copies, f.inputs, scenario.MinDuration)
 	return b, nil
 }
 
@@ -207,8 +218,8 @@ func (b *bench) close() {
 // others in time order, from the start or, when n is too small to reach the
 // first blood-gas report, from a window centred on it, so that derived
 // values come out of any size of run.
-func benchMessages(seed int64, copies, n int) []benchMsg {
-	sc := scenario.Generate(scenario.Options{Seed: seed, Duration: scenario.MinDuration})
+func benchMessages(seed int64, copies, n int, d time.Duration) []benchMsg {
+	sc := scenario.Generate(scenario.Options{Seed: seed, Duration: d})
 	type timed struct {
 		at time.Time
 		m  benchMsg
@@ -340,6 +351,11 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 		stopProf()
 	}
 	b.report(rows, parts)
+	if b.f.stayH > 0 {
+		if err := b.stays(ctx); err != nil {
+			return fmt.Errorf("long stays: %w", err)
+		}
+	}
 	if b.f.patients > 0 {
 		if err := b.memory(ctx); err != nil {
 			return fmt.Errorf("memory check: %w", err)
@@ -1087,7 +1103,7 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	if err != nil {
 		return row, err
 	}
-	lat, inputs, err := b.outputLatency(ctx, ppool)
+	lat, inputs, err := b.outputLatency(ctx, ppool, 0)
 	if err != nil {
 		return row, err
 	}
@@ -1100,7 +1116,7 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 // it (outbox row -> inbox -> input stream sequence) and returns, per such
 // input, the time from its publish to its last Observation's publish, both
 // as the streams recorded them.
-func (b *bench) outputLatency(ctx context.Context, pool *pgxpool.Pool) ([]time.Duration, int, error) {
+func (b *bench) outputLatency(ctx context.Context, pool *pgxpool.Pool, afterSeq uint64) ([]time.Duration, int, error) {
 	inSeq, _, err := b.streamTimes(ctx, consumer.DefaultInputStream)
 	if err != nil {
 		return nil, 0, err
@@ -1109,7 +1125,8 @@ func (b *bench) outputLatency(ctx context.Context, pool *pgxpool.Pool) ([]time.D
 	if err != nil {
 		return nil, 0, err
 	}
-	rows, err := pool.Query(ctx, `SELECT o.msg_id, i.stream_seq FROM outbox o JOIN inbox i USING (inbox_key) WHERE o.subject = $1`, consumer.DefaultObservationSub)
+	rows, err := pool.Query(ctx, `SELECT o.msg_id, i.stream_seq FROM outbox o JOIN inbox i USING (inbox_key) WHERE o.subject = $1 AND i.stream_seq > $2`,
+		consumer.DefaultObservationSub, int64(afterSeq))
 	if err != nil {
 		return nil, 0, err
 	}

@@ -9,6 +9,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/ventderive/ventderive/cmd/ventderive/internal/scenario"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
 	"github.com/ventderive/ventderive/fhirmap"
 )
@@ -29,7 +30,7 @@ func TestBenchSmall(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute)
 	defer cancel()
 	err := run(ctx, []string{"bench", "--inputs", "400", "--copies", "1", "--rate", "200", "--paced", "2s",
-		"--replicas", "1", "--patients", "0", "--dir", t.TempDir()}, e)
+		"--replicas", "1", "--patients", "0", "--stay-hours", "6", "--stay-inputs", "300", "--dir", t.TempDir()}, e)
 	if err != nil {
 		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
 	}
@@ -56,6 +57,30 @@ func TestBenchSmall(t *testing.T) {
 			t.Errorf("%s: implausible measurements %v (inputs/s, p50, p99 >= p50, CPU, allocs, RSS and ratio must be positive)", name, v)
 		}
 	}
+	for _, name := range []string{"spread (20 x 6 h)", "dense (10 x 6 h)"} {
+		re := regexp.MustCompile(`(?m)^\s*` + regexp.QuoteMeta(name) + `((?:\s+[0-9.]+)+)\s*$`)
+		m := re.FindStringSubmatch(report)
+		if m == nil {
+			t.Errorf("no long-stay row %q", name)
+			continue
+		}
+		var v []float64
+		for f := range strings.FieldsSeq(m[1]) {
+			x, _ := strconv.ParseFloat(f, 64)
+			v = append(v, x)
+		}
+		// patients, inputs stored first, inputs/s, PostgreSQL CPU, CPU, machine CPU, p50, p99, paced samples
+		if len(v) != 9 {
+			t.Errorf("%s: %d numbers, want 9: %v", name, len(v), v)
+			continue
+		}
+		if v[0] <= 0 || v[1] <= 0 || v[2] <= 0 || v[4] <= 0 || v[8] < 1 || v[7] < v[6] {
+			t.Errorf("%s: implausible measurements %v (patients, stored inputs, inputs/s, CPU and samples must be positive, p99 >= p50)", name, v)
+		}
+	}
+	if !regexp.MustCompile(`dense/spread: PostgreSQL CPU per input (n/a|[0-9.]+) .*inputs/s [0-9.]+ .*dense paced p99 [0-9.]+ ms`).MatchString(report) {
+		t.Error("no dense/spread ratio line")
+	}
 	if !strings.Contains(report, "produced derived Observations") {
 		t.Error("no latency note for the pipeline")
 	}
@@ -67,7 +92,7 @@ func TestBenchSmall(t *testing.T) {
 // Copies of the invented unit must be distinct patients as the service's
 // decoder sees them, with distinct payloads (inbox keys) and message ids.
 func TestBenchMessagesAreDistinctCopies(t *testing.T) {
-	msgs := benchMessages(1, 3, 3000)
+	msgs := benchMessages(1, 3, 3000, scenario.MinDuration)
 	if len(msgs) != 3000 {
 		t.Fatalf("%d messages, want 3000", len(msgs))
 	}
