@@ -8,6 +8,9 @@ import (
 	"time"
 
 	"github.com/jackc/pgx/v5/pgxpool"
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/prometheus/client_golang/prometheus"
+	dto "github.com/prometheus/client_model/go"
 
 	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
@@ -182,4 +185,112 @@ func TestFaultPostgresReadOnly(t *testing.T) {
 	if strings.Contains(h.logs.String(), "store refused message") {
 		t.Error("a valid input was refused as if its content were at fault")
 	}
+}
+
+// deniedObservations is a server whose replica user may not publish to the
+// default observation subject (everything else allowed); admin may do all.
+func deniedObservations(o *server.Options) {
+	o.Users = []*server.User{
+		{Username: "admin", Password: "admin-test-only"},
+		{Username: "svc", Password: "svc-test-only", Permissions: &server.Permissions{
+			Publish: &server.SubjectPermission{Deny: []string{consumer.DefaultObservationSub}},
+		}},
+	}
+}
+
+// metricValue reads a counter's or gauge's value.
+func metricValue(t *testing.T, c prometheus.Collector) float64 {
+	t.Helper()
+	ch := make(chan prometheus.Metric, 1)
+	c.Collect(ch)
+	var d dto.Metric
+	if err := (<-ch).Write(&d); err != nil {
+		t.Fatal(err)
+	}
+	if d.Gauge != nil {
+		return d.Gauge.GetValue()
+	}
+	return d.Counter.GetValue()
+}
+
+// outputCounts counts the output stream's messages by subject.
+func (h *harness) outputCounts() map[string]int {
+	h.t.Helper()
+	n := map[string]int{}
+	for _, m := range h.readOutput() {
+		n[m.subject]++
+	}
+	return n
+}
+
+// The NATS permissions deny the observation subject: a publish there gets
+// no acknowledgement. The relay gives up on it after its deadline, says
+// why, keeps the backlog gauge true and turns readiness to "relay", and
+// still publishes the provenance rows behind the stuck ones (more stuck rows
+// than one relay page). A replica started with a corrected observation
+// subject publishes the rows written before the change to the new subject.
+func TestRelayDeniedSubject(t *testing.T) {
+	h := newHarness(t, withNATSUsers(deniedObservations, "admin:admin-test-only@", "svc:svc-test-only@"))
+	h.cfg.FailingAfter = time.Second
+	h.metrics = consumer.NewMetrics(prometheus.NewRegistry())
+	msgs := generate(genOpts{patients: 12, gases: 4})
+	r := h.startReplica(nil)
+	h.publish(msgs)
+
+	ctx := context.Background()
+	var versions int
+	deadline := time.Now().Add(120 * time.Second)
+	for {
+		if err := h.pool.QueryRow(ctx, `SELECT count(*) FROM derivation`).Scan(&versions); err != nil {
+			t.Fatal(err)
+		}
+		var inbox int
+		_ = h.pool.QueryRow(ctx, `SELECT count(*) FROM inbox`).Scan(&inbox)
+		provenance := h.outputCounts()[consumer.DefaultProvenanceSub]
+		if inbox == len(msgs) && provenance == versions && versions > 0 {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("after 120 s: %d of %d inputs recorded, %d provenance of %d versions published", inbox, len(msgs), provenance, versions)
+		}
+		time.Sleep(200 * time.Millisecond)
+	}
+	if versions <= 256 {
+		t.Fatalf("only %d derivation versions: the stuck rows must fill more than one relay page", versions)
+	}
+	if got := h.outputCounts()[consumer.DefaultObservationSub]; got != 0 {
+		t.Fatalf("%d observations published to a denied subject", got)
+	}
+	h.waitLog("no acknowledgement within", 60*time.Second)
+	deadline = time.Now().Add(60 * time.Second)
+	for r.p.Ready(ctx)["relay"] == "" {
+		if time.Now().After(deadline) {
+			t.Fatalf("readiness %v: want relay named", r.p.Ready(ctx))
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	if got := r.p.Ready(ctx)["relay"]; !strings.Contains(got, "ermissions") {
+		t.Errorf("relay reason %q does not name the permissions violation", got)
+	}
+	for b := metricValue(t, h.metrics.OutboxBacklog); int(b) != versions; b = metricValue(t, h.metrics.OutboxBacklog) {
+		if time.Now().After(deadline) {
+			t.Fatalf("backlog gauge %v while %d observations wait", b, versions)
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	if metricValue(t, h.metrics.RelayFailing) != 1 {
+		t.Error("relay failing gauge is not 1")
+	}
+	if metricValue(t, h.metrics.Published) != float64(versions) {
+		t.Errorf("published_total %v, want the %d provenance rows", metricValue(t, h.metrics.Published), versions)
+	}
+	r.stop(t)
+
+	// The operator corrects the subject (one the permissions allow).
+	h.cfg.ObservationSub = "ventderive.observation-v2"
+	h.metrics = nil
+	h.startReplica(nil)
+	h.waitSettled(120 * time.Second)
+	h.reconcile(msgs)
+	assertNoPHI(t, h.logs.String())
 }

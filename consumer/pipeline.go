@@ -51,6 +51,15 @@ type Pipeline struct {
 	// dlFailingSince is when the dead-letter path (copy or record) began
 	// to fail, in Unix nanoseconds; 0 while it works.
 	dlFailingSince atomic.Int64
+	// relayFailSince is when the outbox relay began to fail (Unix
+	// nanoseconds, 0 while it works) and relayErr its last error.
+	relayFailSince atomic.Int64
+	relayErr       atomic.Value // string
+	// stalledSince is when the watchdog found pending input without
+	// progress (Unix nanoseconds, 0 when intake moves), stalledPending how
+	// much was pending then.
+	stalledSince   atomic.Int64
+	stalledPending atomic.Uint64
 
 	// hooks lets tests inject faults at named points; nil in production.
 	hooks *Hooks
@@ -155,6 +164,7 @@ func (c Config) withDefaults() Config {
 	orDefault(&c.MaxDeliver, d.MaxDeliver)
 	orDefault(&c.RelayInterval, d.RelayInterval)
 	orDefault(&c.StallAfter, d.StallAfter)
+	orDefault(&c.FailingAfter, d.FailingAfter)
 	return c
 }
 
