@@ -38,7 +38,8 @@ func (p *Pipeline) Ready(ctx context.Context) map[string]string {
 		problems["consumer"] = "inactive"
 	}
 	now := p.now()
-	if since := p.stalledSince.Load(); since != 0 {
+	// A message settled since the watchdog's last look ends the stall.
+	if since := p.stalledSince.Load(); since != 0 && p.progress.Load() == p.stalledProgress.Load() {
 		problems["intake"] = fmt.Sprintf("no input settled for %s with %d messages pending", roundSince(now, since), p.stalledPending.Load())
 	}
 	if since := p.relayFailSince.Load(); since != 0 && now.Sub(time.Unix(0, since)) >= p.cfg.FailingAfter {

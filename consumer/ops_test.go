@@ -45,11 +45,12 @@ func TestPoisonDeepNestingDoesNotHaltIntake(t *testing.T) {
 		bad = append(bad, deepPoison(i, 4900))
 	}
 	msgs := interleave(bad, generate(genOpts{patients: 2, gases: 1}))
-	h.startReplica(nil)
+	r := h.startReplica(nil)
 	h.publish(msgs)
 	h.waitSettled(120 * time.Second)
 	h.reconcile(msgs)
 	h.assertDeadLetters(len(bad), "too-deep", "")
+	h.waitReady(r)
 	assertNoPHI(t, h.logs.String())
 }
 
@@ -66,7 +67,7 @@ func TestDeadLetterCopyUnpublishable(t *testing.T) {
 	bad = append(bad, deepPoison(1, 3), deepPoison(2, 3))
 	good := generate(genOpts{patients: 2, gases: 1})
 	msgs := interleave(bad, good)
-	h.startReplica(nil)
+	r := h.startReplica(nil)
 	h.publish(msgs)
 	h.waitSettled(120 * time.Second)
 
@@ -82,6 +83,7 @@ func TestDeadLetterCopyUnpublishable(t *testing.T) {
 	if ci := h.consumerInfo(); ci.NumAckPending != 0 || ci.NumPending != 0 {
 		t.Errorf("consumer: %d pending, %d ack pending; want none", ci.NumPending, ci.NumAckPending)
 	}
+	h.waitReady(r)
 	assertNoPHI(t, h.logs.String())
 }
 
@@ -167,23 +169,53 @@ func (h *harness) waitLog(s string, timeout time.Duration) {
 }
 
 // A read-only PostgreSQL (SQLSTATE 25006) under load is transient: the
-// inputs are retried with back-off, none becomes a dead letter, and
-// everything reconciles once the server takes writes again.
+// inputs are retried with back-off, none becomes a dead letter, readiness
+// reports the stalled intake and the dead letters that cannot be recorded,
+// and everything reconciles once the server takes writes again.
 func TestFaultPostgresReadOnly(t *testing.T) {
 	cluster := ownCluster(t)
 	h := newHarness(t, withDatabaseURL(cluster.URL()))
-	msgs := generate(genOpts{patients: 4, gases: 3})
-	h.startReplica(nil)
-	h.publish(msgs[:len(msgs)/3])
+	h.cfg.StallAfter = 2 * time.Second
+	h.cfg.FailingAfter = time.Second
+	good := generate(genOpts{patients: 4, gases: 3})
+	msgs := append(good[:len(good)/3:len(good)/3], poisonMsgs()...)
+	msgs = append(msgs, good[len(good)/3:]...)
+	r := h.startReplica(nil)
+	h.publish(good[:len(good)/3])
 	h.setReadOnly(true)
-	h.publish(msgs[len(msgs)/3:])
+	h.publish(msgs[len(good)/3:])
 	h.waitLog("postgres error 25006", 60*time.Second) // the read-only state was met
-	time.Sleep(time.Second)                           // let more naks and retries happen
+	ctx := context.Background()
+	deadline := time.Now().Add(60 * time.Second)
+	for {
+		got := r.p.Ready(ctx)
+		if got["intake"] != "" && got["dead-letter"] != "" {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("readiness %v with PostgreSQL read-only: want intake and dead-letter named", got)
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
 	h.setReadOnly(false)
 	h.waitSettled(120 * time.Second)
-	h.reconcile(msgs) // no dead letters: none of the inputs is poison
+	h.reconcile(msgs) // only the poison inputs are dead letters
 	if strings.Contains(h.logs.String(), "store refused message") {
 		t.Error("a valid input was refused as if its content were at fault")
+	}
+	h.waitReady(r)
+}
+
+// waitReady waits until the replica reports ready (the relay and the
+// watchdog notice recovery on their next round).
+func (h *harness) waitReady(r *replica) {
+	h.t.Helper()
+	deadline := time.Now().Add(30 * time.Second)
+	for got := r.p.Ready(context.Background()); len(got) != 0; got = r.p.Ready(context.Background()) {
+		if time.Now().After(deadline) {
+			h.t.Fatalf("not ready 30 s after recovery: %v", got)
+		}
+		time.Sleep(100 * time.Millisecond)
 	}
 }
 
@@ -289,8 +321,9 @@ func TestRelayDeniedSubject(t *testing.T) {
 	// The operator corrects the subject (one the permissions allow).
 	h.cfg.ObservationSub = "ventderive.observation-v2"
 	h.metrics = nil
-	h.startReplica(nil)
+	r = h.startReplica(nil)
 	h.waitSettled(120 * time.Second)
 	h.reconcile(msgs)
+	h.waitReady(r)
 	assertNoPHI(t, h.logs.String())
 }

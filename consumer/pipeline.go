@@ -47,7 +47,7 @@ type Pipeline struct {
 	mu       sync.Mutex
 	consumer jetstream.Consumer
 	active   atomic.Bool  // the consumer exists and the last fetch did not fail
-	progress atomic.Int64 // messages settled (acked, naked or terminated)
+	progress atomic.Int64 // messages settled for good (acked or terminated)
 	// dlFailingSince is when the dead-letter path (copy or record) began
 	// to fail, in Unix nanoseconds; 0 while it works.
 	dlFailingSince atomic.Int64
@@ -58,8 +58,9 @@ type Pipeline struct {
 	// stalledSince is when the watchdog found pending input without
 	// progress (Unix nanoseconds, 0 when intake moves), stalledPending how
 	// much was pending then.
-	stalledSince   atomic.Int64
-	stalledPending atomic.Uint64
+	stalledSince    atomic.Int64
+	stalledPending  atomic.Uint64
+	stalledProgress atomic.Int64 // progress when the stall was found
 
 	// hooks lets tests inject faults at named points; nil in production.
 	hooks *Hooks
@@ -619,8 +620,13 @@ func (p *Pipeline) deadLetterFailing(failed bool) {
 
 func (p *Pipeline) ack(msg jetstream.Msg, log *slog.Logger) { p.settle(msg.Ack(), "ack", log) }
 
+// settle notes a settled message. Only an ack or a term is progress for
+// the watchdog and readiness: a message naked again and again (a store that
+// refuses every write) is work pending, not work done.
 func (p *Pipeline) settle(err error, what string, log *slog.Logger) {
-	p.progress.Add(1)
+	if what != "nak" {
+		p.progress.Add(1)
+	}
 	if err != nil {
 		// An unconfirmed settle means redelivery after AckWait, which the
 		// inbox absorbs.

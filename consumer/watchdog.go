@@ -56,6 +56,7 @@ func (p *Pipeline) watchdog(ctx context.Context) {
 		}
 		// Readiness says so until a message is settled again.
 		p.stalledPending.Store(info.NumPending + uint64(info.NumAckPending))
+		p.stalledProgress.Store(lastProgress)
 		p.stalledSince.CompareAndSwap(0, lastChange.UnixNano())
 		p.metrics.IntakeStalled.Set(1)
 		p.metrics.Stalls.Inc()
