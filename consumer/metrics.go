@@ -32,6 +32,9 @@ type Metrics struct {
 	// IntakeStalled is 1 while the watchdog finds input pending and no
 	// message settled for StallAfter.
 	IntakeStalled prometheus.Gauge
+	// LockFallbacks counts group commits that waited out a patient lock
+	// and were recorded message by message.
+	LockFallbacks prometheus.Counter
 }
 
 // NewMetrics creates the metrics and registers them with reg when it is not nil.
@@ -89,11 +92,14 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		IntakeStalled: prometheus.NewGauge(prometheus.GaugeOpts{
 			Name: "ventderive_intake_stalled", Help: "1 while input is pending and no message was settled for the stall limit, else 0.",
 		}),
+		LockFallbacks: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_lock_fallbacks_total", Help: "Group commits that waited out a patient lock (lock_timeout) and were recorded message by message.",
+		}),
 	}
 	if reg != nil {
 		reg.MustRegister(m.Inputs, m.Ignored, m.Derived, m.Retractions, m.Refusals, m.DeadLetters,
 			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls,
-			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.IntakeStalled)
+			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.IntakeStalled, m.LockFallbacks)
 	}
 	return m
 }

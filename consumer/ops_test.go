@@ -4,6 +4,8 @@ import (
 	"context"
 	"fmt"
 	"strings"
+	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -210,7 +212,7 @@ func TestFaultPostgresReadOnly(t *testing.T) {
 // watchdog notice recovery on their next round).
 func (h *harness) waitReady(r *replica) {
 	h.t.Helper()
-	deadline := time.Now().Add(30 * time.Second)
+	deadline := time.Now().Add(90 * time.Second)
 	for got := r.p.Ready(context.Background()); len(got) != 0; got = r.p.Ready(context.Background()) {
 		if time.Now().After(deadline) {
 			h.t.Fatalf("not ready 30 s after recovery: %v", got)
@@ -326,4 +328,77 @@ func TestRelayDeniedSubject(t *testing.T) {
 	h.reconcile(msgs)
 	h.waitReady(r)
 	assertNoPHI(t, h.logs.String())
+}
+
+// A replica frozen while it holds a patient's lock (here: a connection
+// holding that advisory lock) holds back only that patient: the group
+// commits that wait out lock_timeout are recorded message by message, the
+// other patients' inputs are all recorded while the lock is held, and the
+// frozen patient's once it is released.
+func TestFrozenLockHoldsBackOnlyItsPatient(t *testing.T) {
+	// lock_timeout as the writer role has it in deploy/postgres/roles.sql,
+	// shorter for the test; the harness connects as the admin role.
+	h := newHarness(t, withDatabaseURL(pgtest.NewDatabase(t)+"&lock_timeout=500"))
+	msgs := generate(genOpts{patients: 8, gases: 2})
+	frozen := patientRef(0)
+	ctx := context.Background()
+	holder, err := h.pool.Begin(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer holder.Rollback(ctx)
+	if _, err := holder.Exec(ctx, `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`, frozen); err != nil {
+		t.Fatal(err)
+	}
+	var others []testMsg
+	var otherSeqs []uint64 // stream sequences: the stream is new, so the publish order
+	for i, m := range msgs {
+		// Its Patient resource names it by id only.
+		if !strings.Contains(string(m.payload), `"`+strings.TrimPrefix(frozen, "Patient/")) {
+			others = append(others, m)
+			otherSeqs = append(otherSeqs, uint64(i+1))
+		}
+	}
+	var attempts sync.Map // stream seq -> *atomic.Int32: times handed to the store in a group
+	r := h.startReplica(&consumer.Hooks{BeforeIngest: func(seq uint64) {
+		c, _ := attempts.LoadOrStore(seq, new(atomic.Int32))
+		c.(*atomic.Int32).Add(1)
+	}})
+	h.publish(msgs)
+	deadline := time.Now().Add(90 * time.Second)
+	for {
+		var n int
+		if err := h.pool.QueryRow(ctx, `SELECT count(*) FROM inbox WHERE inbox_key = ANY($1)`, inboxKeys(others)).Scan(&n); err != nil {
+			t.Fatal(err)
+		}
+		if n == len(others) {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("with one patient locked, %d of the other patients' %d inputs recorded after 90 s", n, len(others))
+		}
+		time.Sleep(200 * time.Millisecond)
+	}
+	// None of the other patients' inputs was retried: each went to the
+	// store in one group, and if that group waited on the lock, it was
+	// recorded on its own right after.
+	for _, seq := range otherSeqs {
+		if c, ok := attempts.Load(seq); ok && c.(*atomic.Int32).Load() > 1 {
+			t.Errorf("input %d of an unlocked patient was handed to the store %d times", seq, c.(*atomic.Int32).Load())
+		}
+	}
+	if err := holder.Rollback(ctx); err != nil {
+		t.Fatal(err)
+	}
+	h.waitSettled(120 * time.Second)
+	h.reconcile(msgs)
+	h.waitReady(r)
+}
+
+func inboxKeys(msgs []testMsg) []string {
+	out := make([]string, len(msgs))
+	for i, m := range msgs {
+		out[i] = inboxKey(m.payload)
+	}
+	return out
 }

@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"slices"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -370,6 +371,10 @@ func (p *Pipeline) commitGroup(ctx context.Context, bs BatchStore, group []*infl
 		msgs[i] = it.m
 	}
 	results := bs.IngestBatch(ctx, msgs, p.planFunc(p.now().UTC()))
+	if len(group) > 1 && len(results) == len(group) && errors.Is(results[0].Err, ErrLocked) {
+		p.commitEach(ctx, group)
+		return
+	}
 	outbox := 0
 	for i, it := range group {
 		if len(results) != len(group) {
@@ -383,6 +388,46 @@ func (p *Pipeline) commitGroup(ctx context.Context, bs BatchStore, group []*infl
 	if outbox > 0 {
 		p.kickRelay()
 	}
+}
+
+// commitEach records the messages of a group that failed on a lock one by
+// one, so that only the messages of the locked patient wait: once a
+// message fails on a lock, the later messages naming any of its patients
+// are naked without another wait.
+func (p *Pipeline) commitEach(ctx context.Context, group []*inflight) {
+	p.metrics.LockFallbacks.Inc()
+	p.log.Warn("group commit waited out a patient lock; recording its messages one by one", "messages", len(group))
+	locked := map[string]bool{}
+	for _, it := range group {
+		pats := patientsOf(it.m)
+		if slices.ContainsFunc(pats, func(pt string) bool { return locked[pt] }) {
+			p.finish(ctx, it, IngestResult{}, fmt.Errorf("skipped after a locked patient: %w: %w", ErrTransient, ErrLocked), false)
+			continue
+		}
+		res, err := p.store.Ingest(ctx, it.m, p.planFunc(p.now().UTC()))
+		if errors.Is(err, ErrLocked) {
+			for _, pt := range pats {
+				locked[pt] = true
+			}
+		}
+		p.finish(ctx, it, res, err, true)
+	}
+}
+
+// patientsOf lists the patients a message names.
+func patientsOf(m Message) []string {
+	var out []string
+	for _, f := range m.Facts {
+		if !slices.Contains(out, f.Patient) {
+			out = append(out, f.Patient)
+		}
+	}
+	for _, r := range m.Resources {
+		if r.Patient != "" && !slices.Contains(out, r.Patient) {
+			out = append(out, r.Patient)
+		}
+	}
+	return out
 }
 
 // inflight is one received message on its way through the pipeline.

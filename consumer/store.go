@@ -53,6 +53,12 @@ var ErrDuplicate = errors.New("duplicate message")
 // with it; anything else is treated as permanent for that message.
 var ErrTransient = errors.New("transient store error")
 
+// ErrLocked marks a transient store error that was a lock not granted in
+// time (a patient lock held by a stuck transaction, perhaps of a frozen
+// replica). The pipeline then retries a group's messages one by one, so
+// that one locked patient does not hold back the others.
+var ErrLocked = errors.New("lock not granted in time")
+
 // Message is one input message as received from the bus, decoded.
 type Message struct {
 	// InboxKey identifies the message for idempotency: the hex SHA-256 of the
