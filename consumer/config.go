@@ -61,8 +61,12 @@ type Config struct {
 	MaxDeliver int
 	// RelayInterval is how often the outbox relay polls when idle.
 	RelayInterval time.Duration
-	// StallAfter is how long the watchdog tolerates pending messages with no progress.
+	// StallAfter is how long the watchdog tolerates pending messages with no
+	// progress; readiness then reports "intake" until progress resumes.
 	StallAfter time.Duration
+	// FailingAfter is how long the outbox relay or the dead-letter path may
+	// keep failing before readiness reports it ("relay", "dead-letter").
+	FailingAfter time.Duration
 }
 
 // DefaultConfig returns the defaults documented in the README.
@@ -83,6 +87,7 @@ func DefaultConfig() Config {
 		MaxDeliver:     -1,
 		RelayInterval:  200 * time.Millisecond,
 		StallAfter:     2 * time.Minute,
+		FailingAfter:   time.Minute,
 	}
 }
 

@@ -31,15 +31,17 @@ func TestMain(m *testing.M) { pgtest.Main(m) }
 // testNATS is an in-process nats-server with JetStream on a fixed port and
 // store, so that a test can restart it on the same data.
 type testNATS struct {
-	t    testing.TB
-	dir  string
-	port int
-	srv  *server.Server
+	t         testing.TB
+	dir       string
+	port      int
+	srv       *server.Server
+	configure func(*server.Options) // e.g. users and permissions; nil: none
+	user      string                // "user:password@" of the test's own connections, or ""
 }
 
-func startNATS(t testing.TB) *testNATS {
+func startNATS(t testing.TB, configure func(*server.Options), user string) *testNATS {
 	t.Helper()
-	n := &testNATS{t: t, dir: t.TempDir(), port: freePort(t)}
+	n := &testNATS{t: t, dir: t.TempDir(), port: freePort(t), configure: configure, user: user}
 	n.start()
 	t.Cleanup(n.stop)
 	return n
@@ -57,10 +59,14 @@ func freePort(t testing.TB) int {
 
 func (n *testNATS) start() {
 	n.t.Helper()
-	srv, err := server.NewServer(&server.Options{
+	opts := &server.Options{
 		Host: "127.0.0.1", Port: n.port, JetStream: true, StoreDir: n.dir,
 		NoLog: true, NoSigs: true,
-	})
+	}
+	if n.configure != nil {
+		n.configure(opts)
+	}
+	srv, err := server.NewServer(opts)
 	if err != nil {
 		n.t.Fatalf("nats-server: %v", err)
 	}
@@ -81,7 +87,7 @@ func (n *testNATS) stop() {
 
 func (n *testNATS) restart() { n.stop(); n.start() }
 
-func (n *testNATS) url() string { return fmt.Sprintf("nats://127.0.0.1:%d", n.port) }
+func (n *testNATS) url() string { return fmt.Sprintf("nats://%s127.0.0.1:%d", n.user, n.port) }
 
 // harness is one test's world: NATS, a migrated database, replicas.
 type harness struct {
@@ -100,6 +106,10 @@ type harness struct {
 	replicas []*replica
 	sent     map[string]bool   // inbox keys of every payload published
 	metrics  *consumer.Metrics // for the next replica started; nil: unregistered metrics
+
+	natsConfig  func(*server.Options) // users and permissions of the server, nil: none
+	natsUser    string                // "user:password@" of the test's publisher
+	replicaUser string                // "user:password@" of the replicas; "" means natsUser
 }
 
 type replica struct {
@@ -114,13 +124,19 @@ type harnessOpt func(*harness)
 
 func withDatabaseURL(url string) harnessOpt { return func(h *harness) { h.dbURL = url } }
 
+// withNATSUsers configures the server's users; the test publishes as
+// admin and the replicas connect as replica ("user:password@").
+func withNATSUsers(configure func(*server.Options), admin, replica string) harnessOpt {
+	return func(h *harness) { h.natsConfig, h.natsUser, h.replicaUser = configure, admin, replica }
+}
+
 func newHarness(t *testing.T, opts ...harnessOpt) *harness {
 	t.Helper()
 	h := &harness{t: t, logs: &syncBuffer{}, key: []byte("test-key-not-a-secret")}
 	for _, o := range opts {
 		o(h)
 	}
-	h.nats = startNATS(t)
+	h.nats = startNATS(t, h.natsConfig, h.natsUser)
 	if h.dbURL == "" {
 		h.dbURL = pgtest.NewDatabase(t)
 	}
@@ -166,10 +182,14 @@ func newHarness(t *testing.T, opts ...harnessOpt) *harness {
 	return h
 }
 
-func (h *harness) connect() *nats.Conn {
+func (h *harness) connect() *nats.Conn { return h.connectURL(h.nats.url()) }
+
+func (h *harness) connectURL(url string) *nats.Conn {
 	h.t.Helper()
-	nc, err := nats.Connect(h.nats.url(), nats.MaxReconnects(-1), nats.ReconnectWait(100*time.Millisecond),
-		nats.RetryOnFailedConnect(true))
+	log := slog.New(slog.NewJSONHandler(h.logs, nil))
+	nc, err := nats.Connect(url, nats.MaxReconnects(-1), nats.ReconnectWait(100*time.Millisecond),
+		nats.RetryOnFailedConnect(true),
+		nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) { log.Warn("nats async error", "err", err) }))
 	if err != nil {
 		h.t.Fatal(err)
 	}
@@ -184,7 +204,11 @@ func (h *harness) startReplica(hooks *consumer.Hooks) *replica {
 	if err != nil {
 		h.t.Fatal(err)
 	}
-	nc := h.connect()
+	url := h.nats.url()
+	if h.replicaUser != "" {
+		url = fmt.Sprintf("nats://%s127.0.0.1:%d", h.replicaUser, h.nats.port)
+	}
+	nc := h.connectURL(url)
 	log := slog.New(slog.NewJSONHandler(h.logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
 	store := postgres.New(pool, postgres.Options{PatientKey: h.key, Logger: log})
 	p, err := consumer.New(nc, store, consumer.Options{

@@ -3,6 +3,7 @@ package consumer
 import (
 	"context"
 	"encoding/json"
+	"fmt"
 	"net/http"
 	"time"
 
@@ -11,9 +12,18 @@ import (
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 )
 
-// Ready reports whether the replica can do its work: NATS connected,
-// PostgreSQL reachable and the consumer active. It returns what is not ready,
-// by component (nats, postgres, consumer); empty means ready.
+// Ready reports whether the replica can do its work. It returns what is not
+// ready, by component, with a reason; empty means ready:
+//
+//   - nats: the connection's state when not connected;
+//   - postgres: "unreachable" when a round trip fails;
+//   - consumer: "inactive" when the durable consumer is missing or fetches fail;
+//   - intake: input is pending and no message was settled for StallAfter
+//     (a full in-flight limit, a store that refuses every write);
+//   - relay: the outbox relay has failed for longer than FailingAfter
+//     (with its last error: a denied subject, no acknowledgement);
+//   - dead-letter: recording or copying dead letters has failed for longer
+//     than FailingAfter.
 func (p *Pipeline) Ready(ctx context.Context) map[string]string {
 	problems := map[string]string{}
 	if p.nc.Status() != nats.CONNECTED {
@@ -27,7 +37,24 @@ func (p *Pipeline) Ready(ctx context.Context) map[string]string {
 	if !p.active.Load() {
 		problems["consumer"] = "inactive"
 	}
+	now := p.now()
+	// A message settled since the watchdog's last look ends the stall.
+	if since := p.stalledSince.Load(); since != 0 && p.progress.Load() == p.stalledProgress.Load() {
+		problems["intake"] = fmt.Sprintf("no input settled for %s with %d messages pending", roundSince(now, since), p.stalledPending.Load())
+	}
+	if since := p.relayFailSince.Load(); since != 0 && now.Sub(time.Unix(0, since)) >= p.cfg.FailingAfter {
+		last, _ := p.relayErr.Load().(string)
+		problems["relay"] = fmt.Sprintf("outbox relay failing for %s: %s", roundSince(now, since), last)
+	}
+	if since := p.dlFailingSince.Load(); since != 0 && now.Sub(time.Unix(0, since)) >= p.cfg.FailingAfter {
+		problems["dead-letter"] = fmt.Sprintf("dead letters failing for %s", roundSince(now, since))
+	}
 	return problems
+}
+
+// roundSince is the time from since (Unix nanoseconds) to now, in seconds.
+func roundSince(now time.Time, since int64) time.Duration {
+	return now.Sub(time.Unix(0, since)).Round(time.Second)
 }
 
 // Handler serves /healthz (the process is alive), /readyz (Ready) and

@@ -24,6 +24,17 @@ type Metrics struct {
 	// fails, 0 once a dead letter went through again.
 	DeadLetterCopyFailures prometheus.Counter
 	DeadLetterFailing      prometheus.Gauge
+	// RelayFailures counts relay passes that left rows unpublished;
+	// RelayFailing is 1 while the relay fails, 0 once a pass published
+	// every row it met.
+	RelayFailures prometheus.Counter
+	RelayFailing  prometheus.Gauge
+	// IntakeStalled is 1 while the watchdog finds input pending and no
+	// message settled for StallAfter.
+	IntakeStalled prometheus.Gauge
+	// LockFallbacks counts group commits that waited out a patient lock
+	// and were recorded message by message.
+	LockFallbacks prometheus.Counter
 }
 
 // NewMetrics creates the metrics and registers them with reg when it is not nil.
@@ -72,11 +83,23 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		DeadLetterFailing: prometheus.NewGauge(prometheus.GaugeOpts{
 			Name: "ventderive_dead_letter_failing", Help: "1 while the dead-letter path (copy or record) fails, else 0.",
 		}),
+		RelayFailures: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_relay_failures_total", Help: "Outbox relay passes that left rows unpublished (publish refused, unacknowledged or store failure).",
+		}),
+		RelayFailing: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_relay_failing", Help: "1 while the outbox relay fails, else 0.",
+		}),
+		IntakeStalled: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_intake_stalled", Help: "1 while input is pending and no message was settled for the stall limit, else 0.",
+		}),
+		LockFallbacks: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "ventderive_lock_fallbacks_total", Help: "Group commits that waited out a patient lock (lock_timeout) and were recorded message by message.",
+		}),
 	}
 	if reg != nil {
 		reg.MustRegister(m.Inputs, m.Ignored, m.Derived, m.Retractions, m.Refusals, m.DeadLetters,
 			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls,
-			m.DeadLetterCopyFailures, m.DeadLetterFailing)
+			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.IntakeStalled, m.LockFallbacks)
 	}
 	return m
 }

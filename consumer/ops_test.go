@@ -4,10 +4,15 @@ import (
 	"context"
 	"fmt"
 	"strings"
+	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
 	"github.com/jackc/pgx/v5/pgxpool"
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/prometheus/client_golang/prometheus"
+	dto "github.com/prometheus/client_model/go"
 
 	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
@@ -42,11 +47,12 @@ func TestPoisonDeepNestingDoesNotHaltIntake(t *testing.T) {
 		bad = append(bad, deepPoison(i, 4900))
 	}
 	msgs := interleave(bad, generate(genOpts{patients: 2, gases: 1}))
-	h.startReplica(nil)
+	r := h.startReplica(nil)
 	h.publish(msgs)
 	h.waitSettled(120 * time.Second)
 	h.reconcile(msgs)
 	h.assertDeadLetters(len(bad), "too-deep", "")
+	h.waitReady(r)
 	assertNoPHI(t, h.logs.String())
 }
 
@@ -63,7 +69,7 @@ func TestDeadLetterCopyUnpublishable(t *testing.T) {
 	bad = append(bad, deepPoison(1, 3), deepPoison(2, 3))
 	good := generate(genOpts{patients: 2, gases: 1})
 	msgs := interleave(bad, good)
-	h.startReplica(nil)
+	r := h.startReplica(nil)
 	h.publish(msgs)
 	h.waitSettled(120 * time.Second)
 
@@ -79,6 +85,7 @@ func TestDeadLetterCopyUnpublishable(t *testing.T) {
 	if ci := h.consumerInfo(); ci.NumAckPending != 0 || ci.NumPending != 0 {
 		t.Errorf("consumer: %d pending, %d ack pending; want none", ci.NumPending, ci.NumAckPending)
 	}
+	h.waitReady(r)
 	assertNoPHI(t, h.logs.String())
 }
 
@@ -164,22 +171,234 @@ func (h *harness) waitLog(s string, timeout time.Duration) {
 }
 
 // A read-only PostgreSQL (SQLSTATE 25006) under load is transient: the
-// inputs are retried with back-off, none becomes a dead letter, and
-// everything reconciles once the server takes writes again.
+// inputs are retried with back-off, none becomes a dead letter, readiness
+// reports the stalled intake and the dead letters that cannot be recorded,
+// and everything reconciles once the server takes writes again.
 func TestFaultPostgresReadOnly(t *testing.T) {
 	cluster := ownCluster(t)
 	h := newHarness(t, withDatabaseURL(cluster.URL()))
-	msgs := generate(genOpts{patients: 4, gases: 3})
-	h.startReplica(nil)
-	h.publish(msgs[:len(msgs)/3])
+	h.cfg.StallAfter = 2 * time.Second
+	h.cfg.FailingAfter = time.Second
+	good := generate(genOpts{patients: 4, gases: 3})
+	msgs := append(good[:len(good)/3:len(good)/3], poisonMsgs()...)
+	msgs = append(msgs, good[len(good)/3:]...)
+	r := h.startReplica(nil)
+	h.publish(good[:len(good)/3])
 	h.setReadOnly(true)
-	h.publish(msgs[len(msgs)/3:])
+	h.publish(msgs[len(good)/3:])
 	h.waitLog("postgres error 25006", 60*time.Second) // the read-only state was met
-	time.Sleep(time.Second)                           // let more naks and retries happen
+	ctx := context.Background()
+	deadline := time.Now().Add(60 * time.Second)
+	for {
+		got := r.p.Ready(ctx)
+		if got["intake"] != "" && got["dead-letter"] != "" {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("readiness %v with PostgreSQL read-only: want intake and dead-letter named", got)
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
 	h.setReadOnly(false)
 	h.waitSettled(120 * time.Second)
-	h.reconcile(msgs) // no dead letters: none of the inputs is poison
+	h.reconcile(msgs) // only the poison inputs are dead letters
 	if strings.Contains(h.logs.String(), "store refused message") {
 		t.Error("a valid input was refused as if its content were at fault")
 	}
+	h.waitReady(r)
+}
+
+// waitReady waits until the replica reports ready (the relay and the
+// watchdog notice recovery on their next round).
+func (h *harness) waitReady(r *replica) {
+	h.t.Helper()
+	deadline := time.Now().Add(90 * time.Second)
+	for got := r.p.Ready(context.Background()); len(got) != 0; got = r.p.Ready(context.Background()) {
+		if time.Now().After(deadline) {
+			h.t.Fatalf("not ready 30 s after recovery: %v", got)
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+}
+
+// deniedObservations is a server whose replica user may not publish to the
+// default observation subject (everything else allowed); admin may do all.
+func deniedObservations(o *server.Options) {
+	o.Users = []*server.User{
+		{Username: "admin", Password: "admin-test-only"},
+		{Username: "svc", Password: "svc-test-only", Permissions: &server.Permissions{
+			Publish: &server.SubjectPermission{Deny: []string{consumer.DefaultObservationSub}},
+		}},
+	}
+}
+
+// metricValue reads a counter's or gauge's value.
+func metricValue(t *testing.T, c prometheus.Collector) float64 {
+	t.Helper()
+	ch := make(chan prometheus.Metric, 1)
+	c.Collect(ch)
+	var d dto.Metric
+	if err := (<-ch).Write(&d); err != nil {
+		t.Fatal(err)
+	}
+	if d.Gauge != nil {
+		return d.Gauge.GetValue()
+	}
+	return d.Counter.GetValue()
+}
+
+// outputCounts counts the output stream's messages by subject.
+func (h *harness) outputCounts() map[string]int {
+	h.t.Helper()
+	n := map[string]int{}
+	for _, m := range h.readOutput() {
+		n[m.subject]++
+	}
+	return n
+}
+
+// The NATS permissions deny the observation subject: a publish there gets
+// no acknowledgement. The relay gives up on it after its deadline, says
+// why, keeps the backlog gauge true and turns readiness to "relay", and
+// still publishes the provenance rows behind the stuck ones (more stuck rows
+// than one relay page). A replica started with a corrected observation
+// subject publishes the rows written before the change to the new subject.
+func TestRelayDeniedSubject(t *testing.T) {
+	h := newHarness(t, withNATSUsers(deniedObservations, "admin:admin-test-only@", "svc:svc-test-only@"))
+	h.cfg.FailingAfter = time.Second
+	h.metrics = consumer.NewMetrics(prometheus.NewRegistry())
+	msgs := generate(genOpts{patients: 12, gases: 4})
+	r := h.startReplica(nil)
+	h.publish(msgs)
+
+	ctx := context.Background()
+	var versions int
+	deadline := time.Now().Add(120 * time.Second)
+	for {
+		if err := h.pool.QueryRow(ctx, `SELECT count(*) FROM derivation`).Scan(&versions); err != nil {
+			t.Fatal(err)
+		}
+		var inbox int
+		_ = h.pool.QueryRow(ctx, `SELECT count(*) FROM inbox`).Scan(&inbox)
+		provenance := h.outputCounts()[consumer.DefaultProvenanceSub]
+		if inbox == len(msgs) && provenance == versions && versions > 0 {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("after 120 s: %d of %d inputs recorded, %d provenance of %d versions published", inbox, len(msgs), provenance, versions)
+		}
+		time.Sleep(200 * time.Millisecond)
+	}
+	if versions <= 256 {
+		t.Fatalf("only %d derivation versions: the stuck rows must fill more than one relay page", versions)
+	}
+	if got := h.outputCounts()[consumer.DefaultObservationSub]; got != 0 {
+		t.Fatalf("%d observations published to a denied subject", got)
+	}
+	h.waitLog("no acknowledgement within", 60*time.Second)
+	deadline = time.Now().Add(60 * time.Second)
+	for r.p.Ready(ctx)["relay"] == "" {
+		if time.Now().After(deadline) {
+			t.Fatalf("readiness %v: want relay named", r.p.Ready(ctx))
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	if got := r.p.Ready(ctx)["relay"]; !strings.Contains(got, "ermissions") {
+		t.Errorf("relay reason %q does not name the permissions violation", got)
+	}
+	for b := metricValue(t, h.metrics.OutboxBacklog); int(b) != versions; b = metricValue(t, h.metrics.OutboxBacklog) {
+		if time.Now().After(deadline) {
+			t.Fatalf("backlog gauge %v while %d observations wait", b, versions)
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	if metricValue(t, h.metrics.RelayFailing) != 1 {
+		t.Error("relay failing gauge is not 1")
+	}
+	if metricValue(t, h.metrics.Published) != float64(versions) {
+		t.Errorf("published_total %v, want the %d provenance rows", metricValue(t, h.metrics.Published), versions)
+	}
+	r.stop(t)
+
+	// The operator corrects the subject (one the permissions allow).
+	h.cfg.ObservationSub = "ventderive.observation-v2"
+	h.metrics = nil
+	r = h.startReplica(nil)
+	h.waitSettled(120 * time.Second)
+	h.reconcile(msgs)
+	h.waitReady(r)
+	assertNoPHI(t, h.logs.String())
+}
+
+// A replica frozen while it holds a patient's lock (here: a connection
+// holding that advisory lock) holds back only that patient: the group
+// commits that wait out lock_timeout are recorded message by message, the
+// other patients' inputs are all recorded while the lock is held, and the
+// frozen patient's once it is released.
+func TestFrozenLockHoldsBackOnlyItsPatient(t *testing.T) {
+	// lock_timeout as the writer role has it in deploy/postgres/roles.sql,
+	// shorter for the test; the harness connects as the admin role.
+	h := newHarness(t, withDatabaseURL(pgtest.NewDatabase(t)+"&lock_timeout=500"))
+	msgs := generate(genOpts{patients: 8, gases: 2})
+	frozen := patientRef(0)
+	ctx := context.Background()
+	holder, err := h.pool.Begin(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer holder.Rollback(ctx)
+	if _, err := holder.Exec(ctx, `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`, frozen); err != nil {
+		t.Fatal(err)
+	}
+	var others []testMsg
+	var otherSeqs []uint64 // stream sequences: the stream is new, so the publish order
+	for i, m := range msgs {
+		// Its Patient resource names it by id only.
+		if !strings.Contains(string(m.payload), `"`+strings.TrimPrefix(frozen, "Patient/")) {
+			others = append(others, m)
+			otherSeqs = append(otherSeqs, uint64(i+1))
+		}
+	}
+	var attempts sync.Map // stream seq -> *atomic.Int32: times handed to the store in a group
+	r := h.startReplica(&consumer.Hooks{BeforeIngest: func(seq uint64) {
+		c, _ := attempts.LoadOrStore(seq, new(atomic.Int32))
+		c.(*atomic.Int32).Add(1)
+	}})
+	h.publish(msgs)
+	deadline := time.Now().Add(90 * time.Second)
+	for {
+		var n int
+		if err := h.pool.QueryRow(ctx, `SELECT count(*) FROM inbox WHERE inbox_key = ANY($1)`, inboxKeys(others)).Scan(&n); err != nil {
+			t.Fatal(err)
+		}
+		if n == len(others) {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("with one patient locked, %d of the other patients' %d inputs recorded after 90 s", n, len(others))
+		}
+		time.Sleep(200 * time.Millisecond)
+	}
+	// None of the other patients' inputs was retried: each went to the
+	// store in one group, and if that group waited on the lock, it was
+	// recorded on its own right after.
+	for _, seq := range otherSeqs {
+		if c, ok := attempts.Load(seq); ok && c.(*atomic.Int32).Load() > 1 {
+			t.Errorf("input %d of an unlocked patient was handed to the store %d times", seq, c.(*atomic.Int32).Load())
+		}
+	}
+	if err := holder.Rollback(ctx); err != nil {
+		t.Fatal(err)
+	}
+	h.waitSettled(120 * time.Second)
+	h.reconcile(msgs)
+	h.waitReady(r)
+}
+
+func inboxKeys(msgs []testMsg) []string {
+	out := make([]string, len(msgs))
+	for i, m := range msgs {
+		out[i] = inboxKey(m.payload)
+	}
+	return out
 }

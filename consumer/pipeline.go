@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"slices"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -47,10 +48,20 @@ type Pipeline struct {
 	mu       sync.Mutex
 	consumer jetstream.Consumer
 	active   atomic.Bool  // the consumer exists and the last fetch did not fail
-	progress atomic.Int64 // messages settled (acked, naked or terminated)
+	progress atomic.Int64 // messages settled for good (acked or terminated)
 	// dlFailingSince is when the dead-letter path (copy or record) began
 	// to fail, in Unix nanoseconds; 0 while it works.
 	dlFailingSince atomic.Int64
+	// relayFailSince is when the outbox relay began to fail (Unix
+	// nanoseconds, 0 while it works) and relayErr its last error.
+	relayFailSince atomic.Int64
+	relayErr       atomic.Value // string
+	// stalledSince is when the watchdog found pending input without
+	// progress (Unix nanoseconds, 0 when intake moves), stalledPending how
+	// much was pending then.
+	stalledSince    atomic.Int64
+	stalledPending  atomic.Uint64
+	stalledProgress atomic.Int64 // progress when the stall was found
 
 	// hooks lets tests inject faults at named points; nil in production.
 	hooks *Hooks
@@ -155,6 +166,7 @@ func (c Config) withDefaults() Config {
 	orDefault(&c.MaxDeliver, d.MaxDeliver)
 	orDefault(&c.RelayInterval, d.RelayInterval)
 	orDefault(&c.StallAfter, d.StallAfter)
+	orDefault(&c.FailingAfter, d.FailingAfter)
 	return c
 }
 
@@ -359,6 +371,10 @@ func (p *Pipeline) commitGroup(ctx context.Context, bs BatchStore, group []*infl
 		msgs[i] = it.m
 	}
 	results := bs.IngestBatch(ctx, msgs, p.planFunc(p.now().UTC()))
+	if len(group) > 1 && len(results) == len(group) && errors.Is(results[0].Err, ErrLocked) {
+		p.commitEach(ctx, group)
+		return
+	}
 	outbox := 0
 	for i, it := range group {
 		if len(results) != len(group) {
@@ -372,6 +388,46 @@ func (p *Pipeline) commitGroup(ctx context.Context, bs BatchStore, group []*infl
 	if outbox > 0 {
 		p.kickRelay()
 	}
+}
+
+// commitEach records the messages of a group that failed on a lock one by
+// one, so that only the messages of the locked patient wait: once a
+// message fails on a lock, the later messages naming any of its patients
+// are naked without another wait.
+func (p *Pipeline) commitEach(ctx context.Context, group []*inflight) {
+	p.metrics.LockFallbacks.Inc()
+	p.log.Warn("group commit waited out a patient lock; recording its messages one by one", "messages", len(group))
+	locked := map[string]bool{}
+	for _, it := range group {
+		pats := patientsOf(it.m)
+		if slices.ContainsFunc(pats, func(pt string) bool { return locked[pt] }) {
+			p.finish(ctx, it, IngestResult{}, fmt.Errorf("skipped after a locked patient: %w: %w", ErrTransient, ErrLocked), false)
+			continue
+		}
+		res, err := p.store.Ingest(ctx, it.m, p.planFunc(p.now().UTC()))
+		if errors.Is(err, ErrLocked) {
+			for _, pt := range pats {
+				locked[pt] = true
+			}
+		}
+		p.finish(ctx, it, res, err, true)
+	}
+}
+
+// patientsOf lists the patients a message names.
+func patientsOf(m Message) []string {
+	var out []string
+	for _, f := range m.Facts {
+		if !slices.Contains(out, f.Patient) {
+			out = append(out, f.Patient)
+		}
+	}
+	for _, r := range m.Resources {
+		if r.Patient != "" && !slices.Contains(out, r.Patient) {
+			out = append(out, r.Patient)
+		}
+	}
+	return out
 }
 
 // inflight is one received message on its way through the pipeline.
@@ -609,8 +665,13 @@ func (p *Pipeline) deadLetterFailing(failed bool) {
 
 func (p *Pipeline) ack(msg jetstream.Msg, log *slog.Logger) { p.settle(msg.Ack(), "ack", log) }
 
+// settle notes a settled message. Only an ack or a term is progress for
+// the watchdog and readiness: a message naked again and again (a store that
+// refuses every write) is work pending, not work done.
 func (p *Pipeline) settle(err error, what string, log *slog.Logger) {
-	p.progress.Add(1)
+	if what != "nak" {
+		p.progress.Add(1)
+	}
 	if err != nil {
 		// An unconfirmed settle means redelivery after AckWait, which the
 		// inbox absorbs.

@@ -2,7 +2,9 @@ package consumer
 
 import (
 	"context"
+	"errors"
 	"fmt"
+	"strings"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -29,75 +31,175 @@ func (p *Pipeline) relayLoop(ctx context.Context) {
 	}
 }
 
-// relayAll publishes until the outbox is empty or publishing fails.
+// relayAll makes passes over the outbox, a page of relayBatch rows at a
+// time, until a pass publishes every row it meets. Rows that fail (a subject
+// the permissions deny, a stream that does not answer) stay unpublished, and
+// the next page starts after them, so they never hold back the rows behind
+// them; after a pass with failures the relay backs off and starts again
+// from the first unpublished row. The backlog gauge is kept true meanwhile.
 func (p *Pipeline) relayAll(ctx context.Context) {
 	failures := 0
+	var after int64
+	var passErr error
 	for ctx.Err() == nil {
-		n, err := p.store.RelayOutbox(ctx, relayBatch, p.publishBatch)
+		res, err := p.store.RelayOutboxFrom(ctx, after, relayBatch, p.publishBatch)
+		p.metrics.Published.Add(float64(res.Marked))
 		if err != nil {
-			failures++
-			if failures == 1 || failures%20 == 0 {
-				p.log.Warn("outbox relay failed", "err", err, "failures", failures)
-			}
-			sleep(ctx, backoff(p.cfg.RetryBase, p.cfg.RetryMax, failures))
+			passErr = err
+		}
+		if err == nil && res.Claimed == relayBatch {
+			after = res.Last // more rows behind this page
 			continue
 		}
-		failures = 0
-		p.metrics.Published.Add(float64(n))
-		if n < relayBatch {
-			break
+		if err != nil && res.Claimed > 0 {
+			p.updateBacklog(ctx)
+			after = res.Last // skip what failed; try the rest of this pass
+			continue
 		}
+		// The end of the outbox (or the store failed).
+		p.updateBacklog(ctx)
+		if passErr == nil {
+			p.relayFailing(nil)
+			return
+		}
+		failures++
+		p.relayFailing(passErr)
+		if failures == 1 || failures%20 == 0 {
+			p.log.Warn("outbox relay failed", "err", passErr, "failures", failures)
+		}
+		sleep(ctx, backoff(p.cfg.RetryBase, p.cfg.RetryMax, failures))
+		after, passErr = 0, nil
 	}
-	if backlog, err := p.store.OutboxBacklog(ctx); err == nil {
+}
+
+func (p *Pipeline) updateBacklog(ctx context.Context) {
+	bctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
+	defer cancel()
+	if backlog, err := p.store.OutboxBacklog(bctx); err == nil {
 		p.metrics.OutboxBacklog.Set(float64(backlog))
 	}
 }
 
+// relayFailing notes the outcome of a relay pass: nil when every row it met
+// was published.
+func (p *Pipeline) relayFailing(err error) {
+	if err == nil {
+		p.relayFailSince.Store(0)
+		p.metrics.RelayFailing.Set(0)
+		return
+	}
+	p.metrics.RelayFailures.Inc()
+	p.relayFailSince.CompareAndSwap(0, p.now().UnixNano())
+	p.relayErr.Store(boundText(err.Error(), 200))
+	p.metrics.RelayFailing.Set(1)
+}
+
+// outputSubject is where a row goes: the subject configured now for its
+// type (the Nats-Msg-Id starts with "Observation/" or "Provenance/"), so
+// that a corrected --observation-subject or --provenance-subject applies to
+// rows written before the change; the stored subject for anything else.
+func (p *Pipeline) outputSubject(m OutboxMessage) string {
+	switch {
+	case strings.HasPrefix(m.MsgID, "Observation/"):
+		return p.cfg.ObservationSub
+	case strings.HasPrefix(m.MsgID, "Provenance/"):
+		return p.cfg.ProvenanceSub
+	}
+	return m.Subject
+}
+
+// derivationOf is a row's derivation version chain: its message id without
+// the "/_history/<version>" suffix.
+func derivationOf(msgID string) string {
+	if i := strings.LastIndex(msgID, "/_history/"); i >= 0 {
+		return msgID[:i]
+	}
+	return msgID
+}
+
 // publishBatch publishes asynchronously with each row's deterministic
-// message id and returns the sequence numbers the server acknowledged. A
-// repeat inside the stream's duplicate window is acknowledged as a
-// duplicate, which counts as published.
+// message id and returns the sequence numbers the server acknowledged
+// within publishTimeout. A repeat inside the stream's duplicate window is
+// acknowledged as a duplicate, which counts as published. A row is not
+// marked when an earlier version of its derivation failed in this batch:
+// the next pass publishes both again in order (the server drops the
+// repeat). It returns an error naming what failed, with a permissions
+// violation the server reported for a subject.
 func (p *Pipeline) publishBatch(ctx context.Context, msgs []OutboxMessage) ([]int64, error) {
+	ctx, cancel := context.WithTimeout(ctx, publishTimeout)
+	defer cancel()
 	futures := make([]jetstream.PubAckFuture, len(msgs))
-	var sendErr error
+	errs := make([]error, len(msgs))
 	for i, m := range msgs {
-		nm := nats.NewMsg(m.Subject)
+		nm := nats.NewMsg(p.outputSubject(m))
 		nm.Data = m.Payload
 		for k, v := range m.Header {
 			nm.Header.Set(k, v)
 		}
 		f, err := p.js.PublishMsgAsync(nm, jetstream.WithMsgID(m.MsgID))
 		if err != nil {
-			futures, sendErr = futures[:i], fmt.Errorf("publish %s: %w", m.Subject, err)
-			break
+			errs[i] = fmt.Errorf("publish %s: %w", nm.Subject, err)
+			continue
 		}
 		futures[i] = f
 	}
-	// Only the acknowledged prefix is marked: versions of one derivation
-	// then reach the stream in version order even across a failure.
-	var done []int64
 	for i, f := range futures {
+		if f == nil {
+			continue
+		}
 		select {
 		case <-f.Ok():
-			if p.hooks != nil && p.hooks.AfterPublish != nil {
-				if err := p.hooks.AfterPublish(msgs[i].Seq); err != nil {
-					return nil, err // simulated crash before marking
-				}
-			}
-			done = append(done, msgs[i].Seq)
 		case err := <-f.Err():
-			if len(done) == 0 {
-				return nil, err
-			}
-			// Mark what was acknowledged; the rest goes in the next round.
-			p.log.Warn("outbox publish failed after a partial batch", "err", err, "published", len(done))
-			return done, nil
+			errs[i] = fmt.Errorf("publish %s: %w", f.Msg().Subject, err)
 		case <-ctx.Done():
-			return done, nil
+			// After the deadline, take the answers already in (select
+			// would pick among ready cases at random).
+			select {
+			case <-f.Ok():
+			case err := <-f.Err():
+				errs[i] = fmt.Errorf("publish %s: %w", f.Msg().Subject, err)
+			default:
+				errs[i] = fmt.Errorf("publish %s: no acknowledgement within %s%s", f.Msg().Subject, publishTimeout, p.permissionHint(f.Msg().Subject))
+			}
 		}
 	}
-	if sendErr != nil && len(done) == 0 {
-		return nil, sendErr
+	var done []int64
+	failed := map[string]bool{}
+	var firstErr error
+	nFailed := 0
+	for i, m := range msgs {
+		chain := derivationOf(m.MsgID)
+		if errs[i] != nil {
+			failed[chain] = true
+			nFailed++
+			if firstErr == nil {
+				firstErr = errs[i]
+			}
+			continue
+		}
+		if failed[chain] {
+			continue
+		}
+		if p.hooks != nil && p.hooks.AfterPublish != nil {
+			if err := p.hooks.AfterPublish(m.Seq); err != nil {
+				return nil, err // simulated crash before marking
+			}
+		}
+		done = append(done, m.Seq)
+	}
+	if firstErr != nil {
+		return done, fmt.Errorf("%d of %d outbox messages not published: %w", nFailed, len(msgs), firstErr)
 	}
 	return done, nil
+}
+
+// permissionHint returns the server's permissions violation for subject,
+// if the connection's last error is one: a denied publish gets no PubAck,
+// only this asynchronous error.
+func (p *Pipeline) permissionHint(subject string) string {
+	le := p.nc.LastError()
+	if le == nil || !errors.Is(le, nats.ErrPermissionViolation) || !strings.Contains(le.Error(), subject) {
+		return ""
+	}
+	return " (" + le.Error() + ": check the NATS user's publish permissions or the output subject setting)"
 }

@@ -22,17 +22,27 @@ type Store interface {
 	// DeadLetter records a poison message. Idempotent on msg.InboxKey.
 	DeadLetter(ctx context.Context, msg Message, reason, detail string) error
 
-	// RelayOutbox claims up to limit unpublished outbox rows (FOR UPDATE SKIP
-	// LOCKED, in their insertion order), calls publish with them, and marks as
-	// published those whose sequence numbers publish returns, all in one
-	// transaction. It returns how many it marked.
-	RelayOutbox(ctx context.Context, limit int, publish func(context.Context, []OutboxMessage) (published []int64, err error)) (int, error)
+	// RelayOutboxFrom claims up to limit unpublished outbox rows with a
+	// sequence number above after (FOR UPDATE SKIP LOCKED, in their
+	// insertion order), calls publish with them, and marks as published
+	// those whose sequence numbers publish returns, all in one transaction,
+	// also when publish returns an error (which it then returns wrapped).
+	// The relay pages through the outbox with after, so that rows it cannot
+	// publish never hide the rows behind them.
+	RelayOutboxFrom(ctx context.Context, after int64, limit int, publish func(context.Context, []OutboxMessage) (published []int64, err error)) (RelayResult, error)
 
 	// OutboxBacklog counts unpublished outbox rows.
 	OutboxBacklog(ctx context.Context) (int64, error)
 
 	// Ping reports whether the store is reachable.
 	Ping(ctx context.Context) error
+}
+
+// RelayResult says what one RelayOutboxFrom call did.
+type RelayResult struct {
+	Claimed int   // rows handed to publish
+	Marked  int   // rows marked published
+	Last    int64 // the highest sequence number claimed, 0 when none
 }
 
 // ErrDuplicate reports that a message was seen before; the caller acks it.
@@ -42,6 +52,12 @@ var ErrDuplicate = errors.New("duplicate message")
 // failure, deadlock, outcome of COMMIT unknown). The store wraps such errors
 // with it; anything else is treated as permanent for that message.
 var ErrTransient = errors.New("transient store error")
+
+// ErrLocked marks a transient store error that was a lock not granted in
+// time (a patient lock held by a stuck transaction, perhaps of a frozen
+// replica). The pipeline then retries a group's messages one by one, so
+// that one locked patient does not hold back the others.
+var ErrLocked = errors.New("lock not granted in time")
 
 // Message is one input message as received from the bus, decoded.
 type Message struct {

@@ -24,6 +24,8 @@ func (p *Pipeline) watchdog(ctx context.Context) {
 		}
 		if n := p.progress.Load(); n != lastProgress {
 			lastProgress, lastChange = n, time.Now()
+			p.stalledSince.Store(0)
+			p.metrics.IntakeStalled.Set(0)
 			continue
 		}
 		if time.Since(lastChange) < p.cfg.StallAfter {
@@ -48,8 +50,15 @@ func (p *Pipeline) watchdog(ctx context.Context) {
 		}
 		if info.NumPending == 0 && info.NumAckPending == 0 {
 			lastChange = time.Now()
+			p.stalledSince.Store(0)
+			p.metrics.IntakeStalled.Set(0)
 			continue
 		}
+		// Readiness says so until a message is settled again.
+		p.stalledPending.Store(info.NumPending + uint64(info.NumAckPending))
+		p.stalledProgress.Store(lastProgress)
+		p.stalledSince.CompareAndSwap(0, lastChange.UnixNano())
+		p.metrics.IntakeStalled.Set(1)
 		p.metrics.Stalls.Inc()
 		p.log.Warn("consumer stalled; rebuilding", "pending", info.NumPending, "ack_pending", info.NumAckPending)
 		if err := p.ensureConsumer(ctx); err != nil {

@@ -9,6 +9,7 @@ import (
 	"fmt"
 	"reflect"
 	"strings"
+	"unicode/utf8"
 
 	"github.com/samply/golang-fhir-models/fhir-models/fhir"
 )
@@ -204,6 +205,9 @@ func (d *decoder) message(raw []byte) *DecodeError {
 		return refuse(-1, "", "empty", "the message is empty")
 	case len(raw) > MaxResourceBytes:
 		return refuse(-1, "", "oversized", fmt.Sprintf("larger than %d bytes", MaxResourceBytes))
+	case !utf8.Valid(trimmed):
+		// encoding/json would silently turn bad bytes into U+FFFD.
+		return refuse(-1, "", "malformed-json", "invalid UTF-8")
 	case trimmed[0] != '{' && json.Valid(trimmed):
 		return refuse(-1, "", "malformed-json", "expected a JSON object")
 	}

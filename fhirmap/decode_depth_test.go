@@ -67,3 +67,18 @@ func TestDecodeNestingBounds(t *testing.T) {
 			"Observation.extension[0].extension[0].extension[0].extension[0].notAnElement", -1)
 	})
 }
+
+// Invalid UTF-8 inside a string value is refused, not turned into U+FFFD.
+func TestDecodeInvalidUTF8(t *testing.T) {
+	raw := obsText(`,"valueQuantity":{"value":44,"unit":"mm[Hg]` + "\xff\xfe" + `","system":"http://unitsofmeasure.org","code":"mm[Hg]"}`)
+	wantRefusal(t, raw, "malformed-json", "", -1)
+	// The same with valid UTF-8 decodes.
+	mustDecode(t, obsText(`,"valueQuantity":{"value":44,"unit":"mm[Hg] é","system":"http://unitsofmeasure.org","code":"mm[Hg]"}`))
+}
+
+// A year-9999 effective time (a placeholder) is refused: it would sit far
+// outside every pairing window and recomputation horizon.
+func TestDecodeRefusesYear9999(t *testing.T) {
+	raw := []byte(strings.Replace(string(obsText(qty44)), "2026-11-20T08:00:00Z", "9999-12-31T23:59:59Z", 1))
+	wantRefusal(t, raw, "bad-time", "Observation.effectiveDateTime", -1)
+}

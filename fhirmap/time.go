@@ -38,8 +38,33 @@ func parseZonedTime(s string) (time.Time, error) {
 	if t.Year() < 1 || t.Year() > 9999 {
 		return time.Time{}, &timeError{"year out of range"}
 	}
+	if _, off := t.Zone(); off > maxZoneOffset || off < minZoneOffset {
+		return time.Time{}, &timeError{"time zone offset beyond -12:00..+14:00"}
+	}
+	if t.Before(EarliestTime) || !t.Before(LatestTime) {
+		return time.Time{}, &timeError{"time outside 1900-01-01 .. 2100-01-01"}
+	}
 	return t.UTC(), nil
 }
+
+// EarliestTime and LatestTime bound every time the decoder accepts
+// (effective, issued, meta.lastUpdated; birth dates from EarliestTime):
+// a clinical reading outside them is a broken clock or a placeholder such
+// as 9999-12-31, and letting one in would place it, and what the store
+// computes around it (the pairing window, the recomputation horizon), far
+// outside anything real. The bounds are fixed rather than relative to the
+// clock so that the service and the offline derive agree on every input.
+var (
+	EarliestTime = time.Date(1900, 1, 1, 0, 0, 0, 0, time.UTC)
+	LatestTime   = time.Date(2100, 1, 1, 0, 0, 0, 0, time.UTC)
+)
+
+// The zone offsets in use on Earth run from -12:00 to +14:00 (the IANA
+// time zone database).
+const (
+	minZoneOffset = -12 * 3600
+	maxZoneOffset = 14 * 3600
+)
 
 // hasZone reports whether the time part of a dateTime carries a zone.
 func hasZone(s string) bool {
@@ -69,6 +94,9 @@ func parseDate(s string) (time.Time, error) {
 	t, err := time.Parse(layout, s)
 	if err != nil || t.Year() < 1 {
 		return time.Time{}, &timeError{"not a FHIR date"}
+	}
+	if t.Before(EarliestTime) || !t.Before(LatestTime) {
+		return time.Time{}, &timeError{"date outside 1900-01-01 .. 2100-01-01"}
 	}
 	return t, nil
 }

@@ -59,3 +59,38 @@ func TestParseDate(t *testing.T) {
 		})
 	}
 }
+
+// Times out of any plausible range and zone offsets no place on Earth uses
+// are refused (offsets: IANA time zone database, -12:00 to +14:00).
+func TestTimeBounds(t *testing.T) {
+	for _, c := range []struct {
+		in string
+		ok bool
+	}{
+		{"9999-12-31T23:59:59Z", false},
+		{"2100-01-01T00:00:00Z", false},
+		{"2099-12-31T23:59:59Z", true},
+		{"1900-01-01T00:00:00Z", true},
+		{"1899-12-31T23:59:59Z", false},
+		{"0001-01-01T00:00:00Z", false},
+		{"2026-11-20T08:15:00+14:00", true},
+		{"2026-11-20T08:15:00+14:59", false},
+		{"2026-11-20T08:15:00-12:00", true},
+		{"2026-11-20T08:15:00-12:30", false},
+		{"2026-11-20T08:15:00+05:45", true},
+		{"2026-11-20T08:15:00+23:59", false},
+	} {
+		t.Run(c.in, func(t *testing.T) {
+			if _, err := parseZonedTime(c.in); (err == nil) != c.ok {
+				t.Fatalf("err %v, want ok=%v", err, c.ok)
+			}
+		})
+	}
+	for in, ok := range map[string]bool{"1899": false, "1900": true, "2099-12-31": true, "2100": false, "9999-12-31": false} {
+		t.Run("date "+in, func(t *testing.T) {
+			if _, err := parseDate(in); (err == nil) != ok {
+				t.Fatalf("err %v, want ok=%v", err, ok)
+			}
+		})
+	}
+}

@@ -337,6 +337,12 @@ func connectNATS(c serveConfig, log *slog.Logger) (*nats.Conn, error) {
 			log.Warn("nats disconnected", "err", err)
 		}),
 		nats.ReconnectHandler(func(nc *nats.Conn) { log.Info("nats reconnected", "url", nc.ConnectedUrlRedacted()) }),
+		// Asynchronous errors (a permissions violation, a slow consumer)
+		// go to the service's log; the client's default handler would
+		// print a plain line on stderr.
+		nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) {
+			log.Warn("nats async error", "err", err)
+		}),
 	}
 	auth, err := natsAuth(c.natsCreds, c.tlsCA, c.tlsCert, c.tlsKey)
 	if err != nil {

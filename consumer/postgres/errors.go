@@ -71,6 +71,9 @@ func translate(op string, err error, commitUnknown bool) error {
 	var pgErr *pgconn.PgError
 	if errors.As(err, &pgErr) {
 		dbErr := &DBError{Code: pgErr.Code, Constraint: pgErr.ConstraintName, Table: pgErr.TableName, Column: pgErr.ColumnName}
+		if pgErr.Code == "55P03" { // lock_not_available: lock_timeout of the service role
+			return fmt.Errorf("%s: %w: %w: %w", op, consumer.ErrTransient, consumer.ErrLocked, dbErr)
+		}
 		if transientCode(pgErr.Code) {
 			return fmt.Errorf("%s: %w: %w", op, consumer.ErrTransient, dbErr)
 		}

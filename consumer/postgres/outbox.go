@@ -37,7 +37,7 @@ const (
 	claimOutboxSQL = `
 SELECT seq, subject, msg_id, headers::text, payload
 FROM outbox
-WHERE published_at IS NULL
+WHERE published_at IS NULL AND seq > $2
 ORDER BY seq
 LIMIT $1
 FOR UPDATE SKIP LOCKED`
@@ -47,19 +47,27 @@ UPDATE outbox SET published_at = $2
 WHERE seq = ANY($1::bigint[]) AND published_at IS NULL`
 )
 
-// RelayOutbox implements consumer.Store. Rows claimed by another relay are
-// skipped, not waited for. Sequence numbers that publish returns but did not
-// claim are ignored. When publish returns an error, the rows it reports as
-// published are still marked, the transaction commits, and the error is
-// returned wrapped ("publish outbox: ...") with the count marked.
+// RelayOutbox relays the first unpublished rows (RelayOutboxFrom from the
+// start) and returns how many it marked.
 func (s *Store) RelayOutbox(ctx context.Context, limit int, publish func(context.Context, []consumer.OutboxMessage) ([]int64, error)) (int, error) {
+	res, err := s.RelayOutboxFrom(ctx, 0, limit, publish)
+	return res.Marked, err
+}
+
+// RelayOutboxFrom implements consumer.Store. Rows claimed by another relay
+// are skipped, not waited for. Sequence numbers that publish returns but did
+// not claim are ignored. When publish returns an error, the rows it reports
+// as published are still marked, the transaction commits, and the error is
+// returned wrapped ("publish outbox: ...") with the counts.
+func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, publish func(context.Context, []consumer.OutboxMessage) ([]int64, error)) (consumer.RelayResult, error) {
+	var res consumer.RelayResult
 	if limit <= 0 {
-		return 0, nil
+		return res, nil
 	}
-	marked := 0
 	var pubErr error
 	err := s.inTx(ctx, "relay outbox", func(tx pgx.Tx) error {
-		rows, err := tx.Query(ctx, claimOutboxSQL, limit)
+		res = consumer.RelayResult{}
+		rows, err := tx.Query(ctx, claimOutboxSQL, limit, after)
 		if err != nil {
 			return fmt.Errorf("claim outbox: %w", err)
 		}
@@ -80,6 +88,7 @@ func (s *Store) RelayOutbox(ctx context.Context, limit int, publish func(context
 		if len(msgs) == 0 {
 			return nil
 		}
+		res.Claimed, res.Last = len(msgs), msgs[len(msgs)-1].Seq
 		published, err := publish(ctx, msgs)
 		pubErr = err
 		var seqs []int64
@@ -95,16 +104,16 @@ func (s *Store) RelayOutbox(ctx context.Context, limit int, publish func(context
 		if err != nil {
 			return fmt.Errorf("mark published: %w", err)
 		}
-		marked = int(tag.RowsAffected())
+		res.Marked = int(tag.RowsAffected())
 		return nil
 	})
 	if err != nil {
-		return 0, err
+		return consumer.RelayResult{}, err
 	}
 	if pubErr != nil {
-		return marked, fmt.Errorf("publish outbox: %w", pubErr)
+		return res, fmt.Errorf("publish outbox: %w", pubErr)
 	}
-	return marked, nil
+	return res, nil
 }
 
 const backlogSQL = `SELECT count(*) FROM outbox WHERE published_at IS NULL`

@@ -34,9 +34,16 @@ $$;
 -- Settings that hold for every session of a role (reason: a stuck transaction
 -- must not hold patient locks or pool connections; statement parameters hold
 -- patient data and must not reach the server log).
+-- A replica frozen mid-transaction (SIGSTOP, a stalled VM) holds its patient
+-- locks until the server ends its session: 15 s of idleness ends it (the
+-- service's transactions are never idle that long: the longest wait inside
+-- one is the relay's 5 s publish deadline). A lock wait gives up after 2 s
+-- (the service's transactions take milliseconds); the service then records
+-- the rest of that group message by message, so only the locked patient's
+-- messages wait.
 ALTER ROLE ventderive_writer SET statement_timeout = '30s';
-ALTER ROLE ventderive_writer SET idle_in_transaction_session_timeout = '60s';
-ALTER ROLE ventderive_writer SET lock_timeout = '10s';
+ALTER ROLE ventderive_writer SET idle_in_transaction_session_timeout = '15s';
+ALTER ROLE ventderive_writer SET lock_timeout = '2s';
 ALTER ROLE ventderive_reviewer SET statement_timeout = '120s';
 ALTER ROLE ventderive_reviewer SET idle_in_transaction_session_timeout = '60s';
 ALTER ROLE ventderive_reviewer SET default_transaction_read_only = on;
