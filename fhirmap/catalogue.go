@@ -99,7 +99,7 @@ var Catalogue = []KindInfo{
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "PaCO2pred = K x VCO2 / ((VT - VDanat - VDapp) x RR / 1000); VDanat = 2.2 mL/kg x PBW; PBW (ARDS Network) from height and sex",
 		Source:  "alveolar ventilation equation [published]; Radford, J Appl Physiol 1955 [published]; ARDS Network, NEJM 2000;342:1301-8 [published]",
-		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-height; no-sex; apparatus-dead-space-not-configured; implausible-input; inconsistent-inputs (VT not above dead space)",
+		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-sex; no-height; apparatus-dead-space-not-configured; implausible-input; inconsistent-inputs (VT not above dead space)",
 	},
 	{
 		Code:       KindPaCO2Discrepancy,
@@ -117,7 +117,7 @@ var Catalogue = []KindInfo{
 		Unit:       "1", Decimals: 2,
 		Formula: "VR = (VE[mL/min] x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mm[Hg])",
 		Source:  "Sinha et al., Br J Anaesth 2009;102:692-697 [published]; mm[Hg] form, Sinha et al., AJRCCM 2019 [published]",
-		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-height; no-sex; implausible-input",
+		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-sex; no-height; implausible-input",
 	},
 	{
 		Code:       KindPaCO2PETCO2Gradient,

@@ -136,7 +136,7 @@ func observation(d Derivation, version int, site Site) (fhir.Observation, error)
 	seen := map[string]bool{}
 	for _, in := range d.Inputs {
 		r := in.Fact.Resource
-		if !strings.HasPrefix(r, "Observation/") || seen[r] {
+		if !isObservationRef(r) || seen[r] {
 			continue // derivedFrom may not point at a Patient; Provenance lists it
 		}
 		seen[r] = true
@@ -535,6 +535,16 @@ func provenance(d Derivation, version int, recorded time.Time, site Site) (fhir.
 		})
 	}
 	return p, nil
+}
+
+// isObservationRef reports whether an input's resource reference names an
+// Observation: relative "Observation/<id>", or an absolute URL (kept from a
+// Bundle fullUrl) whose path holds "/Observation/".
+func isObservationRef(r string) bool {
+	if strings.HasPrefix(r, "Observation/") {
+		return true
+	}
+	return (strings.HasPrefix(r, "http://") || strings.HasPrefix(r, "https://")) && strings.Contains(r, "/Observation/")
 }
 
 func observationRef(id string, version int) string {

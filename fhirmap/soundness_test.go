@@ -1,0 +1,189 @@
+package fhirmap
+
+import (
+	"os"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+)
+
+// firstListed returns whichever of a and b appears first in the refusal
+// list of the kind (following "as <kind>" references), or "" when the list
+// names neither.
+func firstListed(t *testing.T, kind, a, b string) string {
+	t.Helper()
+	k, ok := LookupKind(kind)
+	if !ok {
+		t.Fatalf("unknown kind %s", kind)
+	}
+	list := k.Refused
+	if ref, ok := strings.CutPrefix(list, "as "); ok {
+		return firstListed(t, ref, a, b)
+	}
+	ia, ib := strings.Index(list, a), strings.Index(list, b)
+	switch {
+	case ia < 0 && ib < 0:
+		return ""
+	case ib < 0 || ia >= 0 && ia < ib:
+		return a
+	}
+	return b
+}
+
+// TestRefusalOrderSexHeight is a regression test: with neither sex nor
+// height, every kind that needs predicted body weight must refuse with the
+// reason its catalogue entry lists first ("in the order checked", as the
+// CodeSystem property says). The order itself is the service's contract
+// [common practice: a documented order must match the code].
+func TestRefusalOrderSexHeight(t *testing.T) {
+	site := DefaultSite()
+	site.TargetPaCO2mmHg = 40
+	site.ApparatusDeadSpaceML, site.ApparatusDeadSpaceConfigured = 50, true
+	_, rs := DeriveAll(without(vectorFacts(), "sex", "height"), site)
+	_, rm := byKind(nil, rs)
+	checked := 0
+	for _, k := range Catalogue {
+		want := firstListed(t, k.Code, ReasonNoSex, ReasonNoHeight)
+		if want == "" {
+			continue
+		}
+		checked++
+		t.Run(k.Code, func(t *testing.T) {
+			r, ok := rm[k.Code]
+			if !ok {
+				t.Fatalf("%s derived without sex and height", k.Code)
+			}
+			if r.Reason != want {
+				t.Errorf("%s refused %q, the catalogue lists %q first (%s)", k.Code, r.Reason, want, k.Refused)
+			}
+		})
+	}
+	if checked < 5 {
+		t.Errorf("only %d kinds list no-sex or no-height; the catalogue lost them", checked)
+	}
+}
+
+// versionedObs is a PaCO2 Observation (invented patient) with a
+// meta.versionId and a value, for Bundle tests.
+func versionedObs(fullURL, id, version string, paco2 float64) string {
+	idField := ""
+	if id != "" {
+		idField = `"id":"` + id + `",`
+	}
+	meta := ""
+	if version != "" {
+		meta = `"meta":{"versionId":"` + version + `"},`
+	}
+	return `{"fullUrl":"` + fullURL + `","resource":{"resourceType":"Observation",` + idField + meta +
+		`"status":"final","code":{"coding":[{"system":"http://loinc.org","code":"2019-8"}]},` +
+		`"subject":{"reference":"Patient/lg-0009"},"effectiveDateTime":"2026-11-20T08:15:00+01:00",` +
+		`"valueQuantity":{"value":` + strconv.FormatFloat(paco2, 'f', -1, 64) + `,"unit":"mm[Hg]","system":"http://unitsofmeasure.org","code":"mm[Hg]"}}}`
+}
+
+func collection(entries ...string) []byte {
+	return []byte(`{"resourceType":"Bundle","type":"collection","entry":[` + strings.Join(entries, ",") + `]}`)
+}
+
+// TestBundleVersionsUnderOneFullURL is a regression test: FHIR R4 invariant
+// bdl-7 ("FullUrl must be unique in a bundle, or else entries with the same
+// fullUrl must have different meta.versionId (except in history bundles)",
+// FHIR R4 Bundle resource, hl7.org/fhir/R4/bundle.html [published]) allows
+// two versions of one resource under one fullUrl. They are decoded as two
+// versions and Current keeps the higher versionId.
+func TestBundleVersionsUnderOneFullURL(t *testing.T) {
+	const u = "http://example.org/fhir/Observation/lg-abg-0201"
+	t.Run("different_versionId_accepted_as_two_versions", func(t *testing.T) {
+		for _, order := range [][2]string{{"1", "2"}, {"2", "1"}} {
+			vals := map[string]float64{"1": 44, "2": 47}
+			d := mustDecode(t, collection(versionedObs(u, "lg-abg-0201", order[0], vals[order[0]]), versionedObs(u, "lg-abg-0201", order[1], vals[order[1]])))
+			if len(d.Facts) != 2 {
+				t.Fatalf("order %v: %d facts, want 2 versions", order, len(d.Facts))
+			}
+			cur := Current(d.Facts)
+			if len(cur) != 1 || cur[0].VersionID != "2" || cur[0].Value != 47 {
+				t.Fatalf("order %v: current %+v, want version 2 (47 mm[Hg])", order, cur)
+			}
+		}
+	})
+	t.Run("same_versionId_refused", func(t *testing.T) {
+		wantRefusal(t, collection(versionedObs(u, "lg-abg-0201", "1", 44), versionedObs(u, "lg-abg-0201", "1", 47)),
+			"bad-reference", "Bundle.entry[1].fullUrl", 1)
+	})
+	t.Run("no_versionId_refused", func(t *testing.T) {
+		wantRefusal(t, collection(versionedObs(u, "lg-abg-0201", "", 44), versionedObs(u, "lg-abg-0201", "", 47)),
+			"bad-reference", "Bundle.entry[1].fullUrl", 1)
+	})
+	t.Run("different_resources_refused", func(t *testing.T) {
+		wantRefusal(t, collection(versionedObs(u, "lg-abg-0201", "1", 44), versionedObs(u, "lg-abg-0202", "2", 47)),
+			"bad-reference", "Bundle.entry[1].fullUrl", 1)
+	})
+}
+
+// at sets a fact's time and patient to those of the hasMember test Bundle.
+func at(eff time.Time, p string) factOpt {
+	return func(f *Fact) { f.Effective, f.Patient = eff, p }
+}
+
+// TestPanelMemberWithoutID is a regression test: a hasMember panel whose
+// PaCO2 member has no id, only a urn:uuid fullUrl (allowed by the input
+// contract). Its identity becomes Observation/<uuid>, which the stored
+// Resources hold, every derivedFrom names and every Provenance entity
+// names: nothing points at a urn:uuid that resolves only inside the
+// incoming Bundle (FHIR R4 Bundle, "Resolving references in Bundles":
+// urn:uuid references are local to the Bundle [published]).
+func TestPanelMemberWithoutID(t *testing.T) {
+	raw, err := os.ReadFile("testdata/decode/bundle-transaction-hasmember.json")
+	if err != nil {
+		t.Fatal(err)
+	}
+	dec := mustDecode(t, raw)
+	const want = "Observation/5a0c7c1e-2b0b-4c55-9d1e-000000000011"
+	held := false
+	for _, r := range dec.Resources {
+		held = held || r.Reference == want
+		if strings.HasPrefix(r.Reference, "urn:") {
+			t.Errorf("resource stored under %q, which resolves only inside its Bundle", r.Reference)
+		}
+	}
+	if !held {
+		t.Fatalf("no resource stored as %s: %+v", want, dec.Resources)
+	}
+	var bg Fact
+	for _, f := range dec.Facts {
+		if f.Quantity == QPCO2 {
+			bg = f
+		}
+	}
+	if bg.Resource != want {
+		t.Fatalf("PaCO2 fact resource %q, want %q", bg.Resource, want)
+	}
+	p, eff := bg.Patient, bg.Effective
+	facts := append(dec.Facts,
+		newFact("ve-m", QMinuteVol, 10, 0, detail("expired"), at(eff.Add(-5*time.Minute), p)),
+		newFact("pe-m", QPECO2, 20, 0, at(eff.Add(-5*time.Minute), p)),
+		newFact("vt-m", QTidalVol, 500, 0, detail("expired"), at(eff.Add(-5*time.Minute), p)),
+		newFact("rr-m", QRespRate, 20, 0, detail("total"), at(eff.Add(-5*time.Minute), p)),
+	)
+	site := DefaultSite()
+	ds, _ := DeriveAll(facts, site)
+	if len(ds) == 0 {
+		t.Fatal("nothing derived")
+	}
+	for _, d := range ds {
+		obs, err := EncodeObservation(d, 1, site)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !strings.Contains(string(obs), `"derivedFrom":[{"reference":"`+want+`"`) {
+			t.Errorf("%s: derivedFrom leaves out the blood gas %s", d.Kind, want)
+		}
+		prov, err := EncodeProvenance(d, 1, eff, site)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !strings.Contains(string(prov), `"reference":"`+want+`"`) || strings.Contains(string(prov), "urn:uuid") {
+			t.Errorf("%s: Provenance does not name %s, or names a urn:uuid: %s", d.Kind, want, prov)
+		}
+	}
+}
