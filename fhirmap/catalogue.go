@@ -104,7 +104,7 @@ var Catalogue = []KindInfo{
 	{
 		Code:       KindPaCO2Discrepancy,
 		Display:    "Measured minus predicted PaCO2",
-		Definition: "Arterial PCO2 minus the predicted PaCO2: a large positive difference means more dead space (or CO2 production) than the prediction assumes.",
+		Definition: "Arterial PCO2 minus the predicted PaCO2 (made with a measured VCO2): a large positive difference means more dead space than the prediction assumes (alveolar dead space) or an input error; a large negative one is physiologically implausible (physiologic dead space cannot be smaller than anatomic plus apparatus dead space) and is flagged as a likely input error or an overestimated anatomic dead space.",
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "PaCO2 - PaCO2pred",
 		Source:  "difference of the measured value and the alveolar-ventilation prediction [derived]",

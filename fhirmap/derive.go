@@ -408,7 +408,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			res = pred
 		} else if g.stop == nil {
 			g.steps = append(g.steps, pred)
-			res, err = physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value))
+			res, err = physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value), physio.VCO2Measured)
 		}
 	case KindVentilatoryRatio:
 		ve, _ := g.measuredVE()
@@ -522,7 +522,8 @@ func publishedInterpretation(kind string, v float64) (physio.Interpretation, boo
 	case KindVentilatoryRatio:
 		return physio.InterpretVentilatoryRatio(p), true
 	case KindPaCO2Discrepancy:
-		return physio.InterpretPaCO2Discrepancy(physio.MmHg(p)), true
+		// predicted (and so the discrepancy) needs a measured VCO2 input.
+		return physio.InterpretPaCO2Discrepancy(physio.MmHg(p), physio.VCO2Measured), true
 	}
 	return physio.Interpretation{}, false
 }

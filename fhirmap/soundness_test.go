@@ -2,10 +2,13 @@ package fhirmap
 
 import (
 	"os"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/ventderive/ventderive/physio"
 )
 
 // firstListed returns whichever of a and b appears first in the refusal
@@ -185,5 +188,51 @@ func TestPanelMemberWithoutID(t *testing.T) {
 		if !strings.Contains(string(prov), `"reference":"`+want+`"`) || strings.Contains(string(prov), "urn:uuid") {
 			t.Errorf("%s: Provenance does not name %s, or names a urn:uuid: %s", d.Kind, want, prov)
 		}
+	}
+}
+
+// TestDiscrepancyFrame checks, through DeriveAll, that the measured minus
+// predicted PaCO2 is framed by what the prediction assumed: VCO2 was
+// measured, so CO2 production is never named as a cause, and a measured
+// PaCO2 materially below predicted is called physiologically implausible
+// and flagged, since physiologic dead space (anatomic plus alveolar,
+// Bohr-Enghoff, physiology.md s2 [published]) cannot be smaller than the
+// anatomic (Radford 1955, physiology.md s7 [published]) plus apparatus dead
+// space the prediction counts [derived].
+func TestDiscrepancyFrame(t *testing.T) {
+	site := DefaultSite()
+	site.ApparatusDeadSpaceML, site.ApparatusDeadSpaceConfigured = 50, true
+	// Vector of physiology.md s11 with VT 500 mL, RR 20 /min, PBW 70.566 kg:
+	// VA = (500 - 155.2 - 50) x 20 / 1000 = 5.896 L/min, predicted PaCO2 =
+	// 0.863 x 200 / 5.896 = 29.27 mm[Hg] [derived].
+	for _, c := range []struct {
+		name    string
+		paco2   float64
+		want    float64
+		flagged bool
+		text    string
+	}{
+		{"PaCO2_45_mmHg_15.7_above", 45, 45 - 29.274, false, "more dead space than assumed"},
+		{"PaCO2_20_mmHg_9.3_below_implausible", 20, 20 - 29.274, true, "physiologically implausible"},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			facts := append(without(vectorFacts(), "abg-1"), arterial("abg-1", c.paco2))
+			ds, rs := DeriveAll(facts, site)
+			dm, rm := byKind(ds, rs)
+			d, ok := dm[KindPaCO2Discrepancy]
+			if !ok {
+				t.Fatalf("refused: %+v", rm[KindPaCO2Discrepancy])
+			}
+			if diff := d.Result.Value - c.want; diff > 0.01 || diff < -0.01 {
+				t.Errorf("value %.3f, want %.3f [derived]", d.Result.Value, c.want)
+			}
+			txt := d.Result.Interpretation.Text
+			if !strings.Contains(txt, c.text) || strings.Contains(txt, "higher CO2 production") || strings.Contains(txt, "lower CO2 production") {
+				t.Errorf("text %q: want %q and no CO2-production cause (VCO2 measured)", txt, c.text)
+			}
+			if got := slices.Contains(d.Result.Flags(), physio.FlagPaCO2BelowPredicted); got != c.flagged {
+				t.Errorf("flagged %v, want %v", got, c.flagged)
+			}
+		})
 	}
 }

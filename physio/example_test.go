@@ -96,7 +96,7 @@ func ExamplePredictedPaCO2() {
 		fmt.Println(err)
 		return
 	}
-	diff, _ := physio.PaCO2Discrepancy(45, physio.MmHg(pred.Value))
+	diff, _ := physio.PaCO2Discrepancy(65, physio.MmHg(pred.Value), physio.VCO2Measured)
 	fmt.Println(pred.Basis())
 	fmt.Printf("%.2f %s: %s\n", diff.Value, diff.Unit, diff.Interpretation.Text)
 
@@ -104,7 +104,7 @@ func ExamplePredictedPaCO2() {
 	fmt.Println(errors.Is(err, physio.ErrNotGiven), err)
 	// Output:
 	// VA = (VT - VDanat - VDapp) x RR = (420 mL - 150.0 mL - 120 mL) x 20.0 /min = 3.000 L/min; PaCO2 = K(37.0 Cel) x VCO2 / VA = 0.863 x 200.0 mL/min / 3.000 L/min = 57.53 mm[Hg]
-	// -12.53 mm[Hg]: measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error
+	// 7.47 mm[Hg]: measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), or an input error (tidal volume, rate, apparatus dead space, units); VCO2 was measured, so CO2 production is not a cause
 	// true physio: apparatus dead space: not given (must be configured for the circuit, 0 when there is none; never assumed zero)
 }
 

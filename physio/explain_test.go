@@ -38,9 +38,9 @@ func TestInterpretations(t *testing.T) {
 		{"gradient_10mmHg_high", func() (physio.Result, error) { return physio.EndTidalGradient(45, 35) }, "H", "Tyburski", "> 9 mm[Hg] [published: Tyburski 2002]"},
 		{"AVDSF_0.20_at_threshold", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 36) }, "N", "Tyburski", "<= 0.20 [published: Tyburski 2002]"},
 		{"AVDSF_0.2222_high", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 35) }, "H", "Tyburski", "> 0.20 [published: Tyburski 2002]"},
-		{"discrepancy_plus_15.9mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
-		{"discrepancy_minus_8mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
-		{"discrepancy_plus_4mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"discrepancy_plus_15.9mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1, physio.VCO2Measured) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"discrepancy_minus_8mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41, physio.VCO2Measured) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"discrepancy_plus_4mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41, physio.VCO2Measured) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
 		{"gradient_minus_3mmHg_no_code", func() (physio.Result, error) { return physio.EndTidalGradient(35, 38) }, "", "Nunn & Hill", "no published reading of a negative gradient"},
 		{"VDVT_0.06_below_anatomic_no_code", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 47) }, "", "Radford", "below anatomic dead space 2.2 mL/kg [published: Radford 1955; derived]"},
 		{"PaCO2_from_VA_no_threshold", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(200, 4.2, 37) }, "", "", "none: a model output, not a measurement"},
@@ -63,24 +63,60 @@ func TestInterpretations(t *testing.T) {
 			}
 		})
 	}
-	t.Run("discrepancy_names_likely_causes", func(t *testing.T) {
+	// The prediction counts only anatomic plus apparatus dead space
+	// (physiology.md s7 [published: Radford 1955]); physiologic dead space
+	// is anatomic plus alveolar (Bohr-Enghoff, physiology.md s2
+	// [published]), so it cannot be smaller [derived]. Below the band the
+	// text must call the difference implausible, not a finding; with a
+	// measured VCO2 it must not name CO2 production as a cause [derived from
+	// the alveolar ventilation equation, physiology.md s1].
+	t.Run("discrepancy_causes_follow_the_assumptions", func(t *testing.T) {
 		for _, c := range []struct {
+			name                string
 			measured, predicted physio.MmHg
-			causes              []string
+			vco2                physio.VCO2Basis
+			has, hasNot         []string
+			flagged             bool
 		}{
-			{57, 41.1, []string{"more than 5 mm[Hg] above", "more dead space than assumed", "higher CO2 production than assumed", "input error"}},
-			{33, 41, []string{"more than 5 mm[Hg] below", "lower CO2 production than assumed", "less dead space than assumed", "input error"}},
-			{45, 41, []string{"within 5 mm[Hg]"}},
+			{"above_measured_VCO2", 57, 41.1, physio.VCO2Measured,
+				[]string{"more than 5 mm[Hg] above", "more dead space than assumed", "input error", "CO2 production is not a cause"},
+				[]string{"higher CO2 production"}, false},
+			{"above_estimated_VCO2", 57, 41.1, physio.VCO2Estimated,
+				[]string{"more than 5 mm[Hg] above", "more dead space than assumed", "higher CO2 production than estimated", "input error"}, nil, false},
+			{"below_measured_VCO2", 33, 41, physio.VCO2Measured,
+				[]string{"more than 5 mm[Hg] below", "physiologically implausible", "input error", "overestimated anatomic dead space", "not a finding"},
+				[]string{"lower CO2 production", "less dead space than assumed"}, true},
+			{"below_estimated_VCO2", 33, 41, physio.VCO2Estimated,
+				[]string{"physiologically implausible", "CO2 production lower than estimated", "overestimated anatomic dead space"},
+				[]string{"less dead space than assumed"}, true},
+			{"within", 45, 41, physio.VCO2Measured, []string{"within 5 mm[Hg]"}, []string{"implausible"}, false},
+			// -5.04 is published as -5.0: within the band, so no flag.
+			{"minus_5.04_published_minus_5.0_not_flagged", 35.96, 41, physio.VCO2Measured, []string{"within 5 mm[Hg]"}, nil, false},
 		} {
-			r, err := physio.PaCO2Discrepancy(c.measured, c.predicted)
-			if err != nil {
-				t.Fatal(err)
-			}
-			for _, cause := range c.causes {
-				if !strings.Contains(r.Interpretation.Text, cause) {
-					t.Errorf("%v - %v: text %q does not name %q", c.measured, c.predicted, r.Interpretation.Text, cause)
+			t.Run(c.name, func(t *testing.T) {
+				r, err := physio.PaCO2Discrepancy(c.measured, c.predicted, c.vco2)
+				if err != nil {
+					t.Fatal(err)
 				}
-			}
+				for _, w := range c.has {
+					if !strings.Contains(r.Interpretation.Text, w) {
+						t.Errorf("text %q does not say %q", r.Interpretation.Text, w)
+					}
+				}
+				for _, w := range c.hasNot {
+					if strings.Contains(r.Interpretation.Text, w) {
+						t.Errorf("text %q says %q, which the assumptions rule out", r.Interpretation.Text, w)
+					}
+				}
+				if got := slices.Contains(r.Flags(), physio.FlagPaCO2BelowPredicted); got != c.flagged {
+					t.Errorf("flagged %v, want %v (flags %q)", got, c.flagged, r.Flags())
+				}
+			})
+		}
+	})
+	t.Run("discrepancy_needs_the_VCO2_basis", func(t *testing.T) {
+		if _, err := physio.PaCO2Discrepancy(33, 41, physio.VCO2Unknown); !errors.Is(err, physio.ErrNotGiven) {
+			t.Errorf("VCO2Unknown: err %v, want ErrNotGiven", err)
 		}
 	})
 }
@@ -112,10 +148,10 @@ func TestInterpretBoundaries(t *testing.T) {
 		{"VR_1.55_at_mean", physio.InterpretVentilatoryRatio(1.55), "", "at or above 1.55", "Sinha 2009 [published group mean]"},
 		{"VR_1.99_not_median", physio.InterpretVentilatoryRatio(1.99), "", "at or above 1.55", "PETAL-ROSE 2022 [published group median]"},
 		{"VR_2.00_median", physio.InterpretVentilatoryRatio(2.00), "", "at or above 2", "PETAL-ROSE 2022 [published group median]"},
-		{"discrepancy_5.0mmHg_within", physio.InterpretPaCO2Discrepancy(5.0), "", "within 5", "band [derived; common practice]"},
-		{"discrepancy_5.1mmHg_above", physio.InterpretPaCO2Discrepancy(5.1), "", "above predicted", "band [derived; common practice]"},
-		{"discrepancy_-5.0mmHg_within", physio.InterpretPaCO2Discrepancy(-5.0), "", "within 5", "band [derived; common practice]"},
-		{"discrepancy_-5.1mmHg_below", physio.InterpretPaCO2Discrepancy(-5.1), "", "below predicted", "band [derived; common practice]"},
+		{"discrepancy_5.0mmHg_within", physio.InterpretPaCO2Discrepancy(5.0, physio.VCO2Measured), "", "within 5", "band [derived; common practice]"},
+		{"discrepancy_5.1mmHg_above", physio.InterpretPaCO2Discrepancy(5.1, physio.VCO2Measured), "", "above predicted", "band [derived; common practice]"},
+		{"discrepancy_-5.0mmHg_within", physio.InterpretPaCO2Discrepancy(-5.0, physio.VCO2Measured), "", "within 5", "band [derived; common practice]"},
+		{"discrepancy_-5.1mmHg_below", physio.InterpretPaCO2Discrepancy(-5.1, physio.VCO2Measured), "", "below predicted", "band [derived; common practice]"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -381,7 +417,7 @@ func goldenResults() []struct {
 	}
 	r, err := physio.PredictedPaCO2(physio.PredictedInput{VCO2: 188.16, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVD: 95, ApparatusVDKnown: true})
 	add("PredictedPaCO2_estimated_VCO2_default_anatomic_default_temp", r, err)
-	r, err = physio.PaCO2Discrepancy(45, 41.1)
+	r, err = physio.PaCO2Discrepancy(45, 41.1, physio.VCO2Measured)
 	add("Discrepancy_45_vs_41.1mmHg", r, err)
 	r, err = physio.EndTidalGradient(35, 38)
 	add("Gradient_negative", r, err)
