@@ -389,6 +389,9 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 				Sex: sex, Age: age, Weight: physio.Kg(w.Fact.Value), Height: physio.Cm(h.Fact.Value),
 				Equation: x.site.Energy, RQ: x.rq(),
 			})
+			if err == nil && x.hasMeasuredFraction() {
+				res.MarkMeasuredFractionExists()
+			}
 		}
 	case KindDeadSpaceVolume:
 		vdvt := g.measuredVDVT(paco2)
@@ -460,6 +463,21 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 	return x.derivation(kind, res, g), Refusal{}, true
 }
 
+// hasMeasuredFraction reports whether a measured dead-space fraction
+// (Bohr-Enghoff from PECO2, or from measured VCO2) is derived for the same
+// blood gas. The estimated fraction is then still published, so that
+// its trend does not break when measurement starts or stops, but flagged
+// and told that the measured value is the one to read: two fractions of one
+// blood gas that disagree must not leave the reader to pick.
+func (x *deriver) hasMeasuredFraction() bool {
+	for _, k := range []string{KindDeadSpaceEnghoff, KindDeadSpaceVCO2} {
+		if _, _, ok := x.derive(k); ok {
+			return true
+		}
+	}
+	return false
+}
+
 // needTarget stops a for-target kind when the site has configured no target
 // PaCO2: none is assumed (Site.TargetPaCO2mmHg).
 func (x *deriver) needTarget(g *gather) {
@@ -507,14 +525,18 @@ func (x *deriver) predicted(g *gather) physio.Result {
 // that quantity, so that the interpretation never contradicts the number
 // shown (9.004 is published 9.0 and read "at or below 9"). ok is false for
 // kinds without a reading.
-func publishedInterpretation(kind string, v float64) (physio.Interpretation, bool) {
+func publishedInterpretation(kind string, v float64, flags []string) (physio.Interpretation, bool) {
 	p, err := strconv.ParseFloat(FormatValue(kind, v), 64)
 	if err != nil {
 		return physio.Interpretation{}, false
 	}
 	switch kind {
-	case KindDeadSpaceEnghoff, KindDeadSpaceVCO2, KindDeadSpaceEstimated:
+	case KindDeadSpaceEnghoff, KindDeadSpaceVCO2:
 		return physio.InterpretDeadSpaceFraction(p), true
+	case KindDeadSpaceEstimated:
+		// The flag says whether a measured fraction of the same blood gas
+		// exists (MarkMeasuredFractionExists); the reading must agree.
+		return physio.InterpretEstimatedDeadSpaceFraction(p, slices.Contains(flags, physio.FlagMeasuredFractionExists)), true
 	case KindPaCO2PETCO2Gradient:
 		return physio.InterpretEndTidalGradient(physio.MmHg(p)), true
 	case KindAlveolarDeadSpace:
@@ -531,7 +553,7 @@ func publishedInterpretation(kind string, v float64) (physio.Interpretation, boo
 // derivation builds and seals the Derivation of a computed result. The
 // interpretation is read again on the published (rounded) value.
 func (x *deriver) derivation(kind string, res physio.Result, g *gather) Derivation {
-	if in, ok := publishedInterpretation(kind, res.Value); ok {
+	if in, ok := publishedInterpretation(kind, res.Value, res.Flags()); ok {
 		res.Interpretation = in
 	}
 	bg := x.sel.BloodGas

@@ -236,3 +236,44 @@ func TestDiscrepancyFrame(t *testing.T) {
 		})
 	}
 }
+
+// TestEstimatedDeadSpaceBesideMeasured checks the decision for an estimated
+// dead-space fraction of a blood gas that also has a measured one: it is
+// published (its trend does not break when measurement starts or stops)
+// but flagged, and its reading sends the reader to the measured value. It
+// never carries a threshold of measured dead space (Siddiki et al., Crit
+// Care 2010, doi 10.1186/cc9206 [published]: no threshold given).
+func TestEstimatedDeadSpaceBesideMeasured(t *testing.T) {
+	for _, c := range []struct {
+		name     string
+		facts    []Fact
+		measured bool
+	}{
+		{"measured_VCO2_in_window", vectorFacts(), true},
+		{"no_VCO2_no_PECO2", without(vectorFacts(), "vco2-1"), false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			ds, rs := DeriveAll(c.facts, DefaultSite())
+			dm, rm := byKind(ds, rs)
+			d, ok := dm[KindDeadSpaceEstimated]
+			if !ok {
+				t.Fatalf("estimate refused: %+v", rm[KindDeadSpaceEstimated])
+			}
+			_, hasMeasured := dm[KindDeadSpaceVCO2]
+			if hasMeasured != c.measured {
+				t.Fatalf("measured fraction derived %v, want %v", hasMeasured, c.measured)
+			}
+			flagged := slices.Contains(d.Result.Flags(), physio.FlagMeasuredFractionExists)
+			if flagged != c.measured {
+				t.Errorf("flagged %v, want %v", flagged, c.measured)
+			}
+			in := d.Result.Interpretation
+			if in.Code != "" || strings.Contains(in.Text+in.Source, "Nuckton") {
+				t.Errorf("estimate read against measured-dead-space thresholds: %+v", in)
+			}
+			if c.measured != strings.Contains(in.Text, "read the measured value") {
+				t.Errorf("text %q: mention of the measured value should be %v", in.Text, c.measured)
+			}
+		})
+	}
+}

@@ -29,7 +29,11 @@ func TestInterpretations(t *testing.T) {
 		{"VDVT_0.30_normal_at_threshold", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 28) }, "N", "Nunn & Hill", "about 0.3 [published: Nunn & Hill 1960]"},
 		{"VDVT_0.325_high", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 27) }, "H", "Nunn & Hill", "above 0.3 [published: Nunn & Hill 1960]"},
 		{"VDVT_0.6164_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
-		{"VDVT_estimated_0.6404_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceEstimated(45, 10, man) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
+		// The estimate's only source (Siddiki et al., Crit Care 2010, doi
+		// 10.1186/cc9206 [published]) reports adjusted odds ratios of
+		// hospital death per 10% increase (1.07 day 1, 1.12 day 3) and no
+		// threshold: no code, and not Nuckton's reading of measured VD/VT.
+		{"VDVT_estimated_0.6404_no_code_no_measured_threshold", func() (physio.Result, error) { return physio.DeadSpaceEstimated(45, 10, man) }, "", "Siddiki", "no threshold in Siddiki 2010 [published]"},
 		{"VR_1.0_healthy_no_cutoff", func() (physio.Result, error) { return physio.VentilatoryRatio(7.0566, 37.5, 70.566) }, "", "Sinha", "near 1 in health, no cut-off [published: Sinha 2009]"},
 		{"VR_1.7005_above_non_survivor_mean_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }, "", "Sinha", "1.55 non-survivors, a group mean, not a cut-off [published: Sinha 2009]"},
 		{"VR_2.1_ARDS_median_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(12.35, 45, 70.566) }, "", "PETAL-ROSE", "median about 2 in ARDS, not a cut-off [published: Crit Care 2022]"},
@@ -234,7 +238,8 @@ func TestDeadSpaceFloorFlag(t *testing.T) {
 		{"vco2_0.137_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(40, 200, 5, 37) }, true, "minute volume and VCO2"},
 		{"vco2_0.6164_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, false, ""},
 		// Harris-Benedict VCO2 188.16 mL/min: 1 - 0.86 x 188.16 / (4 x 47.5) = 0.148 -> flagged.
-		{"estimated_0.148_flagged", func() (physio.Result, error) { return physio.DeadSpaceEstimated(47.5, 4, man) }, true, "minute volume and VCO2"},
+		// VCO2 was estimated, not an input: the flag names the estimate.
+		{"estimated_0.148_flagged", func() (physio.Result, error) { return physio.DeadSpaceEstimated(47.5, 4, man) }, true, "VCO2 from the energy equation is likely above"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -539,6 +544,54 @@ func TestTargetRecordedAsConstant(t *testing.T) {
 			return c.Name == "target PaCO2" && c.Value == 40 && c.Unit == "mm[Hg]" && strings.Contains(c.Source, "given by the caller")
 		}) {
 			t.Errorf("%s: constants %+v lack the target PaCO2 40 mm[Hg]", r.Method, r.Constants())
+		}
+	}
+}
+
+// TestEstimatedDeadSpaceFrame checks that the estimated dead-space fraction
+// borrows nothing from studies of measured dead space: its source (Siddiki
+// et al., Crit Care 2010, doi 10.1186/cc9206 [published]) gives an
+// association with mortality per 10% increase and no threshold, while 0.3
+// (Nunn & Hill 1960) and 0.58 (Nuckton et al. 2002) were found with
+// measured dead space [published]. Its flags must not ask to check a VCO2
+// input that was never an input.
+func TestEstimatedDeadSpaceFrame(t *testing.T) {
+	for _, v := range []float64{0.149, 0.15, 0.30, 0.31, 0.58, 0.64, 0.9} {
+		for _, measured := range []bool{false, true} {
+			in := physio.InterpretEstimatedDeadSpaceFraction(v, measured)
+			if in.Code != "" {
+				t.Errorf("%.3f: code %q: the estimate has no published threshold", v, in.Code)
+			}
+			for _, borrowed := range []string{"Nuckton", "Nunn", "ARDS", "odds", "non-survivors"} {
+				if strings.Contains(in.Text+in.Source, borrowed) {
+					t.Errorf("%.3f: reading borrows %q from measured dead space: %q / %q", v, borrowed, in.Text, in.Source)
+				}
+			}
+			if measured && v >= physio.DeadSpaceFractionFloor && !strings.Contains(in.Text, "read the measured value") {
+				t.Errorf("%.3f beside a measured fraction: text %q does not send the reader to it", v, in.Text)
+			}
+		}
+	}
+	r, err := physio.DeadSpaceEstimated(45, 10, man)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if slices.Contains(r.Flags(), physio.FlagMeasuredFractionExists) {
+		t.Fatal("flagged before MarkMeasuredFractionExists")
+	}
+	r.MarkMeasuredFractionExists()
+	if !slices.Contains(r.Flags(), physio.FlagMeasuredFractionExists) || !strings.Contains(r.Interpretation.Text, "read the measured value") {
+		t.Errorf("after MarkMeasuredFractionExists: flags %q, text %q", r.Flags(), r.Interpretation.Text)
+	}
+	m, _ := physio.DeadSpaceEnghoff(40, 27)
+	m.MarkMeasuredFractionExists()
+	if len(m.Flags()) != 0 {
+		t.Errorf("a measured fraction was marked: %q", m.Flags())
+	}
+	low, _ := physio.DeadSpaceEstimated(47.5, 4, man)
+	for _, f := range low.Flags() {
+		if strings.Contains(f, "VCO2 input") || strings.Contains(f, "minute volume and VCO2") {
+			t.Errorf("flag %q asks to check a VCO2 input; VCO2 was estimated", f)
 		}
 	}
 }
