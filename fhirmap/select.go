@@ -394,7 +394,7 @@ func bloodGasRefusal(bg Fact) (reason, detail string) {
 		return ReasonUnknownSpecimen, "PCO2 of unspecified blood (code " + bg.Code.Code + ") and no coded arterial Specimen on the Observation"
 	}
 	if bg.TempCorrected {
-		return ReasonTemperatureAdjusted, "PaCO2 adjusted to the patient's temperature (code " + bg.Code.Code + "); the formulas use PaCO2 measured at 37 Cel"
+		return ReasonTemperatureAdjusted, "PaCO2 adjusted to the patient's temperature (code " + bg.Code.Code + "); the formulas use PaCO2 measured at 37 °C"
 	}
 	if err := physio.PaCO2Range.Check("PaCO2", bg.Value); err != nil {
 		return ReasonImplausible, errorDetail(err)

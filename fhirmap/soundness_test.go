@@ -105,7 +105,7 @@ func TestBundleVersionsUnderOneFullURL(t *testing.T) {
 			}
 			cur := Current(d.Facts)
 			if len(cur) != 1 || cur[0].VersionID != "2" || cur[0].Value != 47 {
-				t.Fatalf("order %v: current %+v, want version 2 (47 mm[Hg])", order, cur)
+				t.Fatalf("order %v: current %+v, want version 2 (47 mmHg)", order, cur)
 			}
 		}
 	})

@@ -44,7 +44,7 @@ func (r *Result) flagLowVDVT(v float64, flag string) {
 }
 
 var kDefSiddiki = constDef{name: "K", unit: "mm[Hg].L/mL",
-	source: "as published by Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 (0.86; the ideal gas law gives 0.863 at 37 Cel)"}
+	source: "as published by Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 (0.86; the ideal gas law gives 0.863 at 37 °C)"}
 
 // Published readings of the physiologic dead-space fraction.
 var (
@@ -171,7 +171,7 @@ func DeadSpaceEnghoff(paco2, peco2 MmHg) (Result, error) {
 	r.assume(assumeMixedExpired)
 	r.assume(assumeSameSteadyState)
 	r.assume(assumeSteadyState)
-	r.basis("VD/VT = (PaCO2 - PECO2) / PaCO2 = (%.1f mm[Hg] - %.1f mm[Hg]) / %.1f mm[Hg] = %.4f",
+	r.basis("VD/VT = (PaCO2 - PECO2) / PaCO2 = (%.1f mmHg - %.1f mmHg) / %.1f mmHg = %.4f",
 		float64(paco2), float64(peco2), float64(paco2), v)
 	return r, nil
 }
@@ -202,7 +202,7 @@ func MixedExpiredPCO2(vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) (Result, erro
 	r.Value = v
 	r.assume(assumeSteadyState)
 	r.assume(assumeExpiredVE)
-	r.basis("PECO2 = K(%.1f Cel) x VCO2 / VE = %.4g x %.1f mL/min / %.2f L/min = %.2f mm[Hg]",
+	r.basis("PECO2 = K(%.1f °C) x VCO2 / VE = %.4g x %.1f mL/min / %.2f L/min = %.2f mmHg",
 		float64(t), k, float64(vco2), float64(ve), v)
 	return r, nil
 }
@@ -246,7 +246,7 @@ func DeadSpaceFromVCO2(paco2 MmHg, vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) 
 	r.assume(assumeSteadyState)
 	r.assume(assumeExpiredVE)
 	r.assume(assumeGasStates)
-	r.basis("VD/VT = 1 - K(%.1f Cel) x VCO2 / (VE x PaCO2) = 1 - %.4g x %.1f mL/min / (%.2f L/min x %.1f mm[Hg]) = %.4f",
+	r.basis("VD/VT = 1 - K(%.1f °C) x VCO2 / (VE x PaCO2) = 1 - %.4g x %.1f mL/min / (%.2f L/min x %.1f mmHg) = %.4f",
 		float64(t), k, float64(vco2), float64(ve), float64(paco2), v)
 	return r, nil
 }

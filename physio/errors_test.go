@@ -180,7 +180,7 @@ func TestRangeCheck(t *testing.T) {
 	}
 	t.Run("message_names_range", func(t *testing.T) {
 		err := r.Check("PaCO2", 300)
-		if want := "physio: PaCO2 300 mm[Hg]: physiologically implausible (plausible 10 to 250 mm[Hg])"; err.Error() != want {
+		if want := "physio: PaCO2 300 mmHg: physiologically implausible (plausible 10 to 250 mmHg)"; err.Error() != want {
 			t.Errorf("message %q, want %q", err, want)
 		}
 	})
@@ -206,6 +206,6 @@ func TestRangesAreDocumented(t *testing.T) {
 	}
 	// PaCO2RangeKPa is PaCO2Range through the UCUM factor.
 	if got := physio.KPa(physio.PaCO2RangeKPa.Max).MmHg(); math.Abs(float64(got)-physio.PaCO2Range.Max) > 1e-9 {
-		t.Errorf("PaCO2RangeKPa.Max is %v mm[Hg], want %v", got, physio.PaCO2Range.Max)
+		t.Errorf("PaCO2RangeKPa.Max is %v mmHg, want %v", got, physio.PaCO2Range.Max)
 	}
 }

@@ -37,14 +37,14 @@ func TestInterpretations(t *testing.T) {
 		{"VR_1.0_healthy_no_cutoff", func() (physio.Result, error) { return physio.VentilatoryRatio(7.0566, 37.5, 70.566) }, "", "Sinha", "near 1 in health, no cut-off [published: Sinha 2009]"},
 		{"VR_1.7005_above_non_survivor_mean_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }, "", "Sinha", "1.55 non-survivors, a group mean, not a cut-off [published: Sinha 2009]"},
 		{"VR_2.1_ARDS_median_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(12.35, 45, 70.566) }, "", "PETAL-ROSE", "median about 2 in ARDS, not a cut-off [published: Crit Care 2022]"},
-		{"gradient_4.6mmHg_normal", func() (physio.Result, error) { return physio.EndTidalGradient(40, 35.4) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]; 4.6 normal [published: Nunn & Hill 1960]"},
-		{"gradient_9mmHg_at_threshold", func() (physio.Result, error) { return physio.EndTidalGradient(45, 36) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]"},
-		{"gradient_10mmHg_high", func() (physio.Result, error) { return physio.EndTidalGradient(45, 35) }, "H", "Tyburski", "> 9 mm[Hg] [published: Tyburski 2002]"},
+		{"gradient_4.6mmHg_normal", func() (physio.Result, error) { return physio.EndTidalGradient(40, 35.4) }, "N", "Tyburski", "<= 9 mmHg [published: Tyburski 2002]; 4.6 normal [published: Nunn & Hill 1960]"},
+		{"gradient_9mmHg_at_threshold", func() (physio.Result, error) { return physio.EndTidalGradient(45, 36) }, "N", "Tyburski", "<= 9 mmHg [published: Tyburski 2002]"},
+		{"gradient_10mmHg_high", func() (physio.Result, error) { return physio.EndTidalGradient(45, 35) }, "H", "Tyburski", "> 9 mmHg [published: Tyburski 2002]"},
 		{"AVDSF_0.20_at_threshold", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 36) }, "N", "Tyburski", "<= 0.20 [published: Tyburski 2002]"},
 		{"AVDSF_0.2222_high", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 35) }, "H", "Tyburski", "> 0.20 [published: Tyburski 2002]"},
-		{"discrepancy_plus_15.9mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1, physio.VCO2Measured) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
-		{"discrepancy_minus_8mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41, physio.VCO2Measured) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
-		{"discrepancy_plus_4mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41, physio.VCO2Measured) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"discrepancy_plus_15.9mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1, physio.VCO2Measured) }, "", "35-45", "5 mmHg band [derived; common practice], not published"},
+		{"discrepancy_minus_8mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41, physio.VCO2Measured) }, "", "35-45", "5 mmHg band [derived; common practice], not published"},
+		{"discrepancy_plus_4mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41, physio.VCO2Measured) }, "", "35-45", "5 mmHg band [derived; common practice], not published"},
 		{"gradient_minus_3mmHg_no_code", func() (physio.Result, error) { return physio.EndTidalGradient(35, 38) }, "", "Nunn & Hill", "no published reading of a negative gradient"},
 		{"VDVT_0.06_below_anatomic_no_code", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 47) }, "", "Radford", "below anatomic dead space 2.2 mL/kg [published: Radford 1955; derived]"},
 		{"PaCO2_from_VA_no_threshold", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(200, 4.2, 37) }, "", "", "none: a model output, not a measurement"},
@@ -83,19 +83,19 @@ func TestInterpretations(t *testing.T) {
 			flagged             bool
 		}{
 			{"above_measured_VCO2", 57, 41.1, physio.VCO2Measured,
-				[]string{"more than 5 mm[Hg] above", "more dead space than assumed", "input error", "CO2 production is not a cause"},
+				[]string{"more than 5 mmHg above", "more dead space than assumed", "input error", "CO2 production is not a cause"},
 				[]string{"higher CO2 production"}, false},
 			{"above_estimated_VCO2", 57, 41.1, physio.VCO2Estimated,
-				[]string{"more than 5 mm[Hg] above", "more dead space than assumed", "higher CO2 production than estimated", "input error"}, nil, false},
+				[]string{"more than 5 mmHg above", "more dead space than assumed", "higher CO2 production than estimated", "input error"}, nil, false},
 			{"below_measured_VCO2", 33, 41, physio.VCO2Measured,
-				[]string{"more than 5 mm[Hg] below", "physiologically implausible", "input error", "overestimated anatomic dead space", "not a finding"},
+				[]string{"more than 5 mmHg below", "physiologically implausible", "input error", "overestimated anatomic dead space", "not a finding"},
 				[]string{"lower CO2 production", "less dead space than assumed"}, true},
 			{"below_estimated_VCO2", 33, 41, physio.VCO2Estimated,
 				[]string{"physiologically implausible", "CO2 production lower than estimated", "overestimated anatomic dead space"},
 				[]string{"less dead space than assumed"}, true},
-			{"within", 45, 41, physio.VCO2Measured, []string{"within 5 mm[Hg]"}, []string{"implausible"}, false},
+			{"within", 45, 41, physio.VCO2Measured, []string{"within 5 mmHg"}, []string{"implausible"}, false},
 			// -5.04 is published as -5.0: within the band, so no flag.
-			{"minus_5.04_published_minus_5.0_not_flagged", 35.96, 41, physio.VCO2Measured, []string{"within 5 mm[Hg]"}, nil, false},
+			{"minus_5.04_published_minus_5.0_not_flagged", 35.96, 41, physio.VCO2Measured, []string{"within 5 mmHg"}, nil, false},
 		} {
 			t.Run(c.name, func(t *testing.T) {
 				r, err := physio.PaCO2Discrepancy(c.measured, c.predicted, c.vco2)
@@ -365,7 +365,7 @@ func TestAssumptionsRecorded(t *testing.T) {
 	})
 	t.Run("predicted_with_estimated_VCO2", func(t *testing.T) {
 		r, _ := physio.PredictedPaCO2(physio.PredictedInput{VCO2: 188, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVDKnown: true})
-		if !has(r, "estimated: VCO2") || !has(r, "anatomic dead space not given: 2.2 mL/kg") || !has(r, "body temperature not measured: 37 Cel") {
+		if !has(r, "estimated: VCO2") || !has(r, "anatomic dead space not given: 2.2 mL/kg") || !has(r, "body temperature not measured: 37 °C") {
 			t.Errorf("assumptions %q", r.Assumptions())
 		}
 	})
@@ -543,7 +543,7 @@ func TestTargetRecordedAsConstant(t *testing.T) {
 		if !slices.ContainsFunc(r.Constants(), func(c physio.Constant) bool {
 			return c.Name == "target PaCO2" && c.Value == 40 && c.Unit == "mm[Hg]" && strings.Contains(c.Source, "given by the caller")
 		}) {
-			t.Errorf("%s: constants %+v lack the target PaCO2 40 mm[Hg]", r.Method, r.Constants())
+			t.Errorf("%s: constants %+v lack the target PaCO2 40 mmHg", r.Method, r.Constants())
 		}
 	}
 }

@@ -9,7 +9,7 @@ var (
 	pbwRefHeight       = constDef{name: "PBW reference height", unit: UnitCm, source: "ARDS Network, NEJM 2000;342:1301-8 [published] (60 in)"}
 	anatomicPerKg      = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]"}
 	discrepancyDef     = constDef{name: "material PaCO2 difference", unit: UnitMmHg,
-		source: "half-width of the healthy 35-45 mm[Hg] range [derived from published textbooks; common practice]"}
+		source: "half-width of the healthy 35-45 mmHg range [derived from published textbooks; common practice]"}
 )
 
 const (
@@ -154,11 +154,11 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 		r.assume(assumeVCO2Estimate)
 	}
 	if defaultAnat {
-		r.basis("VDanat = 2.2 mL/kg x %.2f kg = %.1f mL; VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f Cel) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mm[Hg]",
+		r.basis("VDanat = 2.2 mL/kg x %.2f kg = %.1f mL; VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg",
 			float64(p.PBW), anat, float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
 			float64(t), k, float64(p.VCO2), va, v)
 	} else {
-		r.basis("VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f Cel) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mm[Hg]",
+		r.basis("VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg",
 			float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
 			float64(t), k, float64(p.VCO2), va, v)
 	}
@@ -182,7 +182,7 @@ const (
 	VCO2Estimated
 )
 
-const discrepancySource = "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"
+const discrepancySource = "threshold 5 mmHg: half-width of the healthy 35-45 mmHg range [derived; common practice]"
 
 // Readings of the measured-minus-predicted difference. The 5 mm[Hg] band
 // is derived, not a published threshold, so no interpretation code is
@@ -193,19 +193,19 @@ const discrepancySource = "threshold 5 mm[Hg]: half-width of the healthy 35-45 m
 // about the lung but a sign that an input or an assumption is wrong.
 var (
 	interpDiscrepancyHighMeasured = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), or an input error (tidal volume, rate, apparatus dead space, units); VCO2 was measured, so CO2 production is not a cause",
+		Text:   "measured PaCO2 more than 5 mmHg above predicted: likely more dead space than assumed (alveolar dead space), or an input error (tidal volume, rate, apparatus dead space, units); VCO2 was measured, so CO2 production is not a cause",
 		Source: discrepancySource}
 	interpDiscrepancyHighEstimated = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than estimated, or an input error (tidal volume, rate, apparatus dead space, units)",
+		Text:   "measured PaCO2 more than 5 mmHg above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than estimated, or an input error (tidal volume, rate, apparatus dead space, units)",
 		Source: discrepancySource}
 	interpDiscrepancyLowMeasured = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: physiologically implausible, since it would need a physiologic dead space smaller than the anatomic plus apparatus dead space assumed; likely an input error (VCO2, tidal volume, rate, units, readings from different moments, not a steady state) or an overestimated anatomic dead space; not a finding about the lung",
+		Text:   "measured PaCO2 more than 5 mmHg below predicted: physiologically implausible, since it would need a physiologic dead space smaller than the anatomic plus apparatus dead space assumed; likely an input error (VCO2, tidal volume, rate, units, readings from different moments, not a steady state) or an overestimated anatomic dead space; not a finding about the lung",
 		Source: discrepancySource}
 	interpDiscrepancyLowEstimated = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: physiologically implausible at the estimated CO2 production, since it would need a physiologic dead space smaller than the anatomic plus apparatus dead space assumed; likely CO2 production lower than estimated (sedation, hypothermia), an input error (tidal volume, rate, units, readings from different moments) or an overestimated anatomic dead space; not a finding about the lung",
+		Text:   "measured PaCO2 more than 5 mmHg below predicted: physiologically implausible at the estimated CO2 production, since it would need a physiologic dead space smaller than the anatomic plus apparatus dead space assumed; likely CO2 production lower than estimated (sedation, hypothermia), an input error (tidal volume, rate, units, readings from different moments) or an overestimated anatomic dead space; not a finding about the lung",
 		Source: discrepancySource}
 	interpDiscrepancyNone = Interpretation{Code: "",
-		Text:   "measured PaCO2 within 5 mm[Hg] of predicted: consistent with the assumed dead space and CO2 production",
+		Text:   "measured PaCO2 within 5 mmHg of predicted: consistent with the assumed dead space and CO2 production",
 		Source: discrepancySource}
 )
 
@@ -267,7 +267,7 @@ func PaCO2Discrepancy(measured, predicted MmHg, vco2 VCO2Basis) (Result, error) 
 	}
 	r.addConst(&discrepancyDef, float64(DiscrepancyThreshold))
 	r.assume(assumeDiscrepancy)
-	r.basis("PaCO2 measured - predicted = %.1f mm[Hg] - %.2f mm[Hg] = %.2f mm[Hg] (material beyond +/- %g mm[Hg])",
+	r.basis("PaCO2 measured - predicted = %.1f mmHg - %.2f mmHg = %.2f mmHg (material beyond +/- %g mmHg)",
 		float64(measured), float64(predicted), v, float64(DiscrepancyThreshold))
 	return r, nil
 }

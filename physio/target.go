@@ -4,16 +4,17 @@ package physio
 // them is still returned, never clamped, with a Flag.
 const (
 	// MaxVTPerKgPBW: tidal volume above 8 mL/kg PBW, the upper limit of the
-	// ARDS Network protocol (NEJM 2000;342:1301-8) [memory: 6 mL/kg target,
-	// raised to 7-8 mL/kg only for severe dyspnoea].
+	// ARDS Network protocol (NEJM 2000;342:1301-8) [published: the NIH NHLBI
+	// protocol card, 6 mL/kg target, 7-8 mL/kg only for breath stacking or
+	// dyssynchrony with plateau pressure below 30 cmH2O].
 	MaxVTPerKgPBW = 8.0
 	// MinVTPerKgPBW: tidal volume below 4 mL/kg PBW, the lowest the ARDS
-	// Network protocol allows [memory: protocol card, 4 mL/kg when plateau
-	// pressure stays above 30 cm[H2O]]; below it VT approaches anatomic dead
+	// Network protocol allows [published: protocol card, down to 4 mL/kg
+	// when plateau pressure stays above 30 cmH2O]; below it VT approaches anatomic dead
 	// space (2.2 mL/kg, Radford 1955), so ventilation becomes ineffective.
 	MinVTPerKgPBW = 4.0
 	// MaxRate: breath rate above 35 /min, the ARDS Network protocol maximum
-	// [memory: protocol card, rate not above 35 /min]; gas trapping and
+	// [published: protocol card, rate not above 35 /min]; gas trapping and
 	// intrinsic PEEP become likely.
 	MaxRate PerMin = 35
 	// MinRate: breath rate below 8 /min [common practice: adult backup rates
@@ -37,9 +38,9 @@ const (
 )
 
 var (
-	maxVTDef   = constDef{name: "advisory upper tidal volume", unit: "mL/kg", source: "ARDS Network protocol, NEJM 2000;342:1301-8 [memory]"}
-	minVTDef   = constDef{name: "advisory lower tidal volume", unit: "mL/kg", source: "ARDS Network protocol [memory]"}
-	maxRateDef = constDef{name: "advisory upper rate", unit: UnitPerMin, source: "ARDS Network protocol [memory]"}
+	maxVTDef   = constDef{name: "advisory upper tidal volume", unit: "mL/kg", source: "NIH NHLBI ARDS Network protocol card (NEJM 2000;342:1301-8): tidal volume 4-8 mL/kg predicted body weight [published]"}
+	minVTDef   = constDef{name: "advisory lower tidal volume", unit: "mL/kg", source: "NIH NHLBI ARDS Network protocol card: minimum 4 mL/kg predicted body weight [published]"}
+	maxRateDef = constDef{name: "advisory upper rate", unit: UnitPerMin, source: "NIH NHLBI ARDS Network protocol card: set rate not above 35 /min [published]"}
 	minRateDef = constDef{name: "advisory lower rate", unit: UnitPerMin, source: "[common practice]"}
 	targetDef  = constDef{name: "target PaCO2", unit: UnitMmHg, source: "given by the caller, not derived; a patient-specific goal only if the caller made it one"}
 )
@@ -101,7 +102,7 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 	r.assume(assumeFixedDeadSpace)
 	r.assume(assumeFixedVT)
 	r.assume(assumeSteadyState)
-	r.basis("RR for target = RR x PaCO2 / target = %.1f /min x %.1f mm[Hg] / %.1f mm[Hg] = %.2f /min (VT %.0f mL = %.2f mL/kg PBW of %.2f kg)",
+	r.basis("RR for target = RR x PaCO2 / target = %.1f /min x %.1f mmHg / %.1f mmHg = %.2f /min (VT %.0f mL = %.2f mL/kg PBW of %.2f kg)",
 		float64(rr), float64(paco2), float64(target), v, float64(vt), vtPerKg, float64(pbw))
 	return r, nil
 }
@@ -147,7 +148,7 @@ func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error)
 	r.assume(assumeFixedDeadSpaceV)
 	r.assume(assumeFixedRate)
 	r.assume(assumeSteadyState)
-	r.basis("VT for target = VD + (VT - VD) x PaCO2 / target = %.0f mL + (%.0f mL - %.0f mL) x %.1f mm[Hg] / %.1f mm[Hg] = %.1f mL (%.2f mL/kg PBW of %.2f kg)",
+	r.basis("VT for target = VD + (VT - VD) x PaCO2 / target = %.0f mL + (%.0f mL - %.0f mL) x %.1f mmHg / %.1f mmHg = %.1f mL (%.2f mL/kg PBW of %.2f kg)",
 		float64(vd), float64(vt), float64(vd), float64(paco2), float64(target), v, vtPerKg, float64(pbw))
 	return r, nil
 }

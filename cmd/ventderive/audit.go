@@ -17,6 +17,7 @@ import (
 	"github.com/jackc/pgx/v5/pgxpool"
 
 	"github.com/ventderive/ventderive/consumer/postgres"
+	"github.com/ventderive/ventderive/physio"
 )
 
 func init() {
@@ -65,7 +66,7 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	fs.StringVar(&f.Kind, "kind", "", "derivation kind code")
 	fs.StringVar(&f.Algorithm, "algorithm", "", "algorithm version")
 	fs.IntVar(&f.Limit, "limit", 1000, "maximum rows")
-	threshold := fs.Float64("threshold", 5, "discrepancies: minimum |measured - predicted| in mm[Hg]")
+	threshold := fs.Float64("threshold", 5, "discrepancies: minimum |measured - predicted| in mmHg")
 	// Flags may follow the positional argument of show.
 	var positional []string
 	for {
@@ -161,7 +162,7 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		if err != nil {
 			return fmt.Errorf("audit discrepancies: %w", err)
 		}
-		return writeRows(out, ds, []string{"PATIENT", "BLOOD GAS", "EFFECTIVE", "MEASURED-PREDICTED mm[Hg]", "MEASURED", "PREDICTED", "STATUS", "VERSION", "INTERPRETATION"},
+		return writeRows(out, ds, []string{"PATIENT", "BLOOD GAS", "EFFECTIVE", "MEASURED-PREDICTED mmHg", "MEASURED", "PREDICTED", "STATUS", "VERSION", "INTERPRETATION"},
 			func(d postgres.Discrepancy) []string {
 				return []string{d.Patient, d.BloodGas, ts(d.Effective), num(d.DifferenceMmHg), optNum(d.MeasuredMmHg), optNum(d.PredictedMmHg),
 					d.Status, strconv.Itoa(d.Version), d.Interpretation}
@@ -330,11 +331,11 @@ func (o auditOutput) show(h postgres.History) error {
 		fmt.Fprintf(&b, "  observation     %s\n", v.ObservationID)
 		fmt.Fprintf(&b, "  patient         %s %s\n", v.Patient, v.Encounter)
 		fmt.Fprintf(&b, "  blood gas       %s at %s\n", v.BloodGas, ts(v.Effective))
-		fmt.Fprintf(&b, "  value           %s %s\n", num(v.Value), v.Unit)
+		fmt.Fprintf(&b, "  value           %s %s\n", num(v.Value), physio.DisplayUnit(v.Unit))
 		fmt.Fprintf(&b, "  method          %s (method version %s; algorithm %s)\n", v.Method, v.MethodVersion, v.Algorithm)
 		fmt.Fprintf(&b, "  basis           %s\n", v.Basis)
 		for _, c := range v.Constants {
-			fmt.Fprintf(&b, "  constant        %s = %s %s (%s)\n", c.Name, num(c.Value), c.Unit, c.Source)
+			fmt.Fprintf(&b, "  constant        %s = %s %s (%s)\n", c.Name, num(c.Value), physio.DisplayUnit(c.Unit), c.Source)
 		}
 		for _, a := range v.Assumptions {
 			fmt.Fprintf(&b, "  assumption      %s\n", a)
@@ -378,7 +379,7 @@ func writeInputs(b *strings.Builder, title string, ins []postgres.Input) {
 	tw := tabwriter.NewWriter(b, 0, 0, 2, ' ', 0)
 	fmt.Fprintln(tw, "    ROLE\tFACT\tVALUE\tUNIT\tSTATUS\tEFFECTIVE\tOFFSET\tFALLBACK")
 	for _, in := range ins {
-		fmt.Fprintf(tw, "    %s\n", strings.Join(clean([]string{in.Role, in.FactKey, num(in.Value), in.Unit, in.Status,
+		fmt.Fprintf(tw, "    %s\n", strings.Join(clean([]string{in.Role, in.FactKey, num(in.Value), physio.DisplayUnit(in.Unit), in.Status,
 			ts(in.Effective), in.Offset.String(), in.Fallback}), "\t"))
 	}
 	tw.Flush()

@@ -157,7 +157,7 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	key := make([]byte, 32)
 	_, _ = rand.Read(key)
 	c.patientHashKey = hex.EncodeToString(key)
-	fmt.Fprintf(out, "  service   apparatus dead space %g mL, site target PaCO2 %g mm[Hg] (not a patient's goal), pairing window %s before to %s after each blood gas; logs in %s\n",
+	fmt.Fprintf(out, "  service   apparatus dead space %g mL, site target PaCO2 %g mmHg (not a patient's goal), pairing window %s before to %s after each blood gas; logs in %s\n",
 		c.apparatusDeadSpaceML, c.targetPaCO2mmHg, c.pipeline.Window.Before, c.pipeline.Window.After, logPath)
 
 	svcCtx, stopSvc := context.WithCancel(ctx)
