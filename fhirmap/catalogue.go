@@ -70,7 +70,7 @@ var Catalogue = []KindInfo{
 		Display:    "Estimated dead-space fraction (VD/VT), VCO2 estimated from resting energy expenditure",
 		Definition: "Dead-space fraction with CO2 production estimated, not measured: resting energy expenditure from an energy equation, converted to VCO2 with the Weir equation and an assumed respiratory quotient. Always an estimate, flagged when a measured dead-space fraction is derived for the same blood gas; read against no threshold (its source gives none, and those of measured dead space do not apply).",
 		Unit:       "1", Decimals: 3,
-		Formula: "VD/VT = 1 - 0.86 x VCO2est / (VE x PaCO2); VCO2est = REE / (1.440 x (3.941/RQ + 1.106)), REE by Harris-Benedict 1919 (or Roza-Shizgal 1984 when configured)",
+		Formula: "VD/VT = 1 - 0.86 x VCO2est / (VE x PaCO2); VCO2est = REE / (1.440 x (3.941/RQ + 1.106)), REE by Harris-Benedict 1919 (the worked basis names the equation used)",
 		Source:  "Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 [published]; Weir, J Physiol 1949;109:1-9 [published]; Harris & Benedict 1919 [published]",
 		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-sex; no-age; no-height; no-weight; implausible-input; inconsistent-inputs",
 	},

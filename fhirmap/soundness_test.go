@@ -277,3 +277,23 @@ func TestEstimatedDeadSpaceBesideMeasured(t *testing.T) {
 		})
 	}
 }
+
+// TestNoConfigurationPromised: the catalogue (published in the CodeSystem
+// and every note's formula) must not promise a setting that no command
+// offers; the energy equation is not a command setting, so its text names
+// Harris-Benedict 1919 and points to the basis for the equation used
+// [common practice: documentation describes what exists].
+func TestNoConfigurationPromised(t *testing.T) {
+	for _, k := range Catalogue {
+		for _, txt := range []string{k.Display, k.Definition, k.Formula, k.Source} {
+			if strings.Contains(txt, "when configured") || strings.Contains(txt, "unless configured") {
+				t.Errorf("%s promises a configuration: %q", k.Code, txt)
+			}
+		}
+	}
+	ds, _ := DeriveAll(vectorFacts(), DefaultSite())
+	dm, _ := byKind(ds, nil)
+	if b := dm[KindDeadSpaceEstimated].Result.Basis(); !strings.Contains(b, "Harris-Benedict 1919") {
+		t.Errorf("the basis does not name the energy equation used: %q", b)
+	}
+}
