@@ -144,7 +144,7 @@ var Catalogue = []KindInfo{
 		Unit:       "/min", Decimals: 1,
 		Formula: "RRnew = RR x PaCO2 / PaCO2target",
 		Source:  "inverse proportion of PaCO2 and alveolar ventilation at constant VCO2 [derived from the alveolar ventilation equation]",
-		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); target-paco2-not-configured; implausible-input",
+		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); target-paco2-not-configured; implausible-input; target-answer-beyond-model (the answer outside 2-80 /min)",
 	},
 	{
 		Code:       KindTidalVolumeForTarget,
@@ -153,7 +153,7 @@ var Catalogue = []KindInfo{
 		Unit:       "mL", Decimals: 0,
 		Formula: "VTnew = VD + (VT - VD) x PaCO2 / PaCO2target, VD the measured physiologic dead-space volume",
 		Source:  "alveolar ventilation equation at constant VCO2 and dead-space volume [derived]",
-		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); target-paco2-not-configured; implausible-input; inconsistent-inputs",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); target-paco2-not-configured; implausible-input; inconsistent-inputs; target-answer-beyond-model (the answer outside 50-2000 mL)",
 	},
 }
 
@@ -201,6 +201,7 @@ const (
 	ReasonInconsistent     = "inconsistent-inputs"
 	ReasonApparatusNotSet  = "apparatus-dead-space-not-configured"
 	ReasonTargetNotSet     = "target-paco2-not-configured"
+	ReasonBeyondModel      = "target-answer-beyond-model"
 )
 
 // ReasonInfo describes one refusal reason.
@@ -233,5 +234,6 @@ var Reasons = []ReasonInfo{
 	{ReasonImplausible, "an input lies outside its published plausible range (the detail names it)"},
 	{ReasonInconsistent, "the inputs contradict each other (e.g. mixed-expired PCO2 not below PaCO2, end-tidal PCO2 more than 5 mmHg above PaCO2; the detail says which)"},
 	{ReasonApparatusNotSet, "the site has not configured its apparatus dead space; it is never assumed to be zero"},
+	{ReasonBeyondModel, "the breath rate or tidal volume for the target lies outside the range in which the alveolar ventilation equation describes conventional ventilation (rate 2-80 /min, tidal volume 50-2000 mL): the target cannot be reached by that change alone"},
 	{ReasonTargetNotSet, "the site has not configured a target PaCO2; none is assumed, since a usual adult target does not fit chronic hypercapnia or permissive hypercapnia"},
 }

@@ -237,7 +237,10 @@ func (g *gather) fail(err error) {
 		return
 	}
 	reason := ReasonImplausible
-	if errors.Is(err, physio.ErrOutOfMeaning) || errors.Is(err, physio.ErrNotGiven) {
+	switch {
+	case errors.Is(err, physio.ErrBeyondModel):
+		reason = ReasonBeyondModel
+	case errors.Is(err, physio.ErrOutOfMeaning) || errors.Is(err, physio.ErrNotGiven):
 		reason = ReasonInconsistent
 	}
 	g.stop = &stop{reason, errorDetail(err)}

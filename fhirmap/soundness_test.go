@@ -297,3 +297,24 @@ func TestNoConfigurationPromised(t *testing.T) {
 		t.Errorf("the basis does not name the energy equation used: %q", b)
 	}
 }
+
+// TestForTargetBeyondModelRefused: through DeriveAll, a breath rate for the
+// target above 80 /min (RespRateRange: high-frequency ventilation, outside
+// the alveolar ventilation equation [common practice]) is a refusal with
+// its own reason, not a flagged value. RR 35, PaCO2 100, target 40 -> 87.5
+// /min (physiology.md s9 [derived]).
+func TestForTargetBeyondModelRefused(t *testing.T) {
+	site := DefaultSite()
+	site.TargetPaCO2mmHg = 40
+	facts := append(without(vectorFacts(), "abg-1", "rr-1"), arterial("abg-1", 100),
+		newFact("rr-1", QRespRate, 35, -5*time.Minute, detail("total")))
+	_, rs := DeriveAll(facts, site)
+	_, rm := byKind(nil, rs)
+	r, ok := rm[KindRateForTarget]
+	if !ok || r.Reason != ReasonBeyondModel {
+		t.Fatalf("rate for target: %+v, want refusal %s", r, ReasonBeyondModel)
+	}
+	if !strings.Contains(r.Detail, "87.5") || ReasonMeaning(r.Reason) == "" {
+		t.Errorf("detail %q should name the answer; meaning %q", r.Detail, ReasonMeaning(r.Reason))
+	}
+}

@@ -23,6 +23,11 @@ var (
 	// energy equation, apparatus dead space not declared known). Such inputs
 	// are never defaulted silently.
 	ErrNotGiven = errors.New("not given")
+	// ErrBeyondModel: an answer computed from valid inputs lies outside the
+	// range in which the formula describes the patient (a breath rate for a
+	// target PaCO2 beyond RespRateRange, where the bulk-flow alveolar
+	// ventilation equation no longer holds). It is refused, never clamped.
+	ErrBeyondModel = errors.New("outside the range in which the equation holds")
 )
 
 // InputError names the input (or the result) that stopped a derivation.

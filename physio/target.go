@@ -45,6 +45,19 @@ var (
 	targetDef  = constDef{name: "target PaCO2", unit: UnitMmHg, source: "given by the caller, not derived; a patient-specific goal only if the caller made it one"}
 )
 
+// beyondModel refuses an answer for a target outside the input range r of
+// the same quantity: the ranges bound where the alveolar ventilation
+// equation describes conventional ventilation (RespRateRange: above 80 /min
+// is high-frequency ventilation; TidalVolumeRange), so an answer beyond
+// them is not advice the equation can give (ErrBeyondModel).
+func beyondModel(name string, v float64, r Range) error {
+	if finite(v) && v >= r.Min && v <= r.Max {
+		return nil
+	}
+	return &InputError{Input: name, Value: v, Unit: r.Unit, Kind: ErrBeyondModel, Range: r,
+		Detail: "outside " + rangeText(r) + ", the range in which the alveolar ventilation equation describes conventional ventilation; the target cannot be reached by this change alone"}
+}
+
 // flagVT flags a tidal volume outside the advisory bounds per kg PBW.
 func (r *Result) flagVT(vtPerKg float64) {
 	r.addConst(&maxVTDef, MaxVTPerKgPBW)
@@ -67,8 +80,8 @@ func (r *Result) flagVT(vtPerKg float64) {
 // is recorded as the constant "target PaCO2" (given by the caller).
 //
 // It refuses rr outside RespRateRange, paco2 outside PaCO2Range, target
-// outside TargetPaCO2Range, vt outside TidalVolumeRange and pbw outside
-// PBWRange.
+// outside TargetPaCO2Range, vt outside TidalVolumeRange, pbw outside
+// PBWRange, and an answer outside RespRateRange (ErrBeyondModel).
 func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error) {
 	if err := RespRateRange.Check("RR", float64(rr)); err != nil {
 		return Result{}, err
@@ -86,6 +99,9 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 		return Result{}, err
 	}
 	v := float64(rr) * float64(paco2) / float64(target)
+	if err := beyondModel("rate for target", v, RespRateRange); err != nil {
+		return Result{}, err
+	}
 	vtPerKg := float64(vt) / float64(pbw)
 	r := Result{Value: v, Unit: UnitPerMin, Method: methodRateForTarget, MethodVersion: MethodVersion}
 	r.addConst(&targetDef, float64(target))
@@ -118,8 +134,8 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 //
 // It refuses vt outside TidalVolumeRange, vd outside
 // PhysiologicDeadSpaceRange or not below vt (ErrOutOfMeaning), paco2
-// outside PaCO2Range, target outside TargetPaCO2Range and pbw outside
-// PBWRange.
+// outside PaCO2Range, target outside TargetPaCO2Range, pbw outside
+// PBWRange, and an answer outside TidalVolumeRange (ErrBeyondModel).
 func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error) {
 	if err := TidalVolumeRange.Check("VT", float64(vt)); err != nil {
 		return Result{}, err
@@ -140,6 +156,9 @@ func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error)
 		return Result{}, err
 	}
 	v := float64(vd) + float64(vt-vd)*float64(paco2)/float64(target)
+	if err := beyondModel("tidal volume for target", v, TidalVolumeRange); err != nil {
+		return Result{}, err
+	}
 	vtPerKg := v / float64(pbw)
 	r := Result{Value: v, Unit: UnitML, Method: methodVTForTarget, MethodVersion: MethodVersion}
 	r.addConst(&targetDef, float64(target))
