@@ -439,6 +439,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		x.needTarget(g)
 		if g.stop == nil {
 			res, err = physio.RateForTarget(physio.PerMin(rr.Fact.Value), paco2, target, physio.ML(vt.Fact.Value), pbw)
+			x.cautionChronicHypercapnia(g, &res, paco2, err)
 		}
 	case KindTidalVolumeForTarget:
 		vdvt := g.measuredVDVT(paco2)
@@ -451,6 +452,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			if err == nil {
 				g.steps = append(g.steps, vd)
 				res, err = physio.TidalVolumeForTarget(physio.ML(vt.Fact.Value), physio.ML(vd.Value), paco2, target, pbw)
+				x.cautionChronicHypercapnia(g, &res, paco2, err)
 			}
 		}
 	default:
@@ -479,6 +481,28 @@ func (x *deriver) hasMeasuredFraction() bool {
 		}
 	}
 	return false
+}
+
+// cautionChronicHypercapnia reads the bicarbonate and base excess of the
+// blood gas's own sample and, when they show metabolic compensation of a
+// raised PaCO2 (physio.ChronicHypercapnia), cautions a value for a target
+// that a normal target may be harmful. The values read become inputs of the
+// derivation (basis, derivedFrom, Provenance) whether or not they caution.
+func (x *deriver) cautionChronicHypercapnia(g *gather, res *physio.Result, paco2 physio.MmHg, err error) {
+	if err != nil {
+		return
+	}
+	hco3, haveHCO3 := x.sel.Input(RoleBicarbonate)
+	be, haveBE := x.sel.Input(RoleBaseExcess)
+	if haveHCO3 {
+		g.used = append(g.used, hco3)
+	}
+	if haveBE {
+		g.used = append(g.used, be)
+	}
+	if physio.ChronicHypercapnia(paco2, physio.MmolPerL(hco3.Fact.Value), haveHCO3, physio.MmolPerL(be.Fact.Value), haveBE) {
+		res.CautionChronicHypercapnia()
+	}
 }
 
 // needTarget stops a for-target kind when the site has configured no target

@@ -296,6 +296,8 @@ func roleLabel(r Role) string {
 		return "PETCO2"
 	case RoleBirthDate:
 		return "age"
+	case RoleBicarbonate:
+		return "bicarbonate"
 	}
 	return strings.ReplaceAll(string(r), "-", " ")
 }

@@ -318,3 +318,57 @@ func TestForTargetBeyondModelRefused(t *testing.T) {
 		t.Errorf("detail %q should name the answer; meaning %q", r.Detail, ReasonMeaning(r.Reason))
 	}
 }
+
+// TestChronicHypercapniaCaution: bicarbonate and base excess are read from
+// the blood gas's own sample; when they show metabolic compensation of a
+// raised PaCO2 (bicarbonate above 30 mmol/L with PaCO2 above 45 mmHg:
+// acute buffering adds about 1 mmol/L per 10 mmHg, Brandis, Acid-Base
+// Physiology 4.5 [published]; base excess above +2 mmol/L without
+// bicarbonate [common practice]) both values for a target are cautioned
+// and the values read are their inputs. A venous bicarbonate, or one of
+// another time, is not of the sample.
+func TestChronicHypercapniaCaution(t *testing.T) {
+	site := DefaultSite()
+	site.TargetPaCO2mmHg = 40
+	base := append(without(vectorFacts(), "abg-1"), arterial("abg-1", 60))
+	hco3 := func(v float64, opts ...factOpt) Fact {
+		return newFact("abg-1-hco3", QBicarbonate, v, 0, append([]factOpt{specimen(SpecimenArterial)}, opts...)...)
+	}
+	for _, c := range []struct {
+		name     string
+		extra    []Fact
+		caution  bool
+		inputHas Role
+	}{
+		{"HCO3_34_same_time_cautioned", []Fact{hco3(34)}, true, RoleBicarbonate},
+		{"HCO3_26_acute_not_cautioned", []Fact{hco3(26)}, false, RoleBicarbonate},
+		{"HCO3_34_venous_not_of_the_sample", []Fact{hco3(34, specimen(SpecimenVenous))}, false, ""},
+		{"HCO3_34_ten_minutes_later_not_of_the_sample", []Fact{hco3(34, func(f *Fact) { f.Effective = f.Effective.Add(10 * time.Minute) })}, false, ""},
+		{"BE_6_without_HCO3_cautioned", []Fact{newFact("abg-1-be", QBaseExcess, 6, 0, specimen(SpecimenArterial))}, true, RoleBaseExcess},
+		{"nothing_sent_not_cautioned", nil, false, ""},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			ds, rs := DeriveAll(append(slices.Clone(base), c.extra...), site)
+			dm, rm := byKind(ds, rs)
+			for _, k := range []string{KindRateForTarget, KindTidalVolumeForTarget} {
+				d, ok := dm[k]
+				if !ok {
+					t.Fatalf("%s refused: %+v", k, rm[k])
+				}
+				if got := slices.Contains(d.Result.Flags(), physio.FlagChronicHypercapnia); got != c.caution {
+					t.Errorf("%s cautioned %v, want %v", k, got, c.caution)
+				}
+				used := false
+				for _, in := range d.Inputs {
+					used = used || in.Role == c.inputHas
+				}
+				if c.inputHas != "" && !used {
+					t.Errorf("%s: %s read but not recorded as an input", k, c.inputHas)
+				}
+			}
+			if d := dm[KindDeadSpaceVCO2]; slices.Contains(d.Result.Flags(), physio.FlagChronicHypercapnia) {
+				t.Errorf("a value not for a target was cautioned")
+			}
+		})
+	}
+}
