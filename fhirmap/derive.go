@@ -577,9 +577,38 @@ func publishedInterpretation(kind string, v float64, flags []string) (physio.Int
 	return physio.Interpretation{}, false
 }
 
+// MaxInputSpan is the longest time between the blood gas and the ventilator
+// readings of one value (any two of them) before the value is flagged
+// physio.FlagInputsApart. Why 15 min: PaO2 settles within about 10 min of
+// a ventilator change (Cakar et al., Intensive Care Med 2001;27:655-9
+// [published]), while PaCO2 settles more slowly because the body's CO2
+// stores are large [common practice]; readings further apart than that
+// may straddle a change, and the default pairing window (30 min before to
+// 10 min after) allows up to 40 min between two inputs. The limit flags;
+// it does not refuse, since a steady patient's readings stay valid longer.
+const MaxInputSpan = 15 * time.Minute
+
+// inputSpan returns the time between the earliest and the latest of the
+// blood gas and the window inputs (patient-level and same-sample inputs do
+// not count: they are not readings of the moment).
+func inputSpan(used []Input) time.Duration {
+	var lo, hi time.Duration
+	for _, in := range used {
+		switch in.Role {
+		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess:
+			continue
+		}
+		lo, hi = min(lo, in.Offset), max(hi, in.Offset)
+	}
+	return hi - lo
+}
+
 // derivation builds and seals the Derivation of a computed result. The
 // interpretation is read again on the published (rounded) value.
 func (x *deriver) derivation(kind string, res physio.Result, g *gather) Derivation {
+	if inputSpan(g.used) > MaxInputSpan {
+		res.FlagInputsApart()
+	}
 	if in, ok := publishedInterpretation(kind, res.Value, res.Flags()); ok {
 		res.Interpretation = in
 	}

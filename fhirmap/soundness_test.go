@@ -372,3 +372,44 @@ func TestChronicHypercapniaCaution(t *testing.T) {
 		})
 	}
 }
+
+// TestInputsFarApartFlagged: a value whose inputs were taken far apart (VE
+// 29 min before the blood gas, VCO2 9 min after: 38 min, inside the default
+// window) is flagged, since readings more than MaxInputSpan apart may
+// straddle a ventilator change (PaO2 settles in about 10 min, Cakar et al.,
+// Intensive Care Med 2001;27:655-9 [published]; PaCO2 more slowly [common
+// practice]). Inputs 5 min before the gas are not flagged; patient-level
+// inputs (height, days before) never count.
+func TestInputsFarApartFlagged(t *testing.T) {
+	if want := strconv.Itoa(int(MaxInputSpan.Minutes())) + " min"; !strings.Contains(physio.FlagInputsApart, want) {
+		t.Fatalf("flag text %q does not state the limit %s", physio.FlagInputsApart, want)
+	}
+	apart := append(without(vectorFacts(), "ve-1", "vco2-1"),
+		newFact("ve-1", QMinuteVol, 10, -29*time.Minute, detail("expired")),
+		newFact("vco2-1", QVCO2, 200, 9*time.Minute))
+	for _, c := range []struct {
+		name  string
+		facts []Fact
+		kind  string
+		want  bool
+	}{
+		{"VE_minus_29_VCO2_plus_9_min_flagged", apart, KindDeadSpaceVCO2, true},
+		{"vector_all_minus_5_min_not_flagged", vectorFacts(), KindDeadSpaceVCO2, false},
+		// The gradient uses only the blood gas and PETCO2 (5 min before).
+		{"gradient_of_the_apart_set_not_flagged", apart, KindPaCO2PETCO2Gradient, false},
+		// The ventilatory ratio uses VE (29 min before) and height (days before): 29 min.
+		{"VR_VE_minus_29_min_flagged", apart, KindVentilatoryRatio, true},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			ds, rs := DeriveAll(c.facts, DefaultSite())
+			dm, rm := byKind(ds, rs)
+			d, ok := dm[c.kind]
+			if !ok {
+				t.Fatalf("refused: %+v", rm[c.kind])
+			}
+			if got := slices.Contains(d.Result.Flags(), physio.FlagInputsApart); got != c.want {
+				t.Errorf("flagged %v, want %v (span %s)", got, c.want, inputSpan(d.Inputs))
+			}
+		})
+	}
+}
