@@ -410,7 +410,8 @@ func (d *decoder) value(base Fact, key string, info CodeInfo, coding Coding, spe
 // so that derivedFrom, the Provenance and the store all name it as a FHIR
 // relative reference the service holds (a urn:uuid resolves only inside its
 // Bundle); an absolute http(s) URL is kept as it is, since it resolves on
-// its own. Any other fullUrl gives why it cannot identify the Observation.
+// its own, and so is a relative Observation/<id>. Any other fullUrl gives
+// why it cannot identify the Observation.
 func fullURLIdentity(u string) (ref, why string) {
 	lower := strings.ToLower(u)
 	for _, p := range []string{"urn:uuid:", "urn:oid:"} {
@@ -424,5 +425,10 @@ func fullURLIdentity(u string) (ref, why string) {
 	if strings.HasPrefix(lower, "http://") || strings.HasPrefix(lower, "https://") {
 		return u, ""
 	}
-	return "", "an Observation without an id needs a fullUrl that is urn:uuid, urn:oid or an absolute http(s) URL"
+	// A relative "Observation/<id>" is not a valid fullUrl, but it names
+	// the resource unambiguously: kept, as before.
+	if id, ok := strings.CutPrefix(u, "Observation/"); ok && validID(id) {
+		return u, ""
+	}
+	return "", "an Observation without an id needs a fullUrl that is urn:uuid, urn:oid, an absolute http(s) URL or Observation/<id>"
 }
