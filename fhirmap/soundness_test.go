@@ -90,8 +90,10 @@ func collection(entries ...string) []byte {
 
 // TestBundleVersionsUnderOneFullURL is a regression test: FHIR R4 invariant
 // bdl-7 ("FullUrl must be unique in a bundle, or else entries with the same
-// fullUrl must have different meta.versionId (except in history bundles)",
-// FHIR R4 Bundle resource, hl7.org/fhir/R4/bundle.html [published]) allows
+// fullUrl must have different meta.versionId", expression
+// entry.where(fullUrl).select(fullUrl&resource.meta.versionId).isDistinct(),
+// as the R4 Bundle invariants are listed in published R4 implementation
+// guides' Bundle profiles [published]) allows
 // two versions of one resource under one fullUrl. They are decoded as two
 // versions and Current keeps the higher versionId.
 func TestBundleVersionsUnderOneFullURL(t *testing.T) {
