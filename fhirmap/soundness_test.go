@@ -135,8 +135,9 @@ func at(eff time.Time, p string) factOpt {
 // contract). Its identity becomes Observation/<uuid>, which the stored
 // Resources hold, every derivedFrom names and every Provenance entity
 // names: nothing points at a urn:uuid that resolves only inside the
-// incoming Bundle (FHIR R4 Bundle, "Resolving references in Bundles":
-// urn:uuid references are local to the Bundle [published]).
+// incoming Bundle (a urn:uuid names a resource only within its Bundle, as
+// FHIR's rules for resolving references in Bundles say [common practice;
+// not re-read for this test]).
 func TestPanelMemberWithoutID(t *testing.T) {
 	raw, err := os.ReadFile("testdata/decode/bundle-transaction-hasmember.json")
 	if err != nil {
