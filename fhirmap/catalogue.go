@@ -61,16 +61,16 @@ var Catalogue = []KindInfo{
 		Display:    "Physiologic dead-space fraction (VD/VT) from measured VCO2 and measured minute volume",
 		Definition: "Dead-space fraction by the Enghoff equation with the mixed-expired PCO2 computed from measured CO2 production and measured minute ventilation (expired preferred; steady state, no inspired CO2).",
 		Unit:       "1", Decimals: 3,
-		Formula: "VD/VT = 1 - K(T) x VCO2 / (VE x PaCO2), K(T) = 0.760 x (273 + T)/273 mm[Hg].L/mL at the measured body temperature T (37 Cel when not measured: K = 0.863)",
+		Formula: "VD/VT = 1 - K(T) x VCO2 / (VE x PaCO2), K(T) = 0.760 x (273 + T)/273 mmHg.L/mL at the measured body temperature T (37 °C when not measured: K = 0.863)",
 		Source:  "Enghoff [published] with the alveolar ventilation equation, K from the ideal gas law (VCO2 STPD to VE BTPS at body temperature) [derived]",
 		Refused: "no-vco2; no-minute-volume (none measured: a set minute volume is not used); implausible-input; inconsistent-inputs",
 	},
 	{
 		Code:       KindDeadSpaceEstimated,
 		Display:    "Estimated dead-space fraction (VD/VT), VCO2 estimated from resting energy expenditure",
-		Definition: "Dead-space fraction with CO2 production estimated, not measured: resting energy expenditure from an energy equation, converted to VCO2 with the Weir equation and an assumed respiratory quotient. Always an estimate.",
+		Definition: "Dead-space fraction with CO2 production estimated, not measured: resting energy expenditure from an energy equation, converted to VCO2 with the Weir equation and an assumed respiratory quotient. Always an estimate, flagged when a measured dead-space fraction is derived for the same blood gas; read against no threshold (its source gives none, and those of measured dead space do not apply).",
 		Unit:       "1", Decimals: 3,
-		Formula: "VD/VT = 1 - 0.86 x VCO2est / (VE x PaCO2); VCO2est = REE / (1.440 x (3.941/RQ + 1.106)), REE by Harris-Benedict 1919 (or Roza-Shizgal 1984 when configured)",
+		Formula: "VD/VT = 1 - 0.86 x VCO2est / (VE x PaCO2); VCO2est = REE / (1.440 x (3.941/RQ + 1.106)), REE by Harris-Benedict 1919 (the worked basis names the equation used)",
 		Source:  "Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 [published]; Weir, J Physiol 1949;109:1-9 [published]; Harris & Benedict 1919 [published]",
 		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-sex; no-age; no-height; no-weight; implausible-input; inconsistent-inputs",
 	},
@@ -99,12 +99,12 @@ var Catalogue = []KindInfo{
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "PaCO2pred = K x VCO2 / ((VT - VDanat - VDapp) x RR / 1000); VDanat = 2.2 mL/kg x PBW; PBW (ARDS Network) from height and sex",
 		Source:  "alveolar ventilation equation [published]; Radford, J Appl Physiol 1955 [published]; ARDS Network, NEJM 2000;342:1301-8 [published]",
-		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-height; no-sex; apparatus-dead-space-not-configured; implausible-input; inconsistent-inputs (VT not above dead space)",
+		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-sex; no-height; apparatus-dead-space-not-configured; implausible-input; inconsistent-inputs (VT not above dead space)",
 	},
 	{
 		Code:       KindPaCO2Discrepancy,
 		Display:    "Measured minus predicted PaCO2",
-		Definition: "Arterial PCO2 minus the predicted PaCO2: a large positive difference means more dead space (or CO2 production) than the prediction assumes.",
+		Definition: "Arterial PCO2 minus the predicted PaCO2 (made with a measured VCO2): a large positive difference means more dead space than the prediction assumes (alveolar dead space) or an input error; a large negative one is physiologically implausible (physiologic dead space cannot be smaller than anatomic plus apparatus dead space) and is flagged as a likely input error or an overestimated anatomic dead space.",
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "PaCO2 - PaCO2pred",
 		Source:  "difference of the measured value and the alveolar-ventilation prediction [derived]",
@@ -113,11 +113,11 @@ var Catalogue = []KindInfo{
 	{
 		Code:       KindVentilatoryRatio,
 		Display:    "Ventilatory ratio (VR)",
-		Definition: "Ratio of the measured minute ventilation and PaCO2 product to the predicted product (100 mL/kg/min predicted body weight, PaCO2 37.5 mm[Hg]); near 1 in healthy lungs.",
+		Definition: "Ratio of the measured minute ventilation and PaCO2 product to the predicted product (100 mL/kg/min predicted body weight, PaCO2 37.5 mmHg); near 1 in healthy lungs.",
 		Unit:       "1", Decimals: 2,
-		Formula: "VR = (VE[mL/min] x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mm[Hg])",
-		Source:  "Sinha et al., Br J Anaesth 2009;102:692-697 [published]; mm[Hg] form, Sinha et al., AJRCCM 2019 [published]",
-		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-height; no-sex; implausible-input",
+		Formula: "VR = (VE[mL/min] x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mmHg)",
+		Source:  "Sinha et al., Br J Anaesth 2009;102:692-697 [published]; mmHg form, Sinha et al., AJRCCM 2019 [published]",
+		Refused: "no-minute-volume (none measured: a set minute volume is not used); no-sex; no-height; implausible-input",
 	},
 	{
 		Code:       KindPaCO2PETCO2Gradient,
@@ -126,7 +126,7 @@ var Catalogue = []KindInfo{
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "Pa-ETCO2 = PaCO2 - PETCO2",
 		Source:  "Nunn & Hill, J Appl Physiol 1960 [published]; Tyburski et al., J Trauma 2002;53:738 [published]",
-		Refused: "no-etco2; implausible-input; inconsistent-inputs (PETCO2 more than 5 mm[Hg] above PaCO2)",
+		Refused: "no-etco2; implausible-input; inconsistent-inputs (PETCO2 more than 5 mmHg above PaCO2)",
 	},
 	{
 		Code:       KindAlveolarDeadSpace,
@@ -144,7 +144,7 @@ var Catalogue = []KindInfo{
 		Unit:       "/min", Decimals: 1,
 		Formula: "RRnew = RR x PaCO2 / PaCO2target",
 		Source:  "inverse proportion of PaCO2 and alveolar ventilation at constant VCO2 [derived from the alveolar ventilation equation]",
-		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); target-paco2-not-configured; implausible-input",
+		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); target-paco2-not-configured; implausible-input; target-answer-beyond-model (the answer outside 2-80 /min)",
 	},
 	{
 		Code:       KindTidalVolumeForTarget,
@@ -153,7 +153,7 @@ var Catalogue = []KindInfo{
 		Unit:       "mL", Decimals: 0,
 		Formula: "VTnew = VD + (VT - VD) x PaCO2 / PaCO2target, VD the measured physiologic dead-space volume",
 		Source:  "alveolar ventilation equation at constant VCO2 and dead-space volume [derived]",
-		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); target-paco2-not-configured; implausible-input; inconsistent-inputs",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); target-paco2-not-configured; implausible-input; inconsistent-inputs; target-answer-beyond-model (the answer outside 50-2000 mL)",
 	},
 }
 
@@ -201,6 +201,7 @@ const (
 	ReasonInconsistent     = "inconsistent-inputs"
 	ReasonApparatusNotSet  = "apparatus-dead-space-not-configured"
 	ReasonTargetNotSet     = "target-paco2-not-configured"
+	ReasonBeyondModel      = "target-answer-beyond-model"
 )
 
 // ReasonInfo describes one refusal reason.
@@ -218,7 +219,7 @@ var Reasons = []ReasonInfo{
 	{ReasonUnknownSpecimen, "the PCO2 code does not name the blood and no coded Specimen says arterial, or the code, the Specimen and the panel name different blood (the detail says which)"},
 	{ReasonEnteredInError, "the blood gas was entered in error; values derived from it are withdrawn"},
 	{ReasonBloodGasNotUsable, "the blood gas status is registered, cancelled or unknown: there is no result to use"},
-	{ReasonTemperatureAdjusted, "the PaCO2 was adjusted to the patient's temperature; the formulas use PaCO2 measured at 37 Cel"},
+	{ReasonTemperatureAdjusted, "the PaCO2 was adjusted to the patient's temperature; the formulas use PaCO2 measured at 37 °C"},
 	{ReasonNoVentilatorData, "no usable ventilator reading of the patient (same encounter) lies in the pairing window"},
 	{ReasonNoMinuteVolume, "no measured minute volume (expired, unstated or inspired) in the pairing window; a set minute volume is not a measurement of ventilation and is not used"},
 	{ReasonNoVCO2, "no measured CO2 production (VCO2), and for dead-space volume no mixed-expired PCO2 either, in the pairing window"},
@@ -231,7 +232,8 @@ var Reasons = []ReasonInfo{
 	{ReasonNoAge, "no birth date of the patient: the energy equation needs the age"},
 	{ReasonNoWeight, "no body weight of the patient: the energy equation needs it"},
 	{ReasonImplausible, "an input lies outside its published plausible range (the detail names it)"},
-	{ReasonInconsistent, "the inputs contradict each other (e.g. mixed-expired PCO2 not below PaCO2, end-tidal PCO2 more than 5 mm[Hg] above PaCO2; the detail says which)"},
+	{ReasonInconsistent, "the inputs contradict each other (e.g. mixed-expired PCO2 not below PaCO2, end-tidal PCO2 more than 5 mmHg above PaCO2; the detail says which)"},
 	{ReasonApparatusNotSet, "the site has not configured its apparatus dead space; it is never assumed to be zero"},
+	{ReasonBeyondModel, "the breath rate or tidal volume for the target lies outside the range in which the alveolar ventilation equation describes conventional ventilation (rate 2-80 /min, tidal volume 50-2000 mL): the target cannot be reached by that change alone"},
 	{ReasonTargetNotSet, "the site has not configured a target PaCO2; none is assumed, since a usual adult target does not fit chronic hypercapnia or permissive hypercapnia"},
 }

@@ -378,7 +378,7 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 		return refuse(-1, "Bundle.entry", "too-many-entries", fmt.Sprintf("more than %d entries", MaxBundleEntries))
 	}
 
-	r := resolver{byURL: map[string]int{}, byRef: map[string]int{}, types: make([]string, len(b.Entry)), ids: make([]string, len(b.Entry))}
+	r := resolver{byURL: map[string]int{}, versions: map[string][]int{}, byRef: map[string]int{}, types: make([]string, len(b.Entry)), ids: make([]string, len(b.Entry))}
 	for i, en := range b.Entry {
 		root := fmt.Sprintf("Bundle.entry[%d]", i)
 		if len(en.Resource) == 0 {
@@ -411,10 +411,17 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 		r.types[i] = rt
 		r.ids[i] = peekTopString(res, "id")
 		if u := deref(en.FullUrl); u != "" {
-			if _, dup := r.byURL[u]; dup {
-				return refuse(i, root+".fullUrl", "bad-reference", "fullUrl appears twice in the Bundle")
+			if first, dup := r.byURL[u]; dup {
+				// FHIR R4 invariant bdl-7: a fullUrl may repeat only for
+				// entries with different meta.versionId (versions of one
+				// resource). Current then picks the version to use.
+				if why := r.sameResourceVersions(u, first, i, rt, res, b.Entry); why != "" {
+					return refuse(i, root+".fullUrl", "bad-reference", why)
+				}
+			} else {
+				r.byURL[u] = i
 			}
-			r.byURL[u] = i
+			r.versions[u] = append(r.versions[u], i)
 		}
 		if r.ids[i] != "" {
 			r.byRef[rt+"/"+r.ids[i]] = i
@@ -471,7 +478,11 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 			if !ok || obs[j] == nil {
 				continue // the member arrives separately
 			}
-			obs[j].inherited = append(obs[j].inherited, info.Specimen, claim)
+			for _, v := range r.allVersions(j, deref(m.Reference)) {
+				if obs[v] != nil {
+					obs[v].inherited = append(obs[v].inherited, info.Specimen, claim)
+				}
+			}
 		}
 	}
 
@@ -497,8 +508,9 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 
 // resolver finds Bundle entries by reference.
 type resolver struct {
-	byURL     map[string]int // fullUrl -> entry
-	byRef     map[string]int // "Type/id" -> entry
+	byURL     map[string]int   // fullUrl -> its first entry
+	versions  map[string][]int // fullUrl -> every entry under it (versions, bdl-7)
+	byRef     map[string]int   // "Type/id" -> entry
 	types     []string
 	ids       []string
 	obs       []*obsEntry
@@ -518,6 +530,50 @@ func (r *resolver) find(ref string) (int, bool) {
 	}
 	i, ok := r.byRef[ref]
 	return i, ok
+}
+
+// allVersions returns every entry holding a version of the resource of
+// entry i, found by ref: the entries sharing its fullUrl (bdl-7), or i alone.
+func (r *resolver) allVersions(i int, ref string) []int {
+	if vs := r.versions[ref]; len(vs) > 1 {
+		return vs
+	}
+	return []int{i}
+}
+
+// sameResourceVersions checks that entry i may share fullUrl u with the
+// entries already under it (first among them): FHIR R4 bdl-7 allows a
+// repeated fullUrl only when the entries carry different meta.versionId.
+// The entries must also be of one resource type and id, or they are not
+// versions of one resource. It returns why not, or "".
+func (r *resolver) sameResourceVersions(u string, first, i int, rt string, res []byte, entries []fhir.BundleEntry) string {
+	if rt != r.types[first] || r.ids[i] != r.ids[first] {
+		return "fullUrl appears twice in the Bundle for different resources"
+	}
+	v := peekVersionID(res)
+	if v == "" {
+		return "fullUrl appears twice in the Bundle without meta.versionId (FHIR R4 bdl-7)"
+	}
+	for _, j := range r.versions[u] {
+		if peekVersionID(bytes.TrimSpace(entries[j].Resource)) == v {
+			return "fullUrl appears twice in the Bundle with the same meta.versionId (FHIR R4 bdl-7)"
+		}
+	}
+	return ""
+}
+
+// peekVersionID reads meta.versionId of a resource, or "" when it has none
+// or is malformed (the strict decoder reports that).
+func peekVersionID(res []byte) string {
+	var m struct {
+		Meta struct {
+			VersionID string `json:"versionId"`
+		} `json:"meta"`
+	}
+	if json.Unmarshal(res, &m) != nil {
+		return ""
+	}
+	return m.Meta.VersionID
 }
 
 // name is the reference used for an entry in Ignored.

@@ -3,6 +3,7 @@ package fhirmap
 import (
 	"bytes"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/samply/golang-fhir-models/fhir-models/fhir"
@@ -146,7 +147,10 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 		}
 		ref = "Observation/" + id
 	} else if e.fullURL != "" {
-		ref = e.fullURL
+		var why string
+		if ref, why = fullURLIdentity(e.fullURL); why != "" {
+			return refuse(e.entry, strings.TrimSuffix(e.root, ".resource")+".fullUrl", "bad-reference", why)
+		}
 	}
 	if !found && !anyComponent {
 		d.out.Ignored = append(d.out.Ignored, Ignored{Reference: orPath(ref, e), Reason: "unknown-code"})
@@ -398,4 +402,33 @@ func (d *decoder) value(base Fact, key string, info CodeInfo, coding Coding, spe
 	f.Value = val
 	d.out.Facts = append(d.out.Facts, f)
 	return nil
+}
+
+// fullURLIdentity is the identity of a Bundle Observation that has no id:
+// "Observation/<uuid>" for a fullUrl urn:uuid:<uuid> (lower case: RFC 4122
+// UUIDs compare case-insensitively) and "Observation/<oid>" for urn:oid:<oid>,
+// so that derivedFrom, the Provenance and the store all name it as a FHIR
+// relative reference the service holds (a urn:uuid resolves only inside its
+// Bundle); an absolute http(s) URL is kept as it is, since it resolves on
+// its own, and so is a relative Observation/<id>. Any other fullUrl gives
+// why it cannot identify the Observation.
+func fullURLIdentity(u string) (ref, why string) {
+	lower := strings.ToLower(u)
+	for _, p := range []string{"urn:uuid:", "urn:oid:"} {
+		if rest, ok := strings.CutPrefix(lower, p); ok {
+			if !validID(rest) {
+				return "", "the fullUrl " + p + " part is not usable as a FHIR id"
+			}
+			return "Observation/" + rest, ""
+		}
+	}
+	if strings.HasPrefix(lower, "http://") || strings.HasPrefix(lower, "https://") {
+		return u, ""
+	}
+	// A relative "Observation/<id>" is not a valid fullUrl, but it names
+	// the resource unambiguously: kept, as before.
+	if id, ok := strings.CutPrefix(u, "Observation/"); ok && validID(id) {
+		return u, ""
+	}
+	return "", "an Observation without an id needs a fullUrl that is urn:uuid, urn:oid, an absolute http(s) URL or Observation/<id>"
 }

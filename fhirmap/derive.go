@@ -237,7 +237,10 @@ func (g *gather) fail(err error) {
 		return
 	}
 	reason := ReasonImplausible
-	if errors.Is(err, physio.ErrOutOfMeaning) || errors.Is(err, physio.ErrNotGiven) {
+	switch {
+	case errors.Is(err, physio.ErrBeyondModel):
+		reason = ReasonBeyondModel
+	case errors.Is(err, physio.ErrOutOfMeaning) || errors.Is(err, physio.ErrNotGiven):
 		reason = ReasonInconsistent
 	}
 	g.stop = &stop{reason, errorDetail(err)}
@@ -389,6 +392,9 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 				Sex: sex, Age: age, Weight: physio.Kg(w.Fact.Value), Height: physio.Cm(h.Fact.Value),
 				Equation: x.site.Energy, RQ: x.rq(),
 			})
+			if err == nil && x.hasMeasuredFraction() {
+				res.MarkMeasuredFractionExists()
+			}
 		}
 	case KindDeadSpaceVolume:
 		vdvt := g.measuredVDVT(paco2)
@@ -408,7 +414,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			res = pred
 		} else if g.stop == nil {
 			g.steps = append(g.steps, pred)
-			res, err = physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value))
+			res, err = physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value), physio.VCO2Measured)
 		}
 	case KindVentilatoryRatio:
 		ve, _ := g.measuredVE()
@@ -433,6 +439,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		x.needTarget(g)
 		if g.stop == nil {
 			res, err = physio.RateForTarget(physio.PerMin(rr.Fact.Value), paco2, target, physio.ML(vt.Fact.Value), pbw)
+			x.cautionChronicHypercapnia(g, &res, paco2, err)
 		}
 	case KindTidalVolumeForTarget:
 		vdvt := g.measuredVDVT(paco2)
@@ -445,6 +452,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			if err == nil {
 				g.steps = append(g.steps, vd)
 				res, err = physio.TidalVolumeForTarget(physio.ML(vt.Fact.Value), physio.ML(vd.Value), paco2, target, pbw)
+				x.cautionChronicHypercapnia(g, &res, paco2, err)
 			}
 		}
 	default:
@@ -458,6 +466,43 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		return Derivation{}, x.refusal(kind, g.stop.reason, g.stop.detail, g.used), false
 	}
 	return x.derivation(kind, res, g), Refusal{}, true
+}
+
+// hasMeasuredFraction reports whether a measured dead-space fraction
+// (Bohr-Enghoff from PECO2, or from measured VCO2) is derived for the same
+// blood gas. The estimated fraction is then still published, so that
+// its trend does not break when measurement starts or stops, but flagged
+// and told that the measured value is the one to read: two fractions of one
+// blood gas that disagree must not leave the reader to pick.
+func (x *deriver) hasMeasuredFraction() bool {
+	for _, k := range []string{KindDeadSpaceEnghoff, KindDeadSpaceVCO2} {
+		if _, _, ok := x.derive(k); ok {
+			return true
+		}
+	}
+	return false
+}
+
+// cautionChronicHypercapnia reads the bicarbonate and base excess of the
+// blood gas's own sample and, when they show metabolic compensation of a
+// raised PaCO2 (physio.ChronicHypercapnia), cautions a value for a target
+// that a normal target may be harmful. The values read become inputs of the
+// derivation (basis, derivedFrom, Provenance) whether or not they caution.
+func (x *deriver) cautionChronicHypercapnia(g *gather, res *physio.Result, paco2 physio.MmHg, err error) {
+	if err != nil {
+		return
+	}
+	hco3, haveHCO3 := x.sel.Input(RoleBicarbonate)
+	be, haveBE := x.sel.Input(RoleBaseExcess)
+	if haveHCO3 {
+		g.used = append(g.used, hco3)
+	}
+	if haveBE {
+		g.used = append(g.used, be)
+	}
+	if physio.ChronicHypercapnia(paco2, physio.MmolPerL(hco3.Fact.Value), haveHCO3, physio.MmolPerL(be.Fact.Value), haveBE) {
+		res.CautionChronicHypercapnia()
+	}
 }
 
 // needTarget stops a for-target kind when the site has configured no target
@@ -507,14 +552,18 @@ func (x *deriver) predicted(g *gather) physio.Result {
 // that quantity, so that the interpretation never contradicts the number
 // shown (9.004 is published 9.0 and read "at or below 9"). ok is false for
 // kinds without a reading.
-func publishedInterpretation(kind string, v float64) (physio.Interpretation, bool) {
+func publishedInterpretation(kind string, v float64, flags []string) (physio.Interpretation, bool) {
 	p, err := strconv.ParseFloat(FormatValue(kind, v), 64)
 	if err != nil {
 		return physio.Interpretation{}, false
 	}
 	switch kind {
-	case KindDeadSpaceEnghoff, KindDeadSpaceVCO2, KindDeadSpaceEstimated:
+	case KindDeadSpaceEnghoff, KindDeadSpaceVCO2:
 		return physio.InterpretDeadSpaceFraction(p), true
+	case KindDeadSpaceEstimated:
+		// The flag says whether a measured fraction of the same blood gas
+		// exists (MarkMeasuredFractionExists); the reading must agree.
+		return physio.InterpretEstimatedDeadSpaceFraction(p, slices.Contains(flags, physio.FlagMeasuredFractionExists)), true
 	case KindPaCO2PETCO2Gradient:
 		return physio.InterpretEndTidalGradient(physio.MmHg(p)), true
 	case KindAlveolarDeadSpace:
@@ -522,15 +571,45 @@ func publishedInterpretation(kind string, v float64) (physio.Interpretation, boo
 	case KindVentilatoryRatio:
 		return physio.InterpretVentilatoryRatio(p), true
 	case KindPaCO2Discrepancy:
-		return physio.InterpretPaCO2Discrepancy(physio.MmHg(p)), true
+		// predicted (and so the discrepancy) needs a measured VCO2 input.
+		return physio.InterpretPaCO2Discrepancy(physio.MmHg(p), physio.VCO2Measured), true
 	}
 	return physio.Interpretation{}, false
+}
+
+// MaxInputSpan is the longest time between the blood gas and the ventilator
+// readings of one value (any two of them) before the value is flagged
+// physio.FlagInputsApart. Why 15 min: PaO2 settles within about 10 min of
+// a ventilator change (Cakar et al., Intensive Care Med 2001;27:655-9
+// [published]), while PaCO2 settles more slowly because the body's CO2
+// stores are large [common practice]; readings further apart than that
+// may straddle a change, and the default pairing window (30 min before to
+// 10 min after) allows up to 40 min between two inputs. The limit flags;
+// it does not refuse, since a steady patient's readings stay valid longer.
+const MaxInputSpan = 15 * time.Minute
+
+// inputSpan returns the time between the earliest and the latest of the
+// blood gas and the window inputs (patient-level and same-sample inputs do
+// not count: they are not readings of the moment).
+func inputSpan(used []Input) time.Duration {
+	var lo, hi time.Duration
+	for _, in := range used {
+		switch in.Role {
+		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess:
+			continue
+		}
+		lo, hi = min(lo, in.Offset), max(hi, in.Offset)
+	}
+	return hi - lo
 }
 
 // derivation builds and seals the Derivation of a computed result. The
 // interpretation is read again on the published (rounded) value.
 func (x *deriver) derivation(kind string, res physio.Result, g *gather) Derivation {
-	if in, ok := publishedInterpretation(kind, res.Value); ok {
+	if inputSpan(g.used) > MaxInputSpan {
+		res.FlagInputsApart()
+	}
+	if in, ok := publishedInterpretation(kind, res.Value, res.Flags()); ok {
 		res.Interpretation = in
 	}
 	bg := x.sel.BloodGas

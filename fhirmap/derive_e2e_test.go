@@ -47,7 +47,7 @@ func TestDeriveFromFHIRJSON(t *testing.T) {
 				t.Errorf("identity %s %s %v", d.Patient, d.Encounter, d.Effective)
 			}
 			if in := d.Inputs[0].Fact; in.SourceUnit != "kPa" || math.Abs(in.Value-45) > 0.001 {
-				t.Errorf("PaCO2 input %v %s (sent %v %s), want 45 mm[Hg]", in.Value, in.Unit, in.SourceValue, in.SourceUnit)
+				t.Errorf("PaCO2 input %v %s (sent %v %s), want 45 mmHg", in.Value, in.Unit, in.SourceValue, in.SourceUnit)
 			}
 		})
 	}

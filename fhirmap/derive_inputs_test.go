@@ -1,7 +1,7 @@
 package fhirmap
 
 import (
-	"strconv"
+	"math"
 	"strings"
 	"testing"
 	"time"
@@ -185,27 +185,28 @@ func TestSiteRQRecordedAsAssumedOrConfigured(t *testing.T) {
 	}
 }
 
-// TestConstantsShownWithFullPrecision: a reviewer must be able to redo the
-// sum, so constants are printed as the shortest decimal that reads back as
-// the float64 used (K(37 Cel) = 0.760 x 310/273 [derived, physiology.md s1]).
-func TestConstantsShownWithFullPrecision(t *testing.T) {
+// TestConstantsShownAtReadablePrecision: the notes show constants as a
+// person reads them (K = 0.863, physiology.md s1 [published: Wang et al.
+// 2020]; Harris-Benedict coefficients as published, 13.7516 [published:
+// Harris & Benedict 1919]) with display units, while the derivation's data
+// keep full precision (K = 760 x 310/273/1000 = 0.8630036630036629
+// [derived]) for a reviewer who redoes the arithmetic.
+func TestConstantsShownAtReadablePrecision(t *testing.T) {
 	ds, _ := DeriveAll(vectorFacts(), DefaultSite())
 	dm, _ := byKind(ds, nil)
-	for _, k := range []string{KindDeadSpaceVCO2, KindDeadSpaceEstimated} {
-		d := dm[k]
-		note := noteWith(d, "Constants: ")
-		for _, c := range allConstants(d) {
-			s := c.Name + " = " + strconv.FormatFloat(c.Value, 'g', -1, 64)
-			if !strings.Contains(note, s) {
-				t.Errorf("%s: %q lacks %q", k, note, s)
-			}
-		}
-	}
-	if note := noteWith(dm[KindDeadSpaceVCO2], "Constants: "); !strings.Contains(note, "K = 0.8630036630036") {
-		t.Errorf("K not at full precision: %q", note)
+	vco2 := noteWith(dm[KindDeadSpaceVCO2], "Constants: ")
+	if !strings.Contains(vco2, "K = 0.863 mmHg·L/mL") || strings.Contains(vco2, "0.8630036") {
+		t.Errorf("K not shown as 0.863 mmHg·L/mL: %q", vco2)
 	}
 	if note := noteWith(dm[KindDeadSpaceEstimated], "Constants: "); !strings.Contains(note, "REE weight coefficient = 13.7516 ") {
-		t.Errorf("Harris-Benedict 13.7516 rounded: %q", note)
+		t.Errorf("Harris-Benedict 13.7516 not shown as published: %q", note)
+	}
+	full := false
+	for _, c := range allConstants(dm[KindDeadSpaceVCO2]) {
+		full = full || c.Name == "K" && math.Abs(c.Value-760.0*310/273/1000) < 1e-15 && c.Value != 0.863 && c.Unit == "mm[Hg].L/mL"
+	}
+	if !full {
+		t.Errorf("data lost K at full precision or its UCUM unit: %+v", allConstants(dm[KindDeadSpaceVCO2]))
 	}
 }
 
@@ -247,7 +248,7 @@ func TestTargetPaCO2MustBeConfigured(t *testing.T) {
 				t.Fatalf("%s refused: %+v", k, rm[k])
 			}
 			a := noteWith(d, "Assumptions: ")
-			if !strings.Contains(a, "target PaCO2 55 mm[Hg] is the site's configured target, not a patient-specific goal; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target") {
+			if !strings.Contains(a, "target PaCO2 55 mmHg is the site's configured target, not a patient-specific goal; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target") {
 				t.Errorf("%s: %q", k, a)
 			}
 		}

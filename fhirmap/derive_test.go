@@ -41,7 +41,7 @@ func TestDeriveReferenceVector(t *testing.T) {
 		{"vdvt_estimated_HB1919_K0.86_is_0.64040", KindDeadSpaceEstimated, 0.64040, 0.00005, "physiology.md s3/s11: Harris-Benedict VCO2 188.16 mL/min -> 0.64040 [derived]; Siddiki 2010 [published]"},
 		{"ventilatory_ratio_is_1.7005", KindVentilatoryRatio, 1.7005, 0.00005, "physiology.md s6/s11: PBW 70.566 kg, VE 10 L/min, PaCO2 45 -> VR 1.7005 [derived]; Sinha 2009 [published]"},
 		{"avdsf_is_0.2222", KindAlveolarDeadSpace, 0.2222, 0.00005, "physiology.md s8/s11: PaCO2 45, PETCO2 35 -> 0.222 [derived]"},
-		{"gradient_is_10_mmHg", KindPaCO2PETCO2Gradient, 10, 1e-9, "physiology.md s8: PaCO2 45, PETCO2 35 -> 10 mm[Hg] [derived]"},
+		{"gradient_is_10_mmHg", KindPaCO2PETCO2Gradient, 10, 1e-9, "physiology.md s8: PaCO2 45, PETCO2 35 -> 10 mmHg [derived]"},
 		{"alveolar_ventilation_is_3.836_L_per_min", KindAlveolarVentilation, 3.836, 0.0005, "physiology.md s11: VA = 10 x (1 - 0.61644) = 3.836 L/min [derived]"},
 		{"deadspace_volume_is_308.2_mL", KindDeadSpaceVolume, 0.61644 * 500, 0.03, "physiology.md s11 VD/VT 0.61644 x VT 500 mL [derived]"},
 		{"rate_for_target_40_is_22.5_per_min", KindRateForTarget, 22.5, 1e-9, "physiology.md s9: RR_new = RR x PaCO2 / target = 20 x 45/40 [derived]"},
@@ -149,7 +149,7 @@ func TestDeriveSectionChecks(t *testing.T) {
 				newFact("sex", QSex, 0, -time.Hour, fromPatient("sex"), text("male")), newFact("h", QHeight, 172.38, -time.Hour)},
 			site: func(s *Site) { s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 0, true },
 			kind: KindPaCO2Discrepancy, want: 45 - 0.863004*200/5.4, tol: 0.01,
-			source: "physiology.md s7 predicted 31.96 mm[Hg] [derived]; difference [derived]",
+			source: "physiology.md s7 predicted 31.96 mmHg [derived]; difference [derived]",
 		},
 	}
 	for _, tc := range tests {
@@ -195,7 +195,7 @@ func TestDeriveRefusals(t *testing.T) {
 		{"unspecified_blood", replace(arterial("abg-1", 45, specimen(SpecimenUnknown))), KindDeadSpaceVCO2, ReasonUnknownSpecimen, "unspecified"},
 		{"blood_gas_entered_in_error", replace(arterial("abg-1", 45, status(StatusEnteredInError))), KindDeadSpaceVCO2, ReasonEnteredInError, ""},
 		{"blood_gas_cancelled", replace(arterial("abg-1", 45, status(StatusCancelled))), KindDeadSpaceVCO2, ReasonBloodGasNotUsable, "cancelled"},
-		{"temperature_corrected_paco2", replace(arterial("abg-1", 45, func(f *Fact) { f.TempCorrected = true })), KindDeadSpaceVCO2, ReasonTemperatureAdjusted, "37 Cel"},
+		{"temperature_corrected_paco2", replace(arterial("abg-1", 45, func(f *Fact) { f.TempCorrected = true })), KindDeadSpaceVCO2, ReasonTemperatureAdjusted, "37 °C"},
 		{"PaCO2_300_mmHg_implausible", replace(arterial("abg-1", 300)), KindAlveolarDeadSpace, ReasonImplausible, "PaCO2"},
 		{"no_ventilator_data_only_stale_reading_45_min_before", append(without(base, "ve-1", "vco2-1", "etco2-1", "vt-1", "rr-1"),
 			newFact("ve-old", QMinuteVol, 10, -45*time.Minute, detail("expired"))), KindDeadSpaceVCO2, ReasonNoVentilatorData, "45 min before"},

@@ -136,7 +136,7 @@ func observation(d Derivation, version int, site Site) (fhir.Observation, error)
 	seen := map[string]bool{}
 	for _, in := range d.Inputs {
 		r := in.Fact.Resource
-		if !strings.HasPrefix(r, "Observation/") || seen[r] {
+		if !isObservationRef(r) || seen[r] {
 			continue // derivedFrom may not point at a Patient; Provenance lists it
 		}
 		seen[r] = true
@@ -171,8 +171,8 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 		what := "the advisory value"
 		if d.Result.Unit != "" && !math.IsNaN(d.Result.Value) && !math.IsInf(d.Result.Value, 0) {
 			what += " " + FormatValue(k.Code, d.Result.Value)
-			if k.Unit != "1" {
-				what += " " + k.Unit
+			if u := physio.DisplayUnit(k.Unit); u != "" {
+				what += " " + u
 			}
 		}
 		if version > 1 {
@@ -201,9 +201,9 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 	if cs := allConstants(d); len(cs) > 0 {
 		parts := make([]string, len(cs))
 		for i, c := range cs {
-			parts[i] = c.Name + " = " + constNum(c.Value)
-			if c.Unit != "" && c.Unit != "1" {
-				parts[i] += " " + c.Unit
+			parts[i] = c.Name + " = " + physio.DisplayNumber(c.Value)
+			if u := physio.DisplayUnit(c.Unit); u != "" {
+				parts[i] += " " + u
 			}
 			if c.Source != "" {
 				parts[i] += " (" + c.Source + ")"
@@ -249,7 +249,7 @@ func targetAssumption(d Derivation) string {
 	}
 	for _, c := range d.Result.Constants() {
 		if c.Name == "target PaCO2" {
-			return "target PaCO2 " + constNum(c.Value) + " mm[Hg] is the site's configured target, not a patient-specific goal; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target"
+			return "target PaCO2 " + physio.DisplayNumber(c.Value) + " mmHg is the site's configured target, not a patient-specific goal; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target"
 		}
 	}
 	return ""
@@ -296,6 +296,8 @@ func roleLabel(r Role) string {
 		return "PETCO2"
 	case RoleBirthDate:
 		return "age"
+	case RoleBicarbonate:
+		return "bicarbonate"
 	}
 	return strings.ReplaceAll(string(r), "-", " ")
 }
@@ -321,11 +323,11 @@ func describeInput(in Input, bloodGasTime time.Time) string {
 		b.WriteString(f.Text)
 	default:
 		b.WriteString(num(f.Value))
-		if f.Unit != "" && f.Unit != "1" {
-			b.WriteString(" " + f.Unit)
+		if u := physio.DisplayUnit(f.Unit); u != "" {
+			b.WriteString(" " + u)
 		}
 		if f.SourceUnit != "" && f.SourceUnit != f.Unit {
-			b.WriteString(" (sent as " + num(f.SourceValue) + " " + f.SourceUnit + ")")
+			b.WriteString(" (sent as " + num(f.SourceValue) + " " + physio.DisplayUnit(f.SourceUnit) + ")")
 		}
 	}
 	var attrs []string
@@ -391,7 +393,7 @@ func narrative(d Derivation, k KindInfo, q *fhir.Quantity) string {
 	b.WriteString(html.EscapeString(k.Display))
 	b.WriteString(": ")
 	if q != nil && q.Value != nil {
-		b.WriteString(html.EscapeString(q.Value.String() + " " + k.Unit))
+		b.WriteString(html.EscapeString(strings.TrimSpace(q.Value.String() + " " + physio.DisplayUnit(k.Unit))))
 	} else {
 		b.WriteString("no value")
 	}
@@ -535,6 +537,16 @@ func provenance(d Derivation, version int, recorded time.Time, site Site) (fhir.
 		})
 	}
 	return p, nil
+}
+
+// isObservationRef reports whether an input's resource reference names an
+// Observation: relative "Observation/<id>", or an absolute URL (kept from a
+// Bundle fullUrl) whose path holds "/Observation/".
+func isObservationRef(r string) bool {
+	if strings.HasPrefix(r, "Observation/") {
+		return true
+	}
+	return (strings.HasPrefix(r, "http://") || strings.HasPrefix(r, "https://")) && strings.Contains(r, "/Observation/")
 }
 
 func observationRef(id string, version int) string {
@@ -772,11 +784,6 @@ func fhirTime(t time.Time) string { return t.UTC().Format(time.RFC3339Nano) }
 func fhirInstant(t time.Time) string {
 	return t.UTC().Truncate(time.Millisecond).Format(time.RFC3339Nano)
 }
-
-// constNum renders a constant with full precision (the shortest decimal
-// that reads back as the same float64), so that a reviewer can redo the
-// arithmetic: K at 37 Cel is 0.863003663003663, not 0.863.
-func constNum(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
 
 // num renders a number for a reader: at most 3 decimals, no trailing zeros.
 func num(v float64) string {

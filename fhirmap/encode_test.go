@@ -8,6 +8,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strings"
 	"testing"
 	"time"
@@ -146,12 +147,14 @@ func checkObservation(t *testing.T, b []byte, d Derivation, site Site) {
 			Coding []struct{ System, Code string }
 		}
 		ValueQuantity struct {
-			Value        json.Number
-			System, Code string
+			Value              json.Number
+			System, Code, Unit string
 		}
 		EffectiveDateTime string
 		DerivedFrom       []struct{ Reference string }
 		Note              []struct{ Text string }
+		Interpretation    []struct{ Text string }
+		Text              struct{ Div string }
 	}
 	if err := json.Unmarshal(b, &obs); err != nil {
 		t.Fatal(err)
@@ -169,12 +172,25 @@ func checkObservation(t *testing.T, b []byte, d Derivation, site Site) {
 	if obs.Code.Coding[0].System != site.CodeSystemURL || obs.Code.Coding[0].Code != d.Kind {
 		t.Errorf("code %+v", obs.Code)
 	}
-	// UCUM: system http://unitsofmeasure.org (FHIR R4 Quantity); never the non-UCUM "mmHg".
-	if obs.ValueQuantity.System != "http://unitsofmeasure.org" || obs.ValueQuantity.Code != KindUnit(d.Kind) {
+	// UCUM in the coded field: system http://unitsofmeasure.org (FHIR R4
+	// Quantity), code the kind's UCUM unit, never the non-UCUM "mmHg".
+	if obs.ValueQuantity.System != "http://unitsofmeasure.org" || obs.ValueQuantity.Code != KindUnit(d.Kind) || obs.ValueQuantity.Unit == "mmHg" {
 		t.Errorf("valueQuantity %+v", obs.ValueQuantity)
 	}
-	if strings.Contains(strings.ReplaceAll(string(b), "mm[Hg]", ""), "mmHg") {
-		t.Errorf("output contains the non-UCUM unit mmHg")
+	// Display units in text for people (notes, interpretation text,
+	// narrative): mmHg and °C, not the UCUM codes mm[Hg] and Cel
+	// [common practice]; and no source marked as recalled from memory.
+	texts := []string{obs.Text.Div}
+	for _, n := range obs.Note {
+		texts = append(texts, n.Text)
+	}
+	for _, in := range obs.Interpretation {
+		texts = append(texts, in.Text)
+	}
+	for _, tx := range texts {
+		if strings.Contains(tx, "mm[Hg]") || regexp.MustCompile(`\bCel\b`).MatchString(tx) || strings.Contains(tx, "[memory") {
+			t.Errorf("text for people holds a UCUM code or a [memory] source: %q", tx)
+		}
 	}
 	v, _ := obs.ValueQuantity.Value.Float64()
 	if k, _ := LookupKind(d.Kind); math.Abs(v-d.Result.Value) > 0.5*math.Pow10(-k.Decimals)+1e-12 {

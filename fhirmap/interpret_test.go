@@ -43,7 +43,7 @@ func TestInterpretationOfPublishedValue(t *testing.T) {
 		text      string // substring of the interpretation text
 		source    string
 	}{
-		{"gradient_9.04_published_9.0_is_N", endTidalFacts(45, 35.96), KindPaCO2PETCO2Gradient, "9.0", "N", "at or below 9", "Tyburski 2002 [published]: <= 9 mm[Hg]"},
+		{"gradient_9.04_published_9.0_is_N", endTidalFacts(45, 35.96), KindPaCO2PETCO2Gradient, "9.0", "N", "at or below 9", "Tyburski 2002 [published]: <= 9 mmHg"},
 		{"gradient_9.06_published_9.1_is_H", endTidalFacts(45, 35.94), KindPaCO2PETCO2Gradient, "9.1", "H", "above 9", "Tyburski 2002 [published]"},
 		{"gradient_minus_0.04_published_0.0_is_N", endTidalFacts(45, 45.04), KindPaCO2PETCO2Gradient, "0.0", "N", "at or below 9", "Tyburski 2002 [published]"},
 		{"AVDSF_0.2004_published_0.200_is_N", endTidalFacts(50, 50*(1-0.2004)), KindAlveolarDeadSpace, "0.200", "N", "at or below 0.20", "Tyburski 2002 [published]: <= 0.20"},
@@ -143,7 +143,7 @@ func TestNegativeEndTidalGradient(t *testing.T) {
 		if _, ok := dm[KindPaCO2PETCO2Gradient]; ok {
 			t.Fatalf("derived, want refused")
 		}
-		if r := rm[KindPaCO2PETCO2Gradient]; r.Reason != ReasonInconsistent || !strings.Contains(r.Detail, "more than 5 mm[Hg] above PaCO2") {
+		if r := rm[KindPaCO2PETCO2Gradient]; r.Reason != ReasonInconsistent || !strings.Contains(r.Detail, "more than 5 mmHg above PaCO2") {
 			t.Errorf("refusal %+v", r)
 		}
 	})

@@ -24,7 +24,15 @@ const (
 	RoleBirthDate    Role = "birth-date"    // patient-level
 	RoleHeight       Role = "height"        // patient-level
 	RoleWeight       Role = "weight"        // patient-level, actual body weight
+	RoleBicarbonate  Role = "hco3"          // same blood sample: arterial bicarbonate
+	RoleBaseExcess   Role = "base-excess"   // same blood sample: arterial base excess
 )
+
+// SameSampleTolerance is how far from the blood gas's time a bicarbonate or
+// base excess may lie and still be read as from the same sample, when it is
+// not in the same resource: the values of one sample share its collection
+// time [common practice]; a minute allows for senders that round.
+const SameSampleTolerance = time.Minute
 
 // ReasonNotBloodGas refuses a Select call whose blood gas is not a PCO2
 // fact: a caller's mistake, reported rather than panicking.
@@ -80,6 +88,9 @@ type roleRule struct {
 	patient bool
 	// ventilator marks readings that count as ventilator data in the window.
 	ventilator bool
+	// sameSample marks a value of the blood gas's own sample (see
+	// sameSample): no window, no ranking beyond nearness.
+	sameSample bool
 	// rank returns the preference of a fact (0 best) or false when the fact
 	// cannot fill the role at all.
 	rank func(Fact) (int, bool)
@@ -168,6 +179,11 @@ var (
 	ruleBirth    = roleRule{role: RoleBirthDate, patient: true}
 	ruleHeight   = roleRule{role: RoleHeight, patient: true}
 	ruleWeight   = roleRule{role: RoleWeight, patient: true}
+	// Bicarbonate and base excess come from the blood gas itself (the same
+	// resource, or an arterial value at the same time), never from the
+	// pairing window: they describe that sample.
+	ruleBicarbonate = roleRule{role: RoleBicarbonate, sameSample: true, labels: []string{"arterial bicarbonate of the same sample"}}
+	ruleBaseExcess  = roleRule{role: RoleBaseExcess, sameSample: true, labels: []string{"arterial base excess of the same sample"}}
 	// ruleVentOther marks ventilator readings that no derivation uses but
 	// that show the ventilator feed was present.
 	ruleVentOther = roleRule{ventilator: true}
@@ -204,6 +220,10 @@ func ruleFor(q Quantity) (*roleRule, bool) {
 		return &ruleHeight, true
 	case QWeight:
 		return &ruleWeight, true
+	case QBicarbonate:
+		return &ruleBicarbonate, true
+	case QBaseExcess:
+		return &ruleBaseExcess, true
 	case QPEEP, QPlateau, QMeanAirway, QFETCO2:
 		return &ruleVentOther, true
 	}
@@ -297,6 +317,15 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 			continue
 		}
 		off := f.Effective.Sub(bloodGas.Effective)
+		if rule.sameSample {
+			if f.Status.Usable() && sameSample(f, bloodGas, off) {
+				c := candidate{fact: f, offset: off, rule: rule}
+				if i := roleIndex(rule.role); !has[i] || c.better(best[i]) {
+					best[i], has[i] = c, true
+				}
+			}
+			continue
+		}
 		inWindow := off >= -site.Window.Before && off <= site.Window.After
 		if !f.Status.Usable() {
 			if inWindow && !rule.patient {
@@ -356,6 +385,20 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 var roleOrderArray = [...]Role{
 	RoleBloodGas, RolePECO2, RoleVCO2, RoleMinuteVolume, RoleTidalVolume, RoleRespRate,
 	RolePETCO2, RoleBodyTemp, RoleSex, RoleBirthDate, RoleHeight, RoleWeight,
+	RoleBicarbonate, RoleBaseExcess,
+}
+
+// sameSample reports whether f (a bicarbonate or base excess) belongs to
+// the sample of bloodGas: the same resource (a panel's components), or an
+// arterial value of the same encounter within SameSampleTolerance.
+func sameSample(f, bloodGas Fact, off time.Duration) bool {
+	if f.Resource != "" && f.Resource == bloodGas.Resource {
+		return true
+	}
+	if f.Specimen != SpecimenArterial || off.Abs() > SameSampleTolerance {
+		return false
+	}
+	return bloodGas.Encounter == "" || f.Encounter == "" || f.Encounter == bloodGas.Encounter
 }
 
 func roleIndex(r Role) int {
@@ -394,7 +437,7 @@ func bloodGasRefusal(bg Fact) (reason, detail string) {
 		return ReasonUnknownSpecimen, "PCO2 of unspecified blood (code " + bg.Code.Code + ") and no coded arterial Specimen on the Observation"
 	}
 	if bg.TempCorrected {
-		return ReasonTemperatureAdjusted, "PaCO2 adjusted to the patient's temperature (code " + bg.Code.Code + "); the formulas use PaCO2 measured at 37 Cel"
+		return ReasonTemperatureAdjusted, "PaCO2 adjusted to the patient's temperature (code " + bg.Code.Code + "); the formulas use PaCO2 measured at 37 °C"
 	}
 	if err := physio.PaCO2Range.Check("PaCO2", bg.Value); err != nil {
 		return ReasonImplausible, errorDetail(err)

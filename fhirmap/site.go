@@ -55,7 +55,10 @@ type Site struct {
 
 	// Energy is the resting-energy equation of the estimated dead-space
 	// fraction (VCO2 not measured). Default physio.HarrisBenedict1919, as
-	// in the published method (Siddiki et al., Crit Care 2010).
+	// in the published method (Siddiki et al., Crit Care 2010). No command
+	// sets it, so no published text promises another equation "when
+	// configured"; a library caller may choose Roza-Shizgal 1984, and the
+	// worked basis then names it.
 	Energy physio.EnergyEquation
 	// RQ is the respiratory quotient of the Weir step from energy to VCO2.
 	// Default DefaultRQ (0.8), recorded as assumed (not measured); another

@@ -26,16 +26,16 @@ const (
 
 var (
 	kDefMmHg = constDef{name: "K", unit: "mm[Hg].L/mL",
-		source: "ideal gas law, VCO2 STPD (273 K, 760 mm[Hg], dry) to VA BTPS: 0.760 x (273 + T)/273; 0.863 at 37 Cel [published: Wang et al., Adv Physiol Educ 2020;44:145-152]"}
+		source: "ideal gas law, VCO2 STPD (273 K, 760 mmHg, dry) to VA BTPS: 0.760 x (273 + T)/273; 0.863 at 37 °C [published: Wang et al., Adv Physiol Educ 2020;44:145-152]"}
 	kDefKPa = constDef{name: "K", unit: "kPa.L/mL",
-		source: "ideal gas law, VCO2 STPD (273 K, 101.325 kPa, dry) to VA BTPS: 0.101325 x (273 + T)/273; 0.115058 at 37 Cel [derived]"}
+		source: "ideal gas law, VCO2 STPD (273 K, 101.325 kPa, dry) to VA BTPS: 0.101325 x (273 + T)/273; 0.115058 at 37 °C [derived]"}
 )
 
 // Assumptions shared by the CO2-elimination formulas.
 const (
 	assumeSteadyState = "steady state: CO2 eliminated equals CO2 produced; no inspired CO2 (PICO2 = 0)"
-	assumeTemp37      = "body temperature not measured: 37 Cel assumed"
-	assumeGasStates   = "VCO2 at STPD (0 Cel, 760 mm[Hg], dry); ventilation at BTPS (body temperature, saturated)"
+	assumeTemp37      = "body temperature not measured: 37 °C assumed"
+	assumeGasStates   = "VCO2 at STPD (0 °C, 760 mmHg, dry); ventilation at BTPS (body temperature, saturated)"
 )
 
 // AlveolarConstant returns K of the alveolar ventilation equation
@@ -110,7 +110,7 @@ func PaCO2FromAlveolarVentilation(vco2 MLPerMin, va LPerMin, bodyTemp Celsius) (
 	r.Value = v
 	r.assume(assumeSteadyState)
 	r.assume(assumeGasStates)
-	r.basis("PaCO2 = K(%.1f Cel) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mm[Hg]",
+	r.basis("PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg",
 		float64(t), k, float64(vco2), float64(va), v)
 	return r, nil
 }
@@ -138,7 +138,7 @@ func PaCO2FromAlveolarVentilationKPa(vco2 MLPerMin, va LPerMin, bodyTemp Celsius
 	r.Value = v
 	r.assume(assumeSteadyState)
 	r.assume(assumeGasStates)
-	r.basis("PaCO2 = K(%.1f Cel) x VCO2 / VA = %.6f x %.1f mL/min / %.3f L/min = %.3f kPa",
+	r.basis("PaCO2 = K(%.1f °C) x VCO2 / VA = %.6f x %.1f mL/min / %.3f L/min = %.3f kPa",
 		float64(t), k, float64(vco2), float64(va), v)
 	return r, nil
 }
@@ -169,7 +169,7 @@ func AlveolarVentilationFromPaCO2(vco2 MLPerMin, paco2 MmHg, bodyTemp Celsius) (
 	r.Value = v
 	r.assume(assumeSteadyState)
 	r.assume(assumeGasStates)
-	r.basis("VA = K(%.1f Cel) x VCO2 / PaCO2 = %.4g x %.1f mL/min / %.1f mm[Hg] = %.3f L/min",
+	r.basis("VA = K(%.1f °C) x VCO2 / PaCO2 = %.4g x %.1f mL/min / %.1f mmHg = %.3f L/min",
 		float64(t), k, float64(vco2), float64(paco2), v)
 	return r, nil
 }
@@ -195,7 +195,7 @@ func AlveolarVentilationFromPaCO2KPa(vco2 MLPerMin, paco2 KPa, bodyTemp Celsius)
 	r.Value = v
 	r.assume(assumeSteadyState)
 	r.assume(assumeGasStates)
-	r.basis("VA = K(%.1f Cel) x VCO2 / PaCO2 = %.6f x %.1f mL/min / %.4f kPa = %.3f L/min",
+	r.basis("VA = K(%.1f °C) x VCO2 / PaCO2 = %.6f x %.1f mL/min / %.4f kPa = %.3f L/min",
 		float64(t), k, float64(vco2), float64(paco2), v)
 	return r, nil
 }

@@ -33,7 +33,7 @@ var derivations = []struct {
 	{"PredictedPaCO2", func() (physio.Result, error) {
 		return physio.PredictedPaCO2(physio.PredictedInput{VCO2: 200, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVD: 120, ApparatusVDKnown: true})
 	}},
-	{"PaCO2Discrepancy", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1) }},
+	{"PaCO2Discrepancy", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1, physio.VCO2Measured) }},
 	{"VentilatoryRatio", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }},
 	{"EndTidalGradient", func() (physio.Result, error) { return physio.EndTidalGradient(35, 38) }},
 	{"AlveolarDeadSpaceFraction", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 35) }},

@@ -19,8 +19,9 @@ const (
 	assumeVDVTFromBohr     = "VD/VT from a Bohr-Enghoff derivation in the same steady state"
 	assumeVTExpiredVolumes = "VT is the tidal volume supplied, taken as BTPS; the method needs the expired tidal volume"
 
-	flagVDVTLowVCO2  = "dead-space fraction below 0.15, below the anatomic dead space alone: check the minute volume and VCO2 inputs"
-	flagVDVTLowPECO2 = "dead-space fraction below 0.15, below the anatomic dead space alone: check the mixed-expired PCO2 and PaCO2 inputs"
+	flagVDVTLowVCO2      = "dead-space fraction below 0.15, below the anatomic dead space alone: check the minute volume and VCO2 inputs"
+	flagVDVTLowEstimated = "estimated dead-space fraction below 0.15, below the anatomic dead space alone: the VCO2 from the energy equation is likely above this patient's CO2 production (sedation, paralysis, hypothermia lower it), or check the minute volume and PaCO2"
+	flagVDVTLowPECO2     = "dead-space fraction below 0.15, below the anatomic dead space alone: check the mixed-expired PCO2 and PaCO2 inputs"
 )
 
 // DeadSpaceFractionFloor is the physiologic dead-space fraction below which
@@ -43,7 +44,7 @@ func (r *Result) flagLowVDVT(v float64, flag string) {
 }
 
 var kDefSiddiki = constDef{name: "K", unit: "mm[Hg].L/mL",
-	source: "as published by Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 (0.86; the ideal gas law gives 0.863 at 37 Cel)"}
+	source: "as published by Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 (0.86; the ideal gas law gives 0.863 at 37 °C)"}
 
 // Published readings of the physiologic dead-space fraction.
 var (
@@ -60,6 +61,60 @@ var (
 		Text:   "above 0.3 (healthy adults) and at or above 0.58, the mean at ARDS onset; 0.63 in non-survivors vs 0.54 in survivors, odds of death x1.45 per 0.05 rise",
 		Source: "Nunn & Hill, J Appl Physiol 1960; Nuckton et al., NEJM 2002;346:1281-6"}
 )
+
+// Readings of the estimated dead-space fraction. Its only published source
+// (Siddiki et al., Crit Care 2010, doi 10.1186/cc9206) reports an
+// association with hospital mortality in acute lung injury per 10% increase
+// (adjusted odds ratio 1.07 on day 1, 1.12 on day 3), no normal range and no
+// cut-off; the thresholds of measured dead space (Nunn & Hill, Nuckton) were
+// found with measured VCO2 or PECO2 and are not borrowed.
+var (
+	interpVDVTEstimated = Interpretation{Code: "",
+		Text:   "estimated (VCO2 from an energy equation, not measured): no published normal range or cut-off applies to the estimated fraction, and thresholds found for measured dead space do not apply to it; its source reports only a trend across a cohort with acute lung injury",
+		Source: "Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 [published]: no threshold given"}
+	interpVDVTEstimatedLow = Interpretation{Code: "",
+		Text:   "estimated fraction below 0.15, less than the anatomic dead space alone: a sign that the estimated CO2 production or an input is wrong, not a reading of the lung; no published threshold applies",
+		Source: "Radford, J Appl Physiol 1955 (anatomic dead space about 2.2 mL/kg) [derived]; Siddiki et al., Crit Care 2010 [published]: no threshold given"}
+)
+
+var interpVDVTEstimatedBesideMeasured = Interpretation{Code: "",
+	Text:   "estimated (VCO2 from an energy equation, not measured) while a measured dead-space fraction exists for the same blood gas: read the measured value, not this estimate; no published threshold applies to the estimate",
+	Source: "Siddiki et al., Crit Care 2010, doi 10.1186/cc9206 [published]: the estimate is for when VCO2 is not measured; no threshold given"}
+
+// FlagMeasuredFractionExists is the flag of an estimated dead-space
+// fraction for a blood gas that also has a measured one (see
+// MarkMeasuredFractionExists).
+const FlagMeasuredFractionExists = "a measured dead-space fraction exists for this blood gas: use it; this estimate rests on a population equation for CO2 production"
+
+// InterpretEstimatedDeadSpaceFraction reads an estimated dead-space
+// fraction (DeadSpaceEstimated, UCUM 1); measuredExists says that a
+// measured fraction exists for the same blood gas. It never gives a code:
+// the estimate's published source gives no threshold, and those of
+// measured dead space are not borrowed. Below DeadSpaceFractionFloor the
+// text says the value is implausible; otherwise, with measuredExists, it
+// says to read the measured value. It never fails and does not allocate.
+func InterpretEstimatedDeadSpaceFraction(v float64, measuredExists bool) Interpretation {
+	switch {
+	case v < DeadSpaceFractionFloor:
+		return interpVDVTEstimatedLow
+	case measuredExists:
+		return interpVDVTEstimatedBesideMeasured
+	}
+	return interpVDVTEstimated
+}
+
+// MarkMeasuredFractionExists records on an estimated dead-space fraction
+// (a DeadSpaceEstimated result) that a measured fraction exists for the
+// same blood gas: it adds FlagMeasuredFractionExists and reads the value
+// again with InterpretEstimatedDeadSpaceFraction. The caller knows what
+// else was derived; physio does not. On another result it does nothing.
+func (r *Result) MarkMeasuredFractionExists() {
+	if r.Method != methodSiddiki {
+		return
+	}
+	r.flag(FlagMeasuredFractionExists)
+	r.Interpretation = InterpretEstimatedDeadSpaceFraction(r.Value, true)
+}
 
 // Thresholds of the dead-space fraction readings.
 const (
@@ -116,7 +171,7 @@ func DeadSpaceEnghoff(paco2, peco2 MmHg) (Result, error) {
 	r.assume(assumeMixedExpired)
 	r.assume(assumeSameSteadyState)
 	r.assume(assumeSteadyState)
-	r.basis("VD/VT = (PaCO2 - PECO2) / PaCO2 = (%.1f mm[Hg] - %.1f mm[Hg]) / %.1f mm[Hg] = %.4f",
+	r.basis("VD/VT = (PaCO2 - PECO2) / PaCO2 = (%.1f mmHg - %.1f mmHg) / %.1f mmHg = %.4f",
 		float64(paco2), float64(peco2), float64(paco2), v)
 	return r, nil
 }
@@ -147,7 +202,7 @@ func MixedExpiredPCO2(vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) (Result, erro
 	r.Value = v
 	r.assume(assumeSteadyState)
 	r.assume(assumeExpiredVE)
-	r.basis("PECO2 = K(%.1f Cel) x VCO2 / VE = %.4g x %.1f mL/min / %.2f L/min = %.2f mm[Hg]",
+	r.basis("PECO2 = K(%.1f °C) x VCO2 / VE = %.4g x %.1f mL/min / %.2f L/min = %.2f mmHg",
 		float64(t), k, float64(vco2), float64(ve), v)
 	return r, nil
 }
@@ -191,7 +246,7 @@ func DeadSpaceFromVCO2(paco2 MmHg, vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) 
 	r.assume(assumeSteadyState)
 	r.assume(assumeExpiredVE)
 	r.assume(assumeGasStates)
-	r.basis("VD/VT = 1 - K(%.1f Cel) x VCO2 / (VE x PaCO2) = 1 - %.4g x %.1f mL/min / (%.2f L/min x %.1f mm[Hg]) = %.4f",
+	r.basis("VD/VT = 1 - K(%.1f °C) x VCO2 / (VE x PaCO2) = 1 - %.4g x %.1f mL/min / (%.2f L/min x %.1f mmHg) = %.4f",
 		float64(t), k, float64(vco2), float64(ve), float64(paco2), v)
 	return r, nil
 }
@@ -205,8 +260,10 @@ func DeadSpaceFromVCO2(paco2 MmHg, vco2 MLPerMin, ve LPerMin, bodyTemp Celsius) 
 // (the published method used ventilator rate x expired tidal volume; the
 // assumption recorded says so without claiming what the caller passed).
 // Assumptions label the value estimated. Interpretation as
-// InterpretDeadSpaceFraction; a value below DeadSpaceFractionFloor is
-// flagged.
+// InterpretEstimatedDeadSpaceFraction (no code: the source gives no
+// threshold, and measured-dead-space thresholds are not borrowed); a value
+// below DeadSpaceFractionFloor is flagged, naming the estimated VCO2 (not
+// an input) as the likely cause.
 //
 // It refuses what EstimateVCO2 refuses, paco2 outside PaCO2Range, ve
 // outside MinuteVolumeRange, and a result not strictly between 0 and 1.
@@ -233,8 +290,8 @@ func DeadSpaceEstimated(paco2 MmHg, ve LPerMin, e EnergyInput) (Result, error) {
 		return Result{}, err
 	}
 	r.Value = v
-	r.Interpretation = InterpretDeadSpaceFraction(v)
-	r.flagLowVDVT(v, flagVDVTLowVCO2)
+	r.Interpretation = InterpretEstimatedDeadSpaceFraction(v, false)
+	r.flagLowVDVT(v, flagVDVTLowEstimated)
 	r.assume(assumeSteadyState)
 	r.assume(assumeVentilatorVE)
 	r.basis(c.basisDeadSpace, c.c0, c.w, float64(e.Weight), c.h, float64(e.Height), c.a, float64(e.Age), ree,

@@ -38,7 +38,7 @@ const (
 	// Operands: REE, factor, O2 coefficient, RQ, CO2 coefficient, VCO2.
 	fmtVCO2 = "; VCO2 (estimated) = REE / (1.440 x (3.941/RQ + 1.106)) = %.2f / (%.3f x (%.3f/%.2f + %.3f)) = %.2f mL/min"
 	// Operands: K, VCO2, VE, PaCO2, VD/VT.
-	fmtDSEst = "; VD/VT = 1 - K x VCO2 / (VE x PaCO2) = 1 - %.2f x %.2f mL/min / (%.2f L/min x %.1f mm[Hg]) = %.4f"
+	fmtDSEst = "; VD/VT = 1 - K x VCO2 / (VE x PaCO2) = 1 - %.2f x %.2f mL/min / (%.2f L/min x %.1f mmHg) = %.4f"
 )
 
 func coeffDefs(src string) [4]constDef {

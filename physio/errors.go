@@ -23,6 +23,11 @@ var (
 	// energy equation, apparatus dead space not declared known). Such inputs
 	// are never defaulted silently.
 	ErrNotGiven = errors.New("not given")
+	// ErrBeyondModel: an answer computed from valid inputs lies outside the
+	// range in which the formula describes the patient (a breath rate for a
+	// target PaCO2 beyond RespRateRange, where the bulk-flow alveolar
+	// ventilation equation no longer holds). It is refused, never clamped.
+	ErrBeyondModel = errors.New("outside the range in which the equation holds")
 )
 
 // InputError names the input (or the result) that stopped a derivation.
@@ -46,9 +51,9 @@ func (e *InputError) Error() string {
 	if e.Kind != ErrNotGiven {
 		b.WriteByte(' ')
 		b.WriteString(strconv.FormatFloat(e.Value, 'g', 6, 64))
-		if e.Unit != "" && e.Unit != UnitOne {
+		if u := DisplayUnit(e.Unit); u != "" {
 			b.WriteByte(' ')
-			b.WriteString(e.Unit)
+			b.WriteString(u)
 		}
 	}
 	b.WriteString(": ")
@@ -132,7 +137,7 @@ var (
 	// labelled mm[Hg] (severe hypercapnia) still passes as an extreme
 	// hypocapnia; the floor cannot tell them apart [common practice].
 	PaCO2Range = Range{Min: 10, Max: 250, Unit: UnitMmHg,
-		Why: "healthy 35-45 mm[Hg] [published textbooks]; about 10 in extreme hyperventilation and above 200 in survivors of acute severe asthma [memory]; below 10 most likely kPa sent as mm[Hg] (10 kPa = 75 mm[Hg]) [common practice]"}
+		Why: "healthy 35-45 mmHg [published textbooks]; values near 10 (extreme hyperventilation) and far above 100 (severe acute hypercapnia) are rare [common practice]; below 10 most likely kPa sent as mmHg (10 kPa = 75 mmHg) [common practice]"}
 
 	// TargetPaCO2Range bounds a target PaCO2 for the ventilation-for-target
 	// advice, in mm[Hg]. Why: targets in practice run from mild
@@ -156,7 +161,7 @@ var (
 	// (5.3 kPa sent as "5.3 mm[Hg]" would otherwise give a gradient of about
 	// 40 mm[Hg]) [common practice]. The upper bound matches PaCO2Range.
 	PETCO2Range = Range{Min: 10, Max: 250, Unit: UnitMmHg,
-		Why: "below 10 mm[Hg] means disconnection, sampling fault or very low pulmonary flow, or a kPa value labelled mm[Hg] (usual 4-6.5 kPa) [common practice]; upper bound as PaCO2"}
+		Why: "below 10 mmHg means disconnection, sampling fault or very low pulmonary flow, or a kPa value labelled mmHg (usual 4-6.5 kPa) [common practice]; upper bound as PaCO2"}
 
 	// VCO2Range bounds CO2 production, in mL/min (STPD). Why: about 200
 	// mL/min in a resting adult [published textbooks], about 2.5-3 mL/kg/min;
@@ -176,7 +181,7 @@ var (
 	// 0.863 x 200 mL/min / 40 mm[Hg], textbook VCO2 and PaCO2]; a part of
 	// minute ventilation, so within MinuteVolumeRange with a lower floor.
 	AlveolarVentilationRange = Range{Min: 0.2, Max: 60, Unit: UnitLPerMin,
-		Why: "about 4.3 L/min in health [derived from textbook VCO2 200 mL/min and PaCO2 40 mm[Hg]]; a part of minute ventilation, so at most 60 L/min"}
+		Why: "about 4.3 L/min in health [derived from textbook VCO2 200 mL/min and PaCO2 40 mmHg]; a part of minute ventilation, so at most 60 L/min"}
 
 	// TidalVolumeRange bounds a tidal volume, in mL. Why: 4-10 mL/kg of
 	// predicted body weights 15-140 kg gives about 60-1400 mL [derived from
@@ -186,17 +191,17 @@ var (
 		Why: "4-10 mL/kg of PBW 15-140 kg is about 60-1400 mL [derived]; outside 50-2000 a unit error"}
 
 	// RespRateRange bounds a breath rate, in /min. Why: conventional adult
-	// ventilation runs at about 6-35 /min [memory: the ARDS Network protocol
-	// allows up to 35]; above 80 /min is high-frequency ventilation, where the
+	// ventilation runs at about 6-35 /min [published: the NIH NHLBI ARDS
+	// Network protocol card allows a set rate of 6 to 35 /min]; above 80 /min is high-frequency ventilation, where the
 	// bulk-flow alveolar ventilation equation does not hold [common practice].
 	RespRateRange = Range{Min: 2, Max: 80, Unit: UnitPerMin,
-		Why: "conventional ventilation about 6-35 /min [memory: ARDS Network protocol]; above 80 high-frequency ventilation, outside the equation's validity [common practice]"}
+		Why: "conventional ventilation about 6-35 /min [published: NIH NHLBI ARDS Network protocol card, set rate 6-35 /min]; above 80 high-frequency ventilation, outside the equation's validity [common practice]"}
 
 	// BodyTempRange bounds body temperature, in Cel. Why: therapeutic
 	// hypothermia reaches 32-34 Cel and accidental hypothermia lower; above
 	// 44 Cel is not survivable [common practice].
 	BodyTempRange = Range{Min: 25, Max: 44, Unit: UnitCelsius,
-		Why: "therapeutic hypothermia 32-34 Cel, accidental lower; above 44 not survivable [common practice]"}
+		Why: "therapeutic hypothermia 32-34 °C, accidental lower; above 44 not survivable [common practice]"}
 
 	// WeightRange bounds actual body weight, in kg, for the energy
 	// equations. Why: adult weights [common practice].
@@ -287,5 +292,5 @@ func checkComputed(name string, v float64, r Range) error {
 }
 
 func rangeText(r Range) string {
-	return strconv.FormatFloat(r.Min, 'g', 6, 64) + " to " + strconv.FormatFloat(r.Max, 'g', 6, 64) + " " + r.Unit
+	return strings.TrimSpace(strconv.FormatFloat(r.Min, 'g', 6, 64) + " to " + strconv.FormatFloat(r.Max, 'g', 6, 64) + " " + DisplayUnit(r.Unit))
 }

@@ -109,7 +109,9 @@ func TestRefusals(t *testing.T) {
 			return physio.PredictedPaCO2(physio.PredictedInput{VCO2: 200, VT: 420, RR: 0, AnatomicVD: 150, ApparatusVDKnown: true})
 		}, physio.ErrNotPositive, "RR"},
 		{"RR_high_frequency_300", func() (physio.Result, error) { return physio.RateForTarget(300, 55, 40, 420, 70) }, physio.ErrImplausible, "RR"},
-		{"predicted_PaCO2_NaN", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, physio.MmHg(nan)) }, physio.ErrNotFinite, "predicted PaCO2"},
+		{"predicted_PaCO2_NaN", func() (physio.Result, error) {
+			return physio.PaCO2Discrepancy(45, physio.MmHg(nan), physio.VCO2Measured)
+		}, physio.ErrNotFinite, "predicted PaCO2"},
 		{"PBW_0kg", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 0) }, physio.ErrNotPositive, "PBW"},
 		{"PETCO2_0mmHg", func() (physio.Result, error) { return physio.EndTidalGradient(45, 0) }, physio.ErrNotPositive, "PETCO2"},
 		{"PETCO2_above_PaCO2_fraction", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(35, 38) }, physio.ErrOutOfMeaning, "PETCO2"},
@@ -178,7 +180,7 @@ func TestRangeCheck(t *testing.T) {
 	}
 	t.Run("message_names_range", func(t *testing.T) {
 		err := r.Check("PaCO2", 300)
-		if want := "physio: PaCO2 300 mm[Hg]: physiologically implausible (plausible 10 to 250 mm[Hg])"; err.Error() != want {
+		if want := "physio: PaCO2 300 mmHg: physiologically implausible (plausible 10 to 250 mmHg)"; err.Error() != want {
 			t.Errorf("message %q, want %q", err, want)
 		}
 	})
@@ -204,6 +206,6 @@ func TestRangesAreDocumented(t *testing.T) {
 	}
 	// PaCO2RangeKPa is PaCO2Range through the UCUM factor.
 	if got := physio.KPa(physio.PaCO2RangeKPa.Max).MmHg(); math.Abs(float64(got)-physio.PaCO2Range.Max) > 1e-9 {
-		t.Errorf("PaCO2RangeKPa.Max is %v mm[Hg], want %v", got, physio.PaCO2Range.Max)
+		t.Errorf("PaCO2RangeKPa.Max is %v mmHg, want %v", got, physio.PaCO2Range.Max)
 	}
 }

@@ -13,12 +13,12 @@ import (
 func ExampleAlveolarConstant() {
 	for _, temp := range []physio.Celsius{35, 37, 40} {
 		mmHg, kPa := physio.AlveolarConstant(temp)
-		fmt.Printf("%.0f Cel: K = %.5f mm[Hg].L/mL = %.6f kPa.L/mL\n", temp, mmHg, kPa)
+		fmt.Printf("%.0f °C: K = %.5f mmHg.L/mL = %.6f kPa.L/mL\n", temp, mmHg, kPa)
 	}
 	// Output:
-	// 35 Cel: K = 0.85744 mm[Hg].L/mL = 0.114315 kPa.L/mL
-	// 37 Cel: K = 0.86300 mm[Hg].L/mL = 0.115058 kPa.L/mL
-	// 40 Cel: K = 0.87136 mm[Hg].L/mL = 0.116171 kPa.L/mL
+	// 35 °C: K = 0.85744 mmHg.L/mL = 0.114315 kPa.L/mL
+	// 37 °C: K = 0.86300 mmHg.L/mL = 0.115058 kPa.L/mL
+	// 40 °C: K = 0.87136 mmHg.L/mL = 0.116171 kPa.L/mL
 }
 
 func ExamplePaCO2FromAlveolarVentilation() {
@@ -27,10 +27,10 @@ func ExamplePaCO2FromAlveolarVentilation() {
 		fmt.Println(err)
 		return
 	}
-	fmt.Printf("%.2f %s\n%s\n", r.Value, r.Unit, r.Basis())
+	fmt.Printf("%.2f %s\n%s\n", r.Value, physio.DisplayUnit(r.Unit), r.Basis())
 	// Output:
-	// 41.10 mm[Hg]
-	// PaCO2 = K(37.0 Cel) x VCO2 / VA = 0.863 x 200.0 mL/min / 4.200 L/min = 41.10 mm[Hg]
+	// 41.10 mmHg
+	// PaCO2 = K(37.0 °C) x VCO2 / VA = 0.863 x 200.0 mL/min / 4.200 L/min = 41.10 mmHg
 }
 
 func ExampleDeadSpaceFromVCO2() {
@@ -42,7 +42,7 @@ func ExampleDeadSpaceFromVCO2() {
 	fmt.Printf("%.4f (%s)\n%s\n[%s] %s\n", r.Value, r.Method, r.Basis(), r.Interpretation.Code, r.Interpretation.Source)
 	// Output:
 	// 0.6164 (Bohr-Enghoff, PECO2 from VCO2 and expired minute volume)
-	// VD/VT = 1 - K(37.0 Cel) x VCO2 / (VE x PaCO2) = 1 - 0.863 x 200.0 mL/min / (10.00 L/min x 45.0 mm[Hg]) = 0.6164
+	// VD/VT = 1 - K(37.0 °C) x VCO2 / (VE x PaCO2) = 1 - 0.863 x 200.0 mL/min / (10.00 L/min x 45.0 mmHg) = 0.6164
 	// [H] Nunn & Hill, J Appl Physiol 1960; Nuckton et al., NEJM 2002;346:1281-6
 }
 
@@ -52,7 +52,7 @@ func ExampleDeadSpaceEnghoff() {
 	fmt.Println(r.Basis())
 	fmt.Println(vd.Basis())
 	// Output:
-	// VD/VT = (PaCO2 - PECO2) / PaCO2 = (40.0 mm[Hg] - 27.0 mm[Hg]) / 40.0 mm[Hg] = 0.3250
+	// VD/VT = (PaCO2 - PECO2) / PaCO2 = (40.0 mmHg - 27.0 mmHg) / 40.0 mmHg = 0.3250
 	// VD = VD/VT x VT = 0.3250 x 500 mL = 162.5 mL
 }
 
@@ -83,7 +83,7 @@ func ExampleVentilatoryRatio() {
 	fmt.Println(r.Basis())
 	// Output:
 	// PBW (male) = 50 kg + 0.91 kg/cm x (175.0 cm - 152.4 cm) = 70.566 kg
-	// VR = (VE x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mm[Hg]) = (10000 mL/min x 45.0 mm[Hg]) / (70.566 kg x 100 mL/kg/min x 37.5 mm[Hg]) = 1.7005
+	// VR = (VE x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mmHg) = (10000 mL/min x 45.0 mmHg) / (70.566 kg x 100 mL/kg/min x 37.5 mmHg) = 1.7005
 }
 
 func ExamplePredictedPaCO2() {
@@ -96,15 +96,15 @@ func ExamplePredictedPaCO2() {
 		fmt.Println(err)
 		return
 	}
-	diff, _ := physio.PaCO2Discrepancy(45, physio.MmHg(pred.Value))
+	diff, _ := physio.PaCO2Discrepancy(65, physio.MmHg(pred.Value), physio.VCO2Measured)
 	fmt.Println(pred.Basis())
-	fmt.Printf("%.2f %s: %s\n", diff.Value, diff.Unit, diff.Interpretation.Text)
+	fmt.Printf("%.2f %s: %s\n", diff.Value, physio.DisplayUnit(diff.Unit), diff.Interpretation.Text)
 
 	_, err = physio.PredictedPaCO2(physio.PredictedInput{VCO2: 200, VT: 420, RR: 20, AnatomicVD: 150})
 	fmt.Println(errors.Is(err, physio.ErrNotGiven), err)
 	// Output:
-	// VA = (VT - VDanat - VDapp) x RR = (420 mL - 150.0 mL - 120 mL) x 20.0 /min = 3.000 L/min; PaCO2 = K(37.0 Cel) x VCO2 / VA = 0.863 x 200.0 mL/min / 3.000 L/min = 57.53 mm[Hg]
-	// -12.53 mm[Hg]: measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error
+	// VA = (VT - VDanat - VDapp) x RR = (420 mL - 150.0 mL - 120 mL) x 20.0 /min = 3.000 L/min; PaCO2 = K(37.0 °C) x VCO2 / VA = 0.863 x 200.0 mL/min / 3.000 L/min = 57.53 mmHg
+	// 7.47 mmHg: measured PaCO2 more than 5 mmHg above predicted: likely more dead space than assumed (alveolar dead space), or an input error (tidal volume, rate, apparatus dead space, units); VCO2 was measured, so CO2 production is not a cause
 	// true physio: apparatus dead space: not given (must be configured for the circuit, 0 when there is none; never assumed zero)
 }
 
@@ -115,9 +115,9 @@ func ExampleTidalVolumeForTarget() {
 	rate, _ := physio.RateForTarget(14, 55, 40, 420, 70.566)
 	fmt.Println(rate.Basis())
 	// Output:
-	// VT for target = VD + (VT - VD) x PaCO2 / target = 180 mL + (420 mL - 180 mL) x 55.0 mm[Hg] / 40.0 mm[Hg] = 510.0 mL (7.23 mL/kg PBW of 70.57 kg)
+	// VT for target = VD + (VT - VD) x PaCO2 / target = 180 mL + (420 mL - 180 mL) x 55.0 mmHg / 40.0 mmHg = 510.0 mL (7.23 mL/kg PBW of 70.57 kg)
 	// true
-	// RR for target = RR x PaCO2 / target = 14.0 /min x 55.0 mm[Hg] / 40.0 mm[Hg] = 19.25 /min (VT 420 mL = 5.95 mL/kg PBW of 70.57 kg)
+	// RR for target = RR x PaCO2 / target = 14.0 /min x 55.0 mmHg / 40.0 mmHg = 19.25 /min (VT 420 mL = 5.95 mL/kg PBW of 70.57 kg)
 }
 
 func ExampleRange_Check() {
@@ -126,14 +126,14 @@ func ExampleRange_Check() {
 	fmt.Println(err)
 	fmt.Println(errors.Is(err, physio.ErrImplausible))
 	// Output:
-	// physio: PaCO2 5.3 mm[Hg]: physiologically implausible (plausible 10 to 250 mm[Hg])
+	// physio: PaCO2 5.3 mmHg: physiologically implausible (plausible 10 to 250 mmHg)
 	// true
 }
 
 func ExampleAlveolarDeadSpaceFraction() {
 	g, _ := physio.EndTidalGradient(45, 35)
 	f, _ := physio.AlveolarDeadSpaceFraction(45, 35)
-	fmt.Printf("%.1f %s [%s]; %.4f [%s] (%s)\n", g.Value, g.Unit, g.Interpretation.Code, f.Value, f.Interpretation.Code, f.Interpretation.Source)
+	fmt.Printf("%.1f %s [%s]; %.4f [%s] (%s)\n", g.Value, physio.DisplayUnit(g.Unit), g.Interpretation.Code, f.Value, f.Interpretation.Code, f.Interpretation.Source)
 	// Output:
-	// 10.0 mm[Hg] [H]; 0.2222 [H] (Tyburski et al., J Trauma 2002;53:738)
+	// 10.0 mmHg [H]; 0.2222 [H] (Tyburski et al., J Trauma 2002;53:738)
 }

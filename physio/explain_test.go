@@ -29,18 +29,22 @@ func TestInterpretations(t *testing.T) {
 		{"VDVT_0.30_normal_at_threshold", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 28) }, "N", "Nunn & Hill", "about 0.3 [published: Nunn & Hill 1960]"},
 		{"VDVT_0.325_high", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(40, 27) }, "H", "Nunn & Hill", "above 0.3 [published: Nunn & Hill 1960]"},
 		{"VDVT_0.6164_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
-		{"VDVT_estimated_0.6404_ARDS_range", func() (physio.Result, error) { return physio.DeadSpaceEstimated(45, 10, man) }, "H", "Nuckton", "0.58 at ARDS onset [published: Nuckton 2002]"},
+		// The estimate's only source (Siddiki et al., Crit Care 2010, doi
+		// 10.1186/cc9206 [published]) reports adjusted odds ratios of
+		// hospital death per 10% increase (1.07 day 1, 1.12 day 3) and no
+		// threshold: no code, and not Nuckton's reading of measured VD/VT.
+		{"VDVT_estimated_0.6404_no_code_no_measured_threshold", func() (physio.Result, error) { return physio.DeadSpaceEstimated(45, 10, man) }, "", "Siddiki", "no threshold in Siddiki 2010 [published]"},
 		{"VR_1.0_healthy_no_cutoff", func() (physio.Result, error) { return physio.VentilatoryRatio(7.0566, 37.5, 70.566) }, "", "Sinha", "near 1 in health, no cut-off [published: Sinha 2009]"},
 		{"VR_1.7005_above_non_survivor_mean_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }, "", "Sinha", "1.55 non-survivors, a group mean, not a cut-off [published: Sinha 2009]"},
 		{"VR_2.1_ARDS_median_no_code", func() (physio.Result, error) { return physio.VentilatoryRatio(12.35, 45, 70.566) }, "", "PETAL-ROSE", "median about 2 in ARDS, not a cut-off [published: Crit Care 2022]"},
-		{"gradient_4.6mmHg_normal", func() (physio.Result, error) { return physio.EndTidalGradient(40, 35.4) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]; 4.6 normal [published: Nunn & Hill 1960]"},
-		{"gradient_9mmHg_at_threshold", func() (physio.Result, error) { return physio.EndTidalGradient(45, 36) }, "N", "Tyburski", "<= 9 mm[Hg] [published: Tyburski 2002]"},
-		{"gradient_10mmHg_high", func() (physio.Result, error) { return physio.EndTidalGradient(45, 35) }, "H", "Tyburski", "> 9 mm[Hg] [published: Tyburski 2002]"},
+		{"gradient_4.6mmHg_normal", func() (physio.Result, error) { return physio.EndTidalGradient(40, 35.4) }, "N", "Tyburski", "<= 9 mmHg [published: Tyburski 2002]; 4.6 normal [published: Nunn & Hill 1960]"},
+		{"gradient_9mmHg_at_threshold", func() (physio.Result, error) { return physio.EndTidalGradient(45, 36) }, "N", "Tyburski", "<= 9 mmHg [published: Tyburski 2002]"},
+		{"gradient_10mmHg_high", func() (physio.Result, error) { return physio.EndTidalGradient(45, 35) }, "H", "Tyburski", "> 9 mmHg [published: Tyburski 2002]"},
 		{"AVDSF_0.20_at_threshold", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 36) }, "N", "Tyburski", "<= 0.20 [published: Tyburski 2002]"},
 		{"AVDSF_0.2222_high", func() (physio.Result, error) { return physio.AlveolarDeadSpaceFraction(45, 35) }, "H", "Tyburski", "> 0.20 [published: Tyburski 2002]"},
-		{"discrepancy_plus_15.9mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
-		{"discrepancy_minus_8mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
-		{"discrepancy_plus_4mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41) }, "", "35-45", "5 mm[Hg] band [derived; common practice], not published"},
+		{"discrepancy_plus_15.9mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1, physio.VCO2Measured) }, "", "35-45", "5 mmHg band [derived; common practice], not published"},
+		{"discrepancy_minus_8mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(33, 41, physio.VCO2Measured) }, "", "35-45", "5 mmHg band [derived; common practice], not published"},
+		{"discrepancy_plus_4mmHg_no_code", func() (physio.Result, error) { return physio.PaCO2Discrepancy(45, 41, physio.VCO2Measured) }, "", "35-45", "5 mmHg band [derived; common practice], not published"},
 		{"gradient_minus_3mmHg_no_code", func() (physio.Result, error) { return physio.EndTidalGradient(35, 38) }, "", "Nunn & Hill", "no published reading of a negative gradient"},
 		{"VDVT_0.06_below_anatomic_no_code", func() (physio.Result, error) { return physio.DeadSpaceEnghoff(50, 47) }, "", "Radford", "below anatomic dead space 2.2 mL/kg [published: Radford 1955; derived]"},
 		{"PaCO2_from_VA_no_threshold", func() (physio.Result, error) { return physio.PaCO2FromAlveolarVentilation(200, 4.2, 37) }, "", "", "none: a model output, not a measurement"},
@@ -63,24 +67,60 @@ func TestInterpretations(t *testing.T) {
 			}
 		})
 	}
-	t.Run("discrepancy_names_likely_causes", func(t *testing.T) {
+	// The prediction counts only anatomic plus apparatus dead space
+	// (physiology.md s7 [published: Radford 1955]); physiologic dead space
+	// is anatomic plus alveolar (Bohr-Enghoff, physiology.md s2
+	// [published]), so it cannot be smaller [derived]. Below the band the
+	// text must call the difference implausible, not a finding; with a
+	// measured VCO2 it must not name CO2 production as a cause [derived from
+	// the alveolar ventilation equation, physiology.md s1].
+	t.Run("discrepancy_causes_follow_the_assumptions", func(t *testing.T) {
 		for _, c := range []struct {
+			name                string
 			measured, predicted physio.MmHg
-			causes              []string
+			vco2                physio.VCO2Basis
+			has, hasNot         []string
+			flagged             bool
 		}{
-			{57, 41.1, []string{"more than 5 mm[Hg] above", "more dead space than assumed", "higher CO2 production than assumed", "input error"}},
-			{33, 41, []string{"more than 5 mm[Hg] below", "lower CO2 production than assumed", "less dead space than assumed", "input error"}},
-			{45, 41, []string{"within 5 mm[Hg]"}},
+			{"above_measured_VCO2", 57, 41.1, physio.VCO2Measured,
+				[]string{"more than 5 mmHg above", "more dead space than assumed", "input error", "CO2 production is not a cause"},
+				[]string{"higher CO2 production"}, false},
+			{"above_estimated_VCO2", 57, 41.1, physio.VCO2Estimated,
+				[]string{"more than 5 mmHg above", "more dead space than assumed", "higher CO2 production than estimated", "input error"}, nil, false},
+			{"below_measured_VCO2", 33, 41, physio.VCO2Measured,
+				[]string{"more than 5 mmHg below", "physiologically implausible", "input error", "overestimated anatomic dead space", "not a finding"},
+				[]string{"lower CO2 production", "less dead space than assumed"}, true},
+			{"below_estimated_VCO2", 33, 41, physio.VCO2Estimated,
+				[]string{"physiologically implausible", "CO2 production lower than estimated", "overestimated anatomic dead space"},
+				[]string{"less dead space than assumed"}, true},
+			{"within", 45, 41, physio.VCO2Measured, []string{"within 5 mmHg"}, []string{"implausible"}, false},
+			// -5.04 is published as -5.0: within the band, so no flag.
+			{"minus_5.04_published_minus_5.0_not_flagged", 35.96, 41, physio.VCO2Measured, []string{"within 5 mmHg"}, nil, false},
 		} {
-			r, err := physio.PaCO2Discrepancy(c.measured, c.predicted)
-			if err != nil {
-				t.Fatal(err)
-			}
-			for _, cause := range c.causes {
-				if !strings.Contains(r.Interpretation.Text, cause) {
-					t.Errorf("%v - %v: text %q does not name %q", c.measured, c.predicted, r.Interpretation.Text, cause)
+			t.Run(c.name, func(t *testing.T) {
+				r, err := physio.PaCO2Discrepancy(c.measured, c.predicted, c.vco2)
+				if err != nil {
+					t.Fatal(err)
 				}
-			}
+				for _, w := range c.has {
+					if !strings.Contains(r.Interpretation.Text, w) {
+						t.Errorf("text %q does not say %q", r.Interpretation.Text, w)
+					}
+				}
+				for _, w := range c.hasNot {
+					if strings.Contains(r.Interpretation.Text, w) {
+						t.Errorf("text %q says %q, which the assumptions rule out", r.Interpretation.Text, w)
+					}
+				}
+				if got := slices.Contains(r.Flags(), physio.FlagPaCO2BelowPredicted); got != c.flagged {
+					t.Errorf("flagged %v, want %v (flags %q)", got, c.flagged, r.Flags())
+				}
+			})
+		}
+	})
+	t.Run("discrepancy_needs_the_VCO2_basis", func(t *testing.T) {
+		if _, err := physio.PaCO2Discrepancy(33, 41, physio.VCO2Unknown); !errors.Is(err, physio.ErrNotGiven) {
+			t.Errorf("VCO2Unknown: err %v, want ErrNotGiven", err)
 		}
 	})
 }
@@ -112,10 +152,10 @@ func TestInterpretBoundaries(t *testing.T) {
 		{"VR_1.55_at_mean", physio.InterpretVentilatoryRatio(1.55), "", "at or above 1.55", "Sinha 2009 [published group mean]"},
 		{"VR_1.99_not_median", physio.InterpretVentilatoryRatio(1.99), "", "at or above 1.55", "PETAL-ROSE 2022 [published group median]"},
 		{"VR_2.00_median", physio.InterpretVentilatoryRatio(2.00), "", "at or above 2", "PETAL-ROSE 2022 [published group median]"},
-		{"discrepancy_5.0mmHg_within", physio.InterpretPaCO2Discrepancy(5.0), "", "within 5", "band [derived; common practice]"},
-		{"discrepancy_5.1mmHg_above", physio.InterpretPaCO2Discrepancy(5.1), "", "above predicted", "band [derived; common practice]"},
-		{"discrepancy_-5.0mmHg_within", physio.InterpretPaCO2Discrepancy(-5.0), "", "within 5", "band [derived; common practice]"},
-		{"discrepancy_-5.1mmHg_below", physio.InterpretPaCO2Discrepancy(-5.1), "", "below predicted", "band [derived; common practice]"},
+		{"discrepancy_5.0mmHg_within", physio.InterpretPaCO2Discrepancy(5.0, physio.VCO2Measured), "", "within 5", "band [derived; common practice]"},
+		{"discrepancy_5.1mmHg_above", physio.InterpretPaCO2Discrepancy(5.1, physio.VCO2Measured), "", "above predicted", "band [derived; common practice]"},
+		{"discrepancy_-5.0mmHg_within", physio.InterpretPaCO2Discrepancy(-5.0, physio.VCO2Measured), "", "within 5", "band [derived; common practice]"},
+		{"discrepancy_-5.1mmHg_below", physio.InterpretPaCO2Discrepancy(-5.1, physio.VCO2Measured), "", "below predicted", "band [derived; common practice]"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -198,7 +238,8 @@ func TestDeadSpaceFloorFlag(t *testing.T) {
 		{"vco2_0.137_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(40, 200, 5, 37) }, true, "minute volume and VCO2"},
 		{"vco2_0.6164_not_flagged", func() (physio.Result, error) { return physio.DeadSpaceFromVCO2(45, 200, 10, 37) }, false, ""},
 		// Harris-Benedict VCO2 188.16 mL/min: 1 - 0.86 x 188.16 / (4 x 47.5) = 0.148 -> flagged.
-		{"estimated_0.148_flagged", func() (physio.Result, error) { return physio.DeadSpaceEstimated(47.5, 4, man) }, true, "minute volume and VCO2"},
+		// VCO2 was estimated, not an input: the flag names the estimate.
+		{"estimated_0.148_flagged", func() (physio.Result, error) { return physio.DeadSpaceEstimated(47.5, 4, man) }, true, "VCO2 from the energy equation is likely above"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -324,7 +365,7 @@ func TestAssumptionsRecorded(t *testing.T) {
 	})
 	t.Run("predicted_with_estimated_VCO2", func(t *testing.T) {
 		r, _ := physio.PredictedPaCO2(physio.PredictedInput{VCO2: 188, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVDKnown: true})
-		if !has(r, "estimated: VCO2") || !has(r, "anatomic dead space not given: 2.2 mL/kg") || !has(r, "body temperature not measured: 37 Cel") {
+		if !has(r, "estimated: VCO2") || !has(r, "anatomic dead space not given: 2.2 mL/kg") || !has(r, "body temperature not measured: 37 °C") {
 			t.Errorf("assumptions %q", r.Assumptions())
 		}
 	})
@@ -381,7 +422,7 @@ func goldenResults() []struct {
 	}
 	r, err := physio.PredictedPaCO2(physio.PredictedInput{VCO2: 188.16, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVD: 95, ApparatusVDKnown: true})
 	add("PredictedPaCO2_estimated_VCO2_default_anatomic_default_temp", r, err)
-	r, err = physio.PaCO2Discrepancy(45, 41.1)
+	r, err = physio.PaCO2Discrepancy(45, 41.1, physio.VCO2Measured)
 	add("Discrepancy_45_vs_41.1mmHg", r, err)
 	r, err = physio.EndTidalGradient(35, 38)
 	add("Gradient_negative", r, err)
@@ -502,7 +543,55 @@ func TestTargetRecordedAsConstant(t *testing.T) {
 		if !slices.ContainsFunc(r.Constants(), func(c physio.Constant) bool {
 			return c.Name == "target PaCO2" && c.Value == 40 && c.Unit == "mm[Hg]" && strings.Contains(c.Source, "given by the caller")
 		}) {
-			t.Errorf("%s: constants %+v lack the target PaCO2 40 mm[Hg]", r.Method, r.Constants())
+			t.Errorf("%s: constants %+v lack the target PaCO2 40 mmHg", r.Method, r.Constants())
+		}
+	}
+}
+
+// TestEstimatedDeadSpaceFrame checks that the estimated dead-space fraction
+// borrows nothing from studies of measured dead space: its source (Siddiki
+// et al., Crit Care 2010, doi 10.1186/cc9206 [published]) gives an
+// association with mortality per 10% increase and no threshold, while 0.3
+// (Nunn & Hill 1960) and 0.58 (Nuckton et al. 2002) were found with
+// measured dead space [published]. Its flags must not ask to check a VCO2
+// input that was never an input.
+func TestEstimatedDeadSpaceFrame(t *testing.T) {
+	for _, v := range []float64{0.149, 0.15, 0.30, 0.31, 0.58, 0.64, 0.9} {
+		for _, measured := range []bool{false, true} {
+			in := physio.InterpretEstimatedDeadSpaceFraction(v, measured)
+			if in.Code != "" {
+				t.Errorf("%.3f: code %q: the estimate has no published threshold", v, in.Code)
+			}
+			for _, borrowed := range []string{"Nuckton", "Nunn", "ARDS", "odds", "non-survivors"} {
+				if strings.Contains(in.Text+in.Source, borrowed) {
+					t.Errorf("%.3f: reading borrows %q from measured dead space: %q / %q", v, borrowed, in.Text, in.Source)
+				}
+			}
+			if measured && v >= physio.DeadSpaceFractionFloor && !strings.Contains(in.Text, "read the measured value") {
+				t.Errorf("%.3f beside a measured fraction: text %q does not send the reader to it", v, in.Text)
+			}
+		}
+	}
+	r, err := physio.DeadSpaceEstimated(45, 10, man)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if slices.Contains(r.Flags(), physio.FlagMeasuredFractionExists) {
+		t.Fatal("flagged before MarkMeasuredFractionExists")
+	}
+	r.MarkMeasuredFractionExists()
+	if !slices.Contains(r.Flags(), physio.FlagMeasuredFractionExists) || !strings.Contains(r.Interpretation.Text, "read the measured value") {
+		t.Errorf("after MarkMeasuredFractionExists: flags %q, text %q", r.Flags(), r.Interpretation.Text)
+	}
+	m, _ := physio.DeadSpaceEnghoff(40, 27)
+	m.MarkMeasuredFractionExists()
+	if len(m.Flags()) != 0 {
+		t.Errorf("a measured fraction was marked: %q", m.Flags())
+	}
+	low, _ := physio.DeadSpaceEstimated(47.5, 4, man)
+	for _, f := range low.Flags() {
+		if strings.Contains(f, "VCO2 input") || strings.Contains(f, "minute volume and VCO2") {
+			t.Errorf("flag %q asks to check a VCO2 input; VCO2 was estimated", f)
 		}
 	}
 }

@@ -120,7 +120,7 @@ func FuzzDerivations(f *testing.F) {
 		r, err = physio.PredictedPaCO2(physio.PredictedInput{VCO2: physio.MLPerMin(vco2), VCO2Estimated: true, VT: physio.ML(vt), RR: physio.PerMin(rr),
 			PBW: physio.Kg(pbw), ApparatusVD: physio.ML(p2), ApparatusVDKnown: known, BodyTemp: physio.Celsius(temp)})
 		check("PredictedPaCO2 default anatomic", r, err)
-		r, err = physio.PaCO2Discrepancy(physio.MmHg(paCO2), physio.MmHg(p2))
+		r, err = physio.PaCO2Discrepancy(physio.MmHg(paCO2), physio.MmHg(p2), physio.VCO2Measured)
 		check("PaCO2Discrepancy", r, err)
 		r, err = physio.VentilatoryRatio(physio.LPerMin(ve), physio.MmHg(paCO2), physio.Kg(pbw))
 		check("VentilatoryRatio", r, err)

@@ -37,12 +37,12 @@ const (
 	assumeVRVE        = "VE is the minute volume supplied; the published ratio uses measured minute ventilation"
 	assumeVRPBW       = "predicted body weight from the ARDS Network formula"
 	assumeEndTidal    = "PETCO2 from mainstream or sidestream capnography in the same steady state as the blood gas"
-	flagNegativeGrade = "end-tidal PCO2 above arterial PCO2: check sampling times, analyser calibration and units (it can also occur with large tidal volumes at low rates [memory])"
+	flagNegativeGrade = "end-tidal PCO2 above arterial PCO2: check sampling times, analyser calibration and units"
 )
 
 var (
 	vrPredVEDef    = constDef{name: "predicted minute ventilation", unit: "mL/min/kg", source: "Sinha et al., Br J Anaesth 2009;102:692-697 [published]"}
-	vrPredPaCO2Def = constDef{name: "predicted PaCO2", unit: UnitMmHg, source: "Sinha et al., Br J Anaesth 2009 (5 kPa); AJRCCM 2019 (37.5 mm[Hg]) [published]"}
+	vrPredPaCO2Def = constDef{name: "predicted PaCO2", unit: UnitMmHg, source: "Sinha et al., Br J Anaesth 2009 (5 kPa); AJRCCM 2019 (37.5 mmHg) [published]"}
 )
 
 // Readings of the ventilatory ratio: published group values, not
@@ -63,14 +63,14 @@ var (
 // thresholds).
 var (
 	interpGradientHigh = Interpretation{Code: "H",
-		Text:   "above 9 mm[Hg], beyond the gradient with the best survival in trauma; normal 4.6 +/- 2.5 mm[Hg] in anaesthetised adults",
+		Text:   "above 9 mmHg, beyond the gradient with the best survival in trauma; normal 4.6 +/- 2.5 mmHg in anaesthetised adults",
 		Source: "Tyburski et al., J Trauma 2002;53:738; Nunn & Hill, J Appl Physiol 1960"}
 	interpGradientNormal = Interpretation{Code: "N",
-		Text:   "at or below 9 mm[Hg], the gradient with the best survival in trauma; normal 4.6 +/- 2.5 mm[Hg] in anaesthetised adults",
+		Text:   "at or below 9 mmHg, the gradient with the best survival in trauma; normal 4.6 +/- 2.5 mmHg in anaesthetised adults",
 		Source: "Tyburski et al., J Trauma 2002;53:738; Nunn & Hill, J Appl Physiol 1960"}
 	interpGradientNegative = Interpretation{Code: "",
 		Text:   "negative: end-tidal PCO2 above arterial PCO2, which no published reading covers; check sampling times, analyser calibration and units",
-		Source: "Nunn & Hill, J Appl Physiol 1960 (normal 4.6 +/- 2.5 mm[Hg])"}
+		Source: "Nunn & Hill, J Appl Physiol 1960 (normal 4.6 +/- 2.5 mmHg)"}
 
 	interpAVDSFHigh = Interpretation{Code: "H",
 		Text:   "above 0.20, beyond the alveolar dead-space fraction with the best survival in trauma",
@@ -154,7 +154,7 @@ func VentilatoryRatio(ve LPerMin, paco2 MmHg, pbw Kg) (Result, error) {
 	r.addConst(&vrPredPaCO2Def, float64(SinhaPredictedPaCO2))
 	r.assume(assumeVRVE)
 	r.assume(assumeVRPBW)
-	r.basis("VR = (VE x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mm[Hg]) = (%.0f mL/min x %.1f mm[Hg]) / (%.3f kg x %g mL/kg/min x %g mm[Hg]) = %.4f",
+	r.basis("VR = (VE x PaCO2) / (PBW x 100 mL/kg/min x 37.5 mmHg) = (%.0f mL/min x %.1f mmHg) / (%.3f kg x %g mL/kg/min x %g mmHg) = %.4f",
 		veML, float64(paco2), float64(pbw), SinhaPredictedVE, float64(SinhaPredictedPaCO2), v)
 	return r, nil
 }
@@ -180,7 +180,7 @@ func EndTidalGradient(paco2, petco2 MmHg) (Result, error) {
 	v := float64(paco2 - petco2)
 	if v < -float64(MaxNegativeEndTidalGradient) {
 		return Result{}, meaningError("PETCO2", float64(petco2), UnitMmHg,
-			"end-tidal PCO2 more than 5 mm[Hg] above PaCO2: the gas and blood samples are inconsistent (sampling times, analyser calibration or units)")
+			"end-tidal PCO2 more than 5 mmHg above PaCO2: the gas and blood samples are inconsistent (sampling times, analyser calibration or units)")
 	}
 	r := Result{Value: v, Unit: UnitMmHg, Method: methodGradient, MethodVersion: MethodVersion,
 		Interpretation: InterpretEndTidalGradient(MmHg(v))}
@@ -188,7 +188,7 @@ func EndTidalGradient(paco2, petco2 MmHg) (Result, error) {
 		r.flag(flagNegativeGrade)
 	}
 	r.assume(assumeEndTidal)
-	r.basis("Pa-ETCO2 = PaCO2 - PETCO2 = %.1f mm[Hg] - %.1f mm[Hg] = %.1f mm[Hg]",
+	r.basis("Pa-ETCO2 = PaCO2 - PETCO2 = %.1f mmHg - %.1f mmHg = %.1f mmHg",
 		float64(paco2), float64(petco2), v)
 	return r, nil
 }
@@ -216,7 +216,7 @@ func AlveolarDeadSpaceFraction(paco2, petco2 MmHg) (Result, error) {
 	r := Result{Value: v, Unit: UnitOne, Method: methodAVDSF, MethodVersion: MethodVersion,
 		Interpretation: InterpretAlveolarDeadSpaceFraction(v)}
 	r.assume(assumeEndTidal)
-	r.basis("AVDSF = (PaCO2 - PETCO2) / PaCO2 = (%.1f mm[Hg] - %.1f mm[Hg]) / %.1f mm[Hg] = %.4f",
+	r.basis("AVDSF = (PaCO2 - PETCO2) / PaCO2 = (%.1f mmHg - %.1f mmHg) / %.1f mmHg = %.4f",
 		float64(paco2), float64(petco2), float64(paco2), v)
 	return r, nil
 }

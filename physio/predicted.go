@@ -1,5 +1,7 @@
 package physio
 
+import "math"
+
 var (
 	pbwInterceptMale   = constDef{name: "PBW intercept, men", unit: UnitKg, source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
 	pbwInterceptFemale = constDef{name: "PBW intercept, women", unit: UnitKg, source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
@@ -7,7 +9,7 @@ var (
 	pbwRefHeight       = constDef{name: "PBW reference height", unit: UnitCm, source: "ARDS Network, NEJM 2000;342:1301-8 [published] (60 in)"}
 	anatomicPerKg      = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]"}
 	discrepancyDef     = constDef{name: "material PaCO2 difference", unit: UnitMmHg,
-		source: "half-width of the healthy 35-45 mm[Hg] range [derived from published textbooks; common practice]"}
+		source: "half-width of the healthy 35-45 mmHg range [derived from published textbooks; common practice]"}
 )
 
 const (
@@ -152,70 +154,120 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 		r.assume(assumeVCO2Estimate)
 	}
 	if defaultAnat {
-		r.basis("VDanat = 2.2 mL/kg x %.2f kg = %.1f mL; VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f Cel) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mm[Hg]",
+		r.basis("VDanat = 2.2 mL/kg x %.2f kg = %.1f mL; VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg",
 			float64(p.PBW), anat, float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
 			float64(t), k, float64(p.VCO2), va, v)
 	} else {
-		r.basis("VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f Cel) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mm[Hg]",
+		r.basis("VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg",
 			float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
 			float64(t), k, float64(p.VCO2), va, v)
 	}
 	return r, nil
 }
 
+// VCO2Basis says how the VCO2 behind a predicted PaCO2 was obtained, which
+// decides what a measured-minus-predicted difference can mean: with a
+// measured VCO2, CO2 production is not a cause of the difference.
+type VCO2Basis uint8
+
+const (
+	// VCO2Unknown is the zero value: PaCO2Discrepancy refuses it
+	// (ErrNotGiven); InterpretPaCO2Discrepancy reads it as estimated, the
+	// reading that rules out fewer causes.
+	VCO2Unknown VCO2Basis = iota
+	// VCO2Measured: VCO2 measured (indirect calorimetry, volumetric
+	// capnography).
+	VCO2Measured
+	// VCO2Estimated: VCO2 from an energy equation.
+	VCO2Estimated
+)
+
+const discrepancySource = "threshold 5 mmHg: half-width of the healthy 35-45 mmHg range [derived; common practice]"
+
 // Readings of the measured-minus-predicted difference. The 5 mm[Hg] band
 // is derived, not a published threshold, so no interpretation code is
-// given; the text names the likely causes.
+// given; the text names the causes that the prediction's own assumptions
+// leave open. The prediction counts only anatomic and apparatus dead
+// space, so physiologic dead space (anatomic plus alveolar) cannot be
+// smaller: a measured PaCO2 materially below predicted is not a finding
+// about the lung but a sign that an input or an assumption is wrong.
 var (
-	interpDiscrepancyHigh = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than assumed, or an input error (tidal volume, rate, apparatus dead space, units)",
-		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
-	interpDiscrepancyLow = Interpretation{Code: "",
-		Text:   "measured PaCO2 more than 5 mm[Hg] below predicted: likely lower CO2 production than assumed (sedation, hypothermia, estimate too high), less dead space than assumed, or an input error",
-		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+	interpDiscrepancyHighMeasured = Interpretation{Code: "",
+		Text:   "measured PaCO2 more than 5 mmHg above predicted: likely more dead space than assumed (alveolar dead space), or an input error (tidal volume, rate, apparatus dead space, units); VCO2 was measured, so CO2 production is not a cause",
+		Source: discrepancySource}
+	interpDiscrepancyHighEstimated = Interpretation{Code: "",
+		Text:   "measured PaCO2 more than 5 mmHg above predicted: likely more dead space than assumed (alveolar dead space), higher CO2 production than estimated, or an input error (tidal volume, rate, apparatus dead space, units)",
+		Source: discrepancySource}
+	interpDiscrepancyLowMeasured = Interpretation{Code: "",
+		Text:   "measured PaCO2 more than 5 mmHg below predicted: physiologically implausible, since it would need a physiologic dead space smaller than the anatomic plus apparatus dead space assumed; likely an input error (VCO2, tidal volume, rate, units, readings from different moments, not a steady state) or an overestimated anatomic dead space; not a finding about the lung",
+		Source: discrepancySource}
+	interpDiscrepancyLowEstimated = Interpretation{Code: "",
+		Text:   "measured PaCO2 more than 5 mmHg below predicted: physiologically implausible at the estimated CO2 production, since it would need a physiologic dead space smaller than the anatomic plus apparatus dead space assumed; likely CO2 production lower than estimated (sedation, hypothermia), an input error (tidal volume, rate, units, readings from different moments) or an overestimated anatomic dead space; not a finding about the lung",
+		Source: discrepancySource}
 	interpDiscrepancyNone = Interpretation{Code: "",
-		Text:   "measured PaCO2 within 5 mm[Hg] of predicted: consistent with the assumed dead space and CO2 production",
-		Source: "threshold 5 mm[Hg]: half-width of the healthy 35-45 mm[Hg] range [derived; common practice]"}
+		Text:   "measured PaCO2 within 5 mmHg of predicted: consistent with the assumed dead space and CO2 production",
+		Source: discrepancySource}
 )
+
+// FlagPaCO2BelowPredicted is the flag of a measured PaCO2 materially below
+// predicted (see InterpretPaCO2Discrepancy).
+const FlagPaCO2BelowPredicted = "measured PaCO2 materially below predicted: physiologically implausible (physiologic dead space cannot be smaller than anatomic plus apparatus dead space); check the inputs and the anatomic dead space assumed before using this value"
 
 // InterpretPaCO2Discrepancy reads a measured-minus-predicted PaCO2
 // difference (mm[Hg]) against the DiscrepancyThreshold band: above it, below
 // its negative, or within. The band is derived, not published, so Code is
-// always empty; the text names the likely causes of a difference (more
-// dead space or CO2 production than assumed, or an input error). A caller
-// that reports a rounded value calls it on that value. It never fails and
-// does not allocate.
-func InterpretPaCO2Discrepancy(v MmHg) Interpretation {
+// always empty. The text names only the causes the prediction leaves open:
+// with vco2 VCO2Measured, CO2 production is not one; below the band the
+// difference is called physiologically implausible (likely an input error
+// or an overestimated anatomic dead space). VCO2Unknown is read as
+// VCO2Estimated. A caller that reports a rounded value calls it on that
+// value. It never fails and does not allocate.
+func InterpretPaCO2Discrepancy(v MmHg, vco2 VCO2Basis) Interpretation {
+	measured := vco2 == VCO2Measured
 	switch {
+	case v > DiscrepancyThreshold && measured:
+		return interpDiscrepancyHighMeasured
 	case v > DiscrepancyThreshold:
-		return interpDiscrepancyHigh
+		return interpDiscrepancyHighEstimated
+	case v < -DiscrepancyThreshold && measured:
+		return interpDiscrepancyLowMeasured
 	case v < -DiscrepancyThreshold:
-		return interpDiscrepancyLow
+		return interpDiscrepancyLowEstimated
 	}
 	return interpDiscrepancyNone
 }
 
-// PaCO2Discrepancy returns measured minus predicted PaCO2, in mm[Hg]. Its
-// Interpretation (InterpretPaCO2Discrepancy) has no code, since the
-// DiscrepancyThreshold band is derived, not published; its text says
-// whether the difference is beyond the band and names the likely causes
-// (more dead space than assumed, higher CO2 production than assumed, or an
-// input error).
+// PaCO2Discrepancy returns measured minus predicted PaCO2, in mm[Hg], for a
+// prediction made with a VCO2 obtained as vco2 says. Its Interpretation
+// (InterpretPaCO2Discrepancy) has no code, since the DiscrepancyThreshold
+// band is derived, not published. A difference below -DiscrepancyThreshold,
+// decided on the value rounded to 0.1 mm[Hg] (the precision at which it is
+// published, so that the flag and the number shown agree), is flagged
+// FlagPaCO2BelowPredicted.
 //
-// It refuses measured outside PaCO2Range and predicted outside PaCO2Range.
-func PaCO2Discrepancy(measured, predicted MmHg) (Result, error) {
+// It refuses measured outside PaCO2Range, predicted outside PaCO2Range and
+// vco2 VCO2Unknown (ErrNotGiven).
+func PaCO2Discrepancy(measured, predicted MmHg, vco2 VCO2Basis) (Result, error) {
 	if err := PaCO2Range.Check("PaCO2", float64(measured)); err != nil {
 		return Result{}, err
 	}
 	if err := PaCO2Range.Check("predicted PaCO2", float64(predicted)); err != nil {
 		return Result{}, err
 	}
+	if vco2 != VCO2Measured && vco2 != VCO2Estimated {
+		return Result{}, &InputError{Input: "VCO2 basis", Value: float64(vco2), Unit: "", Kind: ErrNotGiven,
+			Detail: "say whether the prediction's VCO2 was measured or estimated"}
+	}
 	v := float64(measured - predicted)
+	shown := MmHg(math.Round(v*10) / 10)
 	r := Result{Value: v, Unit: UnitMmHg, Method: methodDiscrepancy, MethodVersion: MethodVersion,
-		Interpretation: InterpretPaCO2Discrepancy(MmHg(v))}
+		Interpretation: InterpretPaCO2Discrepancy(shown, vco2)}
+	if shown < -DiscrepancyThreshold {
+		r.flag(FlagPaCO2BelowPredicted)
+	}
 	r.addConst(&discrepancyDef, float64(DiscrepancyThreshold))
 	r.assume(assumeDiscrepancy)
-	r.basis("PaCO2 measured - predicted = %.1f mm[Hg] - %.2f mm[Hg] = %.2f mm[Hg] (material beyond +/- %g mm[Hg])",
+	r.basis("PaCO2 measured - predicted = %.1f mmHg - %.2f mmHg = %.2f mmHg (material beyond +/- %g mmHg)",
 		float64(measured), float64(predicted), v, float64(DiscrepancyThreshold))
 	return r, nil
 }

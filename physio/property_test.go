@@ -53,7 +53,7 @@ func TestAlveolarEquationRoundTrip(t *testing.T) {
 	for _, vco2 := range gridVCO2 {
 		for _, va := range gridVA {
 			for _, temp := range gridTemp {
-				name := fmt.Sprintf("VCO2 %g mL/min, VA %g L/min, %g Cel", vco2, va, temp)
+				name := fmt.Sprintf("VCO2 %g mL/min, VA %g L/min, %g °C", vco2, va, temp)
 				pa, err := physio.PaCO2FromAlveolarVentilation(vco2, va, temp)
 				if refusedAsInconsistent(t, name, err) {
 					continue
@@ -61,13 +61,13 @@ func TestAlveolarEquationRoundTrip(t *testing.T) {
 				checked++
 				back := mustV(t)(physio.AlveolarVentilationFromPaCO2(vco2, physio.MmHg(pa.Value), temp))
 				if !relClose(back, float64(va), 1e-12) {
-					t.Errorf("%s: VA round trip -> %v mm[Hg] -> %v", name, pa.Value, back)
+					t.Errorf("%s: VA round trip -> %v mmHg -> %v", name, pa.Value, back)
 				}
 				paK := mustV(t)(physio.PaCO2FromAlveolarVentilationKPa(vco2, va, temp))
 				// kPa and mm[Hg] forms agree through the UCUM factor to within
 				// the 3 ppm between 760 x 0.133322 and 101.325 kPa.
 				if !relClose(paK, float64(physio.MmHg(pa.Value).KPa()), 5e-6) {
-					t.Errorf("%s: kPa form %v disagrees with mm[Hg] form %v", name, paK, physio.MmHg(pa.Value).KPa())
+					t.Errorf("%s: kPa form %v disagrees with mmHg form %v", name, paK, physio.MmHg(pa.Value).KPa())
 				}
 				backK := mustV(t)(physio.AlveolarVentilationFromPaCO2KPa(vco2, physio.KPa(paK), temp))
 				if !relClose(backK, float64(va), 1e-12) {
@@ -92,7 +92,7 @@ func TestDeadSpaceMethodsAgree(t *testing.T) {
 			for _, pa := range gridPaCO2 {
 				for _, temp := range []physio.Celsius{35, 37, 39} {
 					total++
-					name := fmt.Sprintf("VCO2 %g mL/min, VE %g L/min, PaCO2 %g mm[Hg], %g Cel", vco2, ve, pa, temp)
+					name := fmt.Sprintf("VCO2 %g mL/min, VE %g L/min, PaCO2 %g mmHg, %g °C", vco2, ve, pa, temp)
 					vd, err := physio.DeadSpaceFromVCO2(pa, vco2, ve, temp)
 					if refusedAsInconsistent(t, name, err) {
 						continue

@@ -41,7 +41,7 @@ func refCases() []refCase {
 		{"VA_Lmin_for_PaCO2_40mmHg_VCO2_200mLmin", "reference §1 check [derived]",
 			func() (physio.Result, error) { return physio.AlveolarVentilationFromPaCO2(200, 40, 37) },
 			4.315, 3, "L/min"},
-		{"VA_Lmin_for_PaCO2_5.3329kPa_VCO2_200mLmin", "reference §1 check with §10 40 mm[Hg] = 5.3329 kPa [derived]",
+		{"VA_Lmin_for_PaCO2_5.3329kPa_VCO2_200mLmin", "reference §1 check with §10 40 mmHg = 5.3329 kPa [derived]",
 			func() (physio.Result, error) { return physio.AlveolarVentilationFromPaCO2KPa(200, 5.3329, 37) },
 			4.315, 3, "L/min"},
 		// §2 Bohr-Enghoff
@@ -92,7 +92,7 @@ func refCases() []refCase {
 			func() (physio.Result, error) { return physio.PredictedBodyWeight(physio.Female, 163) },
 			55.146, 3, "kg"},
 		// §6 ventilatory ratio
-		{"VR_VE_10Lmin_PaCO2_45mmHg_PBW_70.566kg", "reference §6 check, Sinha 2009 with 37.5 mm[Hg] [derived]",
+		{"VR_VE_10Lmin_PaCO2_45mmHg_PBW_70.566kg", "reference §6 check, Sinha 2009 with 37.5 mmHg [derived]",
 			func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) },
 			1.7005, 4, "1"},
 		// §7 predicted PaCO2: VA 5.4 and 3.0 L/min give 0.863 x 200 / VA.
@@ -202,7 +202,7 @@ func TestAlveolarConstant(t *testing.T) {
 			// The kPa form is the mm[Hg] form scaled by 101.325/760 (one
 			// standard atmosphere in both units).
 			if math.Abs(kk-km*101.325/760) > 1e-12 {
-				t.Errorf("kPa form %.7f is not the mm[Hg] form x 101.325/760", kk)
+				t.Errorf("kPa form %.7f is not the mmHg form x 101.325/760", kk)
 			}
 		})
 	}
@@ -235,7 +235,7 @@ func TestUnitConversions(t *testing.T) {
 	}{
 		{"40mmHg_in_kPa", "reference §10 [derived]; UCUM 133.322 Pa", float64(physio.MmHg(40).KPa()), 5.3329, 4},
 		{"5kPa_in_mmHg", "reference §10 [derived]", float64(physio.KPa(5).MmHg()), 37.503, 3},
-		{"1kPa_in_mmHg", "codes.md UCUM: 1 kPa = 7.500638 mm[Hg]", float64(physio.KPa(1).MmHg()), 7.500638, 6},
+		{"1kPa_in_mmHg", "codes.md UCUM: 1 kPa = 7.500638 mmHg", float64(physio.KPa(1).MmHg()), 7.500638, 6},
 		{"1mmHg_in_Pa_UCUM", "UCUM m[Hg] = 133.3220 kPa [published]", float64(physio.MmHg(1).KPa()) * 1000, 133.322, 3},
 		{"1mmHg_UCUM_vs_NIST_133.3224Pa_in_ppm", "NIST SP 811 App. B 133.3224 Pa [memory]: 3.0 ppm above UCUM", (133.3224 - physio.PascalPerMmHg) / 133.3224 * 1e6, 3.0, 1},
 	}
@@ -248,7 +248,7 @@ func TestUnitConversions(t *testing.T) {
 	}
 	t.Run("round_trip_45mmHg", func(t *testing.T) {
 		if got := physio.MmHg(45).KPa().MmHg(); math.Abs(float64(got)-45) > 1e-12 {
-			t.Errorf("45 mm[Hg] -> kPa -> mm[Hg] = %v", got)
+			t.Errorf("45 mmHg -> kPa -> mmHg = %v", got)
 		}
 	})
 }

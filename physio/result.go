@@ -26,7 +26,7 @@ type Interpretation struct {
 const (
 	maxConstants   = 12
 	maxAssumptions = 6
-	maxFlags       = 4
+	maxFlags       = 6
 	maxOperands    = 20
 )
 
@@ -160,4 +160,20 @@ func (r *Result) inherit(sub *Result) {
 	for _, a := range sub.assumptions[:sub.nAssumptions] {
 		r.assume(a)
 	}
+}
+
+// FlagInputsApart is the flag of a value whose time-dependent inputs (the
+// blood gas and the ventilator readings) were taken more than 15 min
+// apart: they may not describe one steady state.
+const FlagInputsApart = "inputs taken more than 15 min apart (blood gas and ventilator readings): they may not describe one steady state; check that ventilation and CO2 production did not change between them"
+
+// FlagInputsApart adds FlagInputsApart; the caller, who knows when each
+// input was taken, decides. Adding it twice adds it once.
+func (r *Result) FlagInputsApart() {
+	for _, f := range r.flags[:r.nFlags] {
+		if f == FlagInputsApart {
+			return
+		}
+	}
+	r.flag(FlagInputsApart)
 }

@@ -4,16 +4,17 @@ package physio
 // them is still returned, never clamped, with a Flag.
 const (
 	// MaxVTPerKgPBW: tidal volume above 8 mL/kg PBW, the upper limit of the
-	// ARDS Network protocol (NEJM 2000;342:1301-8) [memory: 6 mL/kg target,
-	// raised to 7-8 mL/kg only for severe dyspnoea].
+	// ARDS Network protocol (NEJM 2000;342:1301-8) [published: the NIH NHLBI
+	// protocol card, 6 mL/kg target, 7-8 mL/kg only for breath stacking or
+	// dyssynchrony with plateau pressure below 30 cmH2O].
 	MaxVTPerKgPBW = 8.0
 	// MinVTPerKgPBW: tidal volume below 4 mL/kg PBW, the lowest the ARDS
-	// Network protocol allows [memory: protocol card, 4 mL/kg when plateau
-	// pressure stays above 30 cm[H2O]]; below it VT approaches anatomic dead
+	// Network protocol allows [published: protocol card, down to 4 mL/kg
+	// when plateau pressure stays above 30 cmH2O]; below it VT approaches anatomic dead
 	// space (2.2 mL/kg, Radford 1955), so ventilation becomes ineffective.
 	MinVTPerKgPBW = 4.0
 	// MaxRate: breath rate above 35 /min, the ARDS Network protocol maximum
-	// [memory: protocol card, rate not above 35 /min]; gas trapping and
+	// [published: protocol card, rate not above 35 /min]; gas trapping and
 	// intrinsic PEEP become likely.
 	MaxRate PerMin = 35
 	// MinRate: breath rate below 8 /min [common practice: adult backup rates
@@ -37,12 +38,25 @@ const (
 )
 
 var (
-	maxVTDef   = constDef{name: "advisory upper tidal volume", unit: "mL/kg", source: "ARDS Network protocol, NEJM 2000;342:1301-8 [memory]"}
-	minVTDef   = constDef{name: "advisory lower tidal volume", unit: "mL/kg", source: "ARDS Network protocol [memory]"}
-	maxRateDef = constDef{name: "advisory upper rate", unit: UnitPerMin, source: "ARDS Network protocol [memory]"}
+	maxVTDef   = constDef{name: "advisory upper tidal volume", unit: "mL/kg", source: "NIH NHLBI ARDS Network protocol card (NEJM 2000;342:1301-8): tidal volume 4-8 mL/kg predicted body weight [published]"}
+	minVTDef   = constDef{name: "advisory lower tidal volume", unit: "mL/kg", source: "NIH NHLBI ARDS Network protocol card: minimum 4 mL/kg predicted body weight [published]"}
+	maxRateDef = constDef{name: "advisory upper rate", unit: UnitPerMin, source: "NIH NHLBI ARDS Network protocol card: set rate not above 35 /min [published]"}
 	minRateDef = constDef{name: "advisory lower rate", unit: UnitPerMin, source: "[common practice]"}
 	targetDef  = constDef{name: "target PaCO2", unit: UnitMmHg, source: "given by the caller, not derived; a patient-specific goal only if the caller made it one"}
 )
+
+// beyondModel refuses an answer for a target outside the input range r of
+// the same quantity: the ranges bound where the alveolar ventilation
+// equation describes conventional ventilation (RespRateRange: above 80 /min
+// is high-frequency ventilation; TidalVolumeRange), so an answer beyond
+// them is not advice the equation can give (ErrBeyondModel).
+func beyondModel(name string, v float64, r Range) error {
+	if finite(v) && v >= r.Min && v <= r.Max {
+		return nil
+	}
+	return &InputError{Input: name, Value: v, Unit: r.Unit, Kind: ErrBeyondModel, Range: r,
+		Detail: "outside " + rangeText(r) + ", the range in which the alveolar ventilation equation describes conventional ventilation; the target cannot be reached by this change alone"}
+}
 
 // flagVT flags a tidal volume outside the advisory bounds per kg PBW.
 func (r *Result) flagVT(vtPerKg float64) {
@@ -66,8 +80,8 @@ func (r *Result) flagVT(vtPerKg float64) {
 // is recorded as the constant "target PaCO2" (given by the caller).
 //
 // It refuses rr outside RespRateRange, paco2 outside PaCO2Range, target
-// outside TargetPaCO2Range, vt outside TidalVolumeRange and pbw outside
-// PBWRange.
+// outside TargetPaCO2Range, vt outside TidalVolumeRange, pbw outside
+// PBWRange, and an answer outside RespRateRange (ErrBeyondModel).
 func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error) {
 	if err := RespRateRange.Check("RR", float64(rr)); err != nil {
 		return Result{}, err
@@ -85,6 +99,9 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 		return Result{}, err
 	}
 	v := float64(rr) * float64(paco2) / float64(target)
+	if err := beyondModel("rate for target", v, RespRateRange); err != nil {
+		return Result{}, err
+	}
 	vtPerKg := float64(vt) / float64(pbw)
 	r := Result{Value: v, Unit: UnitPerMin, Method: methodRateForTarget, MethodVersion: MethodVersion}
 	r.addConst(&targetDef, float64(target))
@@ -101,7 +118,7 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 	r.assume(assumeFixedDeadSpace)
 	r.assume(assumeFixedVT)
 	r.assume(assumeSteadyState)
-	r.basis("RR for target = RR x PaCO2 / target = %.1f /min x %.1f mm[Hg] / %.1f mm[Hg] = %.2f /min (VT %.0f mL = %.2f mL/kg PBW of %.2f kg)",
+	r.basis("RR for target = RR x PaCO2 / target = %.1f /min x %.1f mmHg / %.1f mmHg = %.2f /min (VT %.0f mL = %.2f mL/kg PBW of %.2f kg)",
 		float64(rr), float64(paco2), float64(target), v, float64(vt), vtPerKg, float64(pbw))
 	return r, nil
 }
@@ -117,8 +134,8 @@ func RateForTarget(rr PerMin, paco2, target MmHg, vt ML, pbw Kg) (Result, error)
 //
 // It refuses vt outside TidalVolumeRange, vd outside
 // PhysiologicDeadSpaceRange or not below vt (ErrOutOfMeaning), paco2
-// outside PaCO2Range, target outside TargetPaCO2Range and pbw outside
-// PBWRange.
+// outside PaCO2Range, target outside TargetPaCO2Range, pbw outside
+// PBWRange, and an answer outside TidalVolumeRange (ErrBeyondModel).
 func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error) {
 	if err := TidalVolumeRange.Check("VT", float64(vt)); err != nil {
 		return Result{}, err
@@ -139,6 +156,9 @@ func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error)
 		return Result{}, err
 	}
 	v := float64(vd) + float64(vt-vd)*float64(paco2)/float64(target)
+	if err := beyondModel("tidal volume for target", v, TidalVolumeRange); err != nil {
+		return Result{}, err
+	}
 	vtPerKg := v / float64(pbw)
 	r := Result{Value: v, Unit: UnitML, Method: methodVTForTarget, MethodVersion: MethodVersion}
 	r.addConst(&targetDef, float64(target))
@@ -147,7 +167,7 @@ func TidalVolumeForTarget(vt, vd ML, paco2, target MmHg, pbw Kg) (Result, error)
 	r.assume(assumeFixedDeadSpaceV)
 	r.assume(assumeFixedRate)
 	r.assume(assumeSteadyState)
-	r.basis("VT for target = VD + (VT - VD) x PaCO2 / target = %.0f mL + (%.0f mL - %.0f mL) x %.1f mm[Hg] / %.1f mm[Hg] = %.1f mL (%.2f mL/kg PBW of %.2f kg)",
+	r.basis("VT for target = VD + (VT - VD) x PaCO2 / target = %.0f mL + (%.0f mL - %.0f mL) x %.1f mmHg / %.1f mmHg = %.1f mL (%.2f mL/kg PBW of %.2f kg)",
 		float64(vd), float64(vt), float64(vd), float64(paco2), float64(target), v, vtPerKg, float64(pbw))
 	return r, nil
 }

@@ -1,5 +1,10 @@
 package physio
 
+import (
+	"strconv"
+	"strings"
+)
+
 // Named float64 types carry the unit of every value that crosses the package
 // boundary. The UCUM code of each is given beside it.
 type (
@@ -94,4 +99,56 @@ func (e EnergyEquation) String() string {
 		return "Roza-Shizgal 1984"
 	}
 	return "unknown"
+}
+
+// displayUnits maps the UCUM codes used in human-readable text to the units
+// people write: UCUM stays in coded fields (Result.Unit, Constant.Unit,
+// FHIR Quantity.code), display units go into basis, notes and messages.
+var displayUnits = map[string]string{
+	UnitMmHg:        "mmHg",
+	UnitCelsius:     "°C",
+	UnitYears:       "years",
+	UnitKcalPerD:    "kcal/day",
+	"mm[Hg].L/mL":   "mmHg·L/mL",
+	"kPa.L/mL":      "kPa·L/mL",
+	"cm[H2O]":       "cmH2O",
+	"[degF]":        "°F",
+	"{breaths}/min": "/min",
+}
+
+// DisplayUnit returns the unit to write in human-readable text for a UCUM
+// code: "mmHg" for mm[Hg], "°C" for Cel, and the code itself where people
+// write it the same way (mL, L/min, kPa, kg, /min); "" and "1" give "".
+func DisplayUnit(ucum string) string {
+	if ucum == UnitOne {
+		return ""
+	}
+	if d, ok := displayUnits[ucum]; ok {
+		return d
+	}
+	return ucum
+}
+
+// DisplayNumber writes a constant for people: as given when it has at most
+// 6 significant digits (a published coefficient such as 13.7516 is shown
+// as published), else at 4 significant digits (K = 0.8630036630036629 is
+// shown 0.863). Full precision stays in the data (Constant.Value).
+func DisplayNumber(v float64) string {
+	s := strconv.FormatFloat(v, 'g', -1, 64)
+	if significantDigits(s) <= 6 {
+		return s
+	}
+	return strconv.FormatFloat(v, 'g', 4, 64)
+}
+
+// significantDigits counts the significant digits of a decimal number as
+// written by strconv ('g', -1).
+func significantDigits(s string) int {
+	if i := strings.IndexAny(s, "eE"); i >= 0 {
+		s = s[:i]
+	}
+	s = strings.TrimLeft(s, "-")
+	s = strings.Replace(s, ".", "", 1)
+	s = strings.TrimLeft(s, "0")
+	return len(s)
 }

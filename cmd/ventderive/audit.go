@@ -21,6 +21,7 @@ import (
 
 	"github.com/ventderive/ventderive/consumer/postgres"
 	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/physio"
 )
 
 func init() {
@@ -660,11 +661,6 @@ func withUnit(v, unit string) string {
 	return v + " " + unit
 }
 
-// constantUnit shows a constant's unit for people.
-func constantUnit(ucum string) string {
-	return strings.NewReplacer("mm[Hg]", "mmHg", "Cel", "°C", ".", "·").Replace(postgres.DisplayUnit(ucum))
-}
-
 // show writes one derived value's history.
 func (o auditOutput) show(h postgres.History) error {
 	switch o.format {
@@ -728,7 +724,7 @@ func (o auditOutput) show(h postgres.History) error {
 		fmt.Fprintf(&b, "  method          %s (method version %s; algorithm %s)\n", v.Method, v.MethodVersion, v.Algorithm)
 		fmt.Fprintf(&b, "  basis           %s\n", v.Basis)
 		for _, c := range v.Constants {
-			fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(num(c.Value), constantUnit(c.Unit)), c.Source)
+			fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(physio.DisplayNumber(c.Value), physio.DisplayUnit(c.Unit)), c.Source)
 		}
 		for _, a := range v.Assumptions {
 			fmt.Fprintf(&b, "  assumption      %s\n", a)

@@ -191,7 +191,7 @@ func auditPlan(s consumer.Snapshot) (consumer.Changes, error) {
 		if err != nil {
 			return ch, err
 		}
-		disc, err := physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value))
+		disc, err := physio.PaCO2Discrepancy(paco2, physio.MmHg(pred.Value), physio.VCO2Measured)
 		if err != nil {
 			return ch, err
 		}

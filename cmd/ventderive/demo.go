@@ -26,6 +26,7 @@ import (
 	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
 	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/physio"
 )
 
 func init() {
@@ -157,7 +158,7 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	key := make([]byte, 32)
 	_, _ = rand.Read(key)
 	c.patientHashKey = hex.EncodeToString(key)
-	fmt.Fprintf(out, "  service   apparatus dead space %g mL, site target PaCO2 %g mm[Hg] (not a patient's goal), pairing window %s before to %s after each blood gas; logs in %s\n",
+	fmt.Fprintf(out, "  service   apparatus dead space %g mL, site target PaCO2 %g mmHg (not a patient's goal), pairing window %s before to %s after each blood gas; logs in %s\n",
 		c.apparatusDeadSpaceML, c.targetPaCO2mmHg, c.pipeline.Window.Before, c.pipeline.Window.After, logPath)
 
 	svcCtx, stopSvc := context.WithCancel(ctx)
@@ -353,7 +354,7 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 					s.latest = map[string]string{}
 				}
 				lastGas[ref] = eff
-				s.latest[kind] = fmt.Sprintf("%.3g %s", value, unit)
+				s.latest[kind] = strings.TrimSpace(fmt.Sprintf("%.3g %s", value, physio.DisplayUnit(unit)))
 			}
 		}
 	}
@@ -495,7 +496,7 @@ func formatLatest(m map[string]string) string {
 	slices.Sort(keys)
 	parts := make([]string, len(keys))
 	for i, k := range keys {
-		parts[i] = k + " " + strings.TrimSuffix(m[k], " 1") // UCUM "1": a plain number
+		parts[i] = k + " " + m[k] // display units; a ratio is a plain number
 	}
 	return strings.Join(parts, "; ")
 }

@@ -15,6 +15,7 @@ import (
 	"time"
 
 	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/physio"
 )
 
 func init() {
@@ -55,7 +56,7 @@ func parseDerive(args []string, stderr io.Writer, now time.Time) (deriveConfig, 
 	fs.Float64Var(&apparatus, "apparatus-dead-space-ml", 0, "apparatus dead space beyond the Y-piece in mL (HME, closed suction); unset: predicted PaCO2 is refused, never computed with zero")
 	fs.DurationVar(&c.site.Window.Before, "window-before", c.site.Window.Before, "pairing window before the blood gas")
 	fs.DurationVar(&c.site.Window.After, "window-after", c.site.Window.After, "pairing window after the blood gas")
-	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mm[Hg] for the ventilation-for-target advice (not a patient's goal); 0 or unset: not configured, the for-target values are refused (40 is the usual suggestion)")
+	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mmHg for the ventilation-for-target advice (not a patient's goal); 0 or unset: not configured, the for-target values are refused (40 is the usual suggestion)")
 	fs.StringVar(&c.site.CodeSystemURL, "codesystem-url", c.site.CodeSystemURL, "canonical URL of the service CodeSystem")
 	fs.StringVar(&recorded, "recorded", "", "RFC 3339 time written as Provenance.recorded and Bundle.timestamp (default: now)")
 	if err := fs.Parse(args); err != nil {
@@ -179,7 +180,7 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 	fmt.Fprintf(&b, "ventderive derive, %s. ADVISORY values: not orders; verify at the bedside.\n", fhirmap.Algorithm)
 	target := "not configured (for-target advice refused)"
 	if site.TargetPaCO2mmHg != 0 {
-		target = fmt.Sprintf("%g mm[Hg] (the site's, not a patient-specific goal)", site.TargetPaCO2mmHg)
+		target = fmt.Sprintf("%g mmHg (the site's, not a patient-specific goal)", site.TargetPaCO2mmHg)
 	}
 	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas; apparatus dead space %s; target PaCO2 %s; %s, RQ %g.\n\n",
 		shortDuration(site.Window.Before), shortDuration(site.Window.After), apparatus, target, site.Energy, site.RQ)
@@ -202,7 +203,7 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 			code = "-"
 		}
 		rows = append(rows, []string{d.Patient, d.Effective.UTC().Format(time.RFC3339), d.Kind,
-			fhirmap.FormatValue(d.Kind, d.Result.Value), d.Result.Unit, string(d.Status), code})
+			fhirmap.FormatValue(d.Kind, d.Result.Value), tableUnit(d.Result.Unit), string(d.Status), code})
 	}
 	widths := columnWidths(rows)
 	fmt.Fprintf(&b, "DERIVED (%d)\n", len(ds))
@@ -281,4 +282,13 @@ func writeRow(b *strings.Builder, row []string, widths []int) {
 	}
 	b.WriteString(strings.TrimRight(line.String(), " ")) // an empty last cell leaves no trailing blanks
 	b.WriteByte('\n')
+}
+
+// tableUnit is the unit column of the explain table: the display unit
+// (mmHg, not mm[Hg]), and "1" for a ratio so that the column is never blank.
+func tableUnit(ucum string) string {
+	if u := physio.DisplayUnit(ucum); u != "" {
+		return u
+	}
+	return "1"
 }

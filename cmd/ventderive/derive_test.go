@@ -241,7 +241,7 @@ func TestDeriveCommandTarget(t *testing.T) {
 			if tc.refused && !strings.Contains(out, "target PaCO2 not configured") {
 				t.Errorf("header does not say the target is not configured")
 			}
-			if !tc.refused && !strings.Contains(out, "target PaCO2 55 mm[Hg] is the site's configured target, not a patient-specific goal") {
+			if !tc.refused && !strings.Contains(out, "target PaCO2 55 mmHg is the site's configured target, not a patient-specific goal") {
 				t.Errorf("advice does not name the site's target")
 			}
 		})

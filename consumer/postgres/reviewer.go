@@ -15,6 +15,7 @@ import (
 	"github.com/jackc/pgx/v5/pgxpool"
 
 	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/physio"
 )
 
 // Reviewer answers audit questions for clinical reviewers. It reads only the
@@ -243,27 +244,9 @@ type History struct {
 }
 
 // DisplayUnit is the unit as people read it (mmHg, °C, L/min, mL) for a
-// UCUM code; "" for the dimensionless "1". Codes it does not know are
-// returned as they are.
-func DisplayUnit(ucum string) string {
-	switch ucum {
-	case "1", "":
-		return ""
-	case "mm[Hg]":
-		return "mmHg"
-	case "Cel":
-		return "°C"
-	case "cm[H2O]":
-		return "cmH2O"
-	case "{breaths}/min":
-		return "breaths/min"
-	case "mm[Hg].L/mL":
-		return "mmHg·L/mL"
-	case "a":
-		return "years"
-	}
-	return ucum
-}
+// UCUM code; "" for the dimensionless "1". It is physio.DisplayUnit, the one
+// table the published notes use too.
+func DisplayUnit(ucum string) string { return physio.DisplayUnit(ucum) }
 
 // Shown renders an input value as the published notes do: at most 3
 // decimals, no trailing zeros.

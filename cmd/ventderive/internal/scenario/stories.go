@@ -110,7 +110,7 @@ func stories() []story {
 		{
 			bed: 1, label: "Bed 1: normal lungs after abdominal surgery",
 			text: "Healthy lungs ventilated overnight after surgery. Expect VD/VT about 0.33 (normal about 0.3, " +
-				"Nunn & Hill 1960), ventilatory ratio about 1, arterial to end-tidal gradient about 4-5 mm[Hg], " +
+				"Nunn & Hill 1960), ventilatory ratio about 1, arterial to end-tidal gradient about 4-5 mmHg, " +
 				"measured PaCO2 close to predicted. One ventilator reading arrives after the second blood gas.",
 			gender: "male", birthDate: "1961-05-14", heightCm: 178, weightKg: 82,
 			at: func(f float64) state {
@@ -135,8 +135,8 @@ func stories() []story {
 		},
 		{
 			bed: 3, label: "Bed 3: exacerbation of obstructive lung disease",
-			text: "Chronic hypercapnia with metabolic compensation (HCO3 34 mmol/L). High PaCO2 (about 57 mm[Hg]) " +
-				"and a wide arterial to end-tidal gradient (about 14 mm[Hg]); VD/VT about 0.6. The rate is raised " +
+			text: "Chronic hypercapnia with metabolic compensation (HCO3 34 mmol/L). High PaCO2 (about 57 mmHg) " +
+				"and a wide arterial to end-tidal gradient (about 14 mmHg); VD/VT about 0.6. The rate is raised " +
 				"mid-morning and PaCO2 falls as the alveolar ventilation equation predicts. VCO2 is not measured: " +
 				"dead space can only be estimated.",
 			gender: "male", birthDate: "1957-11-23", heightCm: 170, weightKg: 61,
@@ -149,8 +149,8 @@ func stories() []story {
 		},
 		{
 			bed: 4, label: "Bed 4: pulmonary embolism, thrombolysed",
-			text: "Massive pulmonary embolism: a wide arterial to end-tidal gap (about 17 mm[Hg], alveolar dead-space " +
-				"fraction about 0.45) that narrows to about 7 mm[Hg] after thrombolysis mid-morning, with VD/VT " +
+			text: "Massive pulmonary embolism: a wide arterial to end-tidal gap (about 17 mmHg, alveolar dead-space " +
+				"fraction about 0.45) that narrows to about 7 mmHg after thrombolysis mid-morning, with VD/VT " +
 				"falling from 0.55 to 0.40. End-tidal CO2 in kPa, ventilator codes MDC only, body height and " +
 				"weight in inches and pounds.",
 			gender: "female", birthDate: "1971-02-08", heightCm: 165, weightKg: 80, imperialBody: true,
@@ -177,7 +177,7 @@ func stories() []story {
 		},
 		{
 			bed: 6, label: "Bed 6: cooled after cardiac arrest",
-			text: "Targeted temperature management at 33.5 Cel lowers CO2 production to about 140 mL/min; PaCO2 " +
+			text: "Targeted temperature management at 33.5 °C lowers CO2 production to about 140 mL/min; PaCO2 " +
 				"normal on a low minute volume. On rewarming VCO2 rises to about 185 mL/min and PaCO2 rises until " +
 				"the rate is increased; the ventilation needed for a target PaCO2 of 40 rises with it.",
 			gender: "male", birthDate: "1968-12-11", heightCm: 182, weightKg: 85,
@@ -215,7 +215,7 @@ func stories() []story {
 		{
 			bed: 9, label: "Bed 9: blood gas amended",
 			text: "Lung contusion after trauma, VD/VT about 0.40. The laboratory first reports the second blood gas " +
-				"with a PaCO2 about 15 mm[Hg] too high, then amends it an hour later: the derived values get a new " +
+				"with a PaCO2 about 15 mmHg too high, then amends it an hour later: the derived values get a new " +
 				"version from the amended value.",
 			gender: "male", birthDate: "1989-06-27", heightCm: 188, weightKg: 95,
 			at: func(f float64) state {
@@ -227,7 +227,7 @@ func stories() []story {
 		{
 			bed: 10, label: "Bed 10: blood gas entered in error",
 			text: "Aspiration pneumonia, VD/VT about 0.45. The second blood gas came from another patient's sample " +
-				"(PaCO2 about 68 mm[Hg]) and is marked entered-in-error 100 minutes later: its derived values are " +
+				"(PaCO2 about 68 mmHg) and is marked entered-in-error 100 minutes later: its derived values are " +
 				"retracted.",
 			gender: "female", birthDate: "1976-01-15", heightCm: 170, weightKg: 68,
 			at: func(f float64) state {
