@@ -16,6 +16,7 @@ import (
 
 	"github.com/ventderive/ventderive/consumer/postgres"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/physio"
 )
 
 // publishedObservation holds the elements of a published Observation that
@@ -206,9 +207,11 @@ func checkPublishedVersion(t *testing.T, v postgres.Version) {
 		notes.WriteString(n.Text + "\n")
 	}
 	for _, c := range v.Constants {
-		// The note writes a constant as "name = value unit (source)".
-		if !strings.Contains(notes.String(), c.Name+" = "+strconv.FormatFloat(c.Value, 'g', -1, 64)) {
-			fail("constant "+c.Name, "absent from the notes", strconv.FormatFloat(c.Value, 'g', -1, 64))
+		// The note writes a constant for people as "name = value unit
+		// (source)", at physio.DisplayNumber's precision; the store keeps it
+		// at full precision.
+		if !strings.Contains(notes.String(), c.Name+" = "+physio.DisplayNumber(c.Value)) {
+			fail("constant "+c.Name, "absent from the notes", physio.DisplayNumber(c.Value)+" (stored "+strconv.FormatFloat(c.Value, 'g', -1, 64)+")")
 		}
 	}
 	for _, a := range v.Assumptions {
