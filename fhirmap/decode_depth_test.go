@@ -82,3 +82,40 @@ func TestDecodeRefusesYear9999(t *testing.T) {
 	raw := []byte(strings.Replace(string(obsText(qty44)), "2026-11-20T08:00:00Z", "9999-12-31T23:59:59Z", 1))
 	wantRefusal(t, raw, "bad-time", "Observation.effectiveDateTime", -1)
 }
+
+// A Bundle entry without an id is identified by its fullUrl only when that
+// is a urn:uuid or urn:oid (what the store's CHECK on input_resource.reference
+// accepts): anything else is refused here, so that the constraint never
+// fires and PostgreSQL never logs the failing row.
+func TestDecodeFullURLWithoutID(t *testing.T) {
+	entry := func(fullURL string) []byte {
+		return []byte(`{"resourceType":"Bundle","type":"collection","entry":[{"fullUrl":"` + fullURL + `","resource":` +
+			strings.Replace(string(obsText(qty44)), `"id":"lg-t-1",`, "", 1) + `}]}`)
+	}
+	for _, tc := range []struct {
+		fullURL string
+		ok      bool
+	}{
+		{"urn:uuid:00000000-0000-4000-8000-000000000001", true},
+		{"urn:uuid:ABCDEF00-0000-4000-8000-000000000001", true},
+		{"urn:oid:1.2.840.113619.2.62", true},
+		{"http://example.org/fhir/Observation/123", false},
+		{"urn:uuid:not-a-uuid", false},
+		{"urn:uuid:00000000-0000-4000-8000-00000000000g", false},
+		{"urn:oid:3.1", false},
+		{"urn:oid:1.02", false},
+		{"urn:oid:1..2", false},
+	} {
+		t.Run(tc.fullURL, func(t *testing.T) {
+			raw := entry(tc.fullURL)
+			if tc.ok {
+				d := mustDecode(t, raw)
+				if len(d.Resources) != 1 || d.Resources[0].Reference != tc.fullURL {
+					t.Fatalf("resources %+v, want one named by its fullUrl", d.Resources)
+				}
+				return
+			}
+			wantRefusal(t, raw, "bad-reference", "Bundle.entry[0].fullUrl", 0)
+		})
+	}
+}

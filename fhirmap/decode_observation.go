@@ -3,6 +3,7 @@ package fhirmap
 import (
 	"bytes"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/samply/golang-fhir-models/fhir-models/fhir"
@@ -146,6 +147,10 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 		}
 		ref = "Observation/" + id
 	} else if e.fullURL != "" {
+		if !validURN(e.fullURL) {
+			return refuse(e.entry, strings.TrimSuffix(e.root, ".resource")+".fullUrl", "bad-reference",
+				"an Observation without an id needs a fullUrl of the form urn:uuid:<uuid> or urn:oid:<oid>")
+		}
 		ref = e.fullURL
 	}
 	if !found && !anyComponent {
@@ -253,6 +258,43 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 			Patient: base.Patient, Digest: base.Digest, Raw: bytes.Clone(e.raw)})
 	}
 	return nil
+}
+
+// validURN reports whether s is a urn:uuid:<uuid> or urn:oid:<oid> (FHIR R4
+// Bundle.entry.fullUrl for a resource without a RESTful identity): the only
+// fullUrls used as a reference, the same forms the store's CHECK on
+// input_resource.reference accepts (migrations 0002 and 0003), so the
+// decoder refuses what the constraint would have refused, and no failing
+// row reaches the server log.
+func validURN(s string) bool {
+	if u, ok := strings.CutPrefix(s, "urn:uuid:"); ok {
+		if len(u) != 36 {
+			return false
+		}
+		for i, c := range u {
+			switch i {
+			case 8, 13, 18, 23:
+				if c != '-' {
+					return false
+				}
+			default:
+				if !(c >= '0' && c <= '9' || c >= 'a' && c <= 'f' || c >= 'A' && c <= 'F') {
+					return false
+				}
+			}
+		}
+		return true
+	}
+	o, ok := strings.CutPrefix(s, "urn:oid:")
+	if !ok || len(o) < 3 || o[0] < '0' || o[0] > '2' || o[1] != '.' || len(o) > 200 {
+		return false
+	}
+	for _, arc := range strings.Split(o[2:], ".") {
+		if arc == "" || len(arc) > 1 && arc[0] == '0' || strings.Trim(arc, "0123456789") != "" {
+			return false
+		}
+	}
+	return true
 }
 
 func orPath(ref string, e *obsEntry) string {
