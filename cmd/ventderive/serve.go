@@ -223,7 +223,7 @@ func runServe(ctx context.Context, args []string, e env) error {
 	if err != nil {
 		return err
 	}
-	log.Info("ventderive serve starting", s.resolved()...)
+	log.Info("ventderive serve starting", append(readBuildInfo().attrs(), s.resolved()...)...)
 	if c.databaseURL == "" {
 		return errors.New("no database: set DATABASE_URL or --database-url")
 	}
