@@ -357,9 +357,11 @@ func connectNATS(ctx context.Context, c serveConfig, log *slog.Logger) (*nats.Co
 	for attempt := 1; ; attempt++ {
 		nc, err := nats.Connect(c.natsURL, opts...)
 		if err == nil {
-			if attempt > 1 {
-				log.Info("nats reachable", "url", nc.ConnectedUrlRedacted())
+			if err := consumer.CheckServerVersion(nc.ConnectedServerVersion()); err != nil {
+				nc.Close()
+				return nil, fmt.Errorf("nats %s: %w", nc.ConnectedUrlRedacted(), err)
 			}
+			log.Info("nats connected", "url", nc.ConnectedUrlRedacted(), "server_version", nc.ConnectedServerVersion())
 			return nc, nil
 		}
 		if natsAuthError(err) {

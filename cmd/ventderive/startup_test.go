@@ -13,6 +13,7 @@ import (
 
 	"github.com/nats-io/nats-server/v2/server"
 
+	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
 )
 
@@ -141,4 +142,54 @@ func TestServeNATSStart(t *testing.T) {
 			t.Error("the password reached the log")
 		}
 	})
+}
+
+// fakeOldNATS answers the NATS handshake as a server of the given version
+// would (INFO, then PONG to the client's PING): enough for a client to
+// connect and read the version, which no in-process server of an old
+// release can offer.
+func fakeOldNATS(t *testing.T, version string) int {
+	t.Helper()
+	l, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { l.Close() })
+	go func() {
+		for {
+			c, err := l.Accept()
+			if err != nil {
+				return
+			}
+			go func() {
+				defer c.Close()
+				fmt.Fprintf(c, "INFO {\"server_id\":\"fake\",\"version\":%q,\"proto\":1,\"go\":\"go1\",\"host\":\"127.0.0.1\",\"max_payload\":1048576,\"headers\":true}\r\n", version)
+				buf := make([]byte, 4096)
+				for {
+					n, err := c.Read(buf)
+					if err != nil {
+						return
+					}
+					if strings.Contains(string(buf[:n]), "PING") {
+						_, _ = c.Write([]byte("PONG\r\n"))
+					}
+				}
+			}()
+		}
+	}()
+	return l.Addr().(*net.TCPAddr).Port
+}
+
+// serve refuses a nats-server older than the service needs, naming both
+// versions.
+func TestServeRefusesOldNATSServer(t *testing.T) {
+	port := fakeOldNATS(t, "2.9.10")
+	var out strings.Builder
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	err := run(ctx, []string{"serve", "--database-url", pgtest.NewDatabase(t), "--http-addr", "",
+		"--nats-url", fmt.Sprintf("nats://127.0.0.1:%d", port)}, serveEnv(&out))
+	if err == nil || !strings.Contains(err.Error(), "2.9.10") || !strings.Contains(err.Error(), consumer.MinServerVersion) {
+		t.Fatalf("err = %v, want a refusal naming 2.9.10 and %s", err, consumer.MinServerVersion)
+	}
 }
