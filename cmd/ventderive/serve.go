@@ -365,8 +365,8 @@ func connectNATS(ctx context.Context, c serveConfig, log *slog.Logger) (*nats.Co
 			return nc, nil
 		}
 		if natsAuthError(err) {
-			return nil, fmt.Errorf("nats %s refused the credentials (%v): check the user in --nats-url / NATS_URL, "+
-				"the credentials file --nats-creds / NATS_CREDS and the server's authorization", servers, err)
+			return nil, fmt.Errorf("nats %s refused the credentials (%v): check the user in --nats-url / VENTDERIVE_NATS_URL, "+
+				"the credentials file --nats-creds / VENTDERIVE_NATS_CREDS and the server's authorization", servers, err)
 		}
 		if ctx.Err() != nil {
 			return nil, fmt.Errorf("nats connect: %w", ctx.Err())
