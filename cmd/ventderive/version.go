@@ -17,6 +17,10 @@ import (
 // ("(devel)" for a build from a work tree).
 var version = ""
 
+// commit is the VCS revision, set at build time (-X main.commit=...) where
+// the build has no VCS data (a container build context without .git).
+var commit = ""
+
 // buildInfo is what --version prints and the start log carries.
 type buildInfo struct {
 	Version   string // release or module version
@@ -31,6 +35,9 @@ func readBuildInfo() buildInfo {
 	if !ok {
 		if b.Version == "" {
 			b.Version = "unknown"
+		}
+		if commit != "" {
+			b.Commit = commit
 		}
 		return b
 	}
@@ -48,6 +55,9 @@ func readBuildInfo() buildInfo {
 	}
 	if dirty && b.Commit != "unknown" {
 		b.Commit += "+dirty"
+	}
+	if commit != "" {
+		b.Commit = commit
 	}
 	return b
 }
