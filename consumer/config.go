@@ -1,8 +1,12 @@
 package consumer
 
 import (
-	"github.com/nats-io/nats.go/jetstream"
+	"fmt"
+	"strconv"
+	"strings"
 	"time"
+
+	"github.com/nats-io/nats.go/jetstream"
 
 	"github.com/ventderive/ventderive/fhirmap"
 )
@@ -146,4 +150,52 @@ func ConsumerConfig(c Config) jetstream.ConsumerConfig {
 		FilterSubject: DefaultInputSubjects,
 		ReplayPolicy:  jetstream.ReplayInstantPolicy,
 	}
+}
+
+// MinServerVersion is the oldest nats-server the service runs against. It
+// needs 2.10: the consumer create-or-update API with its action field
+// (CreateOrUpdateConsumer), a terminated message staying terminated (2.9.x
+// servers were seen redelivering TermWithReason'd messages every 30 s), and
+// the sync_interval setting deploy/nats/nats-server.conf uses for durable
+// JetStream writes.
+const MinServerVersion = "2.10.0"
+
+// CheckServerVersion refuses a server older than MinServerVersion (v as the
+// server's INFO reports it, e.g. "2.9.10" or "2.11.0-beta.1").
+func CheckServerVersion(v string) error {
+	got, ok := parseVersion(v)
+	want, _ := parseVersion(MinServerVersion)
+	if !ok {
+		return fmt.Errorf("nats-server version %q is not a version; this service needs %s or later", v, MinServerVersion)
+	}
+	for i := range want {
+		if got[i] != want[i] {
+			if got[i] < want[i] {
+				return fmt.Errorf("nats-server %s is older than %s, the oldest this service runs against: upgrade the server", v, MinServerVersion)
+			}
+			return nil
+		}
+	}
+	return nil
+}
+
+// parseVersion reads "major.minor.patch", ignoring a "-pre" or "+build" suffix.
+func parseVersion(v string) ([3]int, bool) {
+	var out [3]int
+	v = strings.TrimPrefix(v, "v")
+	if i := strings.IndexAny(v, "-+"); i >= 0 {
+		v = v[:i]
+	}
+	parts := strings.Split(v, ".")
+	if len(parts) != 3 {
+		return out, false
+	}
+	for i, p := range parts {
+		n, err := strconv.Atoi(p)
+		if err != nil || n < 0 {
+			return out, false
+		}
+		out[i] = n
+	}
+	return out, true
 }

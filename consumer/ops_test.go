@@ -402,3 +402,27 @@ func inboxKeys(msgs []testMsg) []string {
 	}
 	return out
 }
+
+// A row the service did not write (a misused writer role, a bug) naming a
+// system subject is never published: the relay sends only derived
+// Observations and Provenance, to the subjects configured for them.
+func TestRelayNeverPublishesForeignRows(t *testing.T) {
+	h := newHarness(t)
+	msgs := generate(genOpts{patients: 1, gases: 1})
+	h.startReplica(nil)
+	h.publish(msgs)
+	h.waitSettled(60 * time.Second)
+	ctx := context.Background()
+	if _, err := h.pool.Exec(ctx, `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
+		SELECT '$JS.API.STREAM.DELETE.FHIR_INPUT', 'Foreign/1', '{}', '', inbox_key, now() FROM inbox LIMIT 1`); err != nil {
+		t.Fatal(err)
+	}
+	h.waitLog("neither a derived Observation nor a Provenance", 60*time.Second)
+	if _, err := h.js.Stream(ctx, consumer.DefaultInputStream); err != nil {
+		t.Fatalf("input stream after the foreign row: %v", err)
+	}
+	var published bool
+	if err := h.pool.QueryRow(ctx, `SELECT published_at IS NOT NULL FROM outbox WHERE msg_id = 'Foreign/1'`).Scan(&published); err != nil || published {
+		t.Fatalf("foreign row published=%v, %v", published, err)
+	}
+}

@@ -97,7 +97,9 @@ func (p *Pipeline) relayFailing(err error) {
 // outputSubject is where a row goes: the subject configured now for its
 // type (the Nats-Msg-Id starts with "Observation/" or "Provenance/"), so
 // that a corrected --observation-subject or --provenance-subject applies to
-// rows written before the change; the stored subject for anything else.
+// rows written before the change. The stored subject is never used: the
+// service writes no other rows, and a row of another kind (a bug, or a
+// misused writer role naming a system subject) is not published ("").
 func (p *Pipeline) outputSubject(m OutboxMessage) string {
 	switch {
 	case strings.HasPrefix(m.MsgID, "Observation/"):
@@ -105,7 +107,7 @@ func (p *Pipeline) outputSubject(m OutboxMessage) string {
 	case strings.HasPrefix(m.MsgID, "Provenance/"):
 		return p.cfg.ProvenanceSub
 	}
-	return m.Subject
+	return ""
 }
 
 // derivationOf is a row's derivation version chain: its message id without
@@ -131,7 +133,12 @@ func (p *Pipeline) publishBatch(ctx context.Context, msgs []OutboxMessage) ([]in
 	futures := make([]jetstream.PubAckFuture, len(msgs))
 	errs := make([]error, len(msgs))
 	for i, m := range msgs {
-		nm := nats.NewMsg(p.outputSubject(m))
+		subject := p.outputSubject(m)
+		if subject == "" {
+			errs[i] = fmt.Errorf("outbox row %d is neither a derived Observation nor a Provenance: not published", m.Seq)
+			continue
+		}
+		nm := nats.NewMsg(subject)
 		nm.Data = m.Payload
 		for k, v := range m.Header {
 			nm.Header.Set(k, v)

@@ -82,3 +82,41 @@ func TestDecodeRefusesYear9999(t *testing.T) {
 	raw := []byte(strings.Replace(string(obsText(qty44)), "2026-11-20T08:00:00Z", "9999-12-31T23:59:59Z", 1))
 	wantRefusal(t, raw, "bad-time", "Observation.effectiveDateTime", -1)
 }
+
+// A Bundle entry without an id is identified by its fullUrl only when that
+// is a urn:uuid or urn:oid, stored as Observation/<uuid or oid> (a reference
+// the store's CHECK on input_resource.reference accepts and every output
+// resolves): anything else is refused here, so that the constraint never
+// fires and PostgreSQL never logs the failing row.
+func TestDecodeFullURLWithoutID(t *testing.T) {
+	entry := func(fullURL string) []byte {
+		return []byte(`{"resourceType":"Bundle","type":"collection","entry":[{"fullUrl":"` + fullURL + `","resource":` +
+			strings.Replace(string(obsText(qty44)), `"id":"lg-t-1",`, "", 1) + `}]}`)
+	}
+	for _, tc := range []struct {
+		fullURL string
+		want    string // "" for a refusal
+	}{
+		{"urn:uuid:00000000-0000-4000-8000-000000000001", "Observation/00000000-0000-4000-8000-000000000001"},
+		{"urn:uuid:ABCDEF00-0000-4000-8000-000000000001", "Observation/abcdef00-0000-4000-8000-000000000001"},
+		{"urn:oid:1.2.840.113619.2.62", "Observation/1.2.840.113619.2.62"},
+		{"http://example.org/fhir/Observation/123", ""},
+		{"urn:uuid:not-a-uuid", ""},
+		{"urn:uuid:00000000-0000-4000-8000-00000000000g", ""},
+		{"urn:oid:3.1", ""},
+		{"urn:oid:1.02", ""},
+		{"urn:oid:1..2", ""},
+	} {
+		t.Run(tc.fullURL, func(t *testing.T) {
+			raw := entry(tc.fullURL)
+			if tc.want != "" {
+				d := mustDecode(t, raw)
+				if len(d.Resources) != 1 || d.Resources[0].Reference != tc.want {
+					t.Fatalf("resources %+v, want one named %s", d.Resources, tc.want)
+				}
+				return
+			}
+			wantRefusal(t, raw, "bad-reference", "Bundle.entry[0].fullUrl", 0)
+		})
+	}
+}

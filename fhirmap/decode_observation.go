@@ -259,6 +259,43 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 	return nil
 }
 
+// validURN reports whether s is a urn:uuid:<uuid> or urn:oid:<oid> (FHIR R4
+// Bundle.entry.fullUrl for a resource without a RESTful identity): the only
+// fullUrls used as a reference, the same forms the store's CHECK on
+// input_resource.reference accepts (migrations 0002 and 0003), so the
+// decoder refuses what the constraint would have refused, and no failing
+// row reaches the server log.
+func validURN(s string) bool {
+	if u, ok := strings.CutPrefix(s, "urn:uuid:"); ok {
+		if len(u) != 36 {
+			return false
+		}
+		for i, c := range u {
+			switch i {
+			case 8, 13, 18, 23:
+				if c != '-' {
+					return false
+				}
+			default:
+				if !(c >= '0' && c <= '9' || c >= 'a' && c <= 'f' || c >= 'A' && c <= 'F') {
+					return false
+				}
+			}
+		}
+		return true
+	}
+	o, ok := strings.CutPrefix(s, "urn:oid:")
+	if !ok || len(o) < 3 || o[0] < '0' || o[0] > '2' || o[1] != '.' || len(o) > 200 {
+		return false
+	}
+	for _, arc := range strings.Split(o[2:], ".") {
+		if arc == "" || len(arc) > 1 && arc[0] == '0' || strings.Trim(arc, "0123456789") != "" {
+			return false
+		}
+	}
+	return true
+}
+
 func orPath(ref string, e *obsEntry) string {
 	if ref != "" {
 		return ref
@@ -409,26 +446,30 @@ func (d *decoder) value(base Fact, key string, info CodeInfo, coding Coding, spe
 // UUIDs compare case-insensitively) and "Observation/<oid>" for urn:oid:<oid>,
 // so that derivedFrom, the Provenance and the store all name it as a FHIR
 // relative reference the service holds (a urn:uuid resolves only inside its
-// Bundle); an absolute http(s) URL is kept as it is, since it resolves on
-// its own, and so is a relative Observation/<id>. Any other fullUrl gives
-// why it cannot identify the Observation.
+// Bundle); a relative Observation/<id> is kept as it is. Any other fullUrl,
+// an absolute http(s) URL included, gives why it cannot identify the
+// Observation.
 func fullURLIdentity(u string) (ref, why string) {
 	lower := strings.ToLower(u)
 	for _, p := range []string{"urn:uuid:", "urn:oid:"} {
 		if rest, ok := strings.CutPrefix(lower, p); ok {
+			if !validURN(lower) {
+				return "", "the fullUrl is not of the form urn:uuid:<uuid> or urn:oid:<oid>"
+			}
 			if !validID(rest) {
 				return "", "the fullUrl " + p + " part is not usable as a FHIR id"
 			}
 			return "Observation/" + rest, ""
 		}
 	}
-	if strings.HasPrefix(lower, "http://") || strings.HasPrefix(lower, "https://") {
-		return u, ""
-	}
+	// An absolute http(s) fullUrl is valid FHIR but is not kept as an
+	// identity: the store keys every input by "Type/<id>" or a urn, and a URL
+	// would reach its reference constraint (whose error PostgreSQL logs with
+	// the row). Refused here instead, with the reason.
 	// A relative "Observation/<id>" is not a valid fullUrl, but it names
 	// the resource unambiguously: kept, as before.
 	if id, ok := strings.CutPrefix(u, "Observation/"); ok && validID(id) {
 		return u, ""
 	}
-	return "", "an Observation without an id needs a fullUrl that is urn:uuid, urn:oid, an absolute http(s) URL or Observation/<id>"
+	return "", "an Observation without an id needs a fullUrl of the form urn:uuid:<uuid>, urn:oid:<oid> or Observation/<id>"
 }

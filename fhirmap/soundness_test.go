@@ -419,12 +419,13 @@ func TestInputsFarApartFlagged(t *testing.T) {
 
 // TestFullURLIdentity checks the identity of a Bundle Observation without
 // id (FHIR R4 Bundle.entry.fullUrl: an absolute URL, or urn:uuid / urn:oid
-// [published]).
+// [published]); ventderive keeps urn forms and Observation/<id> and refuses
+// an http(s) URL, which its store cannot key.
 func TestFullURLIdentity(t *testing.T) {
 	for _, c := range []struct{ in, want string }{
 		{"urn:uuid:5A0C7C1E-2B0B-4C55-9D1E-000000000011", "Observation/5a0c7c1e-2b0b-4c55-9d1e-000000000011"},
 		{"urn:oid:1.2.3.4", "Observation/1.2.3.4"},
-		{"https://lab.example.org/fhir/Observation/abg-1", "https://lab.example.org/fhir/Observation/abg-1"},
+		{"https://lab.example.org/fhir/Observation/abg-1", ""}, // valid FHIR, but not storable as an identity: refused
 		{"Observation/abg-1", "Observation/abg-1"},
 		{"urn:uuid:not a uuid", ""},
 		{"ftp://x/y", ""},

@@ -115,13 +115,22 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 
 	// PostgreSQL: a fresh database on DATABASE_URL's server, or a
 	// throwaway cluster.
-	dbURL, cleanupDB, err := demoDatabase(ctx, e, f, out)
+	dbURL, cluster, cleanupDB, err := demoDatabase(ctx, e, f, out)
 	if err != nil {
 		return err
 	}
 	defer func() {
-		if !f.keep {
+		switch {
+		case !f.keep:
 			cleanupDB()
+		case cluster != nil:
+			// The server would die with this process: stop it cleanly and
+			// keep its data for the printed start command.
+			sctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+			if err := cluster.Stop(sctx, "fast"); err != nil {
+				fmt.Fprintf(out, "stopping the kept cluster: %v\n", err)
+			}
+			cancel()
 		}
 	}()
 
@@ -199,6 +208,11 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	if f.keep {
 		fmt.Fprintf(out, "\nThe store is kept. Try, as a reviewer would:\n")
 		p := sc.Patients[1].Ref
+		if cluster != nil {
+			start, stop := keptClusterCommands(cluster, filepath.Join(f.dir, "postgres"))
+			fmt.Fprintf(out, "The throwaway PostgreSQL cluster stops when the demo exits; its data stays in %s.\n", filepath.Join(f.dir, "postgres"))
+			fmt.Fprintf(out, "Start it again with:\n  %s\n(stop it with: %s; remove the directory when done)\n", start, stop)
+		}
 		fmt.Fprintf(out, "  export DATABASE_URL='%s'\n", dbURL)
 		fmt.Fprintf(out, "  go run ./cmd/ventderive audit list --patient %s\n", p)
 		fmt.Fprintf(out, "  go run ./cmd/ventderive audit refusals\n")
@@ -212,9 +226,27 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 	return nil
 }
 
-// demoDatabase returns the URL of an empty database for the demo and a
+// keptClusterCommands are the shell commands that start and stop a kept
+// throwaway cluster in dir on its port (as the postgres user when running
+// as root, as pgtest runs it).
+func keptClusterCommands(c *pgtest.Cluster, dir string) (start, stop string) {
+	bin, _ := pgtest.ServerBin()
+	ctl := filepath.Join(bin, "pg_ctl")
+	as := ""
+	if os.Geteuid() == 0 {
+		as = "runuser -u postgres -- "
+	}
+	data := filepath.Join(dir, "data")
+	start = fmt.Sprintf("%s%s -D %s -l %s -o '-p %d -k /tmp -c listen_addresses=127.0.0.1' -w start",
+		as, ctl, data, filepath.Join(dir, "postgres.log"), c.Port())
+	stop = fmt.Sprintf("%s%s -D %s -w stop", as, ctl, data)
+	return start, stop
+}
+
+// demoDatabase returns the URL of an empty database for the demo, the
+// throwaway cluster it lives in (nil on DATABASE_URL's server) and a
 // function that removes it.
-func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (string, func(), error) {
+func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (string, *pgtest.Cluster, func(), error) {
 	admin := e.getenv("DATABASE_URL")
 	var cluster *pgtest.Cluster
 	if admin == "" {
@@ -222,9 +254,9 @@ func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (strin
 		cluster, err = pgtest.StartCluster(ctx, filepath.Join(f.dir, "postgres"))
 		if err != nil {
 			if errors.Is(err, pgtest.ErrNoServer) {
-				return "", nil, fmt.Errorf("no DATABASE_URL and no PostgreSQL server to start a throwaway one: install the Debian package postgresql (or set DATABASE_URL to a server where this role may CREATE DATABASE): %w", err)
+				return "", nil, nil, fmt.Errorf("no DATABASE_URL and no PostgreSQL server to start a throwaway one: install the Debian package postgresql (or set DATABASE_URL to a server where this role may CREATE DATABASE): %w", err)
 			}
-			return "", nil, fmt.Errorf("throwaway PostgreSQL: %w", err)
+			return "", nil, nil, fmt.Errorf("throwaway PostgreSQL: %w", err)
 		}
 		admin = cluster.URL()
 		fmt.Fprintf(out, "  PostgreSQL throwaway cluster in %s\n", filepath.Join(f.dir, "postgres"))
@@ -234,7 +266,7 @@ func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (strin
 		if cluster != nil {
 			_ = cluster.Close()
 		}
-		return "", nil, err
+		return "", nil, nil, err
 	}
 	if cluster == nil {
 		fmt.Fprintf(out, "  PostgreSQL database %s on the server DATABASE_URL names\n", name)
@@ -246,7 +278,7 @@ func demoDatabase(ctx context.Context, e env, f demoFlags, out io.Writer) (strin
 		}
 		dropDatabase(admin, name)
 	}
-	return url, cleanup, nil
+	return url, cluster, cleanup, nil
 }
 
 // feed publishes the scenario at the requested speed with a progress line.

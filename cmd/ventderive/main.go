@@ -52,6 +52,10 @@ func main() {
 }
 
 func run(ctx context.Context, args []string, e env) error {
+	if len(args) > 0 && (args[0] == "version" || wantsVersion(args)) {
+		readBuildInfo().print(e.stdout)
+		return nil
+	}
 	if len(args) == 0 || args[0] == "-h" || args[0] == "--help" || args[0] == "help" {
 		usage(e.stderr)
 		if len(args) == 0 {
@@ -75,5 +79,5 @@ func usage(w io.Writer) {
 	for _, c := range commands {
 		fmt.Fprintf(w, "  %-9s %s\n", c.name, c.summary)
 	}
-	fmt.Fprintln(w, "Run 'ventderive <command> -h' for a command's flags.")
+	fmt.Fprintln(w, "Run 'ventderive <command> -h' for a command's flags, 'ventderive --version' (or '<command> --version') for the build.")
 }

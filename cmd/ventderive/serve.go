@@ -223,7 +223,7 @@ func runServe(ctx context.Context, args []string, e env) error {
 	if err != nil {
 		return err
 	}
-	log.Info("ventderive serve starting", s.resolved()...)
+	log.Info("ventderive serve starting", append(readBuildInfo().attrs(), s.resolved()...)...)
 	if c.databaseURL == "" {
 		return errors.New("no database: set DATABASE_URL or --database-url")
 	}
@@ -267,6 +267,9 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 		return fmt.Errorf("database: %w", err)
 	}
 	defer pool.Close()
+	if err := waitDatabase(ctx, pool, log); err != nil {
+		return err
+	}
 	if c.migrate {
 		v, err := migrations.Apply(ctx, pool, log)
 		if err != nil {
@@ -276,7 +279,7 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	}
 	store := postgres.New(pool, postgres.Options{PatientKey: []byte(c.patientHashKey), Logger: log})
 
-	nc, err := connectNATS(c, log)
+	nc, err := connectNATS(ctx, c, log)
 	if err != nil {
 		return err
 	}
@@ -325,14 +328,15 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	return err
 }
 
-// connectNATS connects with reconnection forever: a replica must outlive
-// any NATS outage on its own.
-func connectNATS(c serveConfig, log *slog.Logger) (*nats.Conn, error) {
+// connectNATS connects with reconnection forever once connected: a replica
+// must outlive any NATS outage on its own. The first connection is retried
+// here, with a log line naming the servers (passwords masked), while the
+// servers are unreachable; a refusal of the credentials is fatal.
+func connectNATS(ctx context.Context, c serveConfig, log *slog.Logger) (*nats.Conn, error) {
 	opts := []nats.Option{
 		nats.Name("ventderive"),
 		nats.MaxReconnects(-1),
 		nats.ReconnectWait(time.Second),
-		nats.RetryOnFailedConnect(true),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
 			log.Warn("nats disconnected", "err", err)
 		}),
@@ -349,11 +353,31 @@ func connectNATS(c serveConfig, log *slog.Logger) (*nats.Conn, error) {
 		return nil, err
 	}
 	opts = append(opts, auth...)
-	nc, err := nats.Connect(c.natsURL, opts...)
-	if err != nil {
-		return nil, fmt.Errorf("nats connect: %w", err)
+	servers := maskURL(c.natsURL)
+	for attempt := 1; ; attempt++ {
+		nc, err := nats.Connect(c.natsURL, opts...)
+		if err == nil {
+			if err := consumer.CheckServerVersion(nc.ConnectedServerVersion()); err != nil {
+				nc.Close()
+				return nil, fmt.Errorf("nats %s: %w", nc.ConnectedUrlRedacted(), err)
+			}
+			log.Info("nats connected", "url", nc.ConnectedUrlRedacted(), "server_version", nc.ConnectedServerVersion())
+			return nc, nil
+		}
+		if natsAuthError(err) {
+			return nil, fmt.Errorf("nats %s refused the credentials (%v): check the user in --nats-url / VENTDERIVE_NATS_URL, "+
+				"the credentials file --nats-creds / VENTDERIVE_NATS_CREDS and the server's authorization", servers, err)
+		}
+		if ctx.Err() != nil {
+			return nil, fmt.Errorf("nats connect: %w", ctx.Err())
+		}
+		delay := startDelay(attempt)
+		log.Warn("nats unreachable; retrying", "servers", servers, "err", maskURLsIn(err.Error(), c.natsURL), "delay", delay)
+		select {
+		case <-ctx.Done():
+		case <-time.After(delay):
+		}
 	}
-	return nc, nil
 }
 
 // loadCodes returns the standard code table, extended with the site's

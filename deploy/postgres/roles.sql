@@ -61,14 +61,22 @@ REVOKE CREATE ON SCHEMA public FROM PUBLIC;
 GRANT USAGE, CREATE ON SCHEMA public TO ventderive_owner;
 GRANT USAGE ON SCHEMA public TO ventderive_writer, ventderive_reviewer;
 
--- Keep statement parameters (patient data) out of the server log even when a
--- statement is logged. These settings need a superuser; skipped otherwise
--- (then set them in postgresql.conf).
+-- Keep patient data out of the server log. Statement parameters are never
+-- logged, even when a statement is; an error is logged tersely (without the
+-- DETAIL line, which for a constraint violation is "Failing row contains
+-- (...)" with the row's values) and without the failing statement. The
+-- decoder refuses what the constraints check, so a constraint error is a bug;
+-- these settings make sure even a bug logs no row values. They need a
+-- superuser; skipped otherwise (then set them in postgresql.conf:
+-- log_error_verbosity = terse, log_min_error_statement = panic,
+-- log_parameter_max_length = 0, log_parameter_max_length_on_error = 0).
 DO $$
 BEGIN
     IF (SELECT rolsuper FROM pg_roles WHERE rolname = current_user) THEN
         ALTER ROLE ventderive_writer SET log_parameter_max_length = 0;
         ALTER ROLE ventderive_writer SET log_parameter_max_length_on_error = 0;
+        ALTER ROLE ventderive_writer SET log_error_verbosity = 'terse';
+        ALTER ROLE ventderive_writer SET log_min_error_statement = 'panic';
     END IF;
 END
 $$;
