@@ -39,7 +39,7 @@ func TestRefusedNearestReading(t *testing.T) {
 	pgtest.ApplyRoles(t, f.url, string(rolesSQL))
 	reviewerPool := poolAs(t, f.ctx, f.url, "ventderive_reviewer")
 	reviewer := postgres.NewReviewer(reviewerPool)
-	// 0005's views are the reviewer's alone, and reach no table for it.
+	// 0004's views are the reviewer's alone, and reach no table for it.
 	writer := poolAs(t, f.ctx, f.url, "ventderive_writer")
 	for _, view := range []string{"review_published", "review_refusal_nearest"} {
 		if _, err := reviewerPool.Exec(f.ctx, "SELECT * FROM "+view); err != nil {
