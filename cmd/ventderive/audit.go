@@ -37,7 +37,7 @@ questions (time basis: the blood gas's effective time, except deadletters):
   refused        refusals one by one, per blood gas: reason, detail, inputs considered, and the
                  nearest ventilator reading for no-ventilator-data-in-window
                  [--patient] [--from] [--to] [--kind] [--reason R]
-  published <observation-id or key> [--version N] [--type Observation|Provenance]
+  published <observation-id or key> [--version-id N] [--type Observation|Provenance]
                  the exact bytes published for one version (default: the latest, Observation);
                  the digest is in show
   discrepancies  current measured minus predicted PaCO2 at or beyond --threshold mmHg (default 5)
@@ -70,7 +70,7 @@ var auditQuestions = []auditQuestion{
 	{"list", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
 	{"refusals", []string{"patient", "from", "to", "kind", "reason", "limit", "offset"}},
 	{"refused", []string{"patient", "from", "to", "kind", "reason", "limit", "offset"}},
-	{"published", []string{"version", "type"}},
+	{"published", []string{"version-id", "type"}},
 	{"discrepancies", []string{"patient", "from", "to", "algorithm", "threshold", "limit", "offset"}},
 	{"changes", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
 	{"daily", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
@@ -121,7 +121,7 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	fs.IntVar(&f.Limit, "limit", postgres.DefaultLimit, "rows per page")
 	fs.IntVar(&f.Offset, "offset", 0, "rows to skip")
 	threshold := fs.Float64("threshold", 5, "discrepancies: minimum |measured - predicted| in mmHg")
-	version := fs.Int("version", 0, "published: version (default the latest)")
+	version := fs.Int("version-id", 0, "published: derivation version, the Observation's meta.versionId (default the latest)")
 	resourceType := fs.String("type", "Observation", "published: Observation or Provenance")
 	// Flags may follow the positional argument of show.
 	var positional []string
@@ -151,7 +151,7 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		return usageErr(err.Error())
 	}
 	if *version < 0 {
-		return usageErr(fmt.Sprintf("--version %d: want 1 or more", *version))
+		return usageErr(fmt.Sprintf("--version-id %d: want 1 or more", *version))
 	}
 	if *resourceType != "Observation" && *resourceType != "Provenance" {
 		return usageErr(fmt.Sprintf("--type %q: want Observation or Provenance", *resourceType))

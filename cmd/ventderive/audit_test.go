@@ -346,7 +346,7 @@ func TestAuditGolden(t *testing.T) {
 		{"show-retracted-by-id", []string{"show", obsID}},
 		{"show-patient-level-inputs", []string{"show", patA + "|Observation/abg-a1|paco2-predicted"}},
 		{"show-refused-kpa-input", []string{"show", patB + "|Observation/abg-b2|paco2-petco2-gradient"}},
-		{"published-bytes", []string{"published", patA + "|Observation/abg-a1|paco2-petco2-gradient", "--version", "1"}},
+		{"published-bytes", []string{"published", patA + "|Observation/abg-a1|paco2-petco2-gradient", "--version-id", "1"}},
 		{"list-page-1", []string{"list", "--limit", "6"}},
 		{"list-page-2", []string{"list", "--limit", "6", "--offset", "6"}},
 		{"list-page-last", []string{"list", "--limit", "6", "--offset", "12"}},
@@ -451,8 +451,8 @@ func TestAuditUsage(t *testing.T) {
 		{"paging for show", []string{"audit", "show", "--limit", "5", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--database-url", nowhere}, "--limit does not apply to show"},
 		{"published without a key", []string{"audit", "published", "--database-url", nowhere}, "published takes one argument"},
 		{"published of another type", []string{"audit", "published", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--type", "Bundle", "--database-url", nowhere}, `--type "Bundle"`},
-		{"published negative version", []string{"audit", "published", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--version", "-1", "--database-url", nowhere}, "--version -1"},
-		{"version for list", []string{"audit", "list", "--version", "2", "--database-url", nowhere}, "--version does not apply to list"},
+		{"published negative version", []string{"audit", "published", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--version-id", "-1", "--database-url", nowhere}, "--version-id -1"},
+		{"version for list", []string{"audit", "list", "--version-id", "2", "--database-url", nowhere}, "--version-id does not apply to list"},
 		{"refused with an algorithm", []string{"audit", "refused", "--algorithm", "ventderive-derive/1", "--database-url", nowhere}, "--algorithm does not apply to refused"},
 		{"no database", []string{"audit", "list"}, "no database"},
 	}
@@ -669,7 +669,7 @@ func TestAuditReportedBugs(t *testing.T) {
 				t.Fatalf("version %d has %d published messages, want Observation and Provenance", v.Version, len(v.Messages))
 			}
 			for _, m := range v.Messages {
-				raw := auditRun(t, ctx, ru, "published", key, "--version", strconv.Itoa(v.Version), "--type", m.ResourceType)
+				raw := auditRun(t, ctx, ru, "published", key, "--version-id", strconv.Itoa(v.Version), "--type", m.ResourceType)
 				if auditSHA([]byte(raw)) != m.Digest || raw != m.PayloadText || len(raw) != m.SizeBytes {
 					t.Errorf("version %d %s: bytes do not match the digest shown", v.Version, m.ResourceType)
 				}
@@ -690,7 +690,7 @@ func TestAuditReportedBugs(t *testing.T) {
 		}
 		latest := auditRun(t, ctx, ru, "published", key)
 		if latest != h.Versions[len(h.Versions)-1].Messages[0].PayloadText {
-			t.Error("published without --version is not the latest version's Observation")
+			t.Error("published without --version-id is not the latest version's Observation")
 		}
 	})
 
