@@ -87,9 +87,47 @@ func TestRoles(t *testing.T) {
 		"DELETE FROM fact", "DELETE FROM outbox", "DELETE FROM derivation", "DELETE FROM inbox",
 		"UPDATE derivation SET value = 0", "UPDATE outbox SET payload = ''", "UPDATE fact SET value = 0",
 		"TRUNCATE refusal", "DROP TABLE dead_letter", "SELECT * FROM review_derivation",
+		// Migration 0005: raw payloads are written, never read back.
+		"SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM input_resource",
 	} {
 		_, err := writer.Exec(ctx, stmt)
 		wantDenied(t, "writer "+stmt, err)
+	}
+	// What the writer still reads of those tables: every column but raw.
+	var refs int
+	if err := writer.QueryRow(ctx, "SELECT count(reference) FROM input_resource").Scan(&refs); err != nil || refs == 0 {
+		t.Errorf("writer reads input_resource.reference: %d, %v", refs, err)
+	}
+	// Migration 0005: the writer cannot queue an outbox row for a NATS
+	// system subject, a wildcard or an empty token; a plain subject passes
+	// (the control, rolled back).
+	const outboxRow = `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
+		VALUES ($1, 'roles-test/' || $1, '{}', '\x00', (SELECT inbox_key FROM inbox LIMIT 1), now())`
+	for _, c := range []struct {
+		subject string
+		ok      bool
+	}{
+		{"ventderive.derived.observation", true},
+		{"$JS.API.STREAM.DELETE.FHIR_INPUT", false},
+		{"$SYS.REQ.SERVER.PING", false},
+		{"ventderive.derived.>", false},
+		{"ventderive.*.observation", false},
+		{"ventderive..observation", false},
+		{".ventderive", false},
+	} {
+		tx, err := writer.Begin(ctx)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, err = tx.Exec(ctx, outboxRow, c.subject)
+		_ = tx.Rollback(ctx)
+		var pgErr *pgconn.PgError
+		switch {
+		case c.ok && err != nil:
+			t.Errorf("writer outbox row for %q: %v, want accepted", c.subject, err)
+		case !c.ok && (!errors.As(err, &pgErr) || pgErr.Code != "23514" || pgErr.ConstraintName != "outbox_subject_plain"):
+			t.Errorf("writer outbox row for %q: err = %v, want check violation outbox_subject_plain (23514)", c.subject, err)
+		}
 	}
 
 	reviewer := poolAs(t, ctx, u, "ventderive_reviewer")
