@@ -426,3 +426,32 @@ func TestRelayNeverPublishesForeignRows(t *testing.T) {
 		t.Fatalf("foreign row published=%v, %v", published, err)
 	}
 }
+
+// Terminated poison input stays terminated on the server the service
+// supports (consumer.MinServerVersion and later; the in-process server is
+// the current nats-server/v2): the reported defect of nats-server 2.9.10 is
+// that a message answered with TermWithReason came back after every
+// AckWait, forever. After the dead letters are recorded the consumer must
+// deliver nothing more across three AckWaits: its delivered sequence stays
+// where it was, nothing is pending or awaiting an ack.
+func TestTerminatedPoisonIsNotRedelivered(t *testing.T) {
+	h := newHarness(t)
+	bad := poisonMsgs()
+	msgs := interleave(bad, generate(genOpts{patients: 2, gases: 1}))
+	h.startReplica(nil)
+	h.publish(msgs)
+	h.waitSettled(120 * time.Second)
+	before := h.consumerInfo()
+	time.Sleep(3*h.cfg.AckWait + 500*time.Millisecond)
+	after := h.consumerInfo()
+	if after.Delivered.Consumer != before.Delivered.Consumer {
+		t.Errorf("consumer delivered %d more message(s) after settling (sequence %d -> %d): terminated input came back",
+			after.Delivered.Consumer-before.Delivered.Consumer, before.Delivered.Consumer, after.Delivered.Consumer)
+	}
+	if after.NumAckPending != 0 || after.NumPending != 0 || after.NumRedelivered != 0 {
+		t.Errorf("consumer after %v: %d pending, %d awaiting ack, %d redelivered; want none",
+			3*h.cfg.AckWait, after.NumPending, after.NumAckPending, after.NumRedelivered)
+	}
+	h.reconcile(msgs)
+	h.assertDeadLetters(len(bad), "", "")
+}
