@@ -403,9 +403,11 @@ func inboxKeys(msgs []testMsg) []string {
 	return out
 }
 
-// A row the service did not write (a misused writer role, a bug) naming a
-// system subject is never published: the relay sends only derived
-// Observations and Provenance, to the subjects configured for them.
+// A row the service did not write (a misused writer role, a bug) is never
+// published: the relay sends only derived Observations and Provenance, to
+// the subjects configured for them, whatever subject the row names. (A row
+// naming a NATS system subject such as $JS.API... cannot even be written
+// since migration 0005: TestRoles in consumer/postgres.)
 func TestRelayNeverPublishesForeignRows(t *testing.T) {
 	h := newHarness(t)
 	msgs := generate(genOpts{patients: 1, gases: 1})
@@ -414,7 +416,7 @@ func TestRelayNeverPublishesForeignRows(t *testing.T) {
 	h.waitSettled(60 * time.Second)
 	ctx := context.Background()
 	if _, err := h.pool.Exec(ctx, `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
-		SELECT '$JS.API.STREAM.DELETE.FHIR_INPUT', 'Foreign/1', '{}', '', inbox_key, now() FROM inbox LIMIT 1`); err != nil {
+		SELECT 'ventderive.elsewhere', 'Foreign/1', '{}', '', inbox_key, now() FROM inbox LIMIT 1`); err != nil {
 		t.Fatal(err)
 	}
 	h.waitLog("neither a derived Observation nor a Provenance", 60*time.Second)
