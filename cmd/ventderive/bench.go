@@ -601,22 +601,32 @@ func (b *bench) resetStreams(ctx context.Context) error {
 	return nil
 }
 
-// newDatabase creates and migrates a fresh database, dropped at the end.
-func (b *bench) newDatabase(ctx context.Context) (string, error) {
+// newDatabase creates and migrates a fresh database, dropped at the end,
+// and returns its URL with a pool on it (the caller closes the pool).
+func (b *bench) newDatabase(ctx context.Context) (string, *pgxpool.Pool, error) {
 	name, url, err := createDatabase(ctx, b.admin, "ventderive_bench_")
 	if err != nil {
-		return "", err
+		return "", nil, err
 	}
 	b.dbs = append(b.dbs, name)
 	pool, err := pgxpool.New(ctx, url)
 	if err != nil {
-		return "", err
+		return "", nil, err
 	}
-	defer pool.Close()
 	if _, err := migrations.Apply(ctx, pool, nil); err != nil {
-		return "", fmt.Errorf("migrate: %w", err)
+		pool.Close()
+		return "", nil, fmt.Errorf("migrate: %w", err)
 	}
-	return url, nil
+	return url, pool, nil
+}
+
+// freshRun empties the streams and makes a new database for one measured
+// run.
+func (b *bench) freshRun(ctx context.Context) (string, *pgxpool.Pool, error) {
+	if err := b.resetStreams(ctx); err != nil {
+		return "", nil, err
+	}
+	return b.newDatabase(ctx)
 }
 
 // publishAll publishes msgs asynchronously and waits for every PubAck.
@@ -755,11 +765,7 @@ func (b *bench) floor(ctx context.Context) (benchRow, []string, error) {
 	}
 	parts = append(parts, fmt.Sprintf("pull+ack %.0f/s", rate))
 
-	url, err := b.newDatabase(ctx)
-	if err != nil {
-		return row, nil, err
-	}
-	pool, err := pgxpool.New(ctx, url)
+	_, pool, err := b.newDatabase(ctx)
 	if err != nil {
 		return row, nil, err
 	}
@@ -1040,14 +1046,7 @@ func stopReplicas(rs []*benchReplica) error {
 // acknowledgement by the output stream.
 func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	row := benchRow{name: fmt.Sprintf("pipeline, %d replica(s)", n)}
-	if err := b.resetStreams(ctx); err != nil {
-		return row, err
-	}
-	url, err := b.newDatabase(ctx)
-	if err != nil {
-		return row, err
-	}
-	pool, err := pgxpool.New(ctx, url)
+	url, pool, err := b.freshRun(ctx)
 	if err != nil {
 		return row, err
 	}
@@ -1077,14 +1076,7 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	}
 
 	// Paced.
-	if err := b.resetStreams(ctx); err != nil {
-		return row, err
-	}
-	url, err = b.newDatabase(ctx)
-	if err != nil {
-		return row, err
-	}
-	ppool, err := pgxpool.New(ctx, url)
+	url, ppool, err := b.freshRun(ctx)
 	if err != nil {
 		return row, err
 	}
@@ -1189,14 +1181,7 @@ func (b *bench) checkAccounted(ctx context.Context, pool *pgxpool.Pool, msgs []b
 // f.patients patients, and reports the process's peak and final RSS.
 func (b *bench) memory(ctx context.Context) error {
 	msgs := memoryMessages(b.f.seed, b.f.patients)
-	if err := b.resetStreams(ctx); err != nil {
-		return err
-	}
-	url, err := b.newDatabase(ctx)
-	if err != nil {
-		return err
-	}
-	pool, err := pgxpool.New(ctx, url)
+	url, pool, err := b.freshRun(ctx)
 	if err != nil {
 		return err
 	}

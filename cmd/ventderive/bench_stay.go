@@ -100,14 +100,7 @@ func (b *bench) stay(ctx context.Context, name string, msgs []benchMsg, patients
 	stored := len(msgs) - b.f.stayN - paced
 	first, measured, last := msgs[:stored], msgs[stored:stored+b.f.stayN], msgs[stored+b.f.stayN:]
 	row.stored = stored
-	if err := b.resetStreams(ctx); err != nil {
-		return row, err
-	}
-	url, err := b.newDatabase(ctx)
-	if err != nil {
-		return row, err
-	}
-	pool, err := pgxpool.New(ctx, url)
+	url, pool, err := b.freshRun(ctx)
 	if err != nil {
 		return row, err
 	}

@@ -104,13 +104,8 @@ func checkStream(ctx context.Context, js jetstream.JetStream, want jetstream.Str
 		return 1
 	}
 	got := s.CachedInfo().Config
-	n := 0
-	diff := func(field string, g, w2 any) {
-		if fmt.Sprint(g) != fmt.Sprint(w2) {
-			fmt.Fprintf(w, "stream %s: %s is %v, want %v\n", want.Name, field, g, w2)
-			n++
-		}
-	}
+	d := differ{w: w, what: "stream " + want.Name}
+	diff := d.field
 	diff("subjects", got.Subjects, want.Subjects)
 	diff("storage", got.Storage, want.Storage)
 	diff("retention", got.Retention, want.Retention)
@@ -118,7 +113,7 @@ func checkStream(ctx context.Context, js jetstream.JetStream, want jetstream.Str
 	diff("duplicate_window", got.Duplicates, want.Duplicates)
 	diff("max_msg_size", got.MaxMsgSize, want.MaxMsgSize)
 	diff("discard", got.Discard, want.Discard)
-	return n
+	return d.n
 }
 
 // checkConsumer prints how the server's durable consumer differs from want
@@ -130,13 +125,8 @@ func checkConsumer(ctx context.Context, js jetstream.JetStream, stream string, w
 		return 1
 	}
 	got := c.CachedInfo().Config
-	n := 0
-	diff := func(field string, g, w2 any) {
-		if fmt.Sprint(g) != fmt.Sprint(w2) {
-			fmt.Fprintf(w, "consumer %s: %s is %v, want %v\n", want.Durable, field, g, w2)
-			n++
-		}
-	}
+	d := differ{w: w, what: "consumer " + want.Durable}
+	diff := d.field
 	diff("deliver_policy", got.DeliverPolicy, want.DeliverPolicy)
 	diff("ack_policy", got.AckPolicy, want.AckPolicy)
 	diff("ack_wait", got.AckWait, want.AckWait)
@@ -144,7 +134,23 @@ func checkConsumer(ctx context.Context, js jetstream.JetStream, stream string, w
 	diff("max_ack_pending", got.MaxAckPending, want.MaxAckPending)
 	diff("filter_subject", filterOf(got), filterOf(want))
 	diff("replay_policy", got.ReplayPolicy, want.ReplayPolicy)
-	return n
+	return d.n
+}
+
+// differ prints each field of a server's definition that differs from the
+// one the service wants, as "<what>: <field> is <got>, want <want>", and
+// counts them.
+type differ struct {
+	w    io.Writer
+	what string
+	n    int
+}
+
+func (d *differ) field(name string, got, want any) {
+	if fmt.Sprint(got) != fmt.Sprint(want) {
+		fmt.Fprintf(d.w, "%s: %s is %v, want %v\n", d.what, name, got, want)
+		d.n++
+	}
 }
 
 // filterOf is a consumer's filter subjects, however they were given.
