@@ -49,7 +49,9 @@ ALTER ROLE ventderive_reviewer SET idle_in_transaction_session_timeout = '60s';
 ALTER ROLE ventderive_reviewer SET default_transaction_read_only = on;
 
 -- Only the owner creates objects in the service's database; nobody else
--- connects unless granted.
+-- connects unless granted. The other databases of the cluster (postgres,
+-- template1, the site's own) keep PostgreSQL's CONNECT for PUBLIC, which no
+-- role can leave: deploy/postgres/pg_hba.conf keeps these roles out of them.
 DO $$
 BEGIN
     EXECUTE format('REVOKE ALL ON DATABASE %I FROM PUBLIC', current_database());

@@ -329,3 +329,24 @@ func (c *Cluster) logTail() string {
 	}
 	return strings.TrimSpace(string(b))
 }
+
+// PrependHBA puts rules (pg_hba.conf lines) above the cluster's own
+// authentication rules and restarts the server (same port, same data), so
+// that every connection after it returns meets them. The cluster's own
+// rules (trust on 127.0.0.1 and the socket) stay below: the superuser URL
+// keeps working unless rules catch it first.
+func (c *Cluster) PrependHBA(ctx context.Context, rules string) error {
+	path := filepath.Join(c.data(), "pg_hba.conf")
+	old, err := os.ReadFile(path)
+	if err != nil {
+		return fmt.Errorf("read pg_hba.conf: %w", err)
+	}
+	// Writing the existing file keeps its owner (the server's user).
+	if err := os.WriteFile(path, []byte(strings.TrimRight(rules, "\n")+"\n\n"+string(old)), 0o600); err != nil {
+		return fmt.Errorf("write pg_hba.conf: %w", err)
+	}
+	if err := c.Stop(ctx, "fast"); err != nil {
+		return err
+	}
+	return c.Start(ctx)
+}
