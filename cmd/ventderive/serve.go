@@ -270,6 +270,9 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	if err := waitDatabase(ctx, pool, log); err != nil {
 		return err
 	}
+	if _, err := checkSessionLimits(ctx, pool, log); err != nil {
+		return fmt.Errorf("database: %w", err)
+	}
 	if c.migrate {
 		v, err := migrations.Apply(ctx, pool, log)
 		if err != nil {
