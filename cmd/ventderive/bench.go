@@ -68,6 +68,10 @@ type benchFlags struct {
 	// statistics (a server with autovacuum off, or a restart before
 	// autovacuum's first pass).
 	stayAnalyze bool
+	// historyH hours of historyCopies copies of the unit stored before
+	// the history-growth measurement (0 hours: skip it).
+	historyH      int
+	historyCopies int
 }
 
 func runBench(ctx context.Context, args []string, e env) error {
@@ -88,6 +92,8 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.IntVar(&f.stayH, "stay-hours", 24, "hours of the dense long-stay run (one copy of the unit), compared with the same inputs spread over copies of 6 h stays (0: skip both)")
 	fs.IntVar(&f.stayN, "stay-inputs", 5000, "inputs measured in each long-stay run, after the rest of the stay is stored")
 	fs.BoolVar(&f.stayAnalyze, "stay-analyze", false, "run ANALYZE after storing each long stay, before the measured part (as autovacuum would; default: no statistics, as on a server with autovacuum off)")
+	fs.IntVar(&f.historyH, "history-hours", 0, "hours of simulated history stored before the history-growth measurement, which drains the last --stay-inputs inputs after it and after the admissions alone (0: skip)")
+	fs.IntVar(&f.historyCopies, "history-copies", 4, "copies of the unit (10 patients each) in the history-growth measurement")
 	if err := fs.Parse(args); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
 			return nil
@@ -95,8 +101,9 @@ func runBench(ctx context.Context, args []string, e env) error {
 		return errUsage
 	}
 	replicas, err := parseCounts(f.replicas)
-	if err != nil || f.inputs < 1 || f.copies < 1 || f.rate <= 0 || f.workers < 1 || f.stayH < 0 || (f.stayH > 0 && f.stayN < 1) {
-		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers, --stay-inputs must be positive, --stay-hours not negative and --replicas a list of positive counts")
+	if err != nil || f.inputs < 1 || f.copies < 1 || f.rate <= 0 || f.workers < 1 || f.stayH < 0 || (f.stayH > 0 && f.stayN < 1) ||
+		f.historyH < 0 || (f.historyH > 0 && (f.historyCopies < 1 || f.stayN < 1)) {
+		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers, --stay-inputs, --history-copies must be positive, --stay-hours and --history-hours not negative and --replicas a list of positive counts")
 		return errUsage
 	}
 	b, err := newBench(ctx, f, e)
@@ -314,6 +321,7 @@ type benchRow struct {
 	outputs     int
 	ratio       float64
 	latencyNote string
+	storage     *storageReport // the store after the drain (pipeline runs)
 }
 
 func (b *bench) run(ctx context.Context, replicas []int) error {
@@ -351,9 +359,19 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 		stopProf()
 	}
 	b.report(rows, parts)
+	for _, r := range rows {
+		if r.storage != nil {
+			b.reportStorage("the drain of "+r.name, *r.storage)
+		}
+	}
 	if b.f.stayH > 0 {
 		if err := b.stays(ctx); err != nil {
 			return fmt.Errorf("long stays: %w", err)
+		}
+	}
+	if b.f.historyH > 0 {
+		if err := b.history(ctx); err != nil {
+			return fmt.Errorf("history growth: %w", err)
 		}
 	}
 	if b.f.patients > 0 {
@@ -1074,6 +1092,11 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	if err := pool.QueryRow(ctx, `SELECT count(*) FROM outbox`).Scan(&row.outputs); err != nil {
 		return row, err
 	}
+	st, err := storage(ctx, pool, b.msgs)
+	if err != nil {
+		return row, err
+	}
+	row.storage = &st
 
 	// Paced.
 	url, ppool, err := b.freshRun(ctx)

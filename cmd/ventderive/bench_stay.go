@@ -180,3 +180,221 @@ func (b *bench) drainWith(ctx context.Context, url string, pool *pgxpool.Pool, w
 	}
 	return err
 }
+
+// ---- storage per input ----
+
+// tableSize is one service table (a partitioned table with its partitions
+// summed) as pg_total_relation_size sees it.
+type tableSize struct {
+	name                      string
+	relations                 int // the table itself, or its partitions
+	rows                      int64
+	heap, index, toast, total int64 // bytes; heap includes the free-space and visibility maps
+}
+
+// storageReport is the store's size after a run.
+type storageReport struct {
+	inputs       int64 // inputs recorded (inbox rows)
+	deadLetters  int64
+	messages     int   // distinct messages published
+	payloadBytes int64 // their bytes
+	tables       []tableSize
+	total        int64
+}
+
+// storageSizeSQL sizes every table of the service's schema, each partition
+// counted under its root: total is pg_total_relation_size (table, indexes,
+// TOAST, free-space and visibility maps), index pg_indexes_size, TOAST the
+// TOAST table with its index; heap is the rest.
+const storageSizeSQL = `
+WITH rel AS (
+    SELECT c.oid, c.reltoastrelid, coalesce(pg_partition_root(c.oid), c.oid) AS root
+    FROM pg_class c JOIN pg_namespace n ON n.oid = c.relnamespace
+    WHERE n.nspname = current_schema() AND c.relkind IN ('r', 'm')
+)
+SELECT root::regclass::text, count(*),
+       sum(pg_total_relation_size(oid))::bigint,
+       sum(pg_indexes_size(oid))::bigint,
+       sum(CASE WHEN reltoastrelid = 0 THEN 0 ELSE pg_total_relation_size(reltoastrelid) END)::bigint
+FROM rel GROUP BY root ORDER BY 3 DESC, 1`
+
+// storage measures the service's tables in pool's database after msgs
+// were recorded.
+func storage(ctx context.Context, pool *pgxpool.Pool, msgs []benchMsg) (storageReport, error) {
+	var r storageReport
+	if err := pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM inbox), (SELECT count(*) FROM dead_letter)`).Scan(&r.inputs, &r.deadLetters); err != nil {
+		return r, err
+	}
+	seen := map[string]bool{}
+	for _, m := range msgs {
+		if !seen[m.msgID] {
+			seen[m.msgID] = true
+			r.messages++
+			r.payloadBytes += int64(len(m.payload))
+		}
+	}
+	rows, err := pool.Query(ctx, storageSizeSQL)
+	if err != nil {
+		return r, fmt.Errorf("table sizes: %w", err)
+	}
+	for rows.Next() {
+		var t tableSize
+		if err := rows.Scan(&t.name, &t.relations, &t.total, &t.index, &t.toast); err != nil {
+			rows.Close()
+			return r, err
+		}
+		t.heap = t.total - t.index - t.toast
+		r.tables = append(r.tables, t)
+		r.total += t.total
+	}
+	rows.Close()
+	if err := rows.Err(); err != nil {
+		return r, err
+	}
+	for i := range r.tables {
+		// The names come from pg_class, quoted by regclass where needed.
+		if err := pool.QueryRow(ctx, "SELECT count(*) FROM "+r.tables[i].name).Scan(&r.tables[i].rows); err != nil {
+			return r, fmt.Errorf("count %s: %w", r.tables[i].name, err)
+		}
+	}
+	return r, nil
+}
+
+// perInput is bytes divided by the inputs recorded.
+func (r storageReport) perInput(bytes int64) float64 {
+	if r.inputs == 0 {
+		return 0
+	}
+	return float64(bytes) / float64(r.inputs)
+}
+
+func (b *bench) reportStorage(name string, r storageReport) {
+	fmt.Fprintf(b.out, "\nStorage after %s: %d inputs recorded and %d dead letters of %d messages (%.0f bytes on average);\n"+
+		"the service's tables with their indexes and TOAST hold %.1f MB: %.0f bytes per input recorded (target at most 1.5 KB).\n"+
+		"Per table (pg_total_relation_size; heap includes the free-space and visibility maps; a partitioned table sums its partitions):\n\n",
+		name, r.inputs, r.deadLetters, r.messages, float64(r.payloadBytes)/float64(max(1, r.messages)), float64(r.total)/1e6, r.perInput(r.total))
+	tw := tabwriter.NewWriter(b.out, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintln(tw, "table\trelations\trows\theap bytes\tindex bytes\tTOAST bytes\ttotal bytes\tbytes/input\t")
+	for _, t := range r.tables {
+		fmt.Fprintf(tw, "%s\t%d\t%d\t%d\t%d\t%d\t%d\t%.0f\t\n", t.name, t.relations, t.rows, t.heap, t.index, t.toast, t.total, r.perInput(t.total))
+	}
+	fmt.Fprintf(tw, "all\t\t\t\t\t\t%d\t%.0f\t\n", r.total, r.perInput(r.total))
+	tw.Flush()
+}
+
+// ---- history growth ----
+
+// history measures the per-input cost after a long simulated history
+// against an almost empty store: the same measured inputs (the last
+// --stay-inputs of --history-hours of --history-copies copies of the unit,
+// in time order) drained by a new replica, once after storing everything
+// before them and once after storing only the patients' admissions
+// (Patient, height, weight: so that the same derivations can be made).
+func (b *bench) history(ctx context.Context) error {
+	msgs := benchMessages(b.f.seed, b.f.historyCopies, math.MaxInt, time.Duration(b.f.historyH)*time.Hour)
+	n := b.f.stayN
+	if len(msgs) < 2*n {
+		return fmt.Errorf("%d inputs in %d h of %d copies: too few for --stay-inputs %d", len(msgs), b.f.historyH, b.f.historyCopies, n)
+	}
+	past, measured := msgs[:len(msgs)-n], msgs[len(msgs)-n:]
+	var admissions []benchMsg
+	for _, m := range past {
+		if m.subject == scenario.SubjectADT {
+			admissions = append(admissions, m)
+		}
+	}
+	type histRow struct {
+		benchRow
+		stored int
+		st     storageReport
+	}
+	var rows []histRow
+	for _, r := range []struct {
+		name  string
+		first []benchMsg
+	}{
+		{"admissions only", admissions},
+		{fmt.Sprintf("after %d h", b.f.historyH), past},
+	} {
+		row, st, err := b.measureAfter(ctx, r.name, r.first, measured)
+		if err != nil {
+			return fmt.Errorf("history %s: %w", r.name, err)
+		}
+		rows = append(rows, histRow{row, len(r.first), st})
+	}
+	fmt.Fprintf(b.out, "\nHistory growth, 1 replica: %d patients (%d copies of the unit) over %d h, %d inputs. Each run stores a history first\n"+
+		"(only the admissions, or everything before the last %d inputs), %s, then a new replica drains the same last %d inputs.\n\n",
+		10*b.f.historyCopies, b.f.historyCopies, b.f.historyH, len(msgs), n, analyzeText(b.f.stayAnalyze), n)
+	tw := tabwriter.NewWriter(b.out, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintln(tw, "store\tinputs stored first\tstore MB\tbytes/input\tinputs/s\tPostgreSQL CPU us/input\tCPU us/input\tmachine CPU us/input\t")
+	for _, r := range rows {
+		fmt.Fprintf(tw, "%s\t%d\t%.1f\t%.0f\t%.0f\t%.0f\t%.0f\t%.0f\t\n", r.name, r.stored, float64(r.st.total)/1e6, r.st.perInput(r.st.total),
+			r.perSec, r.serverUS, r.cpuUS, r.machineUS)
+	}
+	tw.Flush()
+	e, g := rows[0], rows[1]
+	fmt.Fprintf(b.out, "after history/admissions only: PostgreSQL CPU per input %s, service CPU per input %.2f, PostgreSQL + service %s (target at most 1.2); inputs/s %.2f\n",
+		ratioText(g.serverUS, e.serverUS), g.cpuUS/e.cpuUS, ratioText(g.serverUS+g.cpuUS, e.serverUS+e.cpuUS), g.perSec/e.perSec)
+	return nil
+}
+
+func analyzeText(analyze bool) string {
+	if analyze {
+		return "runs ANALYZE (as autovacuum would)"
+	}
+	return "without ANALYZE (no statistics, as with autovacuum off)"
+}
+
+// measureAfter stores first on a fresh database, then measures a new
+// replica draining measured, and sizes the store at the end.
+func (b *bench) measureAfter(ctx context.Context, name string, first, measured []benchMsg) (benchRow, storageReport, error) {
+	row := benchRow{name: name}
+	url, pool, err := b.freshRun(ctx)
+	if err != nil {
+		return row, storageReport{}, err
+	}
+	defer pool.Close()
+	if err := b.publishAll(ctx, first); err != nil {
+		return row, storageReport{}, err
+	}
+	// About 1,000 inputs/s on a small machine: allow a tenth of that.
+	timeout := max(10*time.Minute, time.Duration(len(first))*10*time.Millisecond)
+	rs, err := b.startReplicas(ctx, url, 1)
+	if err == nil {
+		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, timeout, benchPayloads(first))
+	}
+	if serr := stopReplicas(rs); err == nil {
+		err = serr
+	}
+	if err != nil {
+		return row, storageReport{}, fmt.Errorf("store the first %d inputs: %w", len(first), err)
+	}
+	if b.f.stayAnalyze {
+		if _, err := pool.Exec(ctx, "ANALYZE"); err != nil {
+			return row, storageReport{}, err
+		}
+	}
+	if err := b.publishAll(ctx, measured); err != nil {
+		return row, storageReport{}, err
+	}
+	all := append(append([]benchMsg(nil), first...), measured...)
+	runtime.GC()
+	from := b.takeUsage(true)
+	rs, err = b.startReplicas(ctx, url, 1)
+	if err == nil {
+		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, 5*time.Minute, benchPayloads(all))
+	}
+	to := b.takeUsage(false)
+	if serr := stopReplicas(rs); err == nil {
+		err = serr
+	}
+	if err != nil {
+		return row, storageReport{}, err
+	}
+	row.fill(from, to, len(measured))
+	if err := b.checkAccounted(ctx, pool, all); err != nil {
+		return row, storageReport{}, err
+	}
+	st, err := storage(ctx, pool, all)
+	return row, st, err
+}

@@ -30,7 +30,8 @@ func TestBenchSmall(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute)
 	defer cancel()
 	err := run(ctx, []string{"bench", "--inputs", "400", "--copies", "1", "--rate", "200", "--paced", "2s",
-		"--replicas", "1", "--patients", "0", "--stay-hours", "6", "--stay-inputs", "300", "--dir", t.TempDir()}, e)
+		"--replicas", "1", "--patients", "0", "--stay-hours", "6", "--stay-inputs", "300",
+		"--history-hours", "6", "--history-copies", "1", "--dir", t.TempDir()}, e)
 	if err != nil {
 		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
 	}
@@ -80,6 +81,12 @@ func TestBenchSmall(t *testing.T) {
 	}
 	if !regexp.MustCompile(`dense/spread: PostgreSQL CPU per input (n/a|[0-9.]+) .*inputs/s [0-9.]+ .*dense paced p99 [0-9.]+ ms`).MatchString(report) {
 		t.Error("no dense/spread ratio line")
+	}
+	checkBenchStorage(t, report)
+	if !regexp.MustCompile(`(?m)^\s*admissions only\s+[1-9][0-9]*(\s+[0-9.]+){6}\s*$`).MatchString(report) ||
+		!regexp.MustCompile(`(?m)^\s*after 6 h\s+[1-9][0-9]*(\s+[0-9.]+){6}\s*$`).MatchString(report) ||
+		!regexp.MustCompile(`after history/admissions only: PostgreSQL CPU per input (n/a|[0-9.]+).*service CPU per input [0-9.]+`).MatchString(report) {
+		t.Error("no history-growth table with both stores and the ratio line")
 	}
 	if !strings.Contains(report, "produced derived Observations") {
 		t.Error("no latency note for the pipeline")
@@ -159,5 +166,60 @@ func TestPercentile(t *testing.T) {
 	}
 	if percentile(nil, 0.5) != 0 {
 		t.Error("percentile of nothing is not 0")
+	}
+}
+
+// checkBenchStorage checks the storage table of the 1-replica pipeline
+// run: it names the service's tables, its inbox row count is the inputs
+// recorded, the tables add up to the total and bytes/input is total over
+// inputs.
+func checkBenchStorage(t *testing.T, report string) {
+	t.Helper()
+	m := regexp.MustCompile(`Storage after the drain of pipeline, 1 replica\(s\): ([0-9]+) inputs recorded and ([0-9]+) dead letters of ([0-9]+) messages`).FindStringSubmatch(report)
+	if m == nil {
+		t.Error("no storage summary for the 1-replica pipeline run")
+		return
+	}
+	inputs, _ := strconv.ParseInt(m[1], 10, 64)
+	dead, _ := strconv.ParseInt(m[2], 10, 64)
+	messages, _ := strconv.ParseInt(m[3], 10, 64)
+	if inputs <= 0 || inputs+dead != messages {
+		t.Errorf("storage: %d inputs + %d dead letters, want %d messages", inputs, dead, messages)
+	}
+	section := report[strings.Index(report, m[0]):]
+	row := regexp.MustCompile(`(?m)^\s*([a-z_]+)\s+([0-9]+)\s+([0-9]+)\s+([0-9]+)\s+([0-9]+)\s+([0-9]+)\s+([0-9]+)\s+([0-9]+)\s*$`)
+	all := regexp.MustCompile(`(?m)^\s*all\s+([0-9]+)\s+([0-9]+)\s*$`).FindStringSubmatch(section)
+	if all == nil {
+		t.Fatal("storage table has no total row")
+	}
+	tables := map[string][]int64{}
+	var sum int64
+	for _, r := range row.FindAllStringSubmatch(section[:strings.Index(section, all[0])], -1) {
+		var v []int64
+		for _, f := range r[2:] {
+			x, _ := strconv.ParseInt(f, 10, 64)
+			v = append(v, x)
+		}
+		tables[r[1]] = v // relations, rows, heap, index, TOAST, total, bytes/input
+		if v[2]+v[3]+v[4] != v[5] {
+			t.Errorf("table %s: heap %d + index %d + TOAST %d != total %d", r[1], v[2], v[3], v[4], v[5])
+		}
+		sum += v[5]
+	}
+	for _, name := range []string{"inbox", "fact", "input_resource", "derivation", "outbox"} {
+		if v, ok := tables[name]; !ok || v[5] <= 0 {
+			t.Errorf("storage table lacks %s (or it is empty): %v", name, tables[name])
+		}
+	}
+	if tables["inbox"] != nil && tables["inbox"][1] != inputs {
+		t.Errorf("inbox rows %d, inputs recorded %d", tables["inbox"][1], inputs)
+	}
+	total, _ := strconv.ParseInt(all[1], 10, 64)
+	perInput, _ := strconv.ParseInt(all[2], 10, 64)
+	if total != sum || total <= 0 {
+		t.Errorf("storage total %d, tables add up to %d", total, sum)
+	}
+	if want := float64(total) / float64(inputs); float64(perInput) < want-1 || float64(perInput) > want+1 {
+		t.Errorf("bytes/input %d, want total/inputs %.1f", perInput, want)
 	}
 }
