@@ -723,11 +723,25 @@ func (o auditOutput) show(h postgres.History) error {
 		}
 		fmt.Fprintf(&b, "  method          %s (method version %s; algorithm %s)\n", v.Method, v.MethodVersion, v.Algorithm)
 		fmt.Fprintf(&b, "  basis           %s\n", v.Basis)
-		for _, c := range v.Constants {
-			fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(physio.DisplayNumber(c.Value), physio.DisplayUnit(c.Unit)), c.Source)
-		}
-		for _, a := range v.Assumptions {
-			fmt.Fprintf(&b, "  assumption      %s\n", a)
+		if rec := v.Record; rec != nil {
+			// The published basis as stored: every step, constant and
+			// assumption the Observation's notes list.
+			for _, st := range rec.Steps {
+				fmt.Fprintf(&b, "  step            %s: %s\n", st.Method, st.Basis)
+			}
+			for _, c := range rec.Constants {
+				fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(physio.DisplayNumber(c.Value), physio.DisplayUnit(c.Unit)), c.Source)
+			}
+			for _, a := range rec.Assumptions {
+				fmt.Fprintf(&b, "  assumption      %s\n", a)
+			}
+		} else {
+			for _, c := range v.Constants {
+				fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(physio.DisplayNumber(c.Value), physio.DisplayUnit(c.Unit)), c.Source)
+			}
+			for _, a := range v.Assumptions {
+				fmt.Fprintf(&b, "  assumption      %s\n", a)
+			}
 		}
 		if v.Interpretation.Code != "" || v.Interpretation.Text != "" {
 			fmt.Fprintf(&b, "  interpretation  %s %s (%s)\n", v.Interpretation.Code, v.Interpretation.Text, v.Interpretation.Source)
@@ -736,6 +750,7 @@ func (o auditOutput) show(h postgres.History) error {
 			fmt.Fprintf(&b, "  flag            %s\n", f)
 		}
 		fmt.Fprintf(&b, "  digest          %s\n", v.Digest)
+		fmt.Fprintf(&b, "  settings        %s\n", settingsText(v.Settings))
 		for _, m := range v.Messages {
 			state := "not yet published"
 			if m.PublishedAt != nil {
@@ -753,10 +768,20 @@ func (o auditOutput) show(h postgres.History) error {
 		fmt.Fprintf(&b, "\n  blood gas       %s at %s\n", r.BloodGas, ts(r.Effective))
 		fmt.Fprintf(&b, "  recorded        %s\n", ts(r.Recorded))
 		fmt.Fprintf(&b, "  detail          %s\n", r.Detail)
+		fmt.Fprintf(&b, "  settings        %s\n", settingsText(r.Settings))
 		writeInputs(&b, "considered", r.Considered)
 	}
 	_, err := io.WriteString(o.w, b.String())
 	return err
+}
+
+// settingsText names a settings snapshot ("audit settings <digest>"
+// shows it), or says that none was recorded.
+func settingsText(digest string) string {
+	if digest == "" {
+		return "none recorded (made before the store kept settings snapshots, or by another planner)"
+	}
+	return digest
 }
 
 func sentAs(in postgres.Input) string {
