@@ -27,14 +27,14 @@ type Record struct {
 
 // RecordStep is one intermediate result of a Record.
 type RecordStep struct {
-	Method        string            `json:"method"`
-	MethodVersion string            `json:"methodVersion"`
-	Value         float64           `json:"value"`
-	Unit          string            `json:"unit"`
-	Basis         string            `json:"basis"`
-	Constants     []RecordConstant  `json:"constants"`
-	Assumptions   []string          `json:"assumptions"`
-	Flags         []string          `json:"flags"`
+	Method        string           `json:"method"`
+	MethodVersion string           `json:"methodVersion"`
+	Value         float64          `json:"value"`
+	Unit          string           `json:"unit"`
+	Basis         string           `json:"basis"`
+	Constants     []RecordConstant `json:"constants"`
+	Assumptions   []string         `json:"assumptions"`
+	Flags         []string         `json:"flags"`
 }
 
 // RecordConstant is a physio.Constant as a Record keeps it: the value at
