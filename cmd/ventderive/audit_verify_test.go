@@ -230,4 +230,74 @@ func TestAuditVerifyReplay(t *testing.T) {
 			})
 		}
 	}
+
+	// Refusals that become values and the reverse: without an apparatus
+	// dead space the predicted PaCO2 and its discrepancy are refused (never
+	// computed with an assumed zero); a pairing window of 3 h before the
+	// blood gas reaches abg-c3's readings 2 h 02 min before it.
+	other := site0()
+	other.ApparatusDeadSpaceConfigured, other.ApparatusDeadSpaceML = false, 0
+	other.Window.Before = 3 * time.Hour
+	rep, err = r.Replay(ctx, postgres.Filter{From: auditT0.Add(-time.Hour), To: auditT0.Add(7 * time.Hour), Limit: 1000}, other)
+	if err != nil {
+		t.Fatal(err)
+	}
+	toRefusal, toValue := map[string]bool{}, map[string]bool{}
+	for _, c := range rep.Changes.Rows {
+		switch c.Change {
+		case postgres.ReplayValueToRefusal:
+			toRefusal[c.Key] = true
+			if c.To != "refused: "+fhirmap.ReasonApparatusNotSet {
+				t.Errorf("%s: %s -> %s, want refused for want of the apparatus dead space", c.Key, c.From, c.To)
+			}
+		case postgres.ReplayRefusalToValue:
+			toValue[c.Key] = true
+			if c.BloodGas != "Observation/abg-c3" || c.From != "refused: "+fhirmap.ReasonNoVentilatorData {
+				t.Errorf("%s: %s -> %s, want abg-c3's refusal for want of ventilator data become a value", c.Key, c.From, c.To)
+			}
+		}
+	}
+	for _, bg := range []string{"abg-c1", "abg-c2"} {
+		for _, kind := range []string{fhirmap.KindPredictedPaCO2, fhirmap.KindPaCO2Discrepancy} {
+			if k := patC + "|Observation/" + bg + "|" + kind; !toRefusal[k] {
+				t.Errorf("replay without an apparatus dead space: %s not reported as a value that becomes a refusal", k)
+			}
+		}
+	}
+	if len(toValue) == 0 || len(toRefusal) != 4 {
+		t.Errorf("replay: %d refusals become values (want some, abg-c3's), %d values become refusals (want 4)", len(toValue), len(toRefusal))
+	}
+
+	// Tampering, as the superuser of this throwaway database: a stored
+	// input altered is a mismatch naming both values, and the command
+	// fails; a version whose settings link is removed is not verifiable.
+	admin, err := pgxpool.New(ctx, u)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer admin.Close()
+	if _, err := admin.Exec(ctx, `UPDATE fact SET value = 420 WHERE key = 'Observation/vt-c1'`); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := admin.Exec(ctx, `UPDATE derivation SET settings_digest = NULL WHERE key = $1`, patC+"|Observation/abg-c2|"+fhirmap.KindPredictedPaCO2); err != nil {
+		t.Fatal(err)
+	}
+	var stdout, stderr bytes.Buffer
+	e := env{getenv: func(k string) string {
+		if k == "DATABASE_URL" {
+			return ru
+		}
+		return ""
+	}, stdout: &stdout, stderr: &stderr}
+	err = run(ctx, []string{"audit", "verify", "--kind", fhirmap.KindPredictedPaCO2}, e)
+	if err == nil || !strings.Contains(err.Error(), "1 mismatch") {
+		t.Errorf("verify after altering a stored tidal volume: err = %v, want 1 mismatch", err)
+	}
+	out := stdout.String()
+	if !strings.Contains(out, "mismatch") || !strings.Contains(out, "value: published 42.6 mmHg, re-derived ") {
+		t.Errorf("verify output does not report the mismatch with both values:\n%s", out)
+	}
+	if !strings.Contains(out, "not verifiable with this build: no settings snapshot was recorded") {
+		t.Errorf("verify output does not report the version without settings as not verifiable:\n%s", out)
+	}
 }
