@@ -121,6 +121,7 @@ func TestAuditDemoStoreMatchesPublished(t *testing.T) {
 		t.Fatalf("the demo stored %d derivation keys; too few to be the demo", len(keys))
 	}
 	versions, steps, refusals := 0, 0, 0
+	var all []postgres.Version
 	settings := map[string]bool{}
 	for key := range keys {
 		h, err := r.Show(ctx, key)
@@ -133,6 +134,7 @@ func TestAuditDemoStoreMatchesPublished(t *testing.T) {
 			if v.Record != nil {
 				steps += len(v.Record.Steps)
 			}
+			all = append(all, v)
 			checkSettings(ctx, t, r, v.Key, v.Settings, v.Algorithm, settings)
 		}
 		for _, x := range h.Refusals {
@@ -146,6 +148,7 @@ func TestAuditDemoStoreMatchesPublished(t *testing.T) {
 	if len(settings) != 1 {
 		t.Errorf("%d settings snapshots referenced, want 1: the demo runs under one set of settings", len(settings))
 	}
+	checkSettingsPublished(ctx, t, r, all)
 	t.Logf("%d keys, %d versions (%d steps), %d refusals checked against their published bytes and settings", len(keys), versions, steps, refusals)
 
 	verifyDemoStore(ctx, t, r, demoURL, versions)
@@ -254,6 +257,45 @@ func checkSettings(ctx context.Context, t *testing.T, r *postgres.Reviewer, key,
 	}
 	if !parsed.Site.ApparatusDeadSpaceConfigured || parsed.Site.TargetPaCO2mmHg == 0 || parsed.Site.Window != fhirmap.DefaultSite().Window {
 		t.Errorf("settings %s: site %+v is not the demo's", digest, parsed.Site)
+	}
+}
+
+// checkSettingsPublished checks the stored settings against what the
+// published values used: the apparatus dead space in every predicted
+// PaCO2's worked basis (VA = (VT - VDanat - VDapp) x RR), the target in
+// every for-target value's constants.
+func checkSettingsPublished(ctx context.Context, t *testing.T, r *postgres.Reviewer, versions []postgres.Version) {
+	t.Helper()
+	checked := 0
+	for _, v := range versions {
+		if v.Record == nil || v.Settings == "" {
+			continue
+		}
+		rec, err := r.Settings(ctx, v.Settings)
+		if err != nil {
+			t.Fatal(err)
+		}
+		st, err := consumer.ParseSettings([]byte(rec.Snapshot))
+		if err != nil {
+			t.Fatal(err)
+		}
+		switch v.Kind {
+		case fhirmap.KindPredictedPaCO2:
+			checked++
+			if want := " - " + physio.DisplayNumber(st.Site.ApparatusDeadSpaceML) + " mL) x "; !strings.Contains(v.Record.Worked, want) {
+				t.Errorf("%s: worked basis %q lacks the stored apparatus dead space (%q)", v.Key, v.Record.Worked, want)
+			}
+		case fhirmap.KindRateForTarget, fhirmap.KindTidalVolumeForTarget:
+			checked++
+			if !slices.ContainsFunc(v.Record.Constants, func(c fhirmap.RecordConstant) bool {
+				return c.Name == "target PaCO2" && c.Value == st.Site.TargetPaCO2mmHg
+			}) {
+				t.Errorf("%s: constants %+v lack the stored target %g", v.Key, v.Record.Constants, st.Site.TargetPaCO2mmHg)
+			}
+		}
+	}
+	if checked == 0 {
+		t.Error("no predicted PaCO2 or for-target value to check the stored settings against")
 	}
 }
 
