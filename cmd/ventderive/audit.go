@@ -968,6 +968,7 @@ var verifyColumns = []column[postgres.Verdict]{
 	{name: "BLOOD GAS", cell: func(v postgres.Verdict) string { return v.BloodGas }},
 	{name: "KIND", cell: func(v postgres.Verdict) string { return v.Kind }},
 	{name: "VERSION", cell: func(v postgres.Verdict) string { return strconv.Itoa(v.Version) }},
+	{name: "STATUS", cell: func(v postgres.Verdict) string { return v.Status }},
 	{name: "OUTCOME", cell: func(v postgres.Verdict) string { return v.Outcome }},
 	{name: "PUBLISHED", where: tableOnly, cell: func(v postgres.Verdict) string { return withUnit(valueText(v.Published, v.Status), v.DisplayUnit) }},
 	{name: "RE-DERIVED", where: tableOnly, cell: func(v postgres.Verdict) string { return withUnit(v.Rederived, v.DisplayUnit) }},

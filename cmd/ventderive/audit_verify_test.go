@@ -26,13 +26,18 @@ var patC = "Patient/lg-icu-0005"
 // deviceReading is an invented ventilator or monitor Observation with the
 // detail the service's code table gives it (expired, total...).
 func deviceReading(patient, id string, q fhirmap.Quantity, at time.Time, v float64, unit, detail string, seq uint64) (consumer.Message, fhirmap.Fact) {
-	raw := fmt.Appendf(nil, `{"resourceType":"Observation","id":%q,"meta":{"versionId":"1"},"status":"final","subject":{"reference":%q},"effectiveDateTime":%q,"valueQuantity":{"value":%s,"unit":%q}}`,
-		id, patient, at.Format(time.RFC3339), strconv.FormatFloat(v, 'f', -1, 64), unit)
+	return observationVersion(patient, id, "1", fhirmap.StatusFinal, q, at, v, unit, detail, seq)
+}
+
+// observationVersion is deviceReading with a version id and status.
+func observationVersion(patient, id, version string, st fhirmap.Status, q fhirmap.Quantity, at time.Time, v float64, unit, detail string, seq uint64) (consumer.Message, fhirmap.Fact) {
+	raw := fmt.Appendf(nil, `{"resourceType":"Observation","id":%q,"meta":{"versionId":%q},"status":%q,"subject":{"reference":%q},"effectiveDateTime":%q,"valueQuantity":{"value":%s,"unit":%q}}`,
+		id, version, st, patient, at.Format(time.RFC3339), strconv.FormatFloat(v, 'f', -1, 64), unit)
 	ref := "Observation/" + id
-	r := fhirmap.Resource{Type: "Observation", Reference: ref, VersionID: "1", Patient: patient, Digest: auditSHA(raw), Raw: raw}
-	f := fhirmap.Fact{Key: ref, Resource: ref, VersionID: "1", Digest: r.Digest, Patient: patient, Quantity: q,
+	r := fhirmap.Resource{Type: "Observation", Reference: ref, VersionID: version, Patient: patient, Digest: auditSHA(raw), Raw: raw}
+	f := fhirmap.Fact{Key: ref, Resource: ref, VersionID: version, Digest: r.Digest, Patient: patient, Quantity: q,
 		Origin: fhirmap.OriginMeasured, Detail: detail, Value: v, Unit: unit, SourceValue: v, SourceUnit: unit,
-		Code: fhirmap.Coding{System: "http://loinc.org", Code: "x"}, Status: fhirmap.StatusFinal, Effective: at}
+		Code: fhirmap.Coding{System: "http://loinc.org", Code: "x"}, Status: st, Effective: at}
 	if q == fhirmap.QPCO2 {
 		f.Origin, f.Specimen = "", fhirmap.SpecimenArterial
 	}
@@ -94,6 +99,10 @@ func seedVerify(t *testing.T, ctx context.Context, u string) []fhirmap.Fact {
 	}
 	// The third blood gas: its nearest reading is 2 h before it.
 	add("abg-c3", fhirmap.QPCO2, auditT0.Add(6*time.Hour), 51, "mm[Hg]", "")
+	// The laboratory amends the second blood gas: its values get version 2,
+	// status amended (verify re-derives them from the amended PaCO2).
+	m, f := observationVersion(patC, "abg-c2", "2", fhirmap.StatusAmended, fhirmap.QPCO2, auditT0.Add(4*time.Hour), 44.5, "mm[Hg]", "", uint64(len(msgs)+1))
+	msgs, facts = append(msgs, m), append(facts, f)
 	for _, m := range msgs {
 		if _, err := store.Ingest(ctx, m, plan); err != nil {
 			t.Fatalf("ingest %d: %v", m.StreamSeq, err)
