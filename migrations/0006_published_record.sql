@@ -26,16 +26,17 @@ CREATE TABLE site_settings (
     -- The key is the SHA-256 of the bytes kept, and the columns beside
     -- them say what the bytes say.
     CONSTRAINT site_settings_digest_matches CHECK (digest = encode(sha256(convert_to(snapshot, 'UTF8')), 'hex')),
-    CONSTRAINT site_settings_is_object CHECK (jsonb_typeof(snapshot::jsonb) = 'object'
-        AND jsonb_typeof(snapshot::jsonb -> 'site') = 'object'),
-    CONSTRAINT site_settings_algorithm_matches CHECK (algorithm = snapshot::jsonb ->> 'algorithm'),
-    CONSTRAINT site_settings_alias_matches CHECK (alias_digest = snapshot::jsonb ->> 'aliasDigest')
+    -- (coalesce: a missing member gives NULL, which a CHECK would pass)
+    CONSTRAINT site_settings_is_object CHECK (coalesce(jsonb_typeof(snapshot::jsonb) = 'object'
+        AND jsonb_typeof(snapshot::jsonb -> 'site') = 'object', false)),
+    CONSTRAINT site_settings_algorithm_matches CHECK (coalesce(algorithm = snapshot::jsonb ->> 'algorithm', false)),
+    CONSTRAINT site_settings_alias_matches CHECK (coalesce(alias_digest = snapshot::jsonb ->> 'aliasDigest', false))
 );
 
 ALTER TABLE derivation
-    ADD COLUMN record jsonb CHECK (record IS NULL OR (jsonb_typeof(record) = 'object'
+    ADD COLUMN record jsonb CHECK (record IS NULL OR coalesce(jsonb_typeof(record) = 'object'
         AND jsonb_typeof(record -> 'steps') = 'array' AND jsonb_typeof(record -> 'constants') = 'array'
-        AND jsonb_typeof(record -> 'assumptions') = 'array' AND jsonb_typeof(record -> 'flags') = 'array')),
+        AND jsonb_typeof(record -> 'assumptions') = 'array' AND jsonb_typeof(record -> 'flags') = 'array', false)),
     ADD COLUMN settings_digest text REFERENCES site_settings;
 
 ALTER TABLE refusal

@@ -206,11 +206,17 @@ func TestAuditVerifyReplay(t *testing.T) {
 	}
 
 	key := patC + "|Observation/abg-c1|" + fhirmap.KindPredictedPaCO2
+	snap, err := consumer.Settings{Algorithm: fhirmap.Algorithm, Site: site0()}.Snapshot()
+	if err != nil {
+		t.Fatal(err)
+	}
+	snapDigest := snap.Digest
 	questions := []struct {
 		name string
 		args []string
 	}{
 		{"settings-latest", []string{"settings"}},
+		{"settings-by-digest", []string{"settings", snapDigest}},
 		{"verify", []string{"verify"}},
 		{"verify-key", []string{"verify", key}},
 		{"verify-page", []string{"verify", "--kind", fhirmap.KindPredictedPaCO2, "--limit", "1"}},
