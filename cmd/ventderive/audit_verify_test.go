@@ -316,3 +316,24 @@ func TestAuditVerifyReplay(t *testing.T) {
 		t.Errorf("verify output does not report the version without settings as not verifiable:\n%s", out)
 	}
 }
+
+// TestLoadCodesDigest checks that the alias digest a settings snapshot
+// records is the SHA-256 of the alias file's bytes (FIPS 180-4, here as
+// computed by Go's crypto/sha256 through auditSHA), "" without a file.
+func TestLoadCodesDigest(t *testing.T) {
+	path := "testdata/derive/hv-aliases.jsonl"
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	codes, digest, err := loadCodes(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if digest != auditSHA(b) || codes.Len() <= fhirmap.DefaultCodes().Len() {
+		t.Errorf("loadCodes(%s) = %d codes, digest %s; want more than the %d standard codes and %s", path, codes.Len(), digest, fhirmap.DefaultCodes().Len(), auditSHA(b))
+	}
+	if _, digest, err := loadCodes(""); err != nil || digest != "" {
+		t.Errorf(`loadCodes("") digest %q, %v; want ""`, digest, err)
+	}
+}
