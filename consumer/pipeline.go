@@ -79,11 +79,14 @@ type Hooks struct {
 
 // Options configures a Pipeline.
 type Options struct {
-	Config  Config
-	Site    fhirmap.Site
-	Codes   *fhirmap.CodeTable
-	Logger  *slog.Logger
-	Metrics *Metrics
+	Config Config
+	Site   fhirmap.Site
+	Codes  *fhirmap.CodeTable
+	// AliasDigest is the hex SHA-256 of the code alias file Codes was
+	// extended with, "" for none: part of the settings snapshot.
+	AliasDigest string
+	Logger      *slog.Logger
+	Metrics     *Metrics
 	// Workers bounds concurrent message handling per replica; default 4.
 	// With a BatchStore it is the number of lanes: messages are dealt to a
 	// lane by patient, and each lane commits its messages in groups, one
@@ -135,7 +138,7 @@ func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
 		js:        js,
 		store:     store,
 		codes:     o.Codes,
-		planner:   Planner{Site: site, ObservationSub: cfg.ObservationSub, ProvenanceSub: cfg.ProvenanceSub},
+		planner:   Planner{Site: site, ObservationSub: cfg.ObservationSub, ProvenanceSub: cfg.ProvenanceSub, AliasDigest: o.AliasDigest},
 		cfg:       cfg,
 		log:       o.Logger,
 		metrics:   o.Metrics,

@@ -17,6 +17,14 @@ type Planner struct {
 	Site           fhirmap.Site
 	ObservationSub string
 	ProvenanceSub  string
+	// AliasDigest is the hex SHA-256 of the site's code alias file, ""
+	// when there is none; it is part of the settings snapshot.
+	AliasDigest string
+}
+
+// Settings returns the snapshot of the settings the planner derives under.
+func (p Planner) Settings() (SettingsSnapshot, error) {
+	return Settings{Algorithm: fhirmap.Algorithm, AliasDigest: p.AliasDigest, Site: p.Site}.Snapshot()
 }
 
 // Plan recomputes every affected blood gas of the snapshot and compares the
@@ -106,6 +114,13 @@ func (p Planner) Plan(snap Snapshot, recorded time.Time) (Changes, error) {
 				return Changes{}, err
 			}
 		}
+	}
+	if len(ch.Derivations) > 0 || len(ch.Refusals) > 0 {
+		snap, err := p.Settings()
+		if err != nil {
+			return Changes{}, err
+		}
+		ch.Settings = snap
 	}
 	return ch, nil
 }

@@ -123,6 +123,11 @@ type Changes struct {
 	Refusals []fhirmap.Refusal
 	// Outbox holds the messages to publish after commit.
 	Outbox []OutboxMessage
+	// Settings is the snapshot of the site settings every derivation and
+	// refusal here was made under; the store keeps it once per Digest and
+	// links each row to it. Empty when a plan records nothing (and from
+	// planners that predate it: the rows then name no snapshot).
+	Settings SettingsSnapshot
 }
 
 // OutboxMessage is one message waiting to be published.

@@ -19,6 +19,7 @@ import (
 	"github.com/google/uuid"
 	"github.com/jackc/pgx/v5/pgxpool"
 
+	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres"
 	"github.com/ventderive/ventderive/fhirmap"
 	"github.com/ventderive/ventderive/physio"
@@ -47,9 +48,22 @@ questions (time basis: the blood gas's effective time, except deadletters):
   daily          blood gases, derivation versions, retractions and refusals per UTC day of the
                  blood gas  [--patient] [--from] [--to] [--kind] [--algorithm]
   deadletters    poison messages (without their bytes), by RECORDING time  [--from] [--to] [--reason]
+  settings [<digest>]  a site-settings snapshot (default: the latest recorded): every setting that
+                 can change a value, the code alias file's SHA-256, the algorithm version
+  verify [<observation-id or key>]  re-derive each stored version from its stored inputs and
+                 settings snapshot with this build and report per version whether the published
+                 value, interpretation, digest and Observation bytes reproduce; a mismatch names
+                 both values and the command exits non-zero. Versions of another algorithm:
+                 "not verifiable with this build".  [--patient] [--from] [--to] [--kind]
+  replay --algorithm current --from T --to T  recompute the period's blood gases with this build
+                 and the latest recorded settings (--site JSON overrides settings by name, e.g.
+                 '{"TargetPaCO2mmHg":38}') and report per kind how many values would change, the
+                 distribution of the change, flipped interpretations and refusals that would
+                 become values or the reverse, then each changed key. Writes and publishes
+                 nothing.  [--patient] [--kind] [--site JSON]
 flags common to all: --database-url URL (default $DATABASE_URL; normally the reviewer role)
   --format table|json|csv (default table)
-paging (all but show and published): --limit N rows (default 1000, at most 10000) --offset N rows skipped;
+paging (all but show, published, settings and verify of one key; replay pages its changed keys): --limit N rows (default 1000, at most 10000) --offset N rows skipped;
   when more rows exist the table ends with a "more rows" line naming the next --offset, CSV with a
   "# more rows" comment line, JSON with "more": true and "nextOffset".
 times: RFC 3339 (2026-03-01T08:00:00Z) or a UTC date (2026-03-01); --from inclusive, --to
@@ -75,6 +89,9 @@ var auditQuestions = []auditQuestion{
 	{"changes", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
 	{"daily", []string{"patient", "from", "to", "kind", "algorithm", "limit", "offset"}},
 	{"deadletters", []string{"from", "to", "reason", "limit", "offset"}},
+	{"settings", nil},
+	{"verify", []string{"patient", "from", "to", "kind", "limit", "offset"}},
+	{"replay", []string{"patient", "from", "to", "kind", "algorithm", "site", "limit", "offset"}},
 }
 
 var (
@@ -82,6 +99,8 @@ var (
 	patientRefRE = regexp.MustCompile(`^Patient/[A-Za-z0-9.-]{1,64}$`)
 	// codeRE is the store's CHECK on reason codes.
 	codeRE = regexp.MustCompile(`^[a-z0-9]+(-[a-z0-9]+)*$`)
+	// digestRE is the store's CHECK on digests.
+	digestRE = regexp.MustCompile(`^[0-9a-f]{64}$`)
 )
 
 // runAudit answers one reviewer question. Queries live in
@@ -123,6 +142,7 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	threshold := fs.Float64("threshold", 5, "discrepancies: minimum |measured - predicted| in mmHg")
 	version := fs.Int("version-id", 0, "published: derivation version, the Observation's meta.versionId (default the latest)")
 	resourceType := fs.String("type", "Observation", "published: Observation or Provenance")
+	siteJSON := fs.String("site", "", "replay: site settings to change, as JSON by setting name (fhirmap.Site), over the latest recorded")
 	// Flags may follow the positional argument of show.
 	var positional []string
 	for {
@@ -149,6 +169,24 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	}
 	if err := checkAuditArgs(q, &f, from, to, *format, *threshold, positional); err != nil {
 		return usageErr(err.Error())
+	}
+	var siteChange map[string]json.RawMessage
+	if question == "replay" {
+		if f.Algorithm != "current" {
+			return usageErr(fmt.Sprintf("replay: --algorithm %q: this build replays only under its own algorithm, --algorithm current (%s)", f.Algorithm, fhirmap.Algorithm))
+		}
+		f.Algorithm = ""
+		if f.From.IsZero() || f.To.IsZero() {
+			return usageErr("replay: --from and --to are required (the period whose blood gases are recomputed)")
+		}
+		if *siteJSON != "" {
+			if err := json.Unmarshal([]byte(*siteJSON), &siteChange); err != nil || siteChange == nil {
+				return usageErr("--site: want a JSON object of settings by name, e.g. '{\"TargetPaCO2mmHg\":38}'")
+			}
+			if err := checkSiteNames(siteChange); err != nil {
+				return usageErr("--site: " + err.Error())
+			}
+		}
 	}
 	if *version < 0 {
 		return usageErr(fmt.Sprintf("--version-id %d: want 1 or more", *version))
@@ -235,6 +273,76 @@ func runAudit(ctx context.Context, args []string, e env) error {
 			return fmt.Errorf("audit daily: %w", err)
 		}
 		return writePage(out, p, dailyColumns)
+	case "settings":
+		var rec postgres.SettingsRecord
+		if len(positional) == 1 {
+			rec, err = r.Settings(ctx, positional[0])
+		} else {
+			rec, err = r.LatestSettings(ctx)
+		}
+		if errors.Is(err, postgres.ErrNotFound) {
+			return fmt.Errorf("audit settings: no settings snapshot recorded with that digest")
+		}
+		if err != nil {
+			return fmt.Errorf("audit settings: %w", err)
+		}
+		return out.settings(rec)
+	case "verify":
+		var vs []postgres.Verdict
+		if len(positional) == 1 {
+			vs, err = r.VerifyKey(ctx, positional[0])
+			if errors.Is(err, postgres.ErrNotFound) {
+				return fmt.Errorf("audit verify: no derivation with that id or key")
+			}
+			if err == nil {
+				err = writePage(out, postgres.Page[postgres.Verdict]{Rows: vs, Limit: len(vs)}, verifyColumns)
+			}
+		} else {
+			var p postgres.Page[postgres.Verdict]
+			p, err = r.Verify(ctx, f)
+			if err == nil {
+				vs = p.Rows
+				err = writePage(out, p, verifyColumns)
+			}
+		}
+		if err != nil {
+			return fmt.Errorf("audit verify: %w", err)
+		}
+		sum := postgres.Summarise(vs)
+		if o := out.format; o == "table" {
+			fmt.Fprintf(e.stdout, "verified (this page): %s\n", sum)
+		}
+		if sum.Mismatches > 0 {
+			return fmt.Errorf("audit verify: %d mismatch(es): a stored value does not follow from its stored basis", sum.Mismatches)
+		}
+		return nil
+	case "replay":
+		site := fhirmap.DefaultSite()
+		base := "the defaults (no settings snapshot recorded)"
+		if rec, err := r.LatestSettings(ctx); err == nil {
+			st, err := consumer.ParseSettings([]byte(rec.Snapshot))
+			if err != nil {
+				return fmt.Errorf("audit replay: %w", err)
+			}
+			site, base = st.Site, "the latest recorded snapshot "+rec.Digest
+		} else if !errors.Is(err, postgres.ErrNotFound) {
+			return fmt.Errorf("audit replay: %w", err)
+		}
+		if siteChange != nil {
+			b, _ := json.Marshal(siteChange)
+			if err := json.Unmarshal(b, &site); err != nil {
+				return usageErr("--site: " + err.Error())
+			}
+			base += ", changed by --site"
+		}
+		if err := site.Validate(); err != nil {
+			return usageErr("replay settings: " + err.Error())
+		}
+		rep, err := r.Replay(ctx, f, site)
+		if err != nil {
+			return fmt.Errorf("audit replay: %w", err)
+		}
+		return out.replay(rep, site, base)
 	case "deadletters":
 		p, err := r.DeadLetters(ctx, f)
 		if err != nil {
@@ -295,8 +403,23 @@ func checkAuditArgs(q auditQuestion, f *postgres.Filter, from, to, format string
 		return fmt.Errorf("--threshold %g: want a finite number of mmHg, 0 or more", threshold)
 	}
 	want := 0
-	if q.name == "show" || q.name == "published" {
+	switch q.name {
+	case "show", "published":
 		want = 1
+	case "verify":
+		if len(positional) == 1 {
+			if f.Patient != "" || f.From != (time.Time{}) || f.To != (time.Time{}) || f.Kind != "" || f.Offset != 0 {
+				return errors.New("verify of one value takes no --patient, --from, --to, --kind or --offset")
+			}
+			return checkShowArg(positional[0])
+		}
+	case "settings":
+		if len(positional) == 1 {
+			if !digestRE.MatchString(positional[0]) {
+				return fmt.Errorf("settings %q: want a settings digest (64 lower-case hex digits)", positional[0])
+			}
+			return nil
+		}
 	}
 	if len(positional) != want {
 		if want == 1 {
@@ -723,11 +846,25 @@ func (o auditOutput) show(h postgres.History) error {
 		}
 		fmt.Fprintf(&b, "  method          %s (method version %s; algorithm %s)\n", v.Method, v.MethodVersion, v.Algorithm)
 		fmt.Fprintf(&b, "  basis           %s\n", v.Basis)
-		for _, c := range v.Constants {
-			fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(physio.DisplayNumber(c.Value), physio.DisplayUnit(c.Unit)), c.Source)
-		}
-		for _, a := range v.Assumptions {
-			fmt.Fprintf(&b, "  assumption      %s\n", a)
+		if rec := v.Record; rec != nil {
+			// The published basis as stored: every step, constant and
+			// assumption the Observation's notes list.
+			for _, st := range rec.Steps {
+				fmt.Fprintf(&b, "  step            %s: %s\n", st.Method, st.Basis)
+			}
+			for _, c := range rec.Constants {
+				fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(physio.DisplayNumber(c.Value), physio.DisplayUnit(c.Unit)), c.Source)
+			}
+			for _, a := range rec.Assumptions {
+				fmt.Fprintf(&b, "  assumption      %s\n", a)
+			}
+		} else {
+			for _, c := range v.Constants {
+				fmt.Fprintf(&b, "  constant        %s = %s (%s)\n", c.Name, withUnit(physio.DisplayNumber(c.Value), physio.DisplayUnit(c.Unit)), c.Source)
+			}
+			for _, a := range v.Assumptions {
+				fmt.Fprintf(&b, "  assumption      %s\n", a)
+			}
 		}
 		if v.Interpretation.Code != "" || v.Interpretation.Text != "" {
 			fmt.Fprintf(&b, "  interpretation  %s %s (%s)\n", v.Interpretation.Code, v.Interpretation.Text, v.Interpretation.Source)
@@ -736,6 +873,7 @@ func (o auditOutput) show(h postgres.History) error {
 			fmt.Fprintf(&b, "  flag            %s\n", f)
 		}
 		fmt.Fprintf(&b, "  digest          %s\n", v.Digest)
+		fmt.Fprintf(&b, "  settings        %s\n", settingsText(v.Settings))
 		for _, m := range v.Messages {
 			state := "not yet published"
 			if m.PublishedAt != nil {
@@ -753,10 +891,20 @@ func (o auditOutput) show(h postgres.History) error {
 		fmt.Fprintf(&b, "\n  blood gas       %s at %s\n", r.BloodGas, ts(r.Effective))
 		fmt.Fprintf(&b, "  recorded        %s\n", ts(r.Recorded))
 		fmt.Fprintf(&b, "  detail          %s\n", r.Detail)
+		fmt.Fprintf(&b, "  settings        %s\n", settingsText(r.Settings))
 		writeInputs(&b, "considered", r.Considered)
 	}
 	_, err := io.WriteString(o.w, b.String())
 	return err
+}
+
+// settingsText names a settings snapshot ("audit settings <digest>"
+// shows it), or says that none was recorded.
+func settingsText(digest string) string {
+	if digest == "" {
+		return "none recorded (made before the store kept settings snapshots, or by another planner)"
+	}
+	return digest
 }
 
 func sentAs(in postgres.Input) string {
@@ -788,4 +936,218 @@ func writeInputs(b *strings.Builder, title string, ins []postgres.Input) {
 			when, offset, in.Fallback}), "\t"))
 	}
 	tw.Flush()
+}
+
+// checkSiteNames refuses a --site setting that fhirmap.Site does not have
+// (a misspelt name would otherwise be ignored silently).
+func checkSiteNames(change map[string]json.RawMessage) error {
+	b, err := json.Marshal(fhirmap.DefaultSite())
+	if err != nil {
+		return err
+	}
+	var known map[string]json.RawMessage
+	if err := json.Unmarshal(b, &known); err != nil {
+		return err
+	}
+	for name := range change {
+		if _, ok := known[name]; !ok {
+			names := make([]string, 0, len(known))
+			for n := range known {
+				names = append(names, n)
+			}
+			slices.Sort(names)
+			return fmt.Errorf("%q is not a site setting (settings: %s)", name, strings.Join(names, ", "))
+		}
+	}
+	return nil
+}
+
+var verifyColumns = []column[postgres.Verdict]{
+	{name: "BLOOD GAS TIME", csv: "blood_gas_time", cell: func(v postgres.Verdict) string { return ts(v.Effective) }},
+	{name: "PATIENT", cell: func(v postgres.Verdict) string { return v.Patient }},
+	{name: "BLOOD GAS", cell: func(v postgres.Verdict) string { return v.BloodGas }},
+	{name: "KIND", cell: func(v postgres.Verdict) string { return v.Kind }},
+	{name: "VERSION", cell: func(v postgres.Verdict) string { return strconv.Itoa(v.Version) }},
+	{name: "STATUS", cell: func(v postgres.Verdict) string { return v.Status }},
+	{name: "OUTCOME", cell: func(v postgres.Verdict) string { return v.Outcome }},
+	{name: "PUBLISHED", where: tableOnly, cell: func(v postgres.Verdict) string { return withUnit(valueText(v.Published, v.Status), v.DisplayUnit) }},
+	{name: "RE-DERIVED", where: tableOnly, cell: func(v postgres.Verdict) string { return withUnit(v.Rederived, v.DisplayUnit) }},
+	{name: "PUBLISHED", csv: "published_value", where: csvOnly, cell: func(v postgres.Verdict) string { return v.Published }},
+	{name: "PUBLISHED", csv: "published_value_unrounded", where: csvOnly, cell: func(v postgres.Verdict) string { return optNum(v.PublishedValue) }},
+	{name: "RE-DERIVED", csv: "rederived_value", where: csvOnly, cell: func(v postgres.Verdict) string { return v.Rederived }},
+	{name: "RE-DERIVED", csv: "rederived_value_unrounded", where: csvOnly, cell: func(v postgres.Verdict) string { return optNum(v.RederivedValue) }},
+	{name: "UNIT", csv: "unit", where: csvOnly, cell: func(v postgres.Verdict) string { return v.DisplayUnit }},
+	{name: "INTERP", csv: "interpretation", cell: func(v postgres.Verdict) string { return arrow(v.Interpretation, v.RederivedInterp, v.Rederived != "") }},
+	{name: "DIGEST", csv: "digest_reproduced", cell: func(v postgres.Verdict) string { return same(v.Digest, v.RederivedDigest) }},
+	{name: "OBSERVATION BYTES", csv: "observation_bytes_reproduced", cell: func(v postgres.Verdict) string { return same(v.ObservationDigest, v.RederivedObservation) }},
+	{name: "SETTINGS", csv: "settings_digest", cell: func(v postgres.Verdict) string { return short(v.Settings) }},
+	{name: "FINDINGS", csv: "findings", cell: func(v postgres.Verdict) string {
+		if v.Why != "" {
+			return strings.Join(append([]string{v.Why}, v.Findings...), "; ")
+		}
+		return strings.Join(v.Findings, "; ")
+	}},
+}
+
+// arrow shows a stored and a re-derived code: "H" when equal, "H->N" when
+// not, the stored one alone when nothing was re-derived.
+func arrow(from, to string, rederived bool) string {
+	if !rederived {
+		return from
+	}
+	if from == to {
+		return from
+	}
+	return orDash(from) + "->" + orDash(to)
+}
+
+func orDash(s string) string {
+	if s == "" {
+		return "-"
+	}
+	return s
+}
+
+// same says whether a re-derived digest equals the stored one; "" when
+// nothing was re-derived.
+func same(stored, rederived string) string {
+	switch {
+	case rederived == "":
+		return ""
+	case stored == rederived:
+		return "reproduced"
+	}
+	return "differs"
+}
+
+// short abbreviates a digest for the table (the full one is in CSV and JSON
+// through "audit settings").
+func short(d string) string {
+	if len(d) > 12 {
+		return d[:12]
+	}
+	return d
+}
+
+// settings writes one settings snapshot.
+func (o auditOutput) settings(rec postgres.SettingsRecord) error {
+	switch o.format {
+	case "json":
+		return o.json(rec)
+	case "csv":
+		var site map[string]json.RawMessage
+		if err := json.Unmarshal(rec.Site, &site); err != nil {
+			return err
+		}
+		w := csv.NewWriter(o.w)
+		w.Write([]string{"digest", "algorithm", "alias_digest", "recorded", "setting", "value"})
+		names := make([]string, 0, len(site))
+		for n := range site {
+			names = append(names, n)
+		}
+		slices.Sort(names)
+		for _, n := range names {
+			w.Write([]string{rec.Digest, rec.Algorithm, rec.AliasDigest, ts(rec.Recorded), n, string(site[n])})
+		}
+		w.Flush()
+		return w.Error()
+	}
+	var b strings.Builder
+	fmt.Fprintf(&b, "settings snapshot %s\n", rec.Digest)
+	fmt.Fprintf(&b, "  algorithm       %s\n", rec.Algorithm)
+	alias := rec.AliasDigest
+	if alias == "" {
+		alias = "none (no code alias file)"
+	}
+	fmt.Fprintf(&b, "  alias file      SHA-256 %s\n", alias)
+	fmt.Fprintf(&b, "  first recorded  %s\n", ts(rec.Recorded))
+	var site map[string]json.RawMessage
+	if err := json.Unmarshal(rec.Site, &site); err != nil {
+		return err
+	}
+	names := make([]string, 0, len(site))
+	for n := range site {
+		names = append(names, n)
+	}
+	slices.Sort(names)
+	for _, n := range names {
+		fmt.Fprintf(&b, "  %-28s %s\n", n, site[n])
+	}
+	fmt.Fprintf(&b, "  (durations in nanoseconds; the stored bytes, whose SHA-256 is the digest, are in --format json)\n")
+	_, err := io.WriteString(o.w, b.String())
+	return err
+}
+
+func optDelta(v *float64) string {
+	if v == nil {
+		return ""
+	}
+	return physio.DisplayNumber(*v)
+}
+
+var replayKindColumns = []column[postgres.ReplayKind]{
+	{name: "KIND", cell: func(k postgres.ReplayKind) string { return k.Kind }},
+	{name: "COMPARED", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.Compared) }},
+	{name: "UNCHANGED", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.Unchanged) }},
+	{name: "VALUES CHANGED", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.ValuesChanged) }},
+	{name: "CHANGE MIN", csv: "change_min", cell: func(k postgres.ReplayKind) string { return optDelta(k.DeltaMin) }},
+	{name: "Q1", csv: "change_q1", cell: func(k postgres.ReplayKind) string { return optDelta(k.DeltaQ1) }},
+	{name: "MEDIAN", csv: "change_median", cell: func(k postgres.ReplayKind) string { return optDelta(k.DeltaMedian) }},
+	{name: "Q3", csv: "change_q3", cell: func(k postgres.ReplayKind) string { return optDelta(k.DeltaQ3) }},
+	{name: "MAX", csv: "change_max", cell: func(k postgres.ReplayKind) string { return optDelta(k.DeltaMax) }},
+	{name: "UNIT", cell: func(k postgres.ReplayKind) string { return k.DisplayUnit }},
+	{name: "INTERP FLIPS", csv: "interpretations_flipped", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.InterpretationsFlipped) }},
+	{name: "REFUSED->VALUE", csv: "refusals_to_values", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.RefusalsToValues) }},
+	{name: "VALUE->REFUSED", csv: "values_to_refusals", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.ValuesToRefusals) }},
+	{name: "REASON CHANGED", csv: "reasons_changed", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.ReasonsChanged) }},
+	{name: "OTHER", csv: "other", cell: func(k postgres.ReplayKind) string { return strconv.Itoa(k.Other) }},
+}
+
+var replayChangeColumns = []column[postgres.ReplayChange]{
+	{name: "BLOOD GAS TIME", csv: "blood_gas_time", cell: func(c postgres.ReplayChange) string { return ts(c.Effective) }},
+	{name: "PATIENT", cell: func(c postgres.ReplayChange) string { return c.Patient }},
+	{name: "BLOOD GAS", cell: func(c postgres.ReplayChange) string { return c.BloodGas }},
+	{name: "KIND", cell: func(c postgres.ReplayChange) string { return c.Kind }},
+	{name: "CHANGE", cell: func(c postgres.ReplayChange) string { return c.Change }},
+	{name: "STORED", cell: func(c postgres.ReplayChange) string { return c.From }},
+	{name: "REPLAYED", cell: func(c postgres.ReplayChange) string { return c.To }},
+	{name: "DIFFERENCE", cell: func(c postgres.ReplayChange) string { return optDelta(c.Delta) }},
+	{name: "DIFFERENCE", csv: "difference_unrounded", where: csvOnly, cell: func(c postgres.ReplayChange) string { return optNum(c.Delta) }},
+	{name: "INTERP", csv: "interpretation", cell: func(c postgres.ReplayChange) string {
+		if c.FromInterp == c.ToInterp {
+			return c.FromInterp
+		}
+		return orDash(c.FromInterp) + "->" + orDash(c.ToInterp)
+	}},
+}
+
+// replay writes a replay report: the settings, the summary per kind, then
+// the page of changed keys.
+func (o auditOutput) replay(rep postgres.ReplayReport, site fhirmap.Site, base string) error {
+	if o.format == "json" {
+		return o.json(struct {
+			postgres.ReplayReport
+			Settings     fhirmap.Site `json:"settings"`
+			SettingsFrom string       `json:"settingsFrom"`
+		}{rep, site, base})
+	}
+	if o.format == "csv" {
+		// Two tables in one stream: the summary, a blank line, the changes.
+		if err := writePage(o, postgres.Page[postgres.ReplayKind]{Rows: rep.Kinds, Limit: len(rep.Kinds)}, replayKindColumns); err != nil {
+			return err
+		}
+		fmt.Fprintln(o.w)
+		return writePage(o, rep.Changes, replayChangeColumns)
+	}
+	fmt.Fprintf(o.w, "replay under %s (this build) of the blood gases from %s to %s: %d blood gas(es); nothing written or published\n",
+		rep.Algorithm, ts(rep.From), ts(rep.To), rep.BloodGases)
+	fmt.Fprintf(o.w, "settings: %s\n", base)
+	fmt.Fprintln(o.w, "compared with each key's latest stored state; changes are replayed minus stored, in the kind's display unit")
+	fmt.Fprintln(o.w)
+	if err := writePage(o, postgres.Page[postgres.ReplayKind]{Rows: rep.Kinds, Limit: len(rep.Kinds)}, replayKindColumns); err != nil {
+		return err
+	}
+	fmt.Fprintln(o.w)
+	fmt.Fprintln(o.w, "changed keys:")
+	return writePage(o, rep.Changes, replayChangeColumns)
 }

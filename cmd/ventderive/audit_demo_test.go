@@ -7,6 +7,7 @@ import (
 	"net/url"
 	"os"
 	"regexp"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
@@ -14,8 +15,10 @@ import (
 
 	"github.com/jackc/pgx/v5/pgxpool"
 
+	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/fhirmap"
 	"github.com/ventderive/ventderive/physio"
 )
 
@@ -117,7 +120,9 @@ func TestAuditDemoStoreMatchesPublished(t *testing.T) {
 	if len(keys) < 50 {
 		t.Fatalf("the demo stored %d derivation keys; too few to be the demo", len(keys))
 	}
-	versions := 0
+	versions, steps, refusals := 0, 0, 0
+	var all []postgres.Version
+	settings := map[string]bool{}
 	for key := range keys {
 		h, err := r.Show(ctx, key)
 		if err != nil {
@@ -126,9 +131,269 @@ func TestAuditDemoStoreMatchesPublished(t *testing.T) {
 		for _, v := range h.Versions {
 			versions++
 			checkPublishedVersion(t, v)
+			if v.Record != nil {
+				steps += len(v.Record.Steps)
+			}
+			all = append(all, v)
+			checkSettings(ctx, t, r, v.Key, v.Settings, v.Algorithm, settings)
+		}
+		for _, x := range h.Refusals {
+			refusals++
+			checkSettings(ctx, t, r, x.Key, x.Settings, "", settings)
 		}
 	}
-	t.Logf("%d keys, %d versions checked against their published bytes", len(keys), versions)
+	if steps == 0 {
+		t.Errorf("no stored version has an intermediate step; the demo derives predicted PaCO2 (with its predicted-body-weight step)")
+	}
+	if len(settings) != 1 {
+		t.Errorf("%d settings snapshots referenced, want 1: the demo runs under one set of settings", len(settings))
+	}
+	checkSettingsPublished(ctx, t, r, all)
+	t.Logf("%d keys, %d versions (%d steps), %d refusals checked against their published bytes and settings", len(keys), versions, steps, refusals)
+
+	verifyDemoStore(ctx, t, r, demoURL, versions)
+}
+
+// verifyDemoStore runs audit verify over the whole demo store: every
+// version that has a value must reproduce (value, interpretation, digest
+// and the published Observation's bytes). Then, as the superuser in this
+// throwaway database, it alters one stored input of a value and checks
+// that verify reports that value as a mismatch with both values.
+func verifyDemoStore(ctx context.Context, t *testing.T, r *postgres.Reviewer, demoURL string, versions int) {
+	var all []postgres.Verdict
+	for offset := 0; ; {
+		page, err := r.Verify(ctx, postgres.Filter{Limit: 200, Offset: offset})
+		if err != nil {
+			t.Fatal(err)
+		}
+		all = append(all, page.Rows...)
+		if !page.More {
+			break
+		}
+		offset = page.NextOffset
+	}
+	sum := postgres.Summarise(all)
+	t.Logf("verify: %s", sum)
+	if sum.Versions != versions || sum.Reproduced+sum.Retractions != versions || sum.Reproduced == 0 {
+		for _, v := range all {
+			if v.Outcome != postgres.OutcomeReproduced && v.Outcome != postgres.OutcomeRetraction {
+				t.Errorf("%s version %d: %s %s %q", v.Key, v.Version, v.Outcome, v.Why, v.Findings)
+			}
+		}
+		t.Fatalf("verify over the demo store: %s; want every one of %d versions reproduced (or a retraction)", sum, versions)
+	}
+
+	// Alter the blood gas of one current predicted PaCO2 discrepancy (the
+	// PaCO2 enters the difference one for one) in the stored fact.
+	var target postgres.Verdict
+	for _, v := range all {
+		if v.Kind == fhirmap.KindPaCO2Discrepancy && v.Outcome == postgres.OutcomeReproduced {
+			target = v
+			break
+		}
+	}
+	if target.Key == "" {
+		t.Fatal("the demo stored no measured-minus-predicted PaCO2 to alter")
+	}
+	admin, err := pgxpool.New(ctx, demoURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer admin.Close()
+	tag, err := admin.Exec(ctx, `UPDATE fact SET value = value + 3 WHERE key = $1 AND quantity = 'pco2'`, target.BloodGas)
+	if err != nil || tag.RowsAffected() == 0 {
+		t.Fatalf("alter the stored blood gas %s: %v (%d rows)", target.BloodGas, err, tag.RowsAffected())
+	}
+	got, err := r.VerifyKey(ctx, target.Key)
+	if err != nil {
+		t.Fatal(err)
+	}
+	found := false
+	for _, v := range got {
+		if v.Version != target.Version {
+			continue
+		}
+		found = true
+		if v.Outcome != postgres.OutcomeMismatch {
+			t.Fatalf("after altering its blood gas, %s version %d: %s, want a mismatch", v.Key, v.Version, v.Outcome)
+		}
+		want := "value: published " + target.Published + " mmHg, re-derived " + v.Rederived + " mmHg"
+		if v.Rederived == target.Published || !slices.Contains(v.Findings, want) {
+			t.Errorf("findings %q, want %q (both values)", v.Findings, want)
+		}
+	}
+	if !found {
+		t.Fatalf("verify of %s returned no version %d", target.Key, target.Version)
+	}
+}
+
+// checkSettings checks that a stored version or refusal names a settings
+// snapshot whose bytes hash to its digest and that names the version's
+// algorithm. The snapshot's settings are the demo's: the site it runs
+// (apparatus dead space and target configured, the default window).
+func checkSettings(ctx context.Context, t *testing.T, r *postgres.Reviewer, key, digest, algorithm string, seen map[string]bool) {
+	t.Helper()
+	if digest == "" {
+		t.Errorf("%s: no settings snapshot recorded", key)
+		return
+	}
+	if seen[digest] {
+		return
+	}
+	seen[digest] = true
+	s, err := r.Settings(ctx, digest)
+	if err != nil {
+		t.Fatalf("%s: settings %s: %v", key, digest, err)
+	}
+	if auditSHA([]byte(s.Snapshot)) != digest {
+		t.Errorf("settings %s: the stored bytes hash to %s", digest, auditSHA([]byte(s.Snapshot)))
+	}
+	if algorithm != "" && s.Algorithm != algorithm {
+		t.Errorf("settings %s: algorithm %s, the version's %s", digest, s.Algorithm, algorithm)
+	}
+	parsed, err := consumer.ParseSettings([]byte(s.Snapshot))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !parsed.Site.ApparatusDeadSpaceConfigured || parsed.Site.TargetPaCO2mmHg == 0 || parsed.Site.Window != fhirmap.DefaultSite().Window {
+		t.Errorf("settings %s: site %+v is not the demo's", digest, parsed.Site)
+	}
+}
+
+// checkSettingsPublished checks the stored settings against what the
+// published values used: the apparatus dead space in every predicted
+// PaCO2's worked basis (VA = (VT - VDanat - VDapp) x RR), the target in
+// every for-target value's constants.
+func checkSettingsPublished(ctx context.Context, t *testing.T, r *postgres.Reviewer, versions []postgres.Version) {
+	t.Helper()
+	checked := 0
+	for _, v := range versions {
+		if v.Record == nil || v.Settings == "" {
+			continue
+		}
+		rec, err := r.Settings(ctx, v.Settings)
+		if err != nil {
+			t.Fatal(err)
+		}
+		st, err := consumer.ParseSettings([]byte(rec.Snapshot))
+		if err != nil {
+			t.Fatal(err)
+		}
+		switch v.Kind {
+		case fhirmap.KindPredictedPaCO2:
+			checked++
+			if want := " - " + physio.DisplayNumber(st.Site.ApparatusDeadSpaceML) + " mL) x "; !strings.Contains(v.Record.Worked, want) {
+				t.Errorf("%s: worked basis %q lacks the stored apparatus dead space (%q)", v.Key, v.Record.Worked, want)
+			}
+		case fhirmap.KindRateForTarget, fhirmap.KindTidalVolumeForTarget:
+			checked++
+			if !slices.ContainsFunc(v.Record.Constants, func(c fhirmap.RecordConstant) bool {
+				return c.Name == "target PaCO2" && c.Value == st.Site.TargetPaCO2mmHg
+			}) {
+				t.Errorf("%s: constants %+v lack the stored target %g", v.Key, v.Record.Constants, st.Site.TargetPaCO2mmHg)
+			}
+		}
+	}
+	if checked == 0 {
+		t.Error("no predicted PaCO2 or for-target value to check the stored settings against")
+	}
+}
+
+// recordNotes renders the note lines a stored record stands for, as the
+// published Observation writes them (the "Formula", "Intermediate steps",
+// "Constants", "Assumptions" and "Flags" lines: the format the README
+// documents for readers of the notes). Lines a record leaves empty are
+// absent, as in the notes.
+func recordNotes(rec *fhirmap.Record) map[string]string {
+	out := map[string]string{}
+	basis := "Formula: " + rec.Formula + "."
+	if rec.Worked != "" {
+		basis += " Worked: " + rec.Worked + "."
+	}
+	out["Formula"] = basis
+	var steps []string
+	for _, st := range rec.Steps {
+		if st.Basis != "" {
+			steps = append(steps, st.Method+": "+st.Basis)
+		}
+	}
+	if len(steps) > 0 {
+		out["Intermediate steps"] = "Intermediate steps: " + strings.Join(steps, "; ") + "."
+	}
+	if len(rec.Constants) > 0 {
+		parts := make([]string, len(rec.Constants))
+		for i, c := range rec.Constants {
+			parts[i] = c.Name + " = " + physio.DisplayNumber(c.Value)
+			if u := physio.DisplayUnit(c.Unit); u != "" {
+				parts[i] += " " + u
+			}
+			if c.Source != "" {
+				parts[i] += " (" + c.Source + ")"
+			}
+		}
+		out["Constants"] = "Constants: " + strings.Join(parts, "; ") + "."
+	}
+	if len(rec.Assumptions) > 0 {
+		out["Assumptions"] = "Assumptions: " + strings.Join(rec.Assumptions, "; ") + "."
+	}
+	if len(rec.Flags) > 0 {
+		out["Flags"] = "Flags: " + strings.Join(rec.Flags, "; ") + "."
+	}
+	return out
+}
+
+// checkRecord compares a stored record with the published notes line by
+// line, and its steps and constants with the value's basis.
+func checkRecord(t *testing.T, v postgres.Version, notes []string) {
+	t.Helper()
+	if v.Status == "entered-in-error" {
+		if v.Record != nil {
+			t.Errorf("%s version %d: a retraction with a record", v.Key, v.Version)
+		}
+		return
+	}
+	if v.Record == nil {
+		t.Errorf("%s version %d: no record stored", v.Key, v.Version)
+		return
+	}
+	published := map[string]string{}
+	for _, n := range notes {
+		if label, _, ok := strings.Cut(n, ":"); ok {
+			switch label {
+			case "Formula", "Intermediate steps", "Constants", "Assumptions", "Flags":
+				published[label] = n
+			}
+		}
+	}
+	want := recordNotes(v.Record)
+	for _, label := range []string{"Formula", "Intermediate steps", "Constants", "Assumptions", "Flags"} {
+		if published[label] != want[label] {
+			t.Errorf("%s version %d: %s: published %q, stored record gives %q", v.Key, v.Version, label, published[label], want[label])
+		}
+	}
+	if v.Record.Worked != v.Basis {
+		t.Errorf("%s version %d: record worked basis %q, stored basis %q", v.Key, v.Version, v.Record.Worked, v.Basis)
+	}
+	if !slices.Equal(v.Record.Flags, v.Flags) {
+		t.Errorf("%s version %d: record flags %q, stored flags %q", v.Key, v.Version, v.Record.Flags, v.Flags)
+	}
+	// The value's own constants are among the record's (which adds the steps').
+	for _, c := range v.Constants {
+		if !slices.ContainsFunc(v.Record.Constants, func(x fhirmap.RecordConstant) bool { return x.Name == c.Name && x.Value == c.Value }) {
+			t.Errorf("%s version %d: constant %s not in the record", v.Key, v.Version, c.Name)
+		}
+	}
+	// A predicted PaCO2 rests on the predicted body weight: that step is
+	// stored with its own basis and constants (ARDSNet PBW formula [common
+	// practice]: 50 or 45.5 kg + 0.91 x (height - 152.4 cm)).
+	if v.Kind == fhirmap.KindPredictedPaCO2 {
+		i := slices.IndexFunc(v.Record.Steps, func(s fhirmap.RecordStep) bool { return s.Unit == "kg" })
+		if i < 0 {
+			t.Errorf("%s version %d: no predicted-body-weight step in %+v", v.Key, v.Version, v.Record.Steps)
+		} else if st := v.Record.Steps[i]; st.Basis == "" || st.Value < 30 || st.Value > 100 || !strings.Contains(st.Basis, "152.4") {
+			t.Errorf("%s version %d: predicted-body-weight step %+v", v.Key, v.Version, st)
+		}
+	}
 }
 
 func checkPublishedVersion(t *testing.T, v postgres.Version) {
@@ -203,9 +468,12 @@ func checkPublishedVersion(t *testing.T, v postgres.Version) {
 		fail("method", obs.Method.Text, v.Method)
 	}
 	var notes strings.Builder
+	var lines []string
 	for _, n := range obs.Note {
 		notes.WriteString(n.Text + "\n")
+		lines = append(lines, n.Text)
 	}
+	checkRecord(t, v, lines)
 	for _, c := range v.Constants {
 		// The note writes a constant for people as "name = value unit
 		// (source)", at physio.DisplayNumber's precision; the store keeps it

@@ -369,6 +369,9 @@ func TestAuditGolden(t *testing.T) {
 		{"daily-page", []string{"daily", "--limit", "1"}},
 		{"deadletters", []string{"deadletters"}},
 		{"deadletters-page", []string{"deadletters", "--limit", "1", "--offset", "1"}},
+		// Made by an older algorithm (ventderive-derive/1) without settings
+		// snapshots: nothing to re-derive with this build, and it says so.
+		{"verify-older-algorithm-page", []string{"verify", "--limit", "5"}},
 	}
 	for _, q := range questions {
 		for _, format := range []string{"table", "json", "csv"} {
@@ -454,6 +457,17 @@ func TestAuditUsage(t *testing.T) {
 		{"published negative version", []string{"audit", "published", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--version-id", "-1", "--database-url", nowhere}, "--version-id -1"},
 		{"version for list", []string{"audit", "list", "--version-id", "2", "--database-url", nowhere}, "--version-id does not apply to list"},
 		{"refused with an algorithm", []string{"audit", "refused", "--algorithm", "ventderive-derive/1", "--database-url", nowhere}, "--algorithm does not apply to refused"},
+		{"replay without --algorithm current", []string{"audit", "replay", "--from", "2026-03-01", "--to", "2026-03-02", "--database-url", nowhere}, `--algorithm "": this build replays only under its own algorithm`},
+		{"replay under another algorithm", []string{"audit", "replay", "--algorithm", "ventderive-derive/1", "--from", "2026-03-01", "--to", "2026-03-02", "--database-url", nowhere}, "--algorithm current"},
+		{"replay without a period", []string{"audit", "replay", "--algorithm", "current", "--database-url", nowhere}, "--from and --to are required"},
+		{"replay with an unknown setting", []string{"audit", "replay", "--algorithm", "current", "--from", "2026-03-01", "--to", "2026-03-02", "--site", `{"TargetPaco2":40}`, "--database-url", nowhere}, `"TargetPaco2" is not a site setting`},
+		{"replay with settings not JSON", []string{"audit", "replay", "--algorithm", "current", "--from", "2026-03-01", "--to", "2026-03-02", "--site", "target=40", "--database-url", nowhere}, "--site: want a JSON object"},
+		{"site for list", []string{"audit", "list", "--site", "{}", "--database-url", nowhere}, "--site does not apply to list"},
+		{"verify of one value with a filter", []string{"audit", "verify", "Patient/lg-icu-0003|Observation/abg-a1|paco2-predicted", "--patient", "Patient/lg-icu-0003", "--database-url", nowhere}, "verify of one value takes no --patient"},
+		{"verify of a malformed key", []string{"audit", "verify", "abg-a1", "--database-url", nowhere}, `show "abg-a1"`},
+		{"verify with an algorithm", []string{"audit", "verify", "--algorithm", "ventderive-derive/2", "--database-url", nowhere}, "--algorithm does not apply to verify"},
+		{"settings of a malformed digest", []string{"audit", "settings", "41af6d79", "--database-url", nowhere}, `settings "41af6d79": want a settings digest`},
+		{"settings with a filter", []string{"audit", "settings", "--patient", "Patient/lg-icu-0003", "--database-url", nowhere}, "--patient does not apply to settings"},
 		{"no database", []string{"audit", "list"}, "no database"},
 	}
 	for _, tc := range tests {

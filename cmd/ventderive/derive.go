@@ -99,7 +99,7 @@ func runDerive(ctx context.Context, args []string, e env) error {
 	if err != nil {
 		return err
 	}
-	codes, err := loadCodes(c.aliases)
+	codes, _, err := loadCodes(c.aliases)
 	if err != nil {
 		return err
 	}

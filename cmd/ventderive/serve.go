@@ -1,9 +1,12 @@
 package main
 
 import (
+	"bytes"
 	"context"
+	"crypto/sha256"
 	"crypto/tls"
 	"crypto/x509"
+	"encoding/hex"
 	"errors"
 	"flag"
 	"fmt"
@@ -256,7 +259,7 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	if err := site.Validate(); err != nil {
 		return fmt.Errorf("site settings: %w", err)
 	}
-	codes, err := loadCodes(c.codeAliases)
+	codes, aliasDigest, err := loadCodes(c.codeAliases)
 	if err != nil {
 		return err
 	}
@@ -291,7 +294,7 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	p, err := consumer.New(nc, store, consumer.Options{
-		Config: c.pipeline, Site: site, Codes: codes, Logger: log,
+		Config: c.pipeline, Site: site, Codes: codes, AliasDigest: aliasDigest, Logger: log,
 		Metrics: consumer.NewMetrics(reg), Workers: c.workers,
 	})
 	if err != nil {
@@ -384,21 +387,23 @@ func connectNATS(ctx context.Context, c serveConfig, log *slog.Logger) (*nats.Co
 }
 
 // loadCodes returns the standard code table, extended with the site's
-// alias file when path is not empty (serve --code-aliases, derive --aliases).
-func loadCodes(path string) (*fhirmap.CodeTable, error) {
+// alias file when path is not empty (serve --code-aliases, derive
+// --aliases), and the hex SHA-256 of the file's bytes ("" without one),
+// which the settings snapshot of every stored value records.
+func loadCodes(path string) (*fhirmap.CodeTable, string, error) {
 	codes := fhirmap.DefaultCodes()
 	if path == "" {
-		return codes, nil
+		return codes, "", nil
 	}
-	f, err := os.Open(path)
+	b, err := os.ReadFile(path)
 	if err != nil {
-		return nil, fmt.Errorf("code aliases: %w", err)
+		return nil, "", fmt.Errorf("code aliases: %w", err)
 	}
-	defer f.Close()
-	if codes, err = codes.WithAliases(f); err != nil {
-		return nil, fmt.Errorf("code aliases %s: %w", path, err)
+	if codes, err = codes.WithAliases(bytes.NewReader(b)); err != nil {
+		return nil, "", fmt.Errorf("code aliases %s: %w", path, err)
 	}
-	return codes, nil
+	sum := sha256.Sum256(b)
+	return codes, hex.EncodeToString(sum[:]), nil
 }
 
 // natsAuth turns the credentials and TLS settings shared by serve and

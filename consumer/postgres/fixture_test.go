@@ -200,6 +200,14 @@ func (p *testPlan) plan(s consumer.Snapshot) (consumer.Changes, error) {
 		ch.Outbox = append(ch.Outbox, consumer.OutboxMessage{Subject: consumer.DefaultObservationSub,
 			MsgID: sha([]byte(d.Key + d.Digest)), Header: map[string]string{consumer.HeaderKind: d.Kind}, Payload: []byte(`{"resourceType":"Observation"}`)})
 	}
+	if len(ch.Derivations)+len(ch.Refusals) > 0 {
+		// The settings snapshot the store keeps once and links every row to.
+		snap, err := consumer.Settings{Algorithm: "test/1", Site: fhirmap.DefaultSite()}.Snapshot()
+		if err != nil {
+			return ch, err
+		}
+		ch.Settings = snap
+	}
 	return ch, nil
 }
 

@@ -157,7 +157,16 @@ type Version struct {
 	SupersededBy   int            `json:"supersededBy,omitempty"` // version that replaced it, 0 if none
 	Current        bool           `json:"current"`                // the key's latest state is this version
 	Recorded       time.Time      `json:"recorded"`
-	Inputs         []Input        `json:"inputs,omitempty"`
+	// Record is the published basis as data (formula, worked basis,
+	// intermediate steps, every constant, assumption and flag exactly as
+	// the Observation's notes write them); nil for a retraction and for a
+	// version recorded before the store kept it.
+	Record *fhirmap.Record `json:"record,omitempty"`
+	// Settings is the digest of the site-settings snapshot the version was
+	// made under (Reviewer.Settings reads it); "" for a retraction made by
+	// an older build and for versions recorded before the store kept it.
+	Settings string  `json:"settingsDigest,omitempty"`
+	Inputs   []Input `json:"inputs,omitempty"`
 	// Messages are the resources published for this version (Observation
 	// and Provenance), exact bytes with their digests; Show fills them.
 	Messages []PublishedMessage `json:"messages,omitempty"`
@@ -233,6 +242,7 @@ type Refusal struct {
 	Digest     string    `json:"digest"`
 	Current    bool      `json:"current"`
 	Recorded   time.Time `json:"recorded"`
+	Settings   string    `json:"settingsDigest,omitempty"` // site-settings snapshot; "" before the store kept it
 	Considered []Input   `json:"considered"`
 }
 
@@ -262,7 +272,8 @@ const (
 	versionColumns = `id, key, version, observation_id::text, kind, patient_ref, encounter, blood_gas_key,
     effective, value, unit, method, method_version, constants::text, assumptions::text, basis,
     interp_code, interp_text, interp_source, flags::text, status, retracted, algorithm, digest,
-    coalesce(supersedes_version, 0), coalesce(superseded_by_version, 0), coalesce(is_current, false), created_at`
+    coalesce(supersedes_version, 0), coalesce(superseded_by_version, 0), coalesce(is_current, false), created_at,
+    record::text, coalesce(settings_digest, '')`
 
 	showKeySQL = `
 SELECT key FROM review_derivation WHERE key = $1 OR observation_id::text = $2
@@ -292,7 +303,7 @@ FROM review_published WHERE key = $1 ORDER BY version, resource_type`
 
 	showRefusalsSQL = `
 SELECT id, key, kind, patient_ref, blood_gas_key, effective, reason, detail, digest,
-       coalesce(is_current, false), created_at
+       coalesce(is_current, false), created_at, coalesce(settings_digest, '')
 FROM review_refusal WHERE key = $1 ORDER BY id`
 
 	showConsideredSQL = `
@@ -410,7 +421,7 @@ func collectPublished(br pgx.BatchResults) (map[int64][]PublishedMessage, error)
 func scanRefusal(row pgx.CollectableRow) (Refusal, error) {
 	var x Refusal
 	err := row.Scan(&x.ID, &x.Key, &x.Kind, &x.Patient, &x.BloodGas, &x.Effective, &x.Reason, &x.Detail,
-		&x.Digest, &x.Current, &x.Recorded)
+		&x.Digest, &x.Current, &x.Recorded, &x.Settings)
 	x.Effective, x.Recorded = x.Effective.UTC(), x.Recorded.UTC()
 	return x, err
 }
@@ -484,12 +495,19 @@ func scanVersion(row pgx.CollectableRow) (Version, error) {
 	var v Version
 	var value float64
 	var consts, assumptions, flags string
+	var record *string
 	err := row.Scan(&v.ID, &v.Key, &v.Version, &v.ObservationID, &v.Kind, &v.Patient, &v.Encounter, &v.BloodGas,
 		&v.Effective, &value, &v.Unit, &v.Method, &v.MethodVersion, &consts, &assumptions, &v.Basis,
 		&v.Interpretation.Code, &v.Interpretation.Text, &v.Interpretation.Source, &flags, &v.Status, &v.Retracted,
-		&v.Algorithm, &v.Digest, &v.Supersedes, &v.SupersededBy, &v.Current, &v.Recorded)
+		&v.Algorithm, &v.Digest, &v.Supersedes, &v.SupersededBy, &v.Current, &v.Recorded, &record, &v.Settings)
 	if err != nil {
 		return v, err
+	}
+	if record != nil {
+		v.Record = &fhirmap.Record{}
+		if err := json.Unmarshal([]byte(*record), v.Record); err != nil {
+			return v, fmt.Errorf("derivation %d record: %w", v.ID, err)
+		}
 	}
 	v.Effective, v.Recorded = v.Effective.UTC(), v.Recorded.UTC()
 	v.Value, v.Published = published(v.Kind, v.Status, value)
@@ -814,7 +832,7 @@ type NearestReading struct {
 const refusedSQL = `
 WITH page AS (
     SELECT id, key, kind, patient_ref, blood_gas_key, effective, reason, detail, digest,
-           coalesce(is_current, false) AS is_current, created_at
+           coalesce(is_current, false) AS is_current, created_at, coalesce(settings_digest, '') AS settings_digest
     FROM review_refusal
     WHERE ($1 = '' OR patient_ref = $1)
       AND ($2::timestamptz IS NULL OR effective >= $2)
@@ -825,7 +843,7 @@ WITH page AS (
     ORDER BY effective, patient_ref, blood_gas_key, kind, id` + pageSQL + `
 )
 SELECT p.id, p.key, p.kind, p.patient_ref, p.blood_gas_key, p.effective, p.reason, p.detail, p.digest,
-       p.is_current, p.created_at,
+       p.is_current, p.created_at, p.settings_digest,
        n.fact_key, n.resource_ref, n.quantity, n.origin, n.value, n.unit, n.status, n.effective, n.time_offset
 FROM page p
 LEFT JOIN review_refusal_nearest n ON n.refusal_id = p.id
@@ -852,7 +870,7 @@ func (r *Reviewer) Refused(ctx context.Context, f Filter) (Page[RefusalRow], err
 		var effective *time.Time
 		var offset pgtype.Interval
 		err := row.Scan(&x.ID, &x.Key, &x.Kind, &x.Patient, &x.BloodGas, &x.Effective, &x.Reason, &x.Detail,
-			&x.Digest, &x.Current, &x.Recorded, &key, &resource, &quantity, &origin, &value, &unit, &status, &effective, &offset)
+			&x.Digest, &x.Current, &x.Recorded, &x.Settings, &key, &resource, &quantity, &origin, &value, &unit, &status, &effective, &offset)
 		x.Effective, x.Recorded = x.Effective.UTC(), x.Recorded.UTC()
 		if err == nil && key != nil {
 			x.Nearest = &NearestReading{FactKey: *key, Resource: *resource, Quantity: *quantity, Origin: *origin,
@@ -884,4 +902,39 @@ func (r *Reviewer) Refused(ctx context.Context, f Filter) (Page[RefusalRow], err
 		}
 	}
 	return page, br.Close()
+}
+
+// SettingsRecord is one stored site-settings snapshot: its exact bytes,
+// their digest, and the parsed settings.
+type SettingsRecord struct {
+	Digest      string          `json:"digest"`
+	Algorithm   string          `json:"algorithm"`
+	AliasDigest string          `json:"aliasDigest"`
+	Snapshot    string          `json:"snapshot"` // the exact bytes stored, whose SHA-256 is Digest
+	Site        json.RawMessage `json:"site"`
+	Recorded    time.Time       `json:"recorded"`
+}
+
+const settingsSQL = `
+SELECT digest, algorithm, alias_digest, snapshot, site::text, created_at FROM review_settings
+WHERE digest = $1`
+
+// Settings returns the settings snapshot with digest, or ErrNotFound.
+func (r *Reviewer) Settings(ctx context.Context, digest string) (SettingsRecord, error) {
+	rows, err := queryRows(ctx, r.pool, settingsSQL, scanSettings, digest)
+	if err != nil {
+		return SettingsRecord{}, fmt.Errorf("read settings: %w", err)
+	}
+	if len(rows) == 0 {
+		return SettingsRecord{}, ErrNotFound
+	}
+	return rows[0], nil
+}
+
+func scanSettings(row pgx.CollectableRow) (SettingsRecord, error) {
+	var s SettingsRecord
+	var site string
+	err := row.Scan(&s.Digest, &s.Algorithm, &s.AliasDigest, &s.Snapshot, &site, &s.Recorded)
+	s.Site, s.Recorded = json.RawMessage(site), s.Recorded.UTC()
+	return s, err
 }

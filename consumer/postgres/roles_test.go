@@ -89,6 +89,8 @@ func TestRoles(t *testing.T) {
 		"TRUNCATE refusal", "DROP TABLE dead_letter", "SELECT * FROM review_derivation",
 		// Migration 0005: raw payloads are written, never read back.
 		"SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM input_resource",
+		// Migration 0006: settings snapshots are written once, never changed.
+		"UPDATE site_settings SET snapshot = '{}'", "DELETE FROM site_settings",
 	} {
 		_, err := writer.Exec(ctx, stmt)
 		wantDenied(t, "writer "+stmt, err)
@@ -132,15 +134,19 @@ func TestRoles(t *testing.T) {
 
 	reviewer := poolAs(t, ctx, u, "ventderive_reviewer")
 	for _, view := range []string{"review_derivation", "review_derivation_input", "review_refusal", "review_refusal_input",
-		"review_head", "review_fact", "review_dead_letter", "review_outbox"} {
+		"review_head", "review_fact", "review_dead_letter", "review_outbox", "review_settings"} {
 		var n int
 		if err := reviewer.QueryRow(ctx, "SELECT count(*) FROM "+view).Scan(&n); err != nil || n == 0 {
 			t.Errorf("reviewer reads %s: %d rows, %v; want rows", view, n, err)
 		}
 	}
+	var linked int
+	if err := reviewer.QueryRow(ctx, `SELECT count(*) FROM review_derivation d JOIN review_settings s ON s.digest = d.settings_digest`).Scan(&linked); err != nil || linked == 0 {
+		t.Errorf("reviewer reads %d derivations linked to their settings snapshot, %v; want the writer's row", linked, err)
+	}
 	for _, stmt := range []string{
 		"SELECT * FROM fact", "SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM derivation",
-		"SELECT * FROM outbox", "SELECT * FROM head", "INSERT INTO inbox VALUES ('x', 's', 0, now(), now(), 0, 0)",
+		"SELECT * FROM outbox", "SELECT * FROM head", "SELECT * FROM site_settings", "INSERT INTO inbox VALUES ('x', 's', 0, now(), now(), 0, 0)",
 		"CREATE TABLE reviewer_notes (x int)",
 	} {
 		_, err := reviewer.Exec(ctx, stmt)

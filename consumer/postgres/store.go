@@ -212,6 +212,14 @@ gas AS MATERIALIZED (
     UNION SELECT w.key FROM win CROSS JOIN LATERAL (
         SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.effective BETWEEN win.lo AND win.hi
         OFFSET 0) w
+    UNION SELECT n.key FROM win CROSS JOIN LATERAL (
+        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.effective < win.lo
+          AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
+        ORDER BY f.effective DESC LIMIT ` + nearestOutside + `) n
+    UNION SELECT n.key FROM win CROSS JOIN LATERAL (
+        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.effective > win.hi
+          AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
+        ORDER BY f.effective LIMIT ` + nearestOutside + `) n
 ), found AS MATERIALIZED (
     SELECT id, patient_hash, ` + factColumns + `
     FROM fact WHERE key = ANY(ARRAY(SELECT key FROM keys)) AND EXISTS (SELECT 1 FROM affected)
@@ -219,6 +227,19 @@ gas AS MATERIALIZED (
 SELECT ` + factColumns + `
 FROM found WHERE patient_hash = $1 OR key = ANY($2::text[])
 ORDER BY id`
+
+	// ventilatorQuantitiesSQL lists the quantities fhirmap counts as
+	// ventilator readings (fhirmap.IsVentilatorReading; a test keeps the
+	// two in step). The snapshot loads, besides each blood gas's window,
+	// the nearestOutside readings of these quantities just before and just
+	// after the window: a blood gas refused with
+	// "no-ventilator-data-in-window" then names the nearest reading in its
+	// stored detail, as "ventderive derive" over the same data prints it.
+	// Several are loaded because the nearest may be of another encounter
+	// or unusable; they are outside the window, so no value uses them.
+	ventilatorQuantitiesSQL = `'minute-volume', 'tidal-volume', 'resp-rate', 'petco2', 'vco2', 'peco2',
+              'peep', 'plateau', 'mean-airway', 'fetco2'`
+	nearestOutside = `8`
 
 	// The heads of each affected blood gas by both index columns (a
 	// lateral lookup per blood gas, as above): filtering the patient's
@@ -242,9 +263,10 @@ WITH d AS (
     INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
         blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
         interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest,
-        supersedes_id, inbox_key, created_at)
+        supersedes_id, inbox_key, created_at, record, settings_digest)
     VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20,
-        $21, $22, $23, $24, (SELECT id FROM derivation WHERE key = $1 AND version = $2 - 1), $25, $26)
+        $21, $22, $23, $24, (SELECT id FROM derivation WHERE key = $1 AND version = $2 - 1), $25, $26,
+        $33::jsonb, nullif($34, ''))
     RETURNING id
 ), i AS (
     INSERT INTO derivation_input (derivation_id, ordinal, role, fact_key, fact_digest, resource_ref, time_offset, fallback)
@@ -264,8 +286,8 @@ ON CONFLICT (key) DO UPDATE SET version = EXCLUDED.version, refused = false,
 	insertRefusalSQL = `
 WITH r AS (
     INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail,
-        digest, inbox_key, created_at)
-    VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11)
+        digest, inbox_key, created_at, settings_digest)
+    VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, nullif($18, ''))
     RETURNING id
 ), i AS (
     INSERT INTO refusal_input (refusal_id, ordinal, role, fact_key, fact_digest, resource_ref, time_offset, fallback)
@@ -278,6 +300,14 @@ INSERT INTO head (key, kind, patient_ref, patient_hash, blood_gas_key, version, 
 SELECT $1, $2, $3, $4, $5, 0, true, NULL, r.id, $9, '', 0, $11 FROM r
 ON CONFLICT (key) DO UPDATE SET refused = true, refusal_id = EXCLUDED.refusal_id,
     digest = EXCLUDED.digest, updated_at = EXCLUDED.updated_at`
+
+	// A settings snapshot is written once, by the first message made
+	// under it.
+	insertSettingsSQL = `
+INSERT INTO site_settings (digest, snapshot, algorithm, alias_digest, inbox_key, created_at)
+SELECT $1, $2, s.snapshot::jsonb ->> 'algorithm', s.snapshot::jsonb ->> 'aliasDigest', $3, $4
+FROM (SELECT $2::text AS snapshot) s
+ON CONFLICT (digest) DO NOTHING`
 
 	insertOutboxSQL = `
 INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
@@ -690,7 +720,7 @@ func lineageOf(in []fhirmap.Input) lineage {
 	return l
 }
 
-func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, now time.Time) ([]any, error) {
+func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, now time.Time, settings string) ([]any, error) {
 	r := d.Result
 	var consts []Constant
 	for _, c := range r.Constants() {
@@ -708,17 +738,33 @@ func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, 
 	if err != nil {
 		return nil, fmt.Errorf("encode flags: %w", err)
 	}
+	var record []byte
+	if d.Status != fhirmap.StatusEnteredInError {
+		// A retraction publishes no method to redo: no record.
+		if record, err = json.Marshal(fhirmap.RecordOf(d)); err != nil {
+			return nil, fmt.Errorf("encode record: %w", err)
+		}
+	}
 	l := lineageOf(d.Inputs)
 	return []any{d.Key, version, d.ID, d.Kind, d.Patient, s.hash(d.Patient), d.Encounter, d.BloodGas,
 		d.Effective.UTC(), r.Value, r.Unit, r.Method, r.MethodVersion, string(cj), string(aj), r.Basis(),
 		r.Interpretation.Code, r.Interpretation.Text, r.Interpretation.Source, string(fj), string(d.Status),
 		d.Retracted, d.Algorithm, d.Digest, inbox, now,
-		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback}, nil
+		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback, optJSON(record), settings}, nil
+}
+
+// optJSON stores no bytes as NULL.
+func optJSON(b []byte) *string {
+	if b == nil {
+		return nil
+	}
+	s := string(b)
+	return &s
 }
 
 // queued counts what queueChanges queued, for readChanges.
 type queued struct {
-	derivations, refusals, outbox int
+	settings, derivations, refusals, outbox int
 }
 
 // queueChanges queues the statements that write what the plans returned:
@@ -728,9 +774,18 @@ func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patien
 	var q queued
 	var subj, ids, hdrs []string
 	var payloads [][]byte
+	seen := map[string]bool{}
 	for _, p := range order {
+		if st := p.changes.Settings; st.Digest != "" && !seen[st.Digest] {
+			seen[st.Digest] = true
+			b.Queue(insertSettingsSQL, st.Digest, string(st.JSON), msg.InboxKey, now)
+			q.settings++
+		}
+	}
+	for _, p := range order {
+		settings := p.changes.Settings.Digest
 		for i, d := range p.changes.Derivations {
-			args, err := s.derivationArgs(d, p.changes.Versions[i], msg.InboxKey, now)
+			args, err := s.derivationArgs(d, p.changes.Versions[i], msg.InboxKey, now, settings)
 			if err != nil {
 				return q, err
 			}
@@ -749,7 +804,7 @@ func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patien
 			l := lineageOf(r.Considered)
 			b.Queue(insertRefusalSQL, r.Key, r.Kind, r.Patient, s.hash(r.Patient), r.BloodGas, r.Effective.UTC(),
 				r.Reason, r.Detail, r.Digest, msg.InboxKey, now,
-				l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback)
+				l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback, settings)
 			q.refusals++
 			res.Refusals++
 			if res.RefusalReasons == nil {
@@ -774,6 +829,11 @@ func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patien
 
 // readChanges reads the results of what queueChanges queued.
 func (s *Store) readChanges(br pgx.BatchResults, q queued, res *consumer.IngestResult) error {
+	for range q.settings {
+		if _, err := br.Exec(); err != nil {
+			return fmt.Errorf("insert settings snapshot: %w", err)
+		}
+	}
 	for range q.derivations {
 		if _, err := br.Exec(); err != nil {
 			return fmt.Errorf("insert derivation: %w", err)

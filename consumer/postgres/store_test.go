@@ -3,6 +3,7 @@ package postgres_test
 import (
 	"context"
 	"errors"
+	"fmt"
 	"reflect"
 	"slices"
 	"strings"
@@ -153,8 +154,14 @@ func TestAffected(t *testing.T) {
 			t.Parallel()
 			f := newFixture(t)
 			early := vent(p1, "ve-early", fhirmap.QMinuteVol, t0.Add(-50*time.Minute), 8, "L/min") // outside the window
+			// Eight more readings further out, then one beyond them.
+			older := []obs{abg(p1, "abg-1", t0, 45), early}
+			for i := range 8 {
+				older = append(older, vent(p1, fmt.Sprintf("rr-%d", i), fhirmap.QRespRate, t0.Add(-time.Duration(60+i)*time.Minute), 14, "/min"))
+			}
+			older = append(older, vent(p1, "ve-far", fhirmap.QMinuteVol, t0.Add(-3*time.Hour), 8, "L/min"))
 			var p testPlan
-			if _, err := f.store.Ingest(f.ctx, message("fhir.input.lab", 1, abg(p1, "abg-1", t0, 45), early), p.plan); err != nil {
+			if _, err := f.store.Ingest(f.ctx, message("fhir.input.lab", 1, older...), p.plan); err != nil {
 				t.Fatal(err)
 			}
 			p.snaps = nil
@@ -178,8 +185,15 @@ func TestAffected(t *testing.T) {
 			if !slices.Contains(keys, "Observation/abg-1") || !slices.Contains(keys, tc.late.fact().Key) {
 				t.Errorf("snapshot facts %v lack the blood gas or the new fact", keys)
 			}
-			if slices.Contains(keys, "Observation/ve-early") {
-				t.Errorf("snapshot facts %v hold a fact 50 min before the blood gas", keys)
+			// The reading 50 min before is outside the window: it is loaded
+			// only as the nearest reading outside it (for the detail of a
+			// "no-ventilator-data-in-window" refusal), and the far one
+			// beyond the nearestOutside nearest is not loaded at all.
+			if !slices.Contains(keys, "Observation/ve-early") {
+				t.Errorf("snapshot facts %v lack the nearest reading outside the window", keys)
+			}
+			if slices.Contains(keys, "Observation/ve-far") {
+				t.Errorf("snapshot facts %v hold a reading beyond the nearest ones outside the window", keys)
 			}
 		})
 	}
