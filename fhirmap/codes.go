@@ -295,6 +295,11 @@ func parseAlias(text []byte, base *CodeTable) (CodeInfo, error) {
 	if !a.Quantity.known() {
 		return CodeInfo{}, fmt.Errorf("quantity %s is not known", quoteShort(string(a.Quantity)))
 	}
+	if a.Quantity == QTargetPaCO2 {
+		// A patient's target is a plan, not a measurement: it comes only from
+		// a FHIR Goal, never from an Observation with a local code.
+		return CodeInfo{}, fmt.Errorf("quantity %s is read only from a FHIR Goal", quoteShort(string(a.Quantity)))
+	}
 	switch a.Origin {
 	case OriginMeasured, OriginSetting, OriginCalculated:
 	case "":
