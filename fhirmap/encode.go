@@ -362,9 +362,13 @@ func describeInput(in Input, bloodGasTime time.Time) string {
 		attrs = append(attrs, "version "+f.VersionID)
 	}
 	b.WriteString(" [" + strings.Join(attrs, ", ") + "]")
-	if in.Role == RoleBloodGas {
+	switch {
+	case in.Role == RoleBloodGas:
 		b.WriteString(" at " + fhirTime(f.Effective))
-	} else if !f.Effective.IsZero() {
+	case in.Role == RoleTarget && !f.Effective.IsZero():
+		// A goal's time is its startDate: when it came into force, not a reading.
+		b.WriteString(", in force from " + f.Effective.UTC().Format("2006-01-02"))
+	case !f.Effective.IsZero():
 		b.WriteString(", " + describeOffset(in.Offset))
 	}
 	return b.String()

@@ -16,6 +16,7 @@ var inputs = []string{
 	"../../cmd/ventderive/testdata/derive/icu-morning.json",
 	"../../cmd/ventderive/testdata/derive/ward-feed.ndjson",
 	"../../cmd/ventderive/testdata/derive/capnography.ndjson",
+	"../../cmd/ventderive/testdata/derive/goal-and-circuit.ndjson",
 }
 
 const aliasFile = "../../cmd/ventderive/testdata/derive/hv-aliases.jsonl"
