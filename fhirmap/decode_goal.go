@@ -3,6 +3,7 @@ package fhirmap
 import (
 	"bytes"
 	"encoding/json"
+	"math"
 	"reflect"
 	"strconv"
 	"strings"
@@ -212,7 +213,7 @@ func (d *decoder) goalTarget(f *Fact, t *fhir.GoalTarget, entry int, root string
 		}
 		f.Value = (lo + hi) / 2
 		f.Text = strconv.FormatFloat(lo, 'g', -1, 64) + ".." + strconv.FormatFloat(hi, 'g', -1, 64)
-		f.Detail = "midpoint of the goal range " + num(lo) + "-" + num(hi) + " mmHg"
+		f.Detail = "midpoint of the goal range " + goalRangeText(lo, hi)
 		if loUnit == hiUnit {
 			f.SourceValue, f.SourceUnit = (loSrc+hiSrc)/2, loUnit
 		} else {
@@ -249,4 +250,11 @@ func goalQuantity(q *fhir.Quantity, entry int, root string) (v, src float64, uni
 		return 0, 0, "", refuse(entry, root+field, ue.reason, ue.detail)
 	}
 	return v, src, unit, nil
+}
+
+// goalRangeText shows a goal range for people, in mmHg to 0.1 (the
+// precision a blood-gas analyser reports): "45-55 mmHg", "48.8-60 mmHg".
+func goalRangeText(lo, hi float64) string {
+	r := func(v float64) string { return strconv.FormatFloat(math.Round(v*10)/10, 'f', -1, 64) }
+	return r(lo) + "-" + r(hi) + " mmHg"
 }

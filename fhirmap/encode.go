@@ -258,7 +258,7 @@ func targetAssumption(d Derivation) string {
 		}
 		if lo, hi, ok := GoalRange(in.Fact); ok {
 			return "target PaCO2 " + physio.DisplayNumber(in.Fact.Value) + " mmHg is the patient's own goal (" + what + "): the midpoint of its range " +
-				num(lo) + "-" + num(hi) + " mmHg, which leaves equal margin to both bounds; it overrides the site's target"
+				goalRangeText(lo, hi) + ", which leaves equal margin to both bounds; it overrides the site's target"
 		}
 		return "target PaCO2 " + physio.DisplayNumber(in.Fact.Value) + " mmHg is the patient's own goal (" + what + "); it overrides the site's target"
 	}
