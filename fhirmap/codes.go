@@ -21,6 +21,9 @@ const (
 	GenderSystem    = "http://hl7.org/fhir/administrative-gender"
 	PatientGender   = "Patient.gender"    // Fact.Code.Code of a sex fact read from a Patient
 	PatientBirthday = "Patient.birthDate" // Fact.Code.Code of a birth-date fact read from a Patient
+	// GoalNoPaCO2Target is Fact.Code.Code of the (never used) fact of a Goal
+	// version without a PaCO2 target.
+	GoalNoPaCO2Target = "Goal.target"
 )
 
 // SNOMED CT specimen-type concepts the decoder reads from a Specimen

@@ -44,7 +44,7 @@ type Decoded struct {
 //	unsupported-resource  a Bundle entry of a type the service does not read (Device, Encounter, Specimen, ...)
 //	message-header        the MessageHeader that starts a message Bundle
 //	unsupported-request   a transaction or batch entry without a resource (DELETE, GET)
-//	unknown-code          an Observation or component whose code is not in the code table; a Goal without a PaCO2 target
+//	unknown-code          an Observation or component whose code is not in the code table
 //	conflicting-codes     codings of one code that map to different quantities or origins
 //	panel                 a panel Observation without values of its own (its members come as separate Observations)
 //	data-absent           dataAbsentReason instead of a value

@@ -73,10 +73,11 @@ func (d *decoder) isPaCO2Measure(cc *fhir.CodeableConcept) (Coding, bool) {
 	return coding, info.Quantity == QPCO2 && info.Specimen == SpecimenArterial && !info.TempCorrected
 }
 
-// goalFacts turns a Goal into at most one fact, QTargetPaCO2: the patient's
-// own target PaCO2. A Goal without a PaCO2 target is recorded as ignored
-// (unknown-code); two PaCO2 targets in one Goal are refused
-// (duplicate-value). The target must be a detailQuantity or a detailRange
+// goalFacts turns a Goal into one fact, QTargetPaCO2: the patient's own
+// target PaCO2. A Goal without a PaCO2 target gives a fact that is never
+// used (status registered, or its withdrawing status), so that a later
+// version that dropped the PaCO2 target replaces one that had it; two PaCO2
+// targets in one Goal are refused (duplicate-value). The target must be a detailQuantity or a detailRange
 // with both bounds, in a pressure unit; a quantity with a comparator or a
 // one-sided or inverted range names no target value and is refused
 // (ambiguous-value), so that a patient's goal is never silently replaced by
@@ -157,10 +158,17 @@ func (d *decoder) goalFacts(g *goalJSON, raw []byte, entry int, root, fullURL st
 		target, f.Code = i, coding
 	}
 	if target < 0 {
-		d.out.Ignored = append(d.out.Ignored, Ignored{Reference: ref, Reason: "unknown-code"})
-		return nil
-	}
-	if err := d.goalTarget(&f, &g.Target[target], entry, root+".target["+strconv.Itoa(target)+"]"); err != nil {
+		// Not a PaCO2 goal, or no longer one: a version without a PaCO2
+		// target must still replace an earlier version that had one, and the
+		// decoder cannot know whether there was one. So the Goal becomes a
+		// fact that is never used (registered, or withdrawn when its status
+		// withdraws), which Current lets win over the earlier version.
+		if !f.Status.Retracts() {
+			f.Status = StatusRegistered
+		}
+		f.Code = Coding{Code: GoalNoPaCO2Target, Display: "no PaCO2 target"}
+		f.Detail = "no PaCO2 target in this version"
+	} else if err := d.goalTarget(&f, &g.Target[target], entry, root+".target["+strconv.Itoa(target)+"]"); err != nil {
 		return err
 	}
 	d.out.Facts = append(d.out.Facts, f)

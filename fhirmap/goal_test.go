@@ -111,12 +111,12 @@ func TestDecodeGoal(t *testing.T) {
 			t.Errorf("fact %+v", f)
 		}
 	})
-	t.Run("no_PaCO2_target_ignored", func(t *testing.T) {
-		js := goalJSONText("g1", "", "active", "", `"detailQuantity":{"value":8,"unit":"kPa"}`,
+	t.Run("no_PaCO2_target_never_used", func(t *testing.T) {
+		js := goalJSONText("g1", "2", "active", "", `"detailQuantity":{"value":8,"unit":"kPa"}`,
 			`{"coding":[{"system":"http://loinc.org","code":"2021-4"}]}`) // venous PCO2: not a PaCO2 target
-		out, err := Decode([]byte(js), nil)
-		if err != nil || len(out.Facts) != 0 || len(out.Ignored) != 1 || out.Ignored[0].Reason != "unknown-code" {
-			t.Errorf("got %+v, %v; want one ignored unknown-code", out, err)
+		f := decodeGoalFact(t, js, nil)
+		if f.Status.Usable() || f.Value != 0 || f.Code.Code != GoalNoPaCO2Target {
+			t.Errorf("fact %+v; want an unusable fact that can replace an earlier version", f)
 		}
 	})
 	t.Run("in_a_Bundle_with_its_Patient", func(t *testing.T) {
@@ -286,14 +286,22 @@ func TestGoalOverridesSiteTarget(t *testing.T) {
 }
 
 // TestGoalWithdrawal: a new version of the Goal that withdraws it
-// (cancelled, completed, entered-in-error) returns both values for a target
+// (cancelled, completed, entered-in-error) or no longer targets PaCO2 returns both values for a target
 // to the site's target, whatever the order the versions arrive in (Current:
 // numeric meta.versionId decides).
 func TestGoalWithdrawal(t *testing.T) {
-	for _, lifecycle := range []string{"cancelled", "completed", "entered-in-error"} {
-		t.Run(lifecycle, func(t *testing.T) {
+	for _, c := range []struct{ name, lifecycle, target, measure string }{
+		{"cancelled", "cancelled", goal50mmHg, ""},
+		{"completed", "completed", goal50mmHg, ""},
+		{"entered-in-error", "entered-in-error", goal50mmHg, ""},
+		// A later version that measures SpO2 instead (LOINC 59408-5) is no
+		// longer a PaCO2 goal.
+		{"active_version_without_PaCO2_target", "active", `"detailQuantity":{"value":92,"unit":"%"}`,
+			`{"coding":[{"system":"http://loinc.org","code":"59408-5"}]}`},
+	} {
+		t.Run(c.name, func(t *testing.T) {
 			v1 := decodeGoalFact(t, goalJSONText("g1", "1", "active", "", goal50mmHg, ""), nil)
-			v2 := decodeGoalFact(t, goalJSONText("g1", "2", lifecycle, "", goal50mmHg, ""), nil)
+			v2 := decodeGoalFact(t, goalJSONText("g1", "2", c.lifecycle, "", c.target, c.measure), nil)
 			for _, order := range [][]Fact{{v1, v2}, {v2, v1}} {
 				ds, rs := DeriveAll(append(vectorFacts(), order...), forTargetSite())
 				dm, rm := byKind(ds, rs)
