@@ -32,6 +32,67 @@ func goalMsg(i int, version int, lifecycle string, lo, hi float64) testMsg {
 	})
 }
 
+// circuitMsg is an Observation of the apparatus dead space of patient i's
+// circuit (mL), with the site alias code of circuitAlias.
+func circuitMsg(i int, ml float64, at time.Time) testMsg {
+	ref := patientRef(i)
+	o := observation(ref[len("Patient/"):]+"-circuit", ref, "", "mL", ml, at, map[string]any{
+		"code": map[string]any{"coding": []any{map[string]any{"system": "https://larkspur-general.example/fhir/resp-codes", "code": "CIRCUIT-VD"}}},
+	})
+	return msgOf("fhir.input.device", o)
+}
+
+const circuitAlias = `{"system":"https://larkspur-general.example/fhir/resp-codes","code":"CIRCUIT-VD","quantity":"apparatus-dead-space"}`
+
+// The apparatus dead space recorded for a patient's circuit gives the same
+// final state before or after the blood gases (it is a standing, patient-level
+// fact of the store), and is preferred over the site's 50 mL: the predicted
+// PaCO2 of patient 0's first gas is K x VCO2 / ((VT - 2.2 x PBW - VDapp) x
+// RR) = 0.863 x 200 / ((500 - 155.2 - 100) x 20 / 1000) = 35.26 mmHg with
+// 100 mL (alveolar ventilation equation [published]; Radford 1955
+// [published]; PBW men 50 + 0.91 x (175 - 152.4) kg, ARDS Network 2000
+// [published]).
+func TestCircuitDeadSpaceArrivalOrder(t *testing.T) {
+	codes, err := fhirmap.DefaultCodes().WithAliases(strings.NewReader(circuitAlias))
+	if err != nil {
+		t.Fatal(err)
+	}
+	base := generate(genOpts{patients: 1, gases: 2})
+	circuit := circuitMsg(0, 100, genStart.Add(-2*time.Hour))
+	var states []map[string]headState
+	for _, msgs := range [][]testMsg{append([]testMsg{circuit}, base...), append(append([]testMsg(nil), base...), circuit)} {
+		h := newHarness(t)
+		h.codes = codes
+		h.startReplica(nil)
+		for _, m := range msgs {
+			h.publish([]testMsg{m})
+			h.waitSettled(30 * time.Second)
+		}
+		h.reconcile(msgs)
+		states = append(states, h.heads())
+	}
+	for k, a := range states[0] {
+		b := states[1][k]
+		if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
+			t.Errorf("%s: %+v vs %+v", k, a, b)
+		}
+	}
+	pbw := 50 + 0.91*(175-152.4)
+	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 2.2*pbw - 100) * 20 / 1000)
+	found := false
+	for k, s := range states[0] {
+		if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindPredictedPaCO2) {
+			found = true
+			if s.refused || math.Abs(s.value-want) > 1e-6 {
+				t.Errorf("predicted PaCO2 %+v, want %.3f mmHg", s, want)
+			}
+		}
+	}
+	if !found {
+		t.Error("no predicted PaCO2 of the first blood gas")
+	}
+}
+
 // A patient's PaCO2 Goal gives the same final state whether it arrives
 // before or after the blood gases (a new Goal reopens the patient's recent
 // blood gases, as height or sex do), and its withdrawal returns the values
