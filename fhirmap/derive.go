@@ -68,8 +68,8 @@ func DeriveBloodGas(key string, facts []Fact, site Site) ([]Derivation, []Refusa
 // for-target kinds aim at the patient's PaCO2 Goal in force, else at
 // Site.TargetPaCO2mmHg, and are refused with "target-paco2-not-configured"
 // with neither; predicted PaCO2 uses the apparatus dead space recorded for
-// the patient's circuit, else the site's; the site's RQ is passed as "not given" when it
-// is the default, so that the basis says 0.8 is assumed.
+// the patient's circuit, else the site's; the site's RQ is passed as "not
+// given" when it is the default, so that the basis says 0.8 is assumed.
 func Derive(sel Selection, site Site) ([]Derivation, []Refusal) {
 	if len(sel.Inputs) == 0 || sel.Inputs[0].Role != RoleBloodGas {
 		// Not made by Select: refuse rather than guess.

@@ -12,22 +12,27 @@ import (
 // for; the same roles appear in Provenance, in the basis note and in the
 // digest.
 const (
-	RoleBloodGas     Role = "paco2"                // the arterial PCO2 the derivation is made for
-	RolePECO2        Role = "peco2"                // mixed-expired PCO2, measured
-	RoleVCO2         Role = "vco2"                 // CO2 production, measured
-	RoleMinuteVolume Role = "minute-volume"        // expired > inspired > set
-	RoleTidalVolume  Role = "tidal-volume"         // measured expired > other measured > set
-	RoleRespRate     Role = "resp-rate"            // total > unspecified > mechanical > set
-	RolePETCO2       Role = "petco2"               // end-tidal PCO2, measured > calculated
-	RoleBodyTemp     Role = "body-temp"            // for K(T); 37 Cel assumed when absent
-	RoleSex          Role = "sex"                  // patient-level
-	RoleBirthDate    Role = "birth-date"           // patient-level
-	RoleHeight       Role = "height"               // patient-level
-	RoleWeight       Role = "weight"               // patient-level, actual body weight
-	RoleBicarbonate  Role = "hco3"                 // same blood sample: arterial bicarbonate
-	RoleBaseExcess   Role = "base-excess"          // same blood sample: arterial base excess
-	RoleTarget       Role = "target-paco2"         // the patient's own target PaCO2 (a FHIR Goal in force)
-	RoleApparatusVD  Role = "apparatus-dead-space" // the patient's circuit, recorded by Observation
+	RoleBloodGas     Role = "paco2"         // the arterial PCO2 the derivation is made for
+	RolePECO2        Role = "peco2"         // mixed-expired PCO2, measured
+	RoleVCO2         Role = "vco2"          // CO2 production, measured
+	RoleMinuteVolume Role = "minute-volume" // expired > inspired > set
+	RoleTidalVolume  Role = "tidal-volume"  // measured expired > other measured > set
+	RoleRespRate     Role = "resp-rate"     // total > unspecified > mechanical > set
+	RolePETCO2       Role = "petco2"        // end-tidal PCO2, measured > calculated
+	RoleBodyTemp     Role = "body-temp"     // for K(T); 37 Cel assumed when absent
+	RoleSex          Role = "sex"           // patient-level
+	RoleBirthDate    Role = "birth-date"    // patient-level
+	RoleHeight       Role = "height"        // patient-level
+	RoleWeight       Role = "weight"        // patient-level, actual body weight
+	RoleBicarbonate  Role = "hco3"          // same blood sample: arterial bicarbonate
+	RoleBaseExcess   Role = "base-excess"   // same blood sample: arterial base excess
+)
+
+// Roles of standing inputs: they hold from their time until replaced (see
+// roleRule.standing).
+const (
+	RoleTarget      Role = "target-paco2"         // the patient's own target PaCO2 (a FHIR Goal in force)
+	RoleApparatusVD Role = "apparatus-dead-space" // the patient's circuit, recorded by Observation
 )
 
 // SameSampleTolerance is how far from the blood gas's time a bicarbonate or
