@@ -64,7 +64,8 @@ type Ignored struct {
 // wrong-resource-type, unknown-field, missing-field (status, code, subject,
 // effective[x], id, value), duplicate-value, unsupported-extension,
 // unknown-unit, ambiguous-value (a FiO2 neither clearly percent nor clearly
-// fraction), not-finite, negative-value, bad-time, bad-reference, oversized,
+// fraction; a Goal's PaCO2 target that names no value: a comparator, one
+// bound, low above high), not-finite, negative-value, bad-time, bad-reference, oversized,
 // too-deep (nesting beyond MaxNestingDepth), too-many-entries, empty. Field
 // is at most MaxFieldPath bytes.
 type DecodeError struct {
