@@ -99,6 +99,7 @@ type harness struct {
 	js    jetstream.JetStream
 	cfg   consumer.Config
 	site  fhirmap.Site
+	codes *fhirmap.CodeTable // the replicas' code table and the offline derivation's; DefaultCodes unless a test sets it
 	logs  *syncBuffer
 	key   []byte
 
@@ -167,6 +168,7 @@ func newHarness(t *testing.T, opts ...harnessOpt) *harness {
 	h.site = fhirmap.DefaultSite()
 	h.site.ApparatusDeadSpaceML = 50
 	h.site.ApparatusDeadSpaceConfigured = true
+	h.codes = fhirmap.DefaultCodes()
 	t.Cleanup(h.stopAll)
 	t.Cleanup(func() {
 		// On failure, show the service's warnings and errors (they carry no
@@ -212,7 +214,7 @@ func (h *harness) startReplica(hooks *consumer.Hooks) *replica {
 	log := slog.New(slog.NewJSONHandler(h.logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
 	store := postgres.New(pool, postgres.Options{PatientKey: h.key, Logger: log})
 	p, err := consumer.New(nc, store, consumer.Options{
-		Config: h.cfg, Site: h.site, Logger: log, Hooks: hooks, Workers: 4, Metrics: h.metrics,
+		Config: h.cfg, Site: h.site, Codes: h.codes, Logger: log, Hooks: hooks, Workers: 4, Metrics: h.metrics,
 	})
 	if err != nil {
 		h.t.Fatal(err)
@@ -411,12 +413,18 @@ func (h *harness) heads() map[string]headState {
 // service's final state must equal it whatever the order of arrival.
 func expectedHeads(t testing.TB, site fhirmap.Site, msgs []testMsg) map[string]headState {
 	t.Helper()
+	return expectedHeadsWith(t, site, fhirmap.DefaultCodes(), msgs)
+}
+
+// expectedHeadsWith is expectedHeads with the code table of the replicas.
+func expectedHeadsWith(t testing.TB, site fhirmap.Site, codes *fhirmap.CodeTable, msgs []testMsg) map[string]headState {
+	t.Helper()
 	var facts []fhirmap.Fact
 	for _, m := range msgs {
 		if m.poison != "" {
 			continue
 		}
-		d, err := fhirmap.Decode(m.payload, fhirmap.DefaultCodes())
+		d, err := fhirmap.Decode(m.payload, codes)
 		if err != nil {
 			t.Fatalf("test input does not decode: %v", err)
 		}
@@ -534,7 +542,7 @@ func (h *harness) reconcile(msgs []testMsg) {
 	}
 	h.t.Logf("reconciled: %d inputs, %d dead letters, %d derivation versions, heads: %d valid, %d refused, %d retracted; %d output messages",
 		inbox, dead, versions, valid, refused, retracted, len(out))
-	compareHeads(h.t, heads, expectedHeads(h.t, h.site, msgs))
+	compareHeads(h.t, heads, expectedHeadsWith(h.t, h.site, h.codes, msgs))
 	if versions == 0 && len(good) > 0 {
 		h.t.Error("nothing was derived")
 	}

@@ -99,7 +99,7 @@ var Catalogue = []KindInfo{
 		Unit:       "mm[Hg]", Decimals: 1,
 		Formula: "PaCO2pred = K x VCO2 / ((VT - VDanat - VDapp) x RR / 1000); VDanat = 2.2 mL/kg x PBW; PBW (ARDS Network) from height and sex",
 		Source:  "alveolar ventilation equation [published]; Radford, J Appl Physiol 1955 [published]; ARDS Network, NEJM 2000;342:1301-8 [published]",
-		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-sex; no-height; apparatus-dead-space-not-configured; implausible-input; inconsistent-inputs (VT not above dead space)",
+		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-sex; no-height; apparatus-dead-space-not-configured (neither recorded for the patient's circuit nor set by the site); implausible-input (including a recorded apparatus dead space outside 0-500 mL); inconsistent-inputs (VT not above dead space)",
 	},
 	{
 		Code:       KindPaCO2Discrepancy,
@@ -140,20 +140,20 @@ var Catalogue = []KindInfo{
 	{
 		Code:       KindRateForTarget,
 		Display:    "Breath rate for the target PaCO2 at the same tidal volume (advisory)",
-		Definition: "Breath rate at which, with unchanged tidal volume, dead space and CO2 production, PaCO2 would reach the site's configured target (not a patient-specific goal). Advisory arithmetic, not an order.",
+		Definition: "Breath rate at which, with unchanged tidal volume, dead space and CO2 production, PaCO2 would reach the patient's own target (a FHIR Goal in force; a range's midpoint), else the site's configured target. Advisory arithmetic, not an order.",
 		Unit:       "/min", Decimals: 1,
 		Formula: "RRnew = RR x PaCO2 / PaCO2target",
 		Source:  "inverse proportion of PaCO2 and alveolar ventilation at constant VCO2 [derived from the alveolar ventilation equation]",
-		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); target-paco2-not-configured; implausible-input; target-answer-beyond-model (the answer outside 2-80 /min)",
+		Refused: "no-resp-rate; no-tidal-volume, no-sex, no-height (to flag the tidal volume per kg predicted body weight); target-paco2-not-configured (no Goal in force and no site target); implausible-input (including a goal outside 20-100 mmHg); target-answer-beyond-model (the answer outside 2-80 /min)",
 	},
 	{
 		Code:       KindTidalVolumeForTarget,
 		Display:    "Tidal volume for the target PaCO2 at the same breath rate (advisory)",
-		Definition: "Tidal volume at which, with unchanged breath rate, physiologic dead-space volume and CO2 production, PaCO2 would reach the site's configured target (not a patient-specific goal). Advisory arithmetic, not an order.",
+		Definition: "Tidal volume at which, with unchanged breath rate, physiologic dead-space volume and CO2 production, PaCO2 would reach the patient's own target (a FHIR Goal in force; a range's midpoint), else the site's configured target. Advisory arithmetic, not an order.",
 		Unit:       "mL", Decimals: 0,
 		Formula: "VTnew = VD + (VT - VD) x PaCO2 / PaCO2target, VD the measured physiologic dead-space volume",
 		Source:  "alveolar ventilation equation at constant VCO2 and dead-space volume [derived]",
-		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); target-paco2-not-configured; implausible-input; inconsistent-inputs; target-answer-beyond-model (the answer outside 50-2000 mL)",
+		Refused: "no-vco2 (neither PECO2 nor VCO2 measured); no-minute-volume (for the VCO2 form: none measured, a set minute volume is not used); no-tidal-volume; no-sex, no-height (to flag the answer per kg predicted body weight); target-paco2-not-configured (no Goal in force and no site target); implausible-input (including a goal outside 20-100 mmHg); inconsistent-inputs; target-answer-beyond-model (the answer outside 50-2000 mL)",
 	},
 }
 
@@ -233,7 +233,7 @@ var Reasons = []ReasonInfo{
 	{ReasonNoWeight, "no body weight of the patient: the energy equation needs it"},
 	{ReasonImplausible, "an input lies outside its published plausible range (the detail names it)"},
 	{ReasonInconsistent, "the inputs contradict each other (e.g. mixed-expired PCO2 not below PaCO2, end-tidal PCO2 more than 5 mmHg above PaCO2; the detail says which)"},
-	{ReasonApparatusNotSet, "the site has not configured its apparatus dead space; it is never assumed to be zero"},
+	{ReasonApparatusNotSet, "the site has not configured its apparatus dead space and none is recorded for the patient's circuit; it is never assumed to be zero"},
 	{ReasonBeyondModel, "the breath rate or tidal volume for the target lies outside the range in which the alveolar ventilation equation describes conventional ventilation (rate 2-80 /min, tidal volume 50-2000 mL): the target cannot be reached by that change alone"},
-	{ReasonTargetNotSet, "the site has not configured a target PaCO2; none is assumed, since a usual adult target does not fit chronic hypercapnia or permissive hypercapnia"},
+	{ReasonTargetNotSet, "the patient has no PaCO2 Goal in force and the site has not configured a target PaCO2; none is assumed, since a usual adult target does not fit chronic hypercapnia or permissive hypercapnia"},
 }

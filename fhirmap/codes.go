@@ -21,6 +21,9 @@ const (
 	GenderSystem    = "http://hl7.org/fhir/administrative-gender"
 	PatientGender   = "Patient.gender"    // Fact.Code.Code of a sex fact read from a Patient
 	PatientBirthday = "Patient.birthDate" // Fact.Code.Code of a birth-date fact read from a Patient
+	// GoalNoPaCO2Target is Fact.Code.Code of the (never used) fact of a Goal
+	// version without a PaCO2 target.
+	GoalNoPaCO2Target = "Goal.target"
 )
 
 // SNOMED CT specimen-type concepts the decoder reads from a Specimen
@@ -294,6 +297,11 @@ func parseAlias(text []byte, base *CodeTable) (CodeInfo, error) {
 	}
 	if !a.Quantity.known() {
 		return CodeInfo{}, fmt.Errorf("quantity %s is not known", quoteShort(string(a.Quantity)))
+	}
+	if a.Quantity == QTargetPaCO2 {
+		// A patient's target is a plan, not a measurement: it comes only from
+		// a FHIR Goal, never from an Observation with a local code.
+		return CodeInfo{}, fmt.Errorf("quantity %s is read only from a FHIR Goal", quoteShort(string(a.Quantity)))
 	}
 	switch a.Origin {
 	case OriginMeasured, OriginSetting, OriginCalculated:

@@ -25,7 +25,7 @@ const (
 
 // Decoded is what one message or file holds, normalised.
 type Decoded struct {
-	// Resources are the Observations and Patients that yielded at least one
+	// Resources are the Observations, Patients and Goals that yielded at least one
 	// Fact, each with its JSON as received.
 	Resources []Resource
 	// Facts are the values read, in the order of the input (entries, then
@@ -64,7 +64,8 @@ type Ignored struct {
 // wrong-resource-type, unknown-field, missing-field (status, code, subject,
 // effective[x], id, value), duplicate-value, unsupported-extension,
 // unknown-unit, ambiguous-value (a FiO2 neither clearly percent nor clearly
-// fraction), not-finite, negative-value, bad-time, bad-reference, oversized,
+// fraction; a Goal's PaCO2 target that names no value: a comparator, one
+// bound, low above high), not-finite, negative-value, bad-time, bad-reference, oversized,
 // too-deep (nesting beyond MaxNestingDepth), too-many-entries, empty. Field
 // is at most MaxFieldPath bytes.
 type DecodeError struct {
@@ -128,8 +129,9 @@ var (
 	bundleSchema   = schemaOf(reflect.TypeFor[bundleJSON]())
 )
 
-// Decode reads one FHIR R4 JSON resource: an Observation, a Patient, or a
-// Bundle (transaction, batch, collection or message) holding them. codes
+// Decode reads one FHIR R4 JSON resource: an Observation, a Patient, a Goal
+// (a patient's target PaCO2), or a Bundle (transaction, batch, collection or
+// message) holding them. codes
 // nil means DefaultCodes(). On error the Decoded is empty: a message is
 // taken whole or refused whole. The error is a *DecodeError.
 func Decode(raw []byte, codes *CodeTable) (Decoded, error) {
@@ -221,6 +223,12 @@ func (d *decoder) message(raw []byte) *DecodeError {
 			return err
 		}
 		return d.patientFacts(p, trimmed, -1, "Patient")
+	case "Goal":
+		g, err := decodeGoal(trimmed, -1, "Goal")
+		if err != nil {
+			return err
+		}
+		return d.goalFacts(g, trimmed, -1, "Goal", "", &resolver{})
 	case "Bundle":
 		return d.bundle(trimmed)
 	}
@@ -432,6 +440,7 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 	// Observations may refer to Patients and Specimens anywhere in the Bundle.
 	obs := make([]*obsEntry, len(b.Entry))
 	patients := make([]*patientJSON, len(b.Entry))
+	goals := make([]*goalJSON, len(b.Entry))
 	r.specimens = map[int]*specimenJSON{}
 	for i, en := range b.Entry {
 		root := fmt.Sprintf("Bundle.entry[%d].resource", i)
@@ -450,6 +459,12 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 				return err
 			}
 			patients[i] = p
+		case "Goal":
+			g, err := decodeGoal(en.Resource, i, root)
+			if err != nil {
+				return err
+			}
+			goals[i] = g
 		case "Specimen":
 			var s specimenJSON
 			if err := strictUnmarshal(en.Resource, specimenSchema, root, i, &s); err != nil {
@@ -495,6 +510,10 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 			}
 		case patients[i] != nil:
 			if err := d.patientFacts(patients[i], en.Resource, i, root); err != nil {
+				return err
+			}
+		case goals[i] != nil:
+			if err := d.goalFacts(goals[i], en.Resource, i, root, deref(en.FullUrl), &r); err != nil {
 				return err
 			}
 		case r.types[i] == "MessageHeader":

@@ -202,12 +202,23 @@ func checkFact(f Fact) error {
 	if f.Value < 0 && !f.Quantity.negativeAllowed() {
 		bad("negative value")
 	}
-	if f.Quantity.coded() != (f.Text != "") && !f.Status.Retracts() {
-		bad("text must be set exactly for coded quantities")
-	}
-	patientLevel := strings.HasPrefix(f.Resource, "Patient/")
-	if patientLevel != f.Effective.IsZero() {
-		bad("effective must be set for observations and zero for patient attributes")
+	if f.Quantity == QTargetPaCO2 {
+		// A goal's Text holds its range's bounds, or nothing for a value;
+		// its Effective is the startDate, zero when it has none.
+		if lo, hi, ok := GoalRange(f); f.Text != "" && (!ok || lo > hi || f.Value != (lo+hi)/2) {
+			bad("goal range text and midpoint disagree")
+		}
+		if !strings.HasPrefix(f.Resource, "Goal/") {
+			bad("target PaCO2 not from a Goal")
+		}
+	} else {
+		if f.Quantity.coded() != (f.Text != "") && !f.Status.Retracts() {
+			bad("text must be set exactly for coded quantities")
+		}
+		patientLevel := strings.HasPrefix(f.Resource, "Patient/")
+		if patientLevel != f.Effective.IsZero() {
+			bad("effective must be set for observations and zero for patient attributes")
+		}
 	}
 	if !f.Effective.IsZero() && f.Effective.Location() != time.UTC {
 		bad("effective not UTC")

@@ -449,7 +449,11 @@ func (d *decoder) value(base Fact, key string, info CodeInfo, coding Coding, spe
 // Bundle); a relative Observation/<id> is kept as it is. Any other fullUrl,
 // an absolute http(s) URL included, gives why it cannot identify the
 // Observation.
-func fullURLIdentity(u string) (ref, why string) {
+func fullURLIdentity(u string) (ref, why string) { return resourceIdentity("Observation", u) }
+
+// resourceIdentity is fullURLIdentity for a resource of type rt
+// ("Observation", "Goal").
+func resourceIdentity(rt, u string) (ref, why string) {
 	lower := strings.ToLower(u)
 	for _, p := range []string{"urn:uuid:", "urn:oid:"} {
 		if rest, ok := strings.CutPrefix(lower, p); ok {
@@ -459,7 +463,7 @@ func fullURLIdentity(u string) (ref, why string) {
 			if !validID(rest) {
 				return "", "the fullUrl " + p + " part is not usable as a FHIR id"
 			}
-			return "Observation/" + rest, ""
+			return rt + "/" + rest, ""
 		}
 	}
 	// An absolute http(s) fullUrl is valid FHIR but is not kept as an
@@ -468,8 +472,12 @@ func fullURLIdentity(u string) (ref, why string) {
 	// the row). Refused here instead, with the reason.
 	// A relative "Observation/<id>" is not a valid fullUrl, but it names
 	// the resource unambiguously: kept, as before.
-	if id, ok := strings.CutPrefix(u, "Observation/"); ok && validID(id) {
+	if id, ok := strings.CutPrefix(u, rt+"/"); ok && validID(id) {
 		return u, ""
 	}
-	return "", "an Observation without an id needs a fullUrl of the form urn:uuid:<uuid>, urn:oid:<oid> or Observation/<id>"
+	article := "a"
+	if strings.ContainsRune("AEIOU", rune(rt[0])) {
+		article = "an"
+	}
+	return "", article + " " + rt + " without an id needs a fullUrl of the form urn:uuid:<uuid>, urn:oid:<oid> or " + rt + "/<id>"
 }

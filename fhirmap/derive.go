@@ -65,9 +65,11 @@ func DeriveBloodGas(key string, facts []Fact, site Site) ([]Derivation, []Refusa
 // dead-space volume, alveolar ventilation, the ventilatory ratio and the
 // tidal volume for the target refuse a set minute volume
 // ("no-minute-volume": a setting is not a measurement of ventilation); the
-// for-target kinds are refused with "target-paco2-not-configured" while
-// Site.TargetPaCO2mmHg is 0; the site's RQ is passed as "not given" when it
-// is the default, so that the basis says 0.8 is assumed.
+// for-target kinds aim at the patient's PaCO2 Goal in force, else at
+// Site.TargetPaCO2mmHg, and are refused with "target-paco2-not-configured"
+// with neither; predicted PaCO2 uses the apparatus dead space recorded for
+// the patient's circuit, else the site's; the site's RQ is passed as "not
+// given" when it is the default, so that the basis says 0.8 is assumed.
 func Derive(sel Selection, site Site) ([]Derivation, []Refusal) {
 	if len(sel.Inputs) == 0 || sel.Inputs[0].Role != RoleBloodGas {
 		// Not made by Select: refuse rather than guess.
@@ -145,6 +147,8 @@ var plausible = map[Role]physio.Range{
 	RoleBodyTemp:     physio.BodyTempRange,
 	RoleHeight:       physio.HeightRange,
 	RoleWeight:       physio.WeightRange,
+	RoleTarget:       physio.TargetPaCO2Range,
+	RoleApparatusVD:  physio.ApparatusDeadSpaceRange,
 }
 
 // need returns the input of role r, recording it as used, or records the
@@ -363,7 +367,6 @@ func (g *gather) step(r physio.Result, err error) physio.Fraction {
 func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 	g := x.start()
 	paco2 := physio.MmHg(x.sel.BloodGas.Value)
-	target := physio.MmHg(x.site.TargetPaCO2mmHg)
 	var (
 		res physio.Result
 		err error
@@ -436,16 +439,17 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 		rr, _ := g.need(RoleRespRate)
 		vt, _ := g.need(RoleTidalVolume)
 		pbw := g.pbw()
-		x.needTarget(g)
+		target := x.target(g)
 		if g.stop == nil {
 			res, err = physio.RateForTarget(physio.PerMin(rr.Fact.Value), paco2, target, physio.ML(vt.Fact.Value), pbw)
 			x.cautionChronicHypercapnia(g, &res, paco2, err)
+			x.flagWithinGoalRange(&res, paco2, err)
 		}
 	case KindTidalVolumeForTarget:
 		vdvt := g.measuredVDVT(paco2)
 		vt, _ := g.need(RoleTidalVolume)
 		pbw := g.pbw()
-		x.needTarget(g)
+		target := x.target(g)
 		if g.stop == nil {
 			var vd physio.Result
 			vd, err = physio.DeadSpaceVolume(vdvt, physio.ML(vt.Fact.Value))
@@ -453,6 +457,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 				g.steps = append(g.steps, vd)
 				res, err = physio.TidalVolumeForTarget(physio.ML(vt.Fact.Value), physio.ML(vd.Value), paco2, target, pbw)
 				x.cautionChronicHypercapnia(g, &res, paco2, err)
+				x.flagWithinGoalRange(&res, paco2, err)
 			}
 		}
 	default:
@@ -505,12 +510,53 @@ func (x *deriver) cautionChronicHypercapnia(g *gather, res *physio.Result, paco2
 	}
 }
 
-// needTarget stops a for-target kind when the site has configured no target
-// PaCO2: none is assumed (Site.TargetPaCO2mmHg).
-func (x *deriver) needTarget(g *gather) {
-	if g.stop == nil && x.site.TargetPaCO2mmHg == 0 {
-		g.stop = &stop{ReasonTargetNotSet, "the site has not configured a target PaCO2; none is assumed (a usual adult target does not fit chronic hypercapnia or a permissive-hypercapnia strategy)"}
+// target returns the target PaCO2 of a for-target kind: the patient's own
+// goal when a PaCO2 Goal is in force for the blood gas (it is then an input,
+// checked against physio.TargetPaCO2Range: an implausible goal refuses the
+// value, it never falls back to the site's target), else the site's target
+// (Site.TargetPaCO2mmHg). With neither, the kind stops with
+// "target-paco2-not-configured": none is assumed.
+func (x *deriver) target(g *gather) physio.MmHg {
+	if _, ok := x.sel.Input(RoleTarget); ok {
+		in, ok := g.need(RoleTarget)
+		if !ok {
+			return 0
+		}
+		return physio.MmHg(in.Fact.Value)
 	}
+	if g.stop == nil && x.site.TargetPaCO2mmHg == 0 {
+		g.stop = &stop{ReasonTargetNotSet, "the site has not configured a target PaCO2 and no PaCO2 Goal of the patient is in force; none is assumed (a usual adult target does not fit chronic hypercapnia or a permissive-hypercapnia strategy)"}
+	}
+	return physio.MmHg(x.site.TargetPaCO2mmHg)
+}
+
+// flagWithinGoalRange flags a value for a target that aims at the midpoint
+// of the patient's goal range while the measured PaCO2 already lies within
+// the range: the goal is met, so the value is not a needed change.
+func (x *deriver) flagWithinGoalRange(res *physio.Result, paco2 physio.MmHg, err error) {
+	in, ok := x.sel.Input(RoleTarget)
+	if err != nil || !ok {
+		return
+	}
+	if lo, hi, ok := GoalRange(in.Fact); ok && float64(paco2) >= lo && float64(paco2) <= hi {
+		res.FlagWithinGoalRange()
+	}
+}
+
+// GoalRange returns the bounds in mm[Hg] of a target fact that came from a
+// goal range (Fact.Text "<low>..<high>"); ok is false for a single target
+// value.
+func GoalRange(f Fact) (lo, hi float64, ok bool) {
+	if f.Quantity != QTargetPaCO2 {
+		return 0, 0, false
+	}
+	a, b, found := strings.Cut(f.Text, "..")
+	if !found {
+		return 0, 0, false
+	}
+	lo, err1 := strconv.ParseFloat(a, 64)
+	hi, err2 := strconv.ParseFloat(b, 64)
+	return lo, hi, err1 == nil && err2 == nil
 }
 
 // rq is the respiratory quotient passed to physio: 0 when the site keeps the
@@ -530,21 +576,39 @@ func (x *deriver) predicted(g *gather) physio.Result {
 	rr, _ := g.need(RoleRespRate)
 	pbw := g.pbw()
 	t := g.bodyTemp()
-	if g.stop == nil && !x.site.ApparatusDeadSpaceConfigured {
-		g.stop = &stop{ReasonApparatusNotSet, "the site has not configured its apparatus dead space (HME, closed suction, extensions); it is never assumed to be zero"}
-	}
+	app, fromPatient := x.apparatus(g)
 	if g.stop != nil {
 		return physio.Result{}
 	}
 	r, err := physio.PredictedPaCO2(physio.PredictedInput{
 		VCO2: physio.MLPerMin(v.Fact.Value), VT: physio.ML(vt.Fact.Value), RR: physio.PerMin(rr.Fact.Value),
-		PBW: pbw, ApparatusVD: physio.ML(x.site.ApparatusDeadSpaceML), ApparatusVDKnown: true, BodyTemp: t,
+		PBW: pbw, ApparatusVD: app, ApparatusVDKnown: true, ApparatusVDFromPatient: fromPatient, BodyTemp: t,
 	})
 	if err != nil {
 		g.fail(err)
 		return physio.Result{}
 	}
 	return r
+}
+
+// apparatus returns the apparatus dead space of a predicted PaCO2: the one
+// recorded for the patient's circuit when Select found one (an input,
+// checked against physio.ApparatusDeadSpaceRange: an implausible one refuses
+// the value, it never falls back to the site's setting), else the site's
+// setting. With neither, it stops with "apparatus-dead-space-not-configured":
+// it is never assumed to be zero.
+func (x *deriver) apparatus(g *gather) (physio.ML, bool) {
+	if _, ok := x.sel.Input(RoleApparatusVD); ok {
+		in, ok := g.need(RoleApparatusVD)
+		if !ok {
+			return 0, true
+		}
+		return physio.ML(in.Fact.Value), true
+	}
+	if g.stop == nil && !x.site.ApparatusDeadSpaceConfigured {
+		g.stop = &stop{ReasonApparatusNotSet, "the site has not configured its apparatus dead space (HME, closed suction, extensions) and none is recorded for the patient's circuit; it is never assumed to be zero"}
+	}
+	return physio.ML(x.site.ApparatusDeadSpaceML), false
 }
 
 // publishedInterpretation reads the value of a kind as it is published,
@@ -595,7 +659,7 @@ func inputSpan(used []Input) time.Duration {
 	var lo, hi time.Duration
 	for _, in := range used {
 		switch in.Role {
-		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess:
+		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD:
 			continue
 		}
 		lo, hi = min(lo, in.Offset), max(hi, in.Offset)

@@ -248,7 +248,7 @@ func TestTargetPaCO2MustBeConfigured(t *testing.T) {
 				t.Fatalf("%s refused: %+v", k, rm[k])
 			}
 			a := noteWith(d, "Assumptions: ")
-			if !strings.Contains(a, "target PaCO2 55 mmHg is the site's configured target, not a patient-specific goal; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target") {
+			if !strings.Contains(a, "target PaCO2 55 mmHg is the site's configured target: no PaCO2 Goal of the patient is in force; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target") {
 				t.Errorf("%s: %q", k, a)
 			}
 		}

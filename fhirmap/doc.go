@@ -5,8 +5,8 @@
 //
 // # Input: strict decoding
 //
-// Decode reads one message (an Observation, a Patient, or a Bundle of type
-// transaction, batch, collection or message holding them); DecodeFile reads
+// Decode reads one message (an Observation, a Patient, a Goal, or a Bundle
+// of type transaction, batch, collection or message holding them); DecodeFile reads
 // a JSON or NDJSON file. Decoding is built on the FHIR model structs of
 // github.com/samply/golang-fhir-models, which accept too much, so a strict
 // pass over the bytes runs first (decode_strict.go). A message is taken
@@ -103,6 +103,16 @@
 // Effective is the zero time, their Status final, and LastUpdated carries
 // the Patient's meta.lastUpdated for versioning. A birth date may be
 // partial (YYYY or YYYY-MM).
+//
+// A Goal whose target measures arterial PaCO2 (LOINC 2019-8 or a site alias
+// of it) is the patient's own target (QTargetPaCO2, decode_goal.go): its
+// Effective is the startDate, its Status follows lifecycleStatus (active
+// and accepted are final; cancelled, completed and rejected are cancelled;
+// entered-in-error withdraws; the others are registered), a range is kept in
+// Text and read at its midpoint. The apparatus dead space of the patient's
+// circuit (QApparatusVD) comes from an Observation with a site alias code.
+// Both are standing facts for Select: the latest at or before the blood gas
+// holds.
 //
 // # Versions
 //

@@ -241,15 +241,30 @@ func basisNotes(d Derivation, k KindInfo, version int) []string {
 }
 
 // targetAssumption states, for the for-target kinds, whose target the
-// advice aims at. The target reaches a derivation only from
-// Site.TargetPaCO2mmHg (physio records it as the constant "target PaCO2").
+// advice aims at: the patient's PaCO2 Goal (an input, named with its
+// version and, for a range, its bounds), else Site.TargetPaCO2mmHg (physio
+// records the target as the constant "target PaCO2").
 func targetAssumption(d Derivation) string {
 	if d.Kind != KindRateForTarget && d.Kind != KindTidalVolumeForTarget {
 		return ""
 	}
+	for _, in := range d.Inputs {
+		if in.Role != RoleTarget {
+			continue
+		}
+		what := in.Fact.Resource
+		if in.Fact.VersionID != "" {
+			what += ", version " + in.Fact.VersionID
+		}
+		if lo, hi, ok := GoalRange(in.Fact); ok {
+			return "target PaCO2 " + physio.DisplayNumber(in.Fact.Value) + " mmHg is the patient's own goal (" + what + "): the midpoint of its range " +
+				goalRangeText(lo, hi) + ", which leaves equal margin to both bounds; it overrides the site's target"
+		}
+		return "target PaCO2 " + physio.DisplayNumber(in.Fact.Value) + " mmHg is the patient's own goal (" + what + "); it overrides the site's target"
+	}
 	for _, c := range d.Result.Constants() {
 		if c.Name == "target PaCO2" {
-			return "target PaCO2 " + physio.DisplayNumber(c.Value) + " mmHg is the site's configured target, not a patient-specific goal; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target"
+			return "target PaCO2 " + physio.DisplayNumber(c.Value) + " mmHg is the site's configured target: no PaCO2 Goal of the patient is in force; patients with chronic hypercapnia or on a permissive-hypercapnia strategy need their own target"
 		}
 	}
 	return ""
@@ -298,6 +313,8 @@ func roleLabel(r Role) string {
 		return "age"
 	case RoleBicarbonate:
 		return "bicarbonate"
+	case RoleTarget:
+		return "target PaCO2"
 	}
 	return strings.ReplaceAll(string(r), "-", " ")
 }
@@ -345,9 +362,13 @@ func describeInput(in Input, bloodGasTime time.Time) string {
 		attrs = append(attrs, "version "+f.VersionID)
 	}
 	b.WriteString(" [" + strings.Join(attrs, ", ") + "]")
-	if in.Role == RoleBloodGas {
+	switch {
+	case in.Role == RoleBloodGas:
 		b.WriteString(" at " + fhirTime(f.Effective))
-	} else if !f.Effective.IsZero() {
+	case in.Role == RoleTarget && !f.Effective.IsZero():
+		// A goal's time is its startDate: when it came into force, not a reading.
+		b.WriteString(", in force from " + f.Effective.UTC().Format("2006-01-02"))
+	case !f.Effective.IsZero():
 		b.WriteString(", " + describeOffset(in.Offset))
 	}
 	return b.String()

@@ -35,6 +35,16 @@ const (
 	QBirthDate   Quantity = "birth-date"    // Fact.Text is the FHIR date as sent (YYYY, YYYY-MM or YYYY-MM-DD)
 	QPECO2       Quantity = "peco2"         // mm[Hg]; mixed-expired CO2 partial pressure (volumetric capnography, site alias only)
 	QFETCO2      Quantity = "fetco2"        // 1; end-tidal CO2 as a volume fraction (LOINC 19889-5), not a pressure
+	// QTargetPaCO2 is a patient's own target PaCO2, read from a FHIR Goal
+	// (never from an Observation): Value is the target in mm[Hg] (for a
+	// goal range its midpoint), Text "<low>..<high>" in mm[Hg] for a range
+	// and "" for a single value, Effective the Goal's startDate (zero when
+	// it has none).
+	QTargetPaCO2 Quantity = "target-paco2"
+	// QApparatusVD is the apparatus dead space of the patient's circuit
+	// (HME, closed suction, extensions beyond the Y-piece), in mL, from an
+	// Observation with a site alias code (no LOINC code exists for it).
+	QApparatusVD Quantity = "apparatus-dead-space"
 )
 
 // Origin tells a measured value from a ventilator setting. Measured values
@@ -112,7 +122,7 @@ type Fact struct {
 
 	Value float64 // in Quantity.Unit()
 	Unit  string  // canonical UCUM unit, equal to Quantity.Unit()
-	Text  string  // for coded or date facts (QSex, QBirthDate)
+	Text  string  // for coded or date facts (QSex, QBirthDate); the bounds of a goal range (QTargetPaCO2)
 
 	SourceValue float64 // value as received
 	SourceUnit  string  // unit as received
@@ -182,7 +192,7 @@ type Refusal struct {
 // Resource is one FHIR resource of an input message, kept as received for
 // the provenance store.
 type Resource struct {
-	Type      string // "Observation", "Patient"
+	Type      string // "Observation", "Patient", "Goal"
 	Reference string // "Observation/<id>"
 	VersionID string
 	Patient   string // subject reference

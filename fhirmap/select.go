@@ -28,6 +28,13 @@ const (
 	RoleBaseExcess   Role = "base-excess"   // same blood sample: arterial base excess
 )
 
+// Roles of standing inputs: they hold from their time until replaced (see
+// roleRule.standing).
+const (
+	RoleTarget      Role = "target-paco2"         // the patient's own target PaCO2 (a FHIR Goal in force)
+	RoleApparatusVD Role = "apparatus-dead-space" // the patient's circuit, recorded by Observation
+)
+
 // SameSampleTolerance is how far from the blood gas's time a bicarbonate or
 // base excess may lie and still be read as from the same sample, when it is
 // not in the same resource: the values of one sample share its collection
@@ -91,6 +98,14 @@ type roleRule struct {
 	// sameSample marks a value of the blood gas's own sample (see
 	// sameSample): no window, no ranking beyond nearness.
 	sameSample bool
+	// standing marks a fact that holds from its time until a later one
+	// replaces it (a goal, the circuit's dead space): the latest at or
+	// before the blood gas (plus allowance) wins, never a later one; a zero
+	// Effective counts as before. sameEncounter keeps it to the blood gas's
+	// encounter when both name one.
+	standing      bool
+	allowance     func(Site) time.Duration
+	sameEncounter bool
 	// rank returns the preference of a fact (0 best) or false when the fact
 	// cannot fill the role at all.
 	rank func(Fact) (int, bool)
@@ -184,6 +199,16 @@ var (
 	// pairing window: they describe that sample.
 	ruleBicarbonate = roleRule{role: RoleBicarbonate, sameSample: true, labels: []string{"arterial bicarbonate of the same sample"}}
 	ruleBaseExcess  = roleRule{role: RoleBaseExcess, sameSample: true, labels: []string{"arterial base excess of the same sample"}}
+	// A patient's goal holds from its startDate; one starting after the
+	// blood gas does not apply to it.
+	ruleTarget = roleRule{role: RoleTarget, standing: true, labels: []string{"the patient's PaCO2 goal"}}
+	// The circuit's apparatus dead space holds until the circuit changes
+	// (a new Observation); one recorded up to the window's After allowance
+	// after the blood gas counts, for the same clock and charting
+	// differences as ventilator readings, and only in the same encounter.
+	ruleApparatus = roleRule{role: RoleApparatusVD, standing: true, sameEncounter: true,
+		allowance: func(s Site) time.Duration { return s.Window.After },
+		labels:    []string{"apparatus dead space recorded for the patient's circuit"}}
 	// ruleVentOther marks ventilator readings that no derivation uses but
 	// that show the ventilator feed was present.
 	ruleVentOther = roleRule{ventilator: true}
@@ -224,6 +249,10 @@ func ruleFor(q Quantity) (*roleRule, bool) {
 		return &ruleBicarbonate, true
 	case QBaseExcess:
 		return &ruleBaseExcess, true
+	case QTargetPaCO2:
+		return &ruleTarget, true
+	case QApparatusVD:
+		return &ruleApparatus, true
 	case QPEEP, QPlateau, QMeanAirway, QFETCO2:
 		return &ruleVentOther, true
 	}
@@ -272,6 +301,19 @@ func (a candidate) patientBetter(b candidate, at time.Time) bool {
 	return a.fact.Key < b.fact.Key
 }
 
+// standingBetter reports whether a beats b for a standing role: the later
+// start wins (zero counts as earliest), then the later meta.lastUpdated,
+// then the smaller Key.
+func (a candidate) standingBetter(b candidate) bool {
+	if c := a.fact.Effective.Compare(b.fact.Effective); c != 0 {
+		return c > 0
+	}
+	if c := a.fact.LastUpdated.Compare(b.fact.LastUpdated); c != 0 {
+		return c > 0
+	}
+	return a.fact.Key < b.fact.Key
+}
+
 // Select pairs one blood gas with the ventilator and patient data around it.
 // It is the one selection rule of the service: the offline command and the
 // pipeline both call it. facts are a patient's normalised current facts
@@ -295,7 +337,12 @@ func (a candidate) patientBetter(b candidate, at time.Time) bool {
 //   - patient-level facts (sex, birth date, height, weight) come from any
 //     time and encounter: the latest at or before the blood gas (a fact with
 //     a zero Effective, from a Patient resource, counts as before), else the
-//     earliest after it, then the smaller Key.
+//     earliest after it, then the smaller Key;
+//   - standing facts (the patient's PaCO2 goal, the apparatus dead space of
+//     the patient's circuit) hold until replaced: the latest at or before
+//     the blood gas (a goal from its startDate; a circuit's dead space up to
+//     Window.After after the gas, in the same encounter) wins, then the later
+//     meta.lastUpdated, then the smaller Key; one starting later never applies.
 func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 	sel := Selection{BloodGas: bloodGas, Window: site.Window}
 	sel.Inputs = append(sel.Inputs, Input{Role: RoleBloodGas, Fact: bloodGas})
@@ -323,6 +370,26 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 				if i := roleIndex(rule.role); !has[i] || c.better(best[i]) {
 					best[i], has[i] = c, true
 				}
+			}
+			continue
+		}
+		if rule.standing {
+			if !f.Status.Usable() || rule.sameEncounter && bloodGas.Encounter != "" && f.Encounter != "" && f.Encounter != bloodGas.Encounter {
+				continue
+			}
+			var allow time.Duration
+			if rule.allowance != nil {
+				allow = rule.allowance(site)
+			}
+			if !f.Effective.IsZero() && f.Effective.After(bloodGas.Effective.Add(allow)) {
+				continue
+			}
+			c := candidate{fact: f, offset: off, rule: rule}
+			if f.Effective.IsZero() {
+				c.offset = 0
+			}
+			if i := roleIndex(rule.role); !has[i] || c.standingBetter(best[i]) {
+				best[i], has[i] = c, true
 			}
 			continue
 		}
@@ -385,7 +452,7 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 var roleOrderArray = [...]Role{
 	RoleBloodGas, RolePECO2, RoleVCO2, RoleMinuteVolume, RoleTidalVolume, RoleRespRate,
 	RolePETCO2, RoleBodyTemp, RoleSex, RoleBirthDate, RoleHeight, RoleWeight,
-	RoleBicarbonate, RoleBaseExcess,
+	RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD,
 }
 
 // sameSample reports whether f (a bicarbonate or base excess) belongs to

@@ -50,7 +50,7 @@ const (
 // (QSex, QBirthDate) and for quantities this package does not know.
 func (q Quantity) Unit() string {
 	switch q {
-	case QPCO2, QPO2, QPETCO2, QPFRatio, QPECO2:
+	case QPCO2, QPO2, QPETCO2, QPFRatio, QPECO2, QTargetPaCO2:
 		return "mm[Hg]"
 	case QPH:
 		return "[pH]"
@@ -60,7 +60,7 @@ func (q Quantity) Unit() string {
 		return "mL/min"
 	case QMinuteVol:
 		return "L/min"
-	case QTidalVol:
+	case QTidalVol, QApparatusVD:
 		return "mL"
 	case QRespRate:
 		return "/min"
@@ -118,7 +118,7 @@ var (
 // special rules (rates, FiO2, temperature) or no unit.
 func linearUnits(q Quantity) map[string]float64 {
 	switch q {
-	case QPCO2, QPO2, QPETCO2, QPFRatio, QPECO2:
+	case QPCO2, QPO2, QPETCO2, QPFRatio, QPECO2, QTargetPaCO2:
 		return pressureUnits
 	case QPEEP, QPlateau, QMeanAirway:
 		return airwayUnits
@@ -126,7 +126,7 @@ func linearUnits(q Quantity) map[string]float64 {
 		return lPerMinUnits
 	case QVCO2:
 		return mLPerMinUnits
-	case QTidalVol:
+	case QTidalVol, QApparatusVD:
 		return mLUnits
 	case QBicarbonate, QBaseExcess:
 		return mmolUnits

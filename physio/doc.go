@@ -74,8 +74,9 @@
 //     (PredictedBodyWeight).
 //   - Predicted PaCO2: VA = (VT - VDanat - VDapp) x RR, PaCO2 = K x VCO2 /
 //     VA, with anatomic dead space 2.2 mL/kg PBW unless given (Radford, J
-//     Appl Physiol 1955) and an apparatus dead space that must be declared
-//     (PredictedPaCO2). Measured minus predicted, described as material
+//     Appl Physiol 1955) and an apparatus dead space that must be declared,
+//     recorded as a constant with its source (the patient's circuit or the
+//     site's setting) (PredictedPaCO2). Measured minus predicted, described as material
 //     beyond +/- 5 mm[Hg], a derived band without interpretation code
 //     (PaCO2Discrepancy).
 //   - Ventilatory ratio (Sinha et al., Br J Anaesth 2009;102:692-697):
@@ -91,7 +92,9 @@
 //   - Ventilation for a target PaCO2 at constant VCO2 and dead space:
 //     RR_new = RR x PaCO2 / target (RateForTarget); VT_new = VD + (VT - VD)
 //     x PaCO2 / target (TidalVolumeForTarget). Flags outside 4-8 mL/kg PBW
-//     and 8-35 /min. The target is the caller's, recorded as a constant.
+//     and 8-35 /min. The target is the caller's, recorded as a constant;
+//     FlagWithinGoalRange marks a value aimed at the midpoint of a goal
+//     range that the measured PaCO2 already meets (the caller decides).
 //   - Dead-space fraction readings: about 0.3 in healthy adults (Nunn &
 //     Hill, J Appl Physiol 1960); 0.58 mean at ARDS onset (Nuckton et al.,
 //     NEJM 2002;346:1281-6).

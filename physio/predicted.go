@@ -8,6 +8,8 @@ var (
 	pbwSlope           = constDef{name: "PBW slope", unit: "kg/cm", source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
 	pbwRefHeight       = constDef{name: "PBW reference height", unit: UnitCm, source: "ARDS Network, NEJM 2000;342:1301-8 [published] (60 in)"}
 	anatomicPerKg      = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]"}
+	apparatusSiteDef   = constDef{name: "apparatus dead space", unit: UnitML, source: "the site's setting for its circuits: none recorded for the patient's circuit"}
+	apparatusInputDef  = constDef{name: "apparatus dead space", unit: UnitML, source: "recorded for the patient's circuit (an input of this value), preferred over the site's setting"}
 	discrepancyDef     = constDef{name: "material PaCO2 difference", unit: UnitMmHg,
 		source: "half-width of the healthy 35-45 mmHg range [derived from published textbooks; common practice]"}
 )
@@ -87,7 +89,11 @@ type PredictedInput struct {
 	// missing site configuration is never read as zero.
 	ApparatusVD      ML
 	ApparatusVDKnown bool
-	BodyTemp         Celsius // 0 means 37 Cel (recorded)
+	// ApparatusVDFromPatient says where ApparatusVD comes from, for the
+	// recorded constant: true for a value recorded for the patient's
+	// circuit, false for the site's setting.
+	ApparatusVDFromPatient bool
+	BodyTemp               Celsius // 0 means 37 Cel (recorded)
 }
 
 // PredictedPaCO2 returns the PaCO2, in mm[Hg], that the alveolar
@@ -120,6 +126,11 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 		return Result{}, err
 	}
 	r := Result{Unit: UnitMmHg, Method: methodPredicted, MethodVersion: MethodVersion}
+	if p.ApparatusVDFromPatient {
+		r.addConst(&apparatusInputDef, float64(p.ApparatusVD))
+	} else {
+		r.addConst(&apparatusSiteDef, float64(p.ApparatusVD))
+	}
 	anat := float64(p.AnatomicVD)
 	defaultAnat := anat == 0
 	if defaultAnat {

@@ -45,6 +45,26 @@ var (
 	targetDef  = constDef{name: "target PaCO2", unit: UnitMmHg, source: "given by the caller, not derived; a patient-specific goal only if the caller made it one"}
 )
 
+// FlagWithinGoalRange is the flag of a value for a target that is the
+// midpoint of the patient's goal range while the measured PaCO2 already
+// lies within that range: the goal is met, and the value is not a change
+// that is needed.
+const FlagWithinGoalRange = "measured PaCO2 already within the patient's goal range: no change is needed to meet the goal; this value aims at the midpoint of the range"
+
+// FlagWithinGoalRange adds FlagWithinGoalRange to a value for a target; the
+// caller, who knows the goal, decides. Adding it twice adds it once.
+func (r *Result) FlagWithinGoalRange() {
+	if r.Method != methodRateForTarget && r.Method != methodVTForTarget {
+		return
+	}
+	for _, f := range r.flags[:r.nFlags] {
+		if f == FlagWithinGoalRange {
+			return
+		}
+	}
+	r.flag(FlagWithinGoalRange)
+}
+
 // beyondModel refuses an answer for a target outside the input range r of
 // the same quantity: the ranges bound where the alveolar ventilation
 // equation describes conventional ventilation (RespRateRange: above 80 /min

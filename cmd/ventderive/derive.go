@@ -53,10 +53,10 @@ func parseDerive(args []string, stderr io.Writer, now time.Time) (deriveConfig, 
 	var recorded string
 	fs.BoolVar(&c.explain, "explain", false, "print a readable table (values with their basis, refusals with reasons) instead of the Bundle")
 	fs.StringVar(&c.aliases, "aliases", "", "site code alias file (see the README) added to the standard code table")
-	fs.Float64Var(&apparatus, "apparatus-dead-space-ml", 0, "apparatus dead space beyond the Y-piece in mL (HME, closed suction); unset: predicted PaCO2 is refused, never computed with zero")
+	fs.Float64Var(&apparatus, "apparatus-dead-space-ml", 0, "the site's apparatus dead space beyond the Y-piece in mL (HME, closed suction); a value recorded for the patient's circuit (aliased Observation) is preferred; unset and none recorded: predicted PaCO2 is refused, never computed with zero")
 	fs.DurationVar(&c.site.Window.Before, "window-before", c.site.Window.Before, "pairing window before the blood gas")
 	fs.DurationVar(&c.site.Window.After, "window-after", c.site.Window.After, "pairing window after the blood gas")
-	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mmHg for the ventilation-for-target advice (not a patient's goal); 0 or unset: not configured, the for-target values are refused (40 is the usual suggestion)")
+	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mmHg for the ventilation-for-target advice; a patient's PaCO2 Goal in force overrides it; 0 or unset: not configured, and without a Goal the for-target values are refused (40 is the usual suggestion)")
 	fs.StringVar(&c.site.CodeSystemURL, "codesystem-url", c.site.CodeSystemURL, "canonical URL of the service CodeSystem")
 	fs.StringVar(&recorded, "recorded", "", "RFC 3339 time written as Provenance.recorded and Bundle.timestamp (default: now)")
 	if err := fs.Parse(args); err != nil {
@@ -173,14 +173,14 @@ func displayName(name string) string {
 func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.Refusal) error {
 	var b strings.Builder
 	site := c.site
-	apparatus := "not configured (predicted PaCO2 refused)"
+	apparatus := "not configured (predicted PaCO2 refused unless recorded for the patient's circuit)"
 	if site.ApparatusDeadSpaceConfigured {
-		apparatus = fmt.Sprintf("%g mL", site.ApparatusDeadSpaceML)
+		apparatus = fmt.Sprintf("%g mL (a value recorded for the patient's circuit is preferred)", site.ApparatusDeadSpaceML)
 	}
 	fmt.Fprintf(&b, "ventderive derive, %s. ADVISORY values: not orders; verify at the bedside.\n", fhirmap.Algorithm)
-	target := "not configured (for-target advice refused)"
+	target := "not configured (for-target advice refused unless the patient has a PaCO2 Goal in force)"
 	if site.TargetPaCO2mmHg != 0 {
-		target = fmt.Sprintf("%g mmHg (the site's, not a patient-specific goal)", site.TargetPaCO2mmHg)
+		target = fmt.Sprintf("%g mmHg (the site's; a patient's PaCO2 Goal in force overrides it)", site.TargetPaCO2mmHg)
 	}
 	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas; apparatus dead space %s; target PaCO2 %s; %s, RQ %g.\n\n",
 		shortDuration(site.Window.Before), shortDuration(site.Window.After), apparatus, target, site.Energy, site.RQ)

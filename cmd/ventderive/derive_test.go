@@ -82,6 +82,12 @@ func TestDeriveCommandGolden(t *testing.T) {
 		{"explain", append([]string{"--explain"}, exampleArgs...), "example.explain.golden.txt"},
 		{"aliases_give_enghoff_from_site_code", append([]string{"--aliases", filepath.Join(deriveDir, "hv-aliases.jsonl"), "--explain", "--recorded", "2026-11-20T15:00:00Z"},
 			inDeriveDir("icu-morning.json", "capnography.ndjson")...), "aliases.explain.golden.txt"},
+		// A patient's PaCO2 Goal (range 50-60 mmHg) over the site's target
+		// and the circuit's apparatus dead space (aliased Observation, 0.09 L)
+		// over the site's setting.
+		{"goal_and_circuit_override_site", append([]string{"--aliases", filepath.Join(deriveDir, "hv-aliases.jsonl"), "--explain",
+			"--apparatus-dead-space-ml", "50", "--target-paco2", "40", "--recorded", "2026-11-20T15:00:00Z"},
+			inDeriveDir("icu-morning.json", "goal-and-circuit.ndjson")...), "goal-and-circuit.explain.golden.txt"},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -241,7 +247,7 @@ func TestDeriveCommandTarget(t *testing.T) {
 			if tc.refused && !strings.Contains(out, "target PaCO2 not configured") {
 				t.Errorf("header does not say the target is not configured")
 			}
-			if !tc.refused && !strings.Contains(out, "target PaCO2 55 mmHg is the site's configured target, not a patient-specific goal") {
+			if !tc.refused && !strings.Contains(out, "target PaCO2 55 mmHg is the site's configured target: no PaCO2 Goal of the patient is in force") {
 				t.Errorf("advice does not name the site's target")
 			}
 		})

@@ -191,8 +191,8 @@ func bindServe(fs *flag.FlagSet, getenv func(string) string, c *serveConfig) (*s
 	errs := []error{
 		s.dur(&c.pipeline.Window.Before, "window-before", fhirmap.DefaultSite().Window.Before, "pair ventilator data up to this long before a blood gas"),
 		s.dur(&c.pipeline.Window.After, "window-after", fhirmap.DefaultSite().Window.After, "pair ventilator data up to this long after a blood gas"),
-		s.num(&c.apparatusDeadSpaceML, "apparatus-dead-space-ml", -1, "apparatus dead space of the site's circuits in mL (HME, closed suction); negative: not configured, and derivations that need it are refused"),
-		s.num(&c.targetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mm[Hg] for the ventilation-for-target values (not a patient's goal); 0: not configured, and those values are refused (40 is the usual adult suggestion)"),
+		s.num(&c.apparatusDeadSpaceML, "apparatus-dead-space-ml", -1, "apparatus dead space of the site's circuits in mL (HME, closed suction); a value recorded for the patient's circuit is preferred; negative: not configured, and without a recorded value derivations that need it are refused"),
+		s.num(&c.targetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mm[Hg] for the ventilation-for-target values; a patient's PaCO2 Goal in force overrides it; 0: not configured, and without a Goal those values are refused (40 is the usual adult suggestion)"),
 	}
 	s.str(&c.codeAliases, "code-aliases", "", "site code-alias file mapping local codes onto known quantities")
 	s.str(&c.codeSystemURL, "codesystem-url", fhirmap.DefaultSite().CodeSystemURL, "canonical URL of the service's CodeSystem for derived values")

@@ -16,6 +16,7 @@ var inputs = []string{
 	"../../cmd/ventderive/testdata/derive/icu-morning.json",
 	"../../cmd/ventderive/testdata/derive/ward-feed.ndjson",
 	"../../cmd/ventderive/testdata/derive/capnography.ndjson",
+	"../../cmd/ventderive/testdata/derive/goal-and-circuit.ndjson",
 }
 
 const aliasFile = "../../cmd/ventderive/testdata/derive/hv-aliases.jsonl"
@@ -209,5 +210,30 @@ func TestValidatorRejectsBrokenResources(t *testing.T) {
 				t.Errorf("broken resource accepted:\n%s", b)
 			}
 		})
+	}
+}
+
+// TestExampleGoalInputIsValidR4: the example Goal (and circuit Observation)
+// the service reads is valid FHIR R4 for an independent parser, so the
+// accepted shape is the standard one, not a local dialect; and a Goal
+// without its required lifecycleStatus, which fhirmap refuses, is invalid
+// for it too (FHIR R4 Goal.lifecycleStatus 1..1 [published]).
+func TestExampleGoalInputIsValidR4(t *testing.T) {
+	raw, err := os.ReadFile("../../cmd/ventderive/testdata/derive/goal-and-circuit.ndjson")
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := strings.Split(strings.TrimSpace(string(raw)), "\n")
+	if len(lines) < 2 || !strings.Contains(lines[0], `"resourceType":"Goal"`) {
+		t.Fatalf("the example no longer starts with a Goal")
+	}
+	for i, l := range lines {
+		if err := Validate([]byte(l)); err != nil {
+			t.Errorf("line %d: invalid FHIR R4: %v", i+1, err)
+		}
+	}
+	broken := strings.Replace(lines[0], `"lifecycleStatus":"active",`, "", 1)
+	if Validate([]byte(broken)) == nil {
+		t.Error("a Goal without lifecycleStatus passed the validator")
 	}
 }

@@ -1,0 +1,156 @@
+package consumer_test
+
+import (
+	"math"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// goalMsg is a FHIR R4 Goal of patient i (invented) whose target is arterial
+// PaCO2 (LOINC 2019-8) in the range lo-hi mm[Hg], with the given
+// lifecycleStatus and meta.versionId.
+func goalMsg(i int, version int, lifecycle string, lo, hi float64) testMsg {
+	ref := patientRef(i)
+	return msgOf("fhir.input.adt", map[string]any{
+		"resourceType":    "Goal",
+		"id":              ref[len("Patient/"):] + "-paco2-goal",
+		"meta":            map[string]any{"versionId": string(rune('0' + version))},
+		"lifecycleStatus": lifecycle,
+		"description":     map[string]any{"text": "PaCO2 goal while ventilated"},
+		"subject":         map[string]any{"reference": ref},
+		"startDate":       genStart.Add(-24 * time.Hour).Format("2006-01-02"),
+		"target": []any{map[string]any{
+			"measure": map[string]any{"coding": []any{map[string]any{"system": loinc, "code": "2019-8"}}},
+			"detailRange": map[string]any{
+				"low":  map[string]any{"value": lo, "unit": "mmHg", "system": ucum, "code": "mm[Hg]"},
+				"high": map[string]any{"value": hi, "unit": "mmHg", "system": ucum, "code": "mm[Hg]"},
+			},
+		}},
+	})
+}
+
+// circuitMsg is an Observation of the apparatus dead space of patient i's
+// circuit (mL), with the site alias code of circuitAlias.
+func circuitMsg(i int, ml float64, at time.Time) testMsg {
+	ref := patientRef(i)
+	o := observation(ref[len("Patient/"):]+"-circuit", ref, "", "mL", ml, at, map[string]any{
+		"code": map[string]any{"coding": []any{map[string]any{"system": "https://larkspur-general.example/fhir/resp-codes", "code": "CIRCUIT-VD"}}},
+	})
+	return msgOf("fhir.input.device", o)
+}
+
+const circuitAlias = `{"system":"https://larkspur-general.example/fhir/resp-codes","code":"CIRCUIT-VD","quantity":"apparatus-dead-space"}`
+
+// The apparatus dead space recorded for a patient's circuit gives the same
+// final state before or after the blood gases (it is a standing, patient-level
+// fact of the store), and is preferred over the site's 50 mL: the predicted
+// PaCO2 of patient 0's first gas is K x VCO2 / ((VT - 2.2 x PBW - VDapp) x
+// RR) = 0.863 x 200 / ((500 - 155.2 - 100) x 20 / 1000) = 35.26 mmHg with
+// 100 mL (alveolar ventilation equation [published]; Radford 1955
+// [published]; PBW men 50 + 0.91 x (175 - 152.4) kg, ARDS Network 2000
+// [published]).
+func TestCircuitDeadSpaceArrivalOrder(t *testing.T) {
+	codes, err := fhirmap.DefaultCodes().WithAliases(strings.NewReader(circuitAlias))
+	if err != nil {
+		t.Fatal(err)
+	}
+	base := generate(genOpts{patients: 1, gases: 2})
+	circuit := circuitMsg(0, 100, genStart.Add(-2*time.Hour))
+	var states []map[string]headState
+	for _, msgs := range [][]testMsg{append([]testMsg{circuit}, base...), append(append([]testMsg(nil), base...), circuit)} {
+		h := newHarness(t)
+		h.codes = codes
+		h.startReplica(nil)
+		for _, m := range msgs {
+			h.publish([]testMsg{m})
+			h.waitSettled(30 * time.Second)
+		}
+		h.reconcile(msgs)
+		states = append(states, h.heads())
+	}
+	for k, a := range states[0] {
+		b := states[1][k]
+		if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
+			t.Errorf("%s: %+v vs %+v", k, a, b)
+		}
+	}
+	pbw := 50 + 0.91*(175-152.4)
+	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 2.2*pbw - 100) * 20 / 1000)
+	found := false
+	for k, s := range states[0] {
+		if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindPredictedPaCO2) {
+			found = true
+			if s.refused || math.Abs(s.value-want) > 1e-6 {
+				t.Errorf("predicted PaCO2 %+v, want %.3f mmHg", s, want)
+			}
+		}
+	}
+	if !found {
+		t.Error("no predicted PaCO2 of the first blood gas")
+	}
+}
+
+// A patient's PaCO2 Goal gives the same final state whether it arrives
+// before or after the blood gases (a new Goal reopens the patient's recent
+// blood gases, as height or sex do), and its withdrawal returns the values
+// for a target to the site's target whatever the order of the versions. The
+// expected state is the offline derivation of the same inputs; the rate for
+// the target of patient 0's first gas is RR x PaCO2 / target = 20 x 45 / 50
+// = 18.0 /min at the goal's midpoint and 22.5 /min at the site's 40 mm[Hg]
+// (alveolar ventilation equation at constant VCO2, physiology.md s9
+// [derived]).
+func TestGoalArrivalOrder(t *testing.T) {
+	base := generate(genOpts{patients: 1, gases: 2})
+	active := goalMsg(0, 1, "active", 45, 55)
+	cancelled := goalMsg(0, 2, "cancelled", 45, 55)
+	for _, c := range []struct {
+		name   string
+		orders [][]testMsg
+		wantRR float64
+	}{
+		{"goal_before_or_after_the_gases", [][]testMsg{
+			append([]testMsg{active}, base...),
+			append(append([]testMsg(nil), base...), active),
+		}, 18.0},
+		{"withdrawn_goal_either_order", [][]testMsg{
+			append(append([]testMsg{active}, base...), cancelled),
+			append(append([]testMsg{cancelled}, base...), active),
+		}, 22.5},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			var states []map[string]headState
+			for _, msgs := range c.orders {
+				h := newHarness(t)
+				h.site.TargetPaCO2mmHg = 40
+				h.startReplica(nil)
+				for _, m := range msgs { // one at a time: the order is the test
+					h.publish([]testMsg{m})
+					h.waitSettled(30 * time.Second)
+				}
+				h.reconcile(msgs)
+				states = append(states, h.heads())
+			}
+			for k, a := range states[0] {
+				b := states[1][k]
+				if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
+					t.Errorf("%s: %+v vs %+v", k, a, b)
+				}
+			}
+			found := false
+			for k, s := range states[0] {
+				if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindRateForTarget) {
+					found = true
+					if s.refused || math.Abs(s.value-c.wantRR) > 1e-9 {
+						t.Errorf("rate for target %+v, want %v /min", s, c.wantRR)
+					}
+				}
+			}
+			if !found {
+				t.Error("no rate for target of the first blood gas")
+			}
+		})
+	}
+}
