@@ -1,0 +1,340 @@
+package review
+
+import (
+	"context"
+	"fmt"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgxpool"
+
+	"github.com/ventderive/ventderive/consumer/postgres"
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// Store is what the console reads: the audit's reviewer queries plus the
+// console's own (patient list, timeline series). Every query reads review_*
+// views only.
+type Store struct {
+	pool *pgxpool.Pool
+	*postgres.Reviewer
+}
+
+// NewStore returns a Store over pool, which should connect as the reviewer
+// role with default_transaction_read_only on (cmd does both).
+func NewStore(pool *pgxpool.Pool) *Store {
+	return &Store{pool: pool, Reviewer: postgres.NewReviewer(pool)}
+}
+
+// PatientFilter chooses the patients of the list.
+type PatientFilter struct {
+	From, To       time.Time // blood-gas time, From inclusive, To exclusive; zero: open
+	Kind           string    // only patients with a current value of this kind
+	HasDiscrepancy bool      // a current |measured - predicted PaCO2| >= ThresholdMmHg
+	HasRefusal     bool
+	HasRetraction  bool
+	ThresholdMmHg  float64
+	Limit, Offset  int
+}
+
+// PatientRow is one patient of the list. Counts are of blood gases in the
+// period and of their keys' current state.
+type PatientRow struct {
+	Patient     string    // reference, "Patient/lg-icu-0001"
+	BloodGases  int       // blood gases with any derived value or refusal
+	Derived     int       // current derived values (retractions excluded)
+	Refusals    int       // keys whose current state is a refusal
+	Retractions int       // keys whose current state is a retraction
+	Amended     int       // keys whose current version is amended or corrected
+	MaxDiscMmHg *float64  // largest current |measured - predicted PaCO2|
+	First, Last time.Time // blood-gas times
+	Latest      []Latest  // current values of the latest blood gas with values
+}
+
+// Latest is one current value of a patient's latest blood gas.
+type Latest struct {
+	Kind, Published, DisplayUnit, ObservationID string
+}
+
+// patientsSQL counts per patient over review_patient_gas (migration 0008).
+// $1,$2 period; $3 kind; $4..$6 has-discrepancy/refusal/retraction; $7
+// threshold; $8 limit+1; $9 offset.
+const patientsSQL = `
+SELECT patient_ref, count(*), sum(derived), sum(refused), sum(retracted), sum(amended), max(discrepancy_mmhg),
+       min(effective), max(effective)
+FROM review_patient_gas
+WHERE ($1::timestamptz IS NULL OR effective >= $1) AND ($2::timestamptz IS NULL OR effective < $2)
+GROUP BY patient_ref
+HAVING ($3 = '' OR bool_or($3 = ANY(kinds)))
+   AND (NOT $4 OR coalesce(max(discrepancy_mmhg), 0) >= $7)
+   AND (NOT $5 OR sum(refused) > 0)
+   AND (NOT $6 OR sum(retracted) > 0)
+ORDER BY patient_ref
+LIMIT $8 OFFSET $9`
+
+// latestSQL reads the current values of each listed patient's latest blood
+// gas with a current value in the period.
+const latestSQL = `
+WITH last AS (
+    SELECT DISTINCT ON (patient_ref) patient_ref, blood_gas_key
+    FROM review_patient_gas
+    WHERE patient_ref = ANY($1) AND derived > 0
+      AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
+    ORDER BY patient_ref, effective DESC, blood_gas_key DESC)
+SELECT d.patient_ref, d.kind, d.value, d.unit, d.observation_id::text
+FROM last l
+JOIN review_derivation d ON d.patient_ref = l.patient_ref AND d.blood_gas_key = l.blood_gas_key
+WHERE d.is_current AND d.status <> 'entered-in-error'
+ORDER BY d.patient_ref, d.kind`
+
+// Patients lists patients by reference (paged: more is true when rows
+// follow) with their counts and latest values.
+func (s *Store) Patients(ctx context.Context, f PatientFilter) (rows []PatientRow, more bool, err error) {
+	limit := f.Limit
+	if limit <= 0 || limit > postgres.MaxLimit {
+		limit = 200
+	}
+	r, err := s.pool.Query(ctx, patientsSQL, optTime(f.From), optTime(f.To), f.Kind, f.HasDiscrepancy, f.HasRefusal,
+		f.HasRetraction, f.ThresholdMmHg, limit+1, max(f.Offset, 0))
+	if err != nil {
+		return nil, false, fmt.Errorf("list patients: %w", err)
+	}
+	rows, err = pgx.CollectRows(r, func(row pgx.CollectableRow) (PatientRow, error) {
+		var p PatientRow
+		err := row.Scan(&p.Patient, &p.BloodGases, &p.Derived, &p.Refusals, &p.Retractions, &p.Amended, &p.MaxDiscMmHg,
+			&p.First, &p.Last)
+		p.First, p.Last = p.First.UTC(), p.Last.UTC()
+		return p, err
+	})
+	if err != nil {
+		return nil, false, fmt.Errorf("list patients: %w", err)
+	}
+	if len(rows) > limit {
+		rows, more = rows[:limit], true
+	}
+	if len(rows) == 0 {
+		return rows, more, nil
+	}
+	refs := make([]string, len(rows))
+	at := map[string]int{}
+	for i, p := range rows {
+		refs[i], at[p.Patient] = p.Patient, i
+	}
+	lr, err := s.pool.Query(ctx, latestSQL, refs, optTime(f.From), optTime(f.To))
+	if err != nil {
+		return nil, false, fmt.Errorf("latest values: %w", err)
+	}
+	var ref, kind, unit, obs string
+	var value float64
+	_, err = pgx.ForEachRow(lr, []any{&ref, &kind, &value, &unit, &obs}, func() error {
+		i := at[ref]
+		rows[i].Latest = append(rows[i].Latest, Latest{Kind: kind, Published: fhirmap.FormatValue(kind, value),
+			DisplayUnit: postgres.DisplayUnit(unit), ObservationID: obs})
+		return nil
+	})
+	if err != nil {
+		return nil, false, fmt.Errorf("latest values: %w", err)
+	}
+	return rows, more, nil
+}
+
+// Point is one current derived value on a timeline.
+type Point struct {
+	Key           string
+	ObservationID string
+	Kind          string
+	Effective     time.Time
+	Value         float64 // full precision
+	Published     string  // as published
+	DisplayUnit   string
+	Version       int
+	Status        string
+}
+
+// Mark is a refusal or retraction on the time axis.
+type Mark struct {
+	Key       string
+	Kind      string
+	Effective time.Time
+	What      string // "refused" or "retracted"
+	Reason    string // refusal reason code, or the retraction reason text
+}
+
+// Bucket is the mean of one ventilator quantity over one time bucket.
+type Bucket struct {
+	Quantity string
+	Unit     string // UCUM
+	Start    time.Time
+	Mean     float64
+	Min, Max float64
+	Count    int
+}
+
+// Timeline is what a patient's plots show.
+type Timeline struct {
+	Patient  string
+	From, To time.Time // period asked, or the data's extent when open
+	Points   []Point   // current values, not retracted
+	Measured []Point   // measured arterial PCO2 of the blood gases (inputs), Kind "pco2"
+	Marks    []Mark
+	Vent     []Bucket
+	Bucket   time.Duration // width of the ventilator buckets
+}
+
+const timelinePointsSQL = `
+SELECT key, observation_id::text, kind, effective, value, unit, version, status, retracted, is_current
+FROM review_derivation
+WHERE patient_ref = $1 AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
+  AND is_current
+ORDER BY effective, kind`
+
+const timelineRefusalsSQL = `
+SELECT key, kind, effective, reason
+FROM review_refusal
+WHERE patient_ref = $1 AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
+  AND is_current
+ORDER BY effective, kind`
+
+// The measured PaCO2 of every blood gas with a derived value: the input
+// of role blood gas (fact_key = blood_gas_key) of its discrepancy (or any)
+// derivation; one per blood gas.
+const timelineMeasuredSQL = `
+SELECT DISTINCT ON (d.blood_gas_key) d.key, d.observation_id::text, d.effective, i.value, i.unit, d.version, d.status
+FROM review_derivation d
+JOIN review_derivation_input i ON i.derivation_id = d.id AND i.fact_key = d.blood_gas_key
+WHERE d.patient_ref = $1 AND ($2::timestamptz IS NULL OR d.effective >= $2) AND ($3::timestamptz IS NULL OR d.effective < $3)
+  AND d.is_current AND d.status <> 'entered-in-error'
+ORDER BY d.blood_gas_key, (d.kind = 'paco2-measured-minus-predicted') DESC, d.kind`
+
+// timelineVentSQL averages each ventilator quantity per bucket, over the
+// latest version of each reading that is usable (as fhirmap pairs them).
+const timelineVentSQL = `
+SELECT quantity, unit, date_bin($4::interval, effective, $5::timestamptz) AS b, avg(value), min(value), max(value), count(*)
+FROM (
+    SELECT DISTINCT ON (key) quantity, unit, effective, value, status
+    FROM review_fact
+    WHERE patient_ref = $1 AND quantity = ANY($6)
+      AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
+    ORDER BY key, id DESC) f
+WHERE status IN ('final', 'amended', 'corrected', 'preliminary')
+GROUP BY quantity, unit, b
+ORDER BY quantity, b`
+
+const extentSQL = `
+SELECT min(effective), max(effective) FROM review_patient_gas WHERE patient_ref = $1`
+
+// VentQuantities are the ventilator inputs plotted, in fhirmap's codes.
+var VentQuantities = []string{
+	string(fhirmap.QTidalVol), string(fhirmap.QRespRate), string(fhirmap.QMinuteVol),
+	string(fhirmap.QVCO2), string(fhirmap.QPETCO2),
+}
+
+// ventBuckets is how many buckets the ventilator series get over a period
+// at most: enough for a plot a few hundred points wide, few enough that a
+// 30-day stay of minute data stays far below the page-weight budget.
+const ventBuckets = 360
+
+// Timeline reads a patient's plotted series. With an open period the
+// extent of the patient's blood gases is used (padded by an hour) for the
+// ventilator series; ok is false when the patient has nothing stored.
+func (s *Store) Timeline(ctx context.Context, patient string, from, to time.Time) (tl Timeline, ok bool, err error) {
+	tl = Timeline{Patient: patient, From: from, To: to}
+	if from.IsZero() || to.IsZero() {
+		var lo, hi *time.Time
+		if err := s.pool.QueryRow(ctx, extentSQL, patient).Scan(&lo, &hi); err != nil {
+			return tl, false, fmt.Errorf("patient extent: %w", err)
+		}
+		if lo == nil {
+			return tl, false, nil
+		}
+		if from.IsZero() {
+			tl.From = lo.UTC().Add(-time.Hour).Truncate(time.Hour)
+		}
+		if to.IsZero() {
+			tl.To = hi.UTC().Add(time.Hour).Truncate(time.Hour).Add(time.Hour)
+		}
+	}
+	span := tl.To.Sub(tl.From)
+	tl.Bucket = max(time.Minute, (span / ventBuckets).Truncate(time.Minute))
+	b := &pgx.Batch{}
+	b.Queue(timelinePointsSQL, patient, tl.From, tl.To)
+	b.Queue(timelineRefusalsSQL, patient, tl.From, tl.To)
+	b.Queue(timelineMeasuredSQL, patient, tl.From, tl.To)
+	b.Queue(timelineVentSQL, patient, tl.From, tl.To, tl.Bucket, tl.From, VentQuantities)
+	br := s.pool.SendBatch(ctx, b)
+	defer br.Close()
+	rows, err := br.Query()
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline values: %w", err)
+	}
+	var p Point
+	var unit, retracted string
+	var current bool
+	_, err = pgx.ForEachRow(rows, []any{&p.Key, &p.ObservationID, &p.Kind, &p.Effective, &p.Value, &unit, &p.Version,
+		&p.Status, &retracted, &current}, func() error {
+		p.Effective = p.Effective.UTC()
+		if p.Status == string(fhirmap.StatusEnteredInError) {
+			tl.Marks = append(tl.Marks, Mark{Key: p.Key, Kind: p.Kind, Effective: p.Effective, What: "retracted", Reason: retracted})
+			return nil
+		}
+		x := p
+		x.Published = fhirmap.FormatValue(p.Kind, p.Value)
+		x.DisplayUnit = postgres.DisplayUnit(unit)
+		tl.Points = append(tl.Points, x)
+		return nil
+	})
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline values: %w", err)
+	}
+	rows, err = br.Query()
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline refusals: %w", err)
+	}
+	var m Mark
+	_, err = pgx.ForEachRow(rows, []any{&m.Key, &m.Kind, &m.Effective, &m.Reason}, func() error {
+		x := m
+		x.Effective, x.What = x.Effective.UTC(), "refused"
+		tl.Marks = append(tl.Marks, x)
+		return nil
+	})
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline refusals: %w", err)
+	}
+	rows, err = br.Query()
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline measured PaCO2: %w", err)
+	}
+	_, err = pgx.ForEachRow(rows, []any{&p.Key, &p.ObservationID, &p.Effective, &p.Value, &unit, &p.Version, &p.Status}, func() error {
+		x := p
+		x.Kind, x.Effective = "pco2", x.Effective.UTC()
+		x.Published, x.DisplayUnit = shownNumber(x.Value), postgres.DisplayUnit(unit)
+		tl.Measured = append(tl.Measured, x)
+		return nil
+	})
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline measured PaCO2: %w", err)
+	}
+	rows, err = br.Query()
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline ventilator: %w", err)
+	}
+	var v Bucket
+	_, err = pgx.ForEachRow(rows, []any{&v.Quantity, &v.Unit, &v.Start, &v.Mean, &v.Min, &v.Max, &v.Count}, func() error {
+		x := v
+		x.Start = x.Start.UTC()
+		tl.Vent = append(tl.Vent, x)
+		return nil
+	})
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline ventilator: %w", err)
+	}
+	sortMeasured(tl.Measured)
+	return tl, len(tl.Points)+len(tl.Marks)+len(tl.Vent) > 0, br.Close()
+}
+
+func optTime(t time.Time) *time.Time {
+	if t.IsZero() {
+		return nil
+	}
+	return &t
+}
