@@ -340,7 +340,7 @@ func (s *Server) timelinePage(w http.ResponseWriter, r *http.Request) (*page, bo
 		mt.add(when(m.Effective), lnk(m.Kind, valueHref(m.Key)), txt(m.What), txt(m.Reason))
 	}
 	base := patientHref(ref)
-	d := patientData{Patient: ref, ID: id, Bucket: tl.Bucket.String(), Report: base + "/report" + periodQuery(r.URL.Query())}
+	d := patientData{Patient: ref, ID: id, Bucket: spanText(tl.Bucket), Report: base + "/report" + periodQuery(r.URL.Query())}
 	if !tl.From.IsZero() {
 		d.From, d.To = tl.From.Format("2006-01-02T15:04"), tl.To.Format("2006-01-02T15:04")
 	}
@@ -348,7 +348,7 @@ func (s *Server) timelinePage(w http.ResponseWriter, r *http.Request) (*page, bo
 	for _, span := range []time.Duration{24 * time.Hour, 6 * time.Hour} {
 		if tl.To.Sub(tl.From) > span {
 			q := url.Values{"from": {tl.To.Add(-span).Format(time.RFC3339)}, "to": {tl.To.Format(time.RFC3339)}}
-			d.Zoom = append(d.Zoom, zoomLink{"last " + strings.TrimSuffix(span.String(), "0m0s"), base + "?" + q.Encode()})
+			d.Zoom = append(d.Zoom, zoomLink{"last " + spanText(span), base + "?" + q.Encode()})
 		}
 	}
 	return &page{Title: ref, Nav: "patients", Figures: figs, Tables: []*Table{vt, mt}, Data: d}, true
@@ -369,7 +369,7 @@ func (s *Server) report(w http.ResponseWriter, r *http.Request) {
 
 // versionView is one version on the value page.
 type versionView struct {
-	postgres.Version
+	V         postgres.Version
 	Inputs    *Table
 	Constants *Table
 	Links     []zoomLink
@@ -402,7 +402,7 @@ func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 		for _, c := range v.Constants {
 			ct.add(txt(c.Name), txt(strconv.FormatFloat(c.Value, 'g', -1, 64)), txt(postgres.DisplayUnit(c.Unit)), txt(c.Source))
 		}
-		vv := versionView{Version: v, Inputs: in, Constants: ct}
+		vv := versionView{V: v, Inputs: in, Constants: ct}
 		for _, m := range v.Messages {
 			q := url.Values{"key": {h.Key}, "version": {strconv.Itoa(v.Version)}, "type": {m.ResourceType}}
 			vv.Links = append(vv.Links, zoomLink{fmt.Sprintf("published %s (JSON, %d bytes, SHA-256 %s)", m.ResourceType, m.SizeBytes, m.Digest), "/published?" + q.Encode()})
@@ -413,14 +413,14 @@ func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 	rt := &Table{ID: "refusals", Title: "Refusals",
 		Columns: []string{"refusal id", "reason", "detail", "current", "recorded", "blood-gas time"}}
 	type refusalView struct {
-		postgres.Refusal
+		R      postgres.Refusal
 		Inputs *Table
 	}
 	var refusals []refusalView
 	for _, x := range h.Refusals {
 		rt.add(txt(strconv.FormatInt(x.ID, 10)), txt(x.Reason), txt(x.Detail), txt(strconv.FormatBool(x.Current)), when(x.Recorded), when(x.Effective))
 		in := inputsTable(fmt.Sprintf("considered-%d", x.ID), x.Considered)
-		refusals = append(refusals, refusalView{Refusal: x, Inputs: in})
+		refusals = append(refusals, refusalView{R: x, Inputs: in})
 		tables = append(tables, in)
 	}
 	tables = append(tables, rt)
@@ -448,11 +448,12 @@ func optVersion(v int) string {
 }
 
 func splitKey(key string) (patient, gas, kind string) {
-	parts := strings.SplitN(key, "|", 3)
-	for len(parts) < 3 {
-		parts = append(parts, "")
+	// The blood-gas key holds "|" itself (fact key: resource#system|code).
+	first, last := strings.Index(key, "|"), strings.LastIndex(key, "|")
+	if first < 0 || first == last {
+		return key, "", ""
 	}
-	return parts[0], parts[1], parts[2]
+	return key[:first], key[first+1 : last], key[last+1:]
 }
 
 func inputsTable(id string, ins []postgres.Input) *Table {
@@ -461,7 +462,7 @@ func inputsTable(id string, ins []postgres.Input) *Table {
 	for _, in := range ins {
 		sent := ""
 		if in.SourceValue != nil {
-			sent = shownNumber(*in.SourceValue) + " " + in.SourceUnit
+			sent = strings.TrimSpace(shownNumber(*in.SourceValue) + " " + displayUnit(in.SourceUnit))
 		}
 		tm, off := "patient-level", ""
 		if in.Effective != nil {
@@ -678,3 +679,36 @@ func (s *Server) discrepancies(w http.ResponseWriter, r *http.Request) {
 }
 
 var _ = template.HTML("")
+
+// spanText writes a whole number of minutes, hours or days for people.
+func spanText(d time.Duration) string {
+	switch {
+	case d%(24*time.Hour) == 0:
+		return plural(int(d/(24*time.Hour)), "day")
+	case d%time.Hour == 0:
+		return plural(int(d/time.Hour), "hour")
+	case d%time.Minute == 0:
+		return plural(int(d/time.Minute), "minute")
+	}
+	return d.String()
+}
+
+func plural(n int, unit string) string {
+	if n == 1 {
+		return unit
+	}
+	return strconv.Itoa(n) + " " + unit + "s"
+}
+
+// displayUnit is the unit as people read it; a UCUM annotation such as
+// {breaths}/min reads as /min.
+func displayUnit(ucum string) string {
+	u := postgres.DisplayUnit(ucum)
+	for {
+		i, j := strings.Index(u, "{"), strings.Index(u, "}")
+		if i < 0 || j < i {
+			return u
+		}
+		u = u[:i] + u[j+1:]
+	}
+}

@@ -331,7 +331,7 @@ func ventFigure(tl Timeline, quantity string) (Figure, error) {
 		lo = append(lo, plotter.XY{X: x, Y: b.Min})
 		hi = append(hi, plotter.XY{X: x, Y: b.Max})
 	}
-	caption := fmt.Sprintf("Mean per %s of the readings sent (thin lines: lowest and highest in each %s).", tl.Bucket, tl.Bucket)
+	caption := fmt.Sprintf("Mean per %s of the readings sent (thin dashed lines: lowest and highest in each).", spanText(tl.Bucket))
 	if len(mean) == 0 {
 		return Figure{ID: id, Title: title, Empty: true, Caption: caption}, nil
 	}
