@@ -14,13 +14,15 @@ CREATE INDEX refusal_patient_ref_effective ON refusal (patient_ref, effective);
 -- review_patient_gas: one row per blood gas that has any derived value or
 -- refusal, with the patient reference (never the hash), the blood-gas time
 -- and what the current state of its keys says. The console's patient list
--- counts these per patient.
+-- counts these per patient. A key whose latest version is a retraction
+-- counts as retracted even when a refusal came after it (the blood gas was
+-- withdrawn, so nothing can be derived again): it is then refused too.
 CREATE VIEW review_patient_gas AS
 SELECT h.patient_ref, h.blood_gas_key,
        min(coalesce(d.effective, r.effective)) AS effective,
        count(*) FILTER (WHERE NOT h.refused AND h.status <> 'entered-in-error') AS derived,
        count(*) FILTER (WHERE h.refused) AS refused,
-       count(*) FILTER (WHERE h.status = 'entered-in-error' AND NOT h.refused) AS retracted,
+       count(*) FILTER (WHERE h.status = 'entered-in-error') AS retracted,
        count(*) FILTER (WHERE h.status IN ('amended', 'corrected')) AS amended,
        max(abs(d.value)) FILTER (WHERE h.kind = 'paco2-measured-minus-predicted' AND NOT h.refused
                                  AND h.status <> 'entered-in-error') AS discrepancy_mmhg,

@@ -63,7 +63,8 @@ type Figure struct {
 	Height  int
 	Areas   []Area
 	Empty   bool
-	SVGSize int // bytes of the SVG itself
+	SVGSize int      // bytes of the SVG itself
+	Refs    []string // the reference lines with their sources, as text beside the image
 }
 
 var (
@@ -232,7 +233,11 @@ func (s figureSpec) render(tl Timeline, link func(string) string) (Figure, error
 		span = math.Abs(hi)*0.2 + 1
 	}
 	p.Y.Min, p.Y.Max = lo-0.1*span, hi+span*(0.25+0.14*float64(legendEntries(s)))
-	return finish(p, s.id, s.title, s.caption, areas)
+	f, err := finish(p, s.id, s.title, s.caption, areas)
+	for _, r := range s.refs {
+		f.Refs = append(f.Refs, r.label)
+	}
+	return f, err
 }
 
 func legendEntries(s figureSpec) int {

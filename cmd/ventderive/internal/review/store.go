@@ -44,7 +44,7 @@ type PatientRow struct {
 	BloodGases  int       // blood gases with any derived value or refusal
 	Derived     int       // current derived values (retractions excluded)
 	Refusals    int       // keys whose current state is a refusal
-	Retractions int       // keys whose current state is a retraction
+	Retractions int       // keys whose latest version is a retraction (a refusal may follow it)
 	Amended     int       // keys whose current version is amended or corrected
 	MaxDiscMmHg *float64  // largest current |measured - predicted PaCO2|
 	First, Last time.Time // blood-gas times
@@ -185,7 +185,7 @@ const timelinePointsSQL = `
 SELECT key, observation_id::text, kind, effective, value, unit, version, status, retracted, is_current
 FROM review_derivation
 WHERE patient_ref = $1 AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
-  AND is_current
+  AND (is_current OR (status = 'entered-in-error' AND superseded_by_version IS NULL))
 ORDER BY effective, kind`
 
 const timelineRefusalsSQL = `
