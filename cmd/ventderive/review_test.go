@@ -35,6 +35,7 @@ import (
 type consoleStore struct {
 	admin, reviewer string
 	adminPool       *pgxpool.Pool
+	demoOutput      string
 }
 
 func newConsoleStore(t *testing.T, ctx context.Context) consoleStore {
@@ -69,7 +70,7 @@ func newConsoleStore(t *testing.T, ctx context.Context) consoleStore {
 		t.Fatal(err)
 	}
 	t.Cleanup(pool.Close)
-	return consoleStore{admin: m[1], reviewer: reviewerURL(t, m[1]), adminPool: pool}
+	return consoleStore{admin: m[1], reviewer: reviewerURL(t, m[1]), adminPool: pool, demoOutput: stdout.String()}
 }
 
 // console starts the console over the store as the reviewer role, as
@@ -354,6 +355,36 @@ func TestReviewConsole(t *testing.T) {
 		}
 		if h.Get("Cache-Control") != "no-store" || h.Get("X-Frame-Options") != "DENY" || h.Get("X-Content-Type-Options") != "nosniff" {
 			t.Errorf("headers: %v", h)
+		}
+	})
+
+	t.Run("demo --keep prints a working console command", func(t *testing.T) {
+		if !regexp.MustCompile(`(?m)^  go run ./cmd/ventderive review$`).MatchString(cs.demoOutput) {
+			t.Fatalf("demo --keep does not print the console command:\n%s", cs.demoOutput)
+		}
+		// The printed command takes DATABASE_URL as exported by the line
+		// above it; run it so (on a free port) as the reviewer role.
+		var out lockedBuilder
+		e := env{getenv: func(string) string { return "" }, stdin: strings.NewReader(""), stdout: &out, stderr: &out}
+		sctx, stop := context.WithCancel(ctx)
+		ready := make(chan string, 1)
+		done := make(chan error, 1)
+		go func() {
+			done <- serveReview(sctx, reviewConfig{databaseURL: cs.reviewer, listen: "127.0.0.1:0"}, slog.New(slog.NewJSONHandler(&out, nil)), e, ready)
+		}()
+		var base string
+		select {
+		case base = <-ready:
+		case err := <-done:
+			t.Fatalf("review: %v\n%s", err, out.String())
+		}
+		resp, body := get(t, http.DefaultClient, base+"patients")
+		stop()
+		if err := <-done; err != nil {
+			t.Errorf("review shut down with %v", err)
+		}
+		if resp.StatusCode != 200 || !strings.Contains(body, patient) {
+			t.Errorf("the console over the kept store: status %d, patient %s listed: %v", resp.StatusCode, patient, strings.Contains(body, patient))
 		}
 	})
 

@@ -312,7 +312,7 @@ func (s *Server) timelinePage(w http.ResponseWriter, r *http.Request) (*page, bo
 		http.Error(w, "no derived values or refusals for this patient", http.StatusNotFound)
 		return nil, false
 	}
-	figs, err := figures(tl, valueHref)
+	figs, err := figures(tl, valueHref, func(p Point) string { return valueHref(p.ObservationID) })
 	if err != nil {
 		s.fail(w, r, err)
 		return nil, false

@@ -7,7 +7,6 @@ import (
 	"html/template"
 	"image/color"
 	"math"
-	"slices"
 	"strings"
 	"time"
 
@@ -31,6 +30,7 @@ const (
 
 // series is one plotted series: its points, glyph and legend text.
 type series struct {
+	id     string // short code, the data-series attribute of its areas
 	label  string
 	points []Point
 	shape  draw.GlyphDrawer
@@ -48,7 +48,8 @@ type refLine struct {
 type Area struct {
 	X, Y   int
 	Href   string
-	Title  string
+	Title  string // value, time, version and status, shown on hover
+	Alt    string // the value as published
 	Series string
 }
 
@@ -118,7 +119,7 @@ func lastSource(s string) string {
 }
 
 // figures builds the timeline's plots, in page order.
-func figures(tl Timeline, link func(key string) string) ([]Figure, error) {
+func figures(tl Timeline, link func(key string) string, open func(p Point) string) ([]Figure, error) {
 	byKind := map[string][]Point{}
 	for _, p := range tl.Points {
 		byKind[p.Kind] = append(byKind[p.Kind], p)
@@ -126,31 +127,31 @@ func figures(tl Timeline, link func(key string) string) ([]Figure, error) {
 	specs := []figureSpec{
 		{id: "paco2", title: "PaCO2: measured (blood gas) and predicted", yLabel: "PaCO2 (mmHg)",
 			series: []series{
-				{label: "measured PaCO2 (arterial blood gas)", points: tl.Measured, shape: draw.CircleGlyph{}, color: black},
-				{label: "predicted PaCO2 (derived)", points: byKind[fhirmap.KindPredictedPaCO2], shape: draw.TriangleGlyph{}, color: blue},
+				{id: "measured", label: "measured PaCO2 (arterial blood gas)", points: tl.Measured, shape: draw.CircleGlyph{}, color: black},
+				{id: "predicted", label: "predicted PaCO2 (derived)", points: byKind[fhirmap.KindPredictedPaCO2], shape: draw.TriangleGlyph{}, color: blue},
 			},
 			caption: "A measured point opens the derived value it fed (measured minus predicted where derived); a predicted point opens its value."},
 		{id: "deadspace", title: "Dead-space fraction VD/VT by method", yLabel: "VD/VT",
 			series: []series{
-				{label: "Bohr-Enghoff, measured mixed-expired PCO2", points: byKind[fhirmap.KindDeadSpaceEnghoff], shape: draw.SquareGlyph{}, color: blue},
-				{label: "Enghoff with measured VCO2 and VE", points: byKind[fhirmap.KindDeadSpaceVCO2], shape: draw.CircleGlyph{}, color: green},
-				{label: "ESTIMATE (VCO2 from an energy equation; no threshold applies)", points: byKind[fhirmap.KindDeadSpaceEstimated], shape: draw.RingGlyph{}, color: orange, dashed: true},
+				{id: "enghoff", label: "Bohr-Enghoff, measured mixed-expired PCO2", points: byKind[fhirmap.KindDeadSpaceEnghoff], shape: draw.SquareGlyph{}, color: blue},
+				{id: "vco2", label: "Enghoff with measured VCO2 and VE", points: byKind[fhirmap.KindDeadSpaceVCO2], shape: draw.CircleGlyph{}, color: green},
+				{id: "estimate", label: "ESTIMATE (VCO2 from an energy equation; no threshold applies)", points: byKind[fhirmap.KindDeadSpaceEstimated], shape: draw.RingGlyph{}, color: orange, dashed: true},
 			},
 			refs:    refLines("deadspace"),
 			caption: "Filled glyphs: measured methods. Hollow rings on a dashed line: the estimate, which the thresholds do not apply to."},
 		{id: "gradient", title: "Arterial to end-tidal PCO2 gradient (Pa-ETCO2)", yLabel: "Pa-ETCO2 (mmHg)",
-			series: []series{{label: "Pa-ETCO2", points: byKind[fhirmap.KindPaCO2PETCO2Gradient], shape: draw.CircleGlyph{}, color: purple}},
+			series: []series{{id: "gradient", label: "Pa-ETCO2", points: byKind[fhirmap.KindPaCO2PETCO2Gradient], shape: draw.CircleGlyph{}, color: purple}},
 			refs:   refLines(fhirmap.KindPaCO2PETCO2Gradient)},
 		{id: "avdsf", title: "Alveolar dead-space fraction", yLabel: "AVDSF",
-			series: []series{{label: "alveolar dead-space fraction", points: byKind[fhirmap.KindAlveolarDeadSpace], shape: draw.CircleGlyph{}, color: green}},
+			series: []series{{id: "avdsf", label: "alveolar dead-space fraction", points: byKind[fhirmap.KindAlveolarDeadSpace], shape: draw.CircleGlyph{}, color: green}},
 			refs:   refLines(fhirmap.KindAlveolarDeadSpace)},
 		{id: "vr", title: "Ventilatory ratio (Sinha)", yLabel: "VR",
-			series: []series{{label: "ventilatory ratio", points: byKind[fhirmap.KindVentilatoryRatio], shape: draw.CircleGlyph{}, color: blue}},
+			series: []series{{id: "vr", label: "ventilatory ratio", points: byKind[fhirmap.KindVentilatoryRatio], shape: draw.CircleGlyph{}, color: blue}},
 			refs:   refLines(fhirmap.KindVentilatoryRatio)},
 	}
 	var out []Figure
 	for _, s := range specs {
-		f, err := s.render(tl, link)
+		f, err := s.render(tl, open)
 		if err != nil {
 			return nil, fmt.Errorf("plot %s: %w", s.id, err)
 		}
@@ -186,7 +187,12 @@ func newPlot(tl Timeline, title, yLabel string) *plot.Plot {
 
 func unix(t time.Time) float64 { return float64(t.Unix()) }
 
-func (s figureSpec) render(tl Timeline, link func(string) string) (Figure, error) {
+// manyPoints is the number of points of a series beyond which its glyphs
+// are not drawn (the line is, and every point stays clickable): glyphs of
+// a month of blood gases would outweigh the page budget.
+const manyPoints = 150
+
+func (s figureSpec) render(tl Timeline, open func(Point) string) (Figure, error) {
 	p := newPlot(tl, s.title, s.yLabel)
 	lo, hi := math.Inf(1), math.Inf(-1)
 	var areas []pendingArea
@@ -200,9 +206,9 @@ func (s figureSpec) render(tl Timeline, link func(string) string) (Figure, error
 		for i, pt := range sr.points {
 			xys[i] = plotter.XY{X: unix(pt.Effective), Y: pt.Value}
 			lo, hi = min(lo, pt.Value), max(hi, pt.Value)
-			title := fmt.Sprintf("%s: %s %s at %s (version %d, %s)", sr.label, pt.Published, pt.DisplayUnit,
+			title := fmt.Sprintf("%s %s at %s (v%d %s)", pt.Published, pt.DisplayUnit,
 				pt.Effective.Format("2006-01-02 15:04"), pt.Version, pt.Status)
-			areas = append(areas, pendingArea{x: xys[i].X, y: xys[i].Y, href: link(pt.Key), title: title, series: sr.label})
+			areas = append(areas, pendingArea{x: xys[i].X, y: xys[i].Y, href: open(pt), title: title, alt: pt.Published, series: sr.id})
 		}
 		line, sc, err := plotter.NewLinePoints(xys)
 		if err != nil {
@@ -213,8 +219,13 @@ func (s figureSpec) render(tl Timeline, link func(string) string) (Figure, error
 		if sr.dashed {
 			line.LineStyle.Dashes = []vg.Length{vg.Points(4), vg.Points(3)}
 		}
-		p.Add(line, sc)
-		p.Legend.Add(fmt.Sprintf("%s (%d)", sr.label, len(sr.points)), line, sc)
+		if len(sr.points) > manyPoints {
+			p.Add(line)
+			p.Legend.Add(fmt.Sprintf("%s (%d)", sr.label, len(sr.points)), line)
+		} else {
+			p.Add(line, sc)
+			p.Legend.Add(fmt.Sprintf("%s (%d)", sr.label, len(sr.points)), line, sc)
+		}
 	}
 	if n == 0 {
 		return Figure{ID: s.id, Title: s.title, Empty: true, Caption: s.caption}, nil
@@ -251,9 +262,9 @@ func legendEntries(s figureSpec) int {
 }
 
 type pendingArea struct {
-	x, y        float64
-	href, title string
-	series      string
+	x, y             float64
+	href, title, alt string
+	series           string
 }
 
 // finish draws p to SVG and maps every pending area to image coordinates.
@@ -271,7 +282,7 @@ func finish(p *plot.Plot, id, title, caption string, pending []pendingArea) (Fig
 		SVG: template.URL("data:image/svg+xml;base64," + base64.StdEncoding.EncodeToString(buf.Bytes()))}
 	for _, a := range pending {
 		x, y := tx(a.x).Points(), plotHeight-ty(a.y).Points()
-		f.Areas = append(f.Areas, Area{X: int(math.Round(x)), Y: int(math.Round(y)), Href: a.href, Title: a.title, Series: a.series})
+		f.Areas = append(f.Areas, Area{X: int(math.Round(x)), Y: int(math.Round(y)), Href: a.href, Title: a.title, Alt: a.alt, Series: a.series})
 	}
 	return f, nil
 }
@@ -301,7 +312,7 @@ func marksFigure(tl Timeline, link func(string) string) (Figure, error) {
 			}
 			xys = append(xys, plotter.XY{X: unix(m.Effective), Y: r.y})
 			why := m.Reason
-			pending = append(pending, pendingArea{x: unix(m.Effective), y: r.y, href: link(m.Key), series: r.what,
+			pending = append(pending, pendingArea{x: unix(m.Effective), y: r.y, href: link(m.Key), series: r.what, alt: r.what,
 				title: fmt.Sprintf("%s %s at %s: %s", m.Kind, r.what, m.Effective.Format("2006-01-02 15:04"), why)})
 		}
 		if len(xys) == 0 {
@@ -318,57 +329,42 @@ func marksFigure(tl Timeline, link func(string) string) (Figure, error) {
 	return finish(p, "marks", title, "A cross is a refusal (reason on hover), a pyramid a retraction; each opens its history.", pending)
 }
 
-// ventFigure plots one ventilator input as the mean per bucket, with the
-// range of the bucket as a thin band (not clickable: an input, not a
-// derived value; the value pages list the exact readings used).
+// ventFigure plots one ventilator input as sampled (not clickable: an
+// input, not a derived value; the value pages list the exact readings
+// used).
 func ventFigure(tl Timeline, quantity string) (Figure, error) {
 	unit := fhirmap.Quantity(quantity).Unit()
 	shown := physio.DisplayUnit(unit)
 	title := ventTitles[quantity]
 	id := "vent-" + quantity
-	var mean, lo, hi plotter.XYs
+	var xys plotter.XYs
 	for _, b := range tl.Vent {
-		if b.Quantity != quantity {
-			continue
+		if b.Quantity == quantity {
+			xys = append(xys, plotter.XY{X: unix(b.Effective), Y: b.Value})
 		}
-		x := unix(b.Start.Add(tl.Bucket / 2))
-		mean = append(mean, plotter.XY{X: x, Y: b.Mean})
-		lo = append(lo, plotter.XY{X: x, Y: b.Min})
-		hi = append(hi, plotter.XY{X: x, Y: b.Max})
 	}
-	caption := fmt.Sprintf("Mean per %s of the readings sent (thin dashed lines: lowest and highest in each).", spanText(tl.Bucket))
-	if len(mean) == 0 {
+	caption := fmt.Sprintf("The first reading sent in each %s (a sample, not a mean).", spanText(tl.Bucket))
+	if len(xys) == 0 {
 		return Figure{ID: id, Title: title, Empty: true, Caption: caption}, nil
 	}
 	p := newPlot(tl, title, fmt.Sprintf("%s (%s)", title, shown))
 	p.X.Label.Text = "time (UTC)"
 	ymin, ymax := math.Inf(1), math.Inf(-1)
-	for _, xy := range slices.Concat(lo, hi) {
+	for _, xy := range xys {
 		ymin, ymax = min(ymin, xy.Y), max(ymax, xy.Y)
 	}
-	for _, s := range []struct {
-		xys   plotter.XYs
-		label string
-		width float64
-		dash  bool
-	}{{mean, "mean", 1.4, false}, {lo, "lowest", 0.5, true}, {hi, "highest", 0.5, true}} {
-		l, err := plotter.NewLine(s.xys)
-		if err != nil {
-			return Figure{}, err
-		}
-		l.LineStyle.Color, l.LineStyle.Width = blue, vg.Points(s.width)
-		if s.dash {
-			l.LineStyle.Color = grey
-			l.LineStyle.Dashes = []vg.Length{vg.Points(2), vg.Points(2)}
-		}
-		p.Add(l)
-		p.Legend.Add(s.label, l)
+	l, err := plotter.NewLine(xys)
+	if err != nil {
+		return Figure{}, err
 	}
+	l.LineStyle.Color, l.LineStyle.Width = blue, vg.Points(1)
+	p.Add(l)
+	p.Legend.Add(fmt.Sprintf("reading, one per %s (%d)", spanText(tl.Bucket), len(xys)), l)
 	span := ymax - ymin
 	if span == 0 {
 		span = math.Abs(ymax)*0.2 + 1
 	}
-	p.Y.Min, p.Y.Max = ymin-0.1*span, ymax+0.6*span
+	p.Y.Min, p.Y.Max = ymin-0.1*span, ymax+0.4*span
 	return finish(p, id, title, caption, nil)
 }
 
