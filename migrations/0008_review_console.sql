@@ -3,13 +3,16 @@
 -- patient reference, which 0001 does not index (its indexes use the keyed
 -- hash, which the reviewer never sees). Indexes only, and one view.
 --
--- Cost on the write path: one more index entry per fact, derivation and
--- refusal row. The timeline of a 30-day stay with minute ventilator data
+-- Cost on the write path: one more index entry per fact, derivation,
+-- refusal and head row. The timeline of a 30-day stay with minute ventilator data
 -- reads some 200,000 facts of one patient; without the index the query scans
 -- every patient's facts.
 CREATE INDEX fact_patient_ref_quantity_effective ON fact (patient_ref, quantity, effective);
 CREATE INDEX derivation_patient_ref_effective ON derivation (patient_ref, effective);
 CREATE INDEX refusal_patient_ref_effective ON refusal (patient_ref, effective);
+-- head rows are updated in place; their patient_ref and blood_gas_key never
+-- change, so the index keeps those updates heap-only (HOT).
+CREATE INDEX head_patient_ref_blood_gas ON head (patient_ref, blood_gas_key);
 
 -- review_patient_gas: one row per blood gas that has any derived value or
 -- refusal, with the patient reference (never the hash), the blood-gas time

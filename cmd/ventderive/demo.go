@@ -548,4 +548,3 @@ func scenarioInputs(sc scenario.Scenario) (good, poison map[[32]byte]bool) {
 	}
 	return good, poison
 }
-

@@ -190,7 +190,7 @@ func reviewBrowserTest(t *testing.T, ctx context.Context, cs consoleStore, base,
 			convert_from(o.payload, 'UTF8')::jsonb #>> '{valueQuantity,value}'
 		FROM head h JOIN derivation d ON d.id = h.derivation_id
 		JOIN outbox o ON o.msg_id = 'Observation/' || d.observation_id || '/_history/' || d.version
-		WHERE h.key = $1`, key).Scan(&version, &basis, &unit, &published); err != nil {
+		WHERE d.observation_id::text = $1 OR h.key = $1`, key).Scan(&version, &basis, &unit, &published); err != nil {
 		t.Fatal(err)
 	}
 	shownValue := text(`#value-` + strconv.Itoa(version))

@@ -73,19 +73,20 @@ ORDER BY patient_ref
 LIMIT $8 OFFSET $9`
 
 // latestSQL reads the current values of each listed patient's latest blood
-// gas with a current value in the period.
+// gas with a current value in the period (through the patient-reference
+// index of migration 0008: a page of patients, not the whole store).
 const latestSQL = `
-WITH last AS (
-    SELECT DISTINCT ON (patient_ref) patient_ref, blood_gas_key
-    FROM review_patient_gas
-    WHERE patient_ref = ANY($1) AND derived > 0
-      AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
+WITH cur AS (
+    SELECT patient_ref, blood_gas_key, effective, kind, value, unit, observation_id
+    FROM review_derivation
+    WHERE patient_ref = ANY($1) AND is_current AND status <> 'entered-in-error'
+      AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)),
+last AS (
+    SELECT DISTINCT ON (patient_ref) patient_ref, blood_gas_key FROM cur
     ORDER BY patient_ref, effective DESC, blood_gas_key DESC)
-SELECT d.patient_ref, d.kind, d.value, d.unit, d.observation_id::text
-FROM last l
-JOIN review_derivation d ON d.patient_ref = l.patient_ref AND d.blood_gas_key = l.blood_gas_key
-WHERE d.is_current AND d.status <> 'entered-in-error'
-ORDER BY d.patient_ref, d.kind`
+SELECT c.patient_ref, c.kind, c.value, c.unit, c.observation_id::text
+FROM cur c JOIN last l ON l.patient_ref = c.patient_ref AND l.blood_gas_key = c.blood_gas_key
+ORDER BY c.patient_ref, c.kind`
 
 // Patients lists patients by reference (paged: more is true when rows
 // follow) with their counts and latest values.
