@@ -3,18 +3,28 @@ package main
 import (
 	"bytes"
 	"context"
+	"crypto/ecdsa"
+	"crypto/elliptic"
+	"crypto/rand"
 	"crypto/sha256"
+	"crypto/tls"
+	"crypto/x509"
+	"crypto/x509/pkix"
 	"encoding/csv"
 	"encoding/hex"
 	"encoding/json"
+	"encoding/pem"
 	"errors"
 	"io"
 	"log/slog"
+	"math/big"
+	"net"
 	"net/http"
 	"net/http/httptest"
 	"net/netip"
 	"net/url"
 	"os"
+	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
@@ -475,4 +485,88 @@ func TestReviewAccess(t *testing.T) {
 			}
 		})
 	}
+}
+
+// TestReviewTLSBeyondLoopback: `review` bound beyond loopback with TLS and
+// the built-in credential serves HTTPS, and refuses a request without the
+// credential. The stylesheet needs no database, so none is reached.
+func TestReviewTLSBeyondLoopback(t *testing.T) {
+	dir := t.TempDir()
+	certFile, keyFile, pool := selfSigned(t, dir)
+	var out lockedBuilder
+	e := env{getenv: func(string) string { return "" }, stdin: strings.NewReader(""), stdout: &out, stderr: &out}
+	ctx, stop := context.WithCancel(context.Background())
+	defer stop()
+	ready := make(chan string, 1)
+	done := make(chan error, 1)
+	go func() {
+		done <- serveReview(ctx, reviewConfig{databaseURL: "postgres://nobody@127.0.0.1:1/none", listen: "0.0.0.0:0",
+			tlsCert: certFile, tlsKey: keyFile, user: "reviewer", password: "correct horse"}, slog.New(slog.NewJSONHandler(&out, nil)), e, ready)
+	}()
+	var base string
+	select {
+	case base = <-ready:
+	case err := <-done:
+		t.Fatalf("review: %v\n%s", err, out.String())
+	}
+	if !strings.HasPrefix(base, "https://") {
+		t.Fatalf("console URL %s, want https", base)
+	}
+	u, _ := url.Parse(base)
+	base = "https://127.0.0.1:" + u.Port() + "/"
+	c := &http.Client{Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: pool}}}
+	resp, _ := get(t, c, base+"static/style.css")
+	if resp.StatusCode != 401 || resp.TLS == nil {
+		t.Errorf("without the credential: status %d (TLS %v), want 401 over TLS", resp.StatusCode, resp.TLS != nil)
+	}
+	req, _ := http.NewRequest("GET", base+"static/style.css", nil)
+	req.SetBasicAuth("reviewer", "correct horse")
+	r2, err := c.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	r2.Body.Close()
+	if r2.StatusCode != 200 {
+		t.Errorf("with the credential: status %d, want 200", r2.StatusCode)
+	}
+	stop()
+	if err := <-done; err != nil {
+		t.Errorf("shutdown: %v", err)
+	}
+	if strings.Contains(out.String(), "correct horse") {
+		t.Errorf("the password reached the output")
+	}
+}
+
+// selfSigned writes a certificate for 127.0.0.1 and its key, and returns
+// a pool that trusts it.
+func selfSigned(t *testing.T, dir string) (certFile, keyFile string, pool *x509.CertPool) {
+	t.Helper()
+	key, err := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
+	if err != nil {
+		t.Fatal(err)
+	}
+	tmpl := &x509.Certificate{SerialNumber: big.NewInt(1), Subject: pkix.Name{CommonName: "ventderive review test"},
+		NotBefore: time.Now().Add(-time.Hour), NotAfter: time.Now().Add(time.Hour),
+		IPAddresses: []net.IP{net.ParseIP("127.0.0.1")}, KeyUsage: x509.KeyUsageDigitalSignature,
+		ExtKeyUsage: []x509.ExtKeyUsage{x509.ExtKeyUsageServerAuth}}
+	der, err := x509.CreateCertificate(rand.Reader, tmpl, tmpl, &key.PublicKey, key)
+	if err != nil {
+		t.Fatal(err)
+	}
+	kb, err := x509.MarshalECPrivateKey(key)
+	if err != nil {
+		t.Fatal(err)
+	}
+	certFile, keyFile = filepath.Join(dir, "cert.pem"), filepath.Join(dir, "key.pem")
+	if err := os.WriteFile(certFile, pem.EncodeToMemory(&pem.Block{Type: "CERTIFICATE", Bytes: der}), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(keyFile, pem.EncodeToMemory(&pem.Block{Type: "EC PRIVATE KEY", Bytes: kb}), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	cert, _ := x509.ParseCertificate(der)
+	pool = x509.NewCertPool()
+	pool.AddCert(cert)
+	return certFile, keyFile, pool
 }
