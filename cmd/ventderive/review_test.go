@@ -447,6 +447,8 @@ func TestReviewAccess(t *testing.T) {
 		want   int
 	}{
 		{"password, none given", review.Config{Password: "s3cret", User: "reviewer"}, nil, "", "", 401},
+		{"password on loopback, none given", review.Config{Loopback: true, Password: "s3cret", User: "reviewer"}, nil, "", "", 401},
+		{"loopback without auth", review.Config{Loopback: true}, nil, "", "", 303},
 		{"password, wrong", review.Config{Password: "s3cret", User: "reviewer"}, nil, "reviewer", "guess", 401},
 		{"password, right", review.Config{Password: "s3cret", User: "reviewer"}, nil, "reviewer", "s3cret", 303},
 		{"proxy header from a trusted proxy", review.Config{ProxyHeader: "X-Forwarded-User",

@@ -14,6 +14,8 @@ import (
 	"strings"
 	"time"
 
+	"github.com/jackc/pgx/v5/pgconn"
+
 	"github.com/ventderive/ventderive/consumer/postgres"
 	"github.com/ventderive/ventderive/fhirmap"
 )
@@ -127,10 +129,15 @@ func writeCSV(w http.ResponseWriter, t *Table) {
 	cw.Flush()
 }
 
-// fail logs an error by route (no patient data: errors from the store
-// carry SQLSTATEs, not values) and answers 500.
+// fail logs an error by route and answers 500. A server error is logged
+// by its SQLSTATE only: its message may quote a parameter, and parameters
+// carry patient references.
 func (s *Server) fail(w http.ResponseWriter, r *http.Request, err error) {
-	s.log.Error("page failed", "route", r.Pattern, "err", err)
+	if pe, ok := errors.AsType[*pgconn.PgError](err); ok {
+		s.log.Error("page failed", "route", r.Pattern, "sqlstate", pe.Code)
+	} else {
+		s.log.Error("page failed", "route", r.Pattern, "err", err)
+	}
 	http.Error(w, "the store could not answer; see the service log", http.StatusInternalServerError)
 }
 
@@ -432,12 +439,28 @@ func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 }
 
 // settingsInForce is what the store records today of the site settings a
-// value was derived under: they are written into each version's basis
-// text and constants (apparatus dead space, target PaCO2, pairing window).
-// Hook: once the store keeps a snapshot of the site settings per version,
-// show that snapshot here instead.
-func settingsInForce(h postgres.History) string {
-	return "The site settings in force (apparatus dead space, target PaCO2, pairing window) are recorded in each version's basis and constants above; the store keeps no separate snapshot of them yet."
+// value was derived under: the constants each version recorded as given
+// by the site or caller (the target PaCO2, for instance); the apparatus
+// dead space and pairing window are not stored apart from the basis text.
+// Hook: once the store keeps a snapshot of the site settings per version
+// (issue 11), list that snapshot here instead.
+func settingsInForce(h postgres.History) []string {
+	var out []string
+	seen := map[string]bool{}
+	for _, v := range h.Versions {
+		for _, c := range v.Constants {
+			src := strings.ToLower(c.Source)
+			if !strings.Contains(src, "caller") && !strings.Contains(src, "site") {
+				continue
+			}
+			line := fmt.Sprintf("version %d: %s %s %s (%s)", v.Version, c.Name, strconv.FormatFloat(c.Value, 'g', -1, 64), displayUnit(c.Unit), c.Source)
+			if !seen[line] {
+				seen[line] = true
+				out = append(out, line)
+			}
+		}
+	}
+	return out
 }
 
 func optVersion(v int) string {
