@@ -1,6 +1,7 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"flag"
 	"fmt"
@@ -15,6 +16,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/chromedp/cdproto/cdp"
+	"github.com/chromedp/cdproto/emulation"
+	"github.com/chromedp/cdproto/page"
 	"github.com/chromedp/chromedp"
 
 	"github.com/ventderive/ventderive/cmd/ventderive/internal/review"
@@ -257,6 +261,39 @@ func reviewBrowserTest(t *testing.T, ctx context.Context, cs consoleStore, base,
 		do(p.path, chromedp.Navigate(base+p.path), chromedp.WaitVisible(p.wait))
 		screenshot(t, bctx, screens, p.name)
 	}
+	// The report prints: under print media the navigation and forms are
+	// gone, the banner, plots and values stay; Chromium makes a PDF of it.
+	media := func(m string) chromedp.Action[chromedp.Void] {
+		return chromedp.Func(func(ctx context.Context, tg *chromedp.Target) error {
+			_, err := cdp.Call(ctx, tg, emulation.SetEmulatedMedia, emulation.SetEmulatedMediaParams{Media: m})
+			return err
+		})
+	}
+	do("print media", media("print"))
+	printed, err := chromedp.Run(bctx, chromedp.Evaluate[[]string](`[getComputedStyle(document.querySelector('header')).display,
+		getComputedStyle(document.querySelector('#advisory')).display,
+		getComputedStyle(document.querySelector('#fig-deadspace')).display,
+		getComputedStyle(document.querySelector('#table-values')).display]`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if printed[0] != "none" || printed[1] == "none" || printed[2] == "none" || printed[3] == "none" {
+		t.Errorf("printed report: header, banner, plot, values displayed as %v; want the header alone hidden", printed)
+	}
+	pdf, err := chromedp.Run(bctx, func(ctx context.Context, tg *chromedp.Target) ([]byte, error) {
+		r, err := cdp.Call(ctx, tg, page.PrintToPDF, page.PrintToPDFParams{})
+		if err != nil {
+			return nil, err
+		}
+		return r.Data, nil
+	})
+	if err != nil || !bytes.HasPrefix(pdf, []byte("%PDF")) {
+		t.Errorf("report as PDF: %v (%d bytes)", err, len(pdf))
+	} else if err := os.WriteFile(filepath.Join(screens, "report.pdf"), pdf, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	do("screen media", media(""))
+
 	do("open the changes", chromedp.Navigate(base+"/quality/changes"), chromedp.WaitVisible(`#csv-changes`))
 	csvHref, err := chromedp.Run(bctx, chromedp.Evaluate[string](`document.querySelector('#csv-changes').href`))
 	if err != nil {

@@ -3,6 +3,7 @@ package review
 import (
 	"context"
 	"fmt"
+	"slices"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -50,6 +51,13 @@ type PatientRow struct {
 	First, Last time.Time // blood-gas times
 	Latest      []Latest  // current values of the latest blood gas with values
 }
+
+// listedKinds are the values the patient list shows for the latest blood
+// gas: the readings of the lungs. The values for a target PaCO2 (rate,
+// tidal volume) are advisory suggestions that need their basis beside
+// them; they are on the patient's pages, not in a list cell.
+var listedKinds = []string{fhirmap.KindDeadSpaceEnghoff, fhirmap.KindDeadSpaceVCO2, fhirmap.KindDeadSpaceEstimated,
+	fhirmap.KindPaCO2Discrepancy, fhirmap.KindPaCO2PETCO2Gradient, fhirmap.KindAlveolarDeadSpace, fhirmap.KindVentilatoryRatio}
 
 // Latest is one current value of a patient's latest blood gas.
 type Latest struct {
@@ -128,6 +136,9 @@ func (s *Store) Patients(ctx context.Context, f PatientFilter) (rows []PatientRo
 	var ref, kind, unit, obs string
 	var value float64
 	_, err = pgx.ForEachRow(lr, []any{&ref, &kind, &value, &unit, &obs}, func() error {
+		if !slices.Contains(listedKinds, kind) {
+			return nil
+		}
 		i := at[ref]
 		rows[i].Latest = append(rows[i].Latest, Latest{Kind: kind, Published: fhirmap.FormatValue(kind, value),
 			DisplayUnit: postgres.DisplayUnit(unit), ObservationID: obs})
