@@ -384,7 +384,7 @@ type versionView struct {
 
 func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 	key := r.URL.Query().Get("key")
-	if key == "" || len(key) > 400 {
+	if key == "" || len(key) > 2000 {
 		badRequest(w, "key: want a derivation key or an Observation id")
 		return
 	}
