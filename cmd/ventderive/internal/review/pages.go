@@ -420,14 +420,16 @@ func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 	rt := &Table{ID: "refusals", Title: "Refusals",
 		Columns: []string{"refusal id", "reason", "detail", "current", "recorded", "blood-gas time"}}
 	type refusalView struct {
-		R      postgres.Refusal
-		Inputs *Table
+		R       postgres.Refusal
+		Meaning string
+		Inputs  *Table
 	}
 	var refusals []refusalView
 	for _, x := range h.Refusals {
 		rt.add(txt(strconv.FormatInt(x.ID, 10)), txt(x.Reason), txt(x.Detail), txt(strconv.FormatBool(x.Current)), when(x.Recorded), when(x.Effective))
 		in := inputsTable(fmt.Sprintf("considered-%d", x.ID), x.Considered)
-		refusals = append(refusals, refusalView{R: x, Inputs: in})
+		in.Title = "Inputs considered"
+		refusals = append(refusals, refusalView{R: x, Meaning: reasonMeaning(x.Reason), Inputs: in})
 		tables = append(tables, in)
 	}
 	tables = append(tables, rt)
@@ -734,4 +736,14 @@ func displayUnit(ucum string) string {
 		}
 		u = u[:i] + u[j+1:]
 	}
+}
+
+// reasonMeaning is the catalogue's meaning of a refusal reason code.
+func reasonMeaning(code string) string {
+	for _, r := range fhirmap.Reasons {
+		if r.Code == code {
+			return r.Meaning
+		}
+	}
+	return ""
 }
