@@ -253,6 +253,9 @@ func TestReviewConsole(t *testing.T) {
 		if pts["marks"] != want {
 			t.Errorf("marks plot has %d marks, the store %d current refusals and retractions", pts["marks"], want)
 		}
+		if enc := cs.text(t, ctx, `SELECT min(encounter) FROM derivation WHERE patient_ref = $1`, patient); !strings.Contains(body, ">"+enc+"<") {
+			t.Errorf("the patient page does not name the stay %s", enc)
+		}
 		if !strings.Contains(body, "Nunn &amp; Hill") || !strings.Contains(body, "Tyburski") {
 			t.Errorf("reference lines' sources missing from the page")
 		}

@@ -292,6 +292,7 @@ type patientData struct {
 	Zoom     []zoomLink
 	Bucket   string
 	Report   string
+	Stays    []string
 }
 
 type zoomLink struct{ Label, Href string }
@@ -348,6 +349,12 @@ func (s *Server) timelinePage(w http.ResponseWriter, r *http.Request) (*page, bo
 	}
 	base := patientHref(ref)
 	d := patientData{Patient: ref, ID: id, Bucket: spanText(tl.Bucket), Report: base + "/report" + periodQuery(r.URL.Query())}
+	for _, e := range tl.Stays {
+		if e == "" {
+			e = "(no encounter sent)"
+		}
+		d.Stays = append(d.Stays, e)
+	}
 	if !tl.From.IsZero() {
 		d.From, d.To = tl.From.Format("2006-01-02T15:04"), tl.To.Format("2006-01-02T15:04")
 	}

@@ -191,6 +191,7 @@ type Timeline struct {
 	Marks    []Mark
 	Vent     []Bucket
 	Bucket   time.Duration // width of the ventilator buckets
+	Stays    []string      // encounter references of the period's derived values, "" for none sent
 }
 
 const timelinePointsSQL = `
@@ -238,6 +239,11 @@ CROSS JOIN LATERAL (
     LIMIT 1) r
 ORDER BY 1, 3`
 
+const timelineStaysSQL = `
+SELECT DISTINCT encounter FROM review_derivation
+WHERE patient_ref = $1 AND ($2::timestamptz IS NULL OR effective >= $2) AND ($3::timestamptz IS NULL OR effective < $3)
+ORDER BY 1`
+
 const extentSQL = `
 SELECT min(effective), max(effective) FROM review_patient_gas WHERE patient_ref = $1`
 
@@ -279,6 +285,7 @@ func (s *Store) Timeline(ctx context.Context, patient string, from, to time.Time
 	b.Queue(timelineRefusalsSQL, patient, tl.From, tl.To)
 	b.Queue(timelineMeasuredSQL, patient, tl.From, tl.To)
 	b.Queue(timelineVentSQL, patient, tl.From, tl.To, tl.Bucket, VentQuantities)
+	b.Queue(timelineStaysSQL, patient, tl.From, tl.To)
 	br := s.pool.SendBatch(ctx, b)
 	defer br.Close()
 	rows, err := br.Query()
@@ -345,6 +352,13 @@ func (s *Store) Timeline(ctx context.Context, patient string, from, to time.Time
 	})
 	if err != nil {
 		return tl, false, fmt.Errorf("timeline ventilator: %w", err)
+	}
+	rows, err = br.Query()
+	if err == nil {
+		tl.Stays, err = pgx.CollectRows(rows, pgx.RowTo[string])
+	}
+	if err != nil {
+		return tl, false, fmt.Errorf("timeline stays: %w", err)
 	}
 	sortMeasured(tl.Measured)
 	return tl, len(tl.Points)+len(tl.Marks)+len(tl.Vent) > 0, br.Close()
