@@ -5,7 +5,6 @@ import (
 	"encoding/csv"
 	"errors"
 	"fmt"
-	"html/template"
 	"net/http"
 	"net/url"
 	"regexp"
@@ -709,8 +708,6 @@ func (s *Server) discrepancies(w http.ResponseWriter, r *http.Request) {
 	s.render(w, r, "quality.html", &page{Title: "Discrepancies", Nav: "discrepancies", Tables: []*Table{t},
 		Data: qualityData{Action: "/quality/discrepancies", Threshold: strconv.FormatFloat(th, 'f', -1, 64)}})
 }
-
-var _ = template.HTML("")
 
 // spanText writes a whole number of minutes, hours or days for people.
 func spanText(d time.Duration) string {

@@ -26,7 +26,7 @@ type ReasonBin struct {
 	Count  int
 }
 
-// RefusalSeries is refusals per reason per bin of blood-gas time.
+// RefusalSeriesData is refusals per reason per bin of blood-gas time.
 type RefusalSeriesData struct {
 	Bin  time.Duration
 	Bins []ReasonBin
