@@ -358,6 +358,21 @@ func TestReviewConsole(t *testing.T) {
 		}
 	})
 
+	t.Run("no script and no inline style on any page", func(t *testing.T) {
+		for _, p := range []string{"/patients", "/patients/" + pid, "/patients/" + pid + "/report", "/quality/refusals",
+			"/quality/deadletters", "/quality/changes", "/quality/discrepancies"} {
+			_, body := get(t, c, ts.URL+p)
+			for _, bad := range []string{"<script", " style=", "<style", "javascript:", " onclick=", " onload="} {
+				if strings.Contains(body, bad) {
+					t.Errorf("%s contains %q: the CSP would block it", p, bad)
+				}
+			}
+			for _, src := range regexp.MustCompile(`(?:src|href)="(https?:)?//`).FindAllString(body, -1) {
+				t.Errorf("%s loads %s from elsewhere: the console must work offline", p, src)
+			}
+		}
+	})
+
 	t.Run("headers", func(t *testing.T) {
 		resp, _ := get(t, c, ts.URL+"/patients/"+pid)
 		h := resp.Header
