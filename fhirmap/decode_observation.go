@@ -68,6 +68,14 @@ func (d *decoder) match(cc *fhir.CodeableConcept) (info CodeInfo, coding Coding,
 			coding = Coding{System: deref(c.System), Code: deref(c.Code), Display: deref(c.Display)}
 			continue
 		}
+		if refinesBodyTemp(info, ci) {
+			// A body temperature coded both generically (8310-5, as the
+			// FHIR vital-signs profile requires) and by site: the site wins.
+			if ci.Detail != "" {
+				info.Detail = ci.Detail
+			}
+			continue
+		}
 		if ci.Quantity != info.Quantity || ci.Origin != info.Origin || ci.Detail != info.Detail ||
 			ci.TempCorrected != info.TempCorrected || ci.Panel != info.Panel {
 			conflict = true
@@ -75,6 +83,13 @@ func (d *decoder) match(cc *fhir.CodeableConcept) (info CodeInfo, coding Coding,
 		info.Specimen = combineSpecimen(info.Specimen, ci.Specimen)
 	}
 	return
+}
+
+// refinesBodyTemp reports whether two codings of one body temperature
+// differ only in that one names the site and the other does not.
+func refinesBodyTemp(a, b CodeInfo) bool {
+	return a.Quantity == QBodyTemp && b.Quantity == QBodyTemp && a.Origin == b.Origin &&
+		(a.Detail == "" || b.Detail == "" || a.Detail == b.Detail)
 }
 
 // firstCoding names an unknown code for Ignored.

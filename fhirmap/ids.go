@@ -14,7 +14,7 @@ import (
 // package. It is recorded on every Derivation, in Observation.method and as
 // the Provenance policy. Raise it when a rule changes the value or the
 // inputs a derivation uses, so that a reviewer can tell results apart.
-const Algorithm = "ventderive-derive/2"
+const Algorithm = "ventderive-derive/3"
 
 // IDNamespace is the UUID namespace of the service's resource ids. It was
 // generated once at random for this service and must never change: it makes
