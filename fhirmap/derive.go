@@ -505,16 +505,19 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 	return x.derivation(kind, res, g), Refusal{}, true
 }
 
-// temperatureDependent lists the kinds that combine PaCO2 with a gas-phase
-// quantity and so follow physio.TemperatureConvention. The estimated
-// dead-space fraction follows its published method (K 0.86, PaCO2 as
-// reported); the two for-target values use the ratio PaCO2 / target, which
-// the correction does not change (both read at 37 Cel), and the tidal volume
-// for target takes its dead space from a corrected fraction.
+// temperatureDependent lists the kinds that combine the measured PaCO2 with
+// a gas-phase quantity and so follow physio.TemperatureConvention: without
+// a measured body temperature their basis says the PaCO2 was used
+// uncorrected. The estimated dead-space fraction follows its published
+// method (K 0.86, PaCO2 as reported); predicted PaCO2 uses no measured
+// PaCO2 (its K(T) step records the temperature assumed) and measured minus
+// predicted compares both at 37 Cel; the two for-target values use the
+// ratio PaCO2 / target, which the correction does not change (both read at
+// 37 Cel), and the tidal volume for target takes its dead space from a
+// corrected fraction.
 var temperatureDependent = map[string]bool{
 	KindDeadSpaceEnghoff: true, KindDeadSpaceVCO2: true, KindDeadSpaceVolume: true, KindAlveolarVentilation: true,
-	KindPredictedPaCO2: true, KindPaCO2Discrepancy: true, KindVentilatoryRatio: true,
-	KindPaCO2PETCO2Gradient: true, KindAlveolarDeadSpace: true, KindTidalVolumeForTarget: true,
+	KindVentilatoryRatio: true, KindPaCO2PETCO2Gradient: true, KindAlveolarDeadSpace: true, KindTidalVolumeForTarget: true,
 }
 
 // hasMeasuredFraction reports whether a measured dead-space fraction
