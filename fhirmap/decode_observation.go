@@ -85,6 +85,33 @@ func (d *decoder) match(cc *fhir.CodeableConcept) (info CodeInfo, coding Coding,
 	return
 }
 
+// temperatureBodySites maps the SNOMED CT body structures of the MII-ICU
+// temperature profiles (Observation.bodySite) to the site kind of a body
+// temperature whose code does not name its site.
+var temperatureBodySites = map[string]string{
+	"34402009": "core",       // rectum structure
+	"32849002": "core",       // esophageal structure
+	"71836000": "core",       // nasopharyngeal structure
+	"76784001": "core",       // vaginal structure
+	"45206002": "peripheral", // nasal structure
+}
+
+// bodySiteDetail returns "core" or "peripheral" for a coded bodySite the
+// table knows, else "" (site not stated).
+func bodySiteDetail(cc *fhir.CodeableConcept) string {
+	if cc == nil {
+		return ""
+	}
+	for _, c := range cc.Coding {
+		if deref(c.System) == SNOMEDSystem {
+			if d, ok := temperatureBodySites[deref(c.Code)]; ok {
+				return d
+			}
+		}
+	}
+	return ""
+}
+
 // refinesBodyTemp reports whether two codings of one body temperature
 // differ only in that one names the site and the other does not.
 func refinesBodyTemp(a, b CodeInfo) bool {
@@ -141,6 +168,9 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 	}
 
 	info, coding, found, conflict := d.match(o.Code)
+	if found && info.Quantity == QBodyTemp && info.Detail == "" {
+		info.Detail = bodySiteDetail(o.BodySite)
+	}
 	type compMatch struct {
 		info            CodeInfo
 		coding          Coding

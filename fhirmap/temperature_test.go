@@ -47,6 +47,23 @@ func TestCoreTemperatureCodedTwice(t *testing.T) {
 	}
 }
 
+// A body temperature coded only 8310-5 names its site in bodySite in the
+// MII-ICU profiles (SNOMED CT body structures: rectum 34402009, nasal
+// 45206002).
+func TestTemperatureSiteFromBodySite(t *testing.T) {
+	for _, c := range []struct{ site, want string }{{"34402009", "core"}, {"45206002", "peripheral"}, {"12345678", ""}} {
+		raw := []byte(`{"resourceType":"Observation","id":"temp-site-1","status":"final",
+"code":{"coding":[{"system":"http://loinc.org","code":"8310-5"}]},
+"bodySite":{"coding":[{"system":"http://snomed.info/sct","code":"` + c.site + `"}]},
+"subject":{"reference":"Patient/demo-7f3a"},"effectiveDateTime":"2026-03-02T07:00:00Z",
+"valueQuantity":{"value":36.1,"unit":"Cel","system":"http://unitsofmeasure.org","code":"Cel"}}`)
+		d := mustDecode(t, raw)
+		if len(d.Facts) != 1 || d.Facts[0].Detail != c.want {
+			t.Errorf("bodySite %s: facts %+v, want detail %q", c.site, d.Facts, c.want)
+		}
+	}
+}
+
 // cooled is the reference vector (physiology.md s11) with a measured body
 // temperature: a patient cooled to 33.5 °C.
 func cooled(extra ...Fact) []Fact {
