@@ -159,6 +159,12 @@ ON CONFLICT (key, digest) DO NOTHING`
 	// window join read 10,131 rows to keep 285 at 24 h of one bed (11 ms per
 	// message); with statistics, the patient-level lookup read all 23,141
 	// facts of a 96 h stay to keep 0 (6.4 ms). Both grow with the stay.
+	//
+	// Body temperatures ($11, the body-temp quantity) are paired in a window
+	// of their own ($9 before, $10 after a blood gas): a new one reopens the
+	// blood gases of that window, and the snapshot adds them by a lateral
+	// lookup on (patient_hash, quantity, effective) per affected blood gas,
+	// so the wider window costs no ventilator readings.
 	affectedCTE = `
 WITH cand AS MATERIALIZED (
     SELECT f.quantity, f.effective, f.key, f.patient_hash, f.inbox_key FROM fact f
