@@ -47,6 +47,9 @@ type Config struct {
 
 	// Window is the pairing window around a blood gas.
 	Window fhirmap.Window
+	// TemperatureWindow is the window in which a body temperature is paired
+	// with a blood gas (fhirmap.Site.TemperatureWindow).
+	TemperatureWindow fhirmap.Window
 	// Horizon bounds how far from a patient-level fact (height, sex, ...)
 	// blood gases are recomputed when it arrives.
 	Horizon time.Duration
@@ -82,16 +85,18 @@ func DefaultConfig() Config {
 		ProvenanceSub:  DefaultProvenanceSub,
 		DeadLetterSub:  DefaultDeadLetterSub,
 		Window:         fhirmap.Window{Before: fhirmap.DefaultWindowBefore, After: fhirmap.DefaultWindowAfter},
-		Horizon:        14 * 24 * time.Hour,
-		AckWait:        30 * time.Second,
-		MaxAckPending:  256,
-		Fetch:          64,
-		RetryBase:      500 * time.Millisecond,
-		RetryMax:       30 * time.Second,
-		MaxDeliver:     -1,
-		RelayInterval:  200 * time.Millisecond,
-		StallAfter:     2 * time.Minute,
-		FailingAfter:   time.Minute,
+		TemperatureWindow: fhirmap.Window{Before: fhirmap.DefaultTemperatureWindowBefore,
+			After: fhirmap.DefaultTemperatureWindowAfter},
+		Horizon:       14 * 24 * time.Hour,
+		AckWait:       30 * time.Second,
+		MaxAckPending: 256,
+		Fetch:         64,
+		RetryBase:     500 * time.Millisecond,
+		RetryMax:      30 * time.Second,
+		MaxDeliver:    -1,
+		RelayInterval: 200 * time.Millisecond,
+		StallAfter:    2 * time.Minute,
+		FailingAfter:  time.Minute,
 	}
 }
 

@@ -78,7 +78,9 @@ func TestCircuitDeadSpaceArrivalOrder(t *testing.T) {
 		}
 	}
 	pbw := 50 + 0.91*(175-152.4)
-	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 2.2*pbw - 100) * 20 / 1000)
+	// Default anatomic model, tracheal tube: 0.43 mL per lb PBW (Nunn,
+	// Campbell & Peckett, J Appl Physiol 1959;14:174-6 [published]).
+	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 0.43/0.45359237*pbw - 100) * 20 / 1000)
 	found := false
 	for k, s := range states[0] {
 		if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindPredictedPaCO2) {

@@ -133,6 +133,7 @@ func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
 	}
 	site := o.Site
 	site.Window = cfg.Window
+	site.TemperatureWindow = cfg.TemperatureWindow
 	return &Pipeline{
 		nc:        nc,
 		js:        js,
@@ -160,6 +161,7 @@ func (c Config) withDefaults() Config {
 	orDefault(&c.ProvenanceSub, d.ProvenanceSub)
 	orDefault(&c.DeadLetterSub, d.DeadLetterSub)
 	orDefault(&c.Window, d.Window)
+	orDefault(&c.TemperatureWindow, d.TemperatureWindow)
 	orDefault(&c.Horizon, d.Horizon)
 	orDefault(&c.AckWait, d.AckWait)
 	orDefault(&c.MaxAckPending, d.MaxAckPending)
@@ -465,13 +467,14 @@ func (p *Pipeline) receive(msg jetstream.Msg) *inflight {
 	raw := msg.Data()
 	sum := sha256.Sum256(raw)
 	it.m = Message{
-		InboxKey:  hex.EncodeToString(sum[:]),
-		Subject:   msg.Subject(),
-		StreamSeq: meta.Sequence.Stream,
-		Received:  start.UTC(),
-		Raw:       raw,
-		Window:    p.cfg.Window,
-		Horizon:   p.cfg.Horizon,
+		InboxKey:   hex.EncodeToString(sum[:]),
+		Subject:    msg.Subject(),
+		StreamSeq:  meta.Sequence.Stream,
+		Received:   start.UTC(),
+		Raw:        raw,
+		Window:     p.cfg.Window,
+		TempWindow: p.cfg.TemperatureWindow,
+		Horizon:    p.cfg.Horizon,
 	}
 	it.log = p.log.With("stream_seq", meta.Sequence.Stream, "delivery", meta.NumDelivered)
 

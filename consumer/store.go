@@ -78,6 +78,10 @@ type Message struct {
 	// within Horizon of a patient-level fact (sex, birth date, height, weight).
 	Window  fhirmap.Window
 	Horizon time.Duration
+	// TempWindow is the same for body temperatures, which are paired in a
+	// window of their own (fhirmap.Site.TemperatureWindow); zero means
+	// Window.
+	TempWindow fhirmap.Window
 }
 
 // Snapshot is what the store hands to PlanFunc for one patient, inside the

@@ -76,14 +76,16 @@ func TestDecodeApparatusDeadSpace(t *testing.T) {
 }
 
 // predictedWith is the vector's predicted PaCO2 with apparatus dead space
-// vdapp mL: VA = (VT - 2.2 mL/kg x PBW - VDapp) x RR, PaCO2 = K x VCO2 / VA,
-// K = 0.760 x (273 + 37)/273 (alveolar ventilation equation [published];
-// Radford 1955 [published]; PBW men 50 + 0.91 x (175 - 152.4) kg, ARDS
-// Network 2000 [published]).
+// vdapp mL under the default anatomic model (tracheal tube: intrathoracic
+// airway 0.43 mL per lb = 0.948 mL/kg PBW, Nunn, Campbell & Peckett, J Appl
+// Physiol 1959;14:174-6 [published]): VA = (VT - 0.948 mL/kg x PBW - VDapp)
+// x RR, PaCO2 = K x VCO2 / VA, K = 0.760 x (273 + 37)/273 (alveolar
+// ventilation equation [published]; PBW men 50 + 0.91 x (175 - 152.4) kg,
+// ARDS Network 2000 [published]).
 func predictedWith(vdapp float64) float64 {
 	pbw := 50 + 0.91*(175-152.4)
 	k := 0.760 * (273 + 37) / 273.0
-	va := (500 - 2.2*pbw - vdapp) * 20 / 1000
+	va := (500 - 0.43/0.45359237*pbw - vdapp) * 20 / 1000
 	return k * 200 / va
 }
 

@@ -47,7 +47,8 @@ type CodeInfo struct {
 	// Detail refines the quantity: minute volume "expired", "inspired" or
 	// "set"; tidal volume "set", "delivered", "expired" or "total"; breath
 	// rate "set", "total", "mechanical" or "spontaneous"; FiO2 "inhaled",
-	// "inspired" or "set"; "" when the code says nothing more.
+	// "inspired" or "set"; body temperature "core" or "peripheral"; "" when
+	// the code says nothing more.
 	Detail string
 	// Specimen is the blood the code names: arterial for 2019-8, unknown for
 	// the unspecified-specimen codes (11557-6, 11558-4, 1959-6, 11555-0,
@@ -167,6 +168,16 @@ var defaultLOINC = []CodeInfo{
 	loinc("29463-7", "Body weight", QWeight, OriginMeasured, "", SpecimenNone),
 	loinc("8302-2", "Body height", QHeight, OriginMeasured, "", SpecimenNone),
 	loinc("8310-5", "Body temperature", QBodyTemp, OriginMeasured, "", SpecimenNone),
+	// Body temperature by site (codes as the MII-ICU and ISiK guides pair
+	// them): core sites are preferred over a site not stated and over a
+	// peripheral site, since peripheral temperatures lag and differ from
+	// core temperature [common practice].
+	loinc("8329-5", "Body temperature - Core", QBodyTemp, OriginMeasured, "core", SpecimenNone),
+	loinc("8332-9", "Rectal temperature", QBodyTemp, OriginMeasured, "core", SpecimenNone),
+	loinc("60836-4", "Esophageal temperature", QBodyTemp, OriginMeasured, "core", SpecimenNone),
+	loinc("60838-0", "Nasopharyngeal temperature", QBodyTemp, OriginMeasured, "core", SpecimenNone),
+	loinc("8334-5", "Body temperature - Urinary bladder", QBodyTemp, OriginMeasured, "core", SpecimenNone),
+	loinc("76010-8", "Nasal temperature", QBodyTemp, OriginMeasured, "peripheral", SpecimenNone),
 	loinc("76689-9", "Sex assigned at birth", QSex, OriginMeasured, "", SpecimenNone),
 	loinc("46098-0", "Sex", QSex, OriginMeasured, "", SpecimenNone),
 }
@@ -184,6 +195,11 @@ var defaultMDC = []struct{ code, display, loinc string }{
 	{"151976", "PEEP", "76248-4"},
 	{"152424", "plateau pressure", "76259-1"},
 	{"151975", "mean airway pressure", "76530-5"},
+	{"150368", "core body temperature", "8329-5"},
+	{"188420", "rectal temperature", "8332-9"},
+	{"150372", "esophageal temperature", "60836-4"},
+	{"150380", "nasopharyngeal temperature", "60838-0"},
+	{"188504", "nasal temperature", "76010-8"},
 }
 
 var defaultTable = buildDefault()

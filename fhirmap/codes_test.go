@@ -112,7 +112,10 @@ func TestDefaultCodesCoverReference(t *testing.T) {
 func TestDefaultCodesMDC(t *testing.T) {
 	pairs := map[string]string{"151980": "76222-9", "16929196": "20112-9", "152004": "76009-0", "151586": "33438-3",
 		"152490": "19840-8", "152498": "19839-0", "151708": "19891-1", "151976": "76248-4", "152424": "76259-1",
-		"151975": "76530-5"}
+		"151975": "76530-5",
+		// Body temperature by site, as the MII-ICU guide's temperature
+		// profiles pair them (SD_MII_ICU_Koerpertemperatur_*).
+		"150368": "8329-5", "188420": "8332-9", "150372": "60836-4", "150380": "60838-0", "188504": "76010-8"}
 	codes := DefaultCodes()
 	for mdc, lc := range pairs {
 		t.Run("mdc_"+mdc, func(t *testing.T) {
@@ -129,8 +132,8 @@ func TestDefaultCodesMDC(t *testing.T) {
 			}
 		})
 	}
-	if n := len(codes.Entries()); n != len(referenceCodes)+4+3+len(pairs) {
-		t.Errorf("table has %d entries, want %d (reference codes, 4 panels, 3 unspecified-specimen codes, MDC)", n, len(referenceCodes)+4+3+len(pairs))
+	if n := len(codes.Entries()); n != len(referenceCodes)+4+3+len(temperatureSites)+len(pairs) {
+		t.Errorf("table has %d entries, want %d (reference codes, 4 panels, 3 unspecified-specimen codes, temperature sites, MDC)", n, len(referenceCodes)+4+3+len(temperatureSites)+len(pairs))
 	}
 	if codes.Len() != len(codes.Entries()) {
 		t.Error("Len disagrees with Entries")

@@ -68,6 +68,14 @@ func (d *decoder) match(cc *fhir.CodeableConcept) (info CodeInfo, coding Coding,
 			coding = Coding{System: deref(c.System), Code: deref(c.Code), Display: deref(c.Display)}
 			continue
 		}
+		if refinesBodyTemp(info, ci) {
+			// A body temperature coded both generically (8310-5, as the
+			// FHIR vital-signs profile requires) and by site: the site wins.
+			if ci.Detail != "" {
+				info.Detail = ci.Detail
+			}
+			continue
+		}
 		if ci.Quantity != info.Quantity || ci.Origin != info.Origin || ci.Detail != info.Detail ||
 			ci.TempCorrected != info.TempCorrected || ci.Panel != info.Panel {
 			conflict = true
@@ -75,6 +83,40 @@ func (d *decoder) match(cc *fhir.CodeableConcept) (info CodeInfo, coding Coding,
 		info.Specimen = combineSpecimen(info.Specimen, ci.Specimen)
 	}
 	return
+}
+
+// temperatureBodySites maps the SNOMED CT body structures of the MII-ICU
+// temperature profiles (Observation.bodySite) to the site kind of a body
+// temperature whose code does not name its site.
+var temperatureBodySites = map[string]string{
+	"34402009": "core",       // rectum structure
+	"32849002": "core",       // esophageal structure
+	"71836000": "core",       // nasopharyngeal structure
+	"76784001": "core",       // vaginal structure
+	"45206002": "peripheral", // nasal structure
+}
+
+// bodySiteDetail returns "core" or "peripheral" for a coded bodySite the
+// table knows, else "" (site not stated).
+func bodySiteDetail(cc *fhir.CodeableConcept) string {
+	if cc == nil {
+		return ""
+	}
+	for _, c := range cc.Coding {
+		if deref(c.System) == SNOMEDSystem {
+			if d, ok := temperatureBodySites[deref(c.Code)]; ok {
+				return d
+			}
+		}
+	}
+	return ""
+}
+
+// refinesBodyTemp reports whether two codings of one body temperature
+// differ only in that one names the site and the other does not.
+func refinesBodyTemp(a, b CodeInfo) bool {
+	return a.Quantity == QBodyTemp && b.Quantity == QBodyTemp && a.Origin == b.Origin &&
+		(a.Detail == "" || b.Detail == "" || a.Detail == b.Detail)
 }
 
 // firstCoding names an unknown code for Ignored.
@@ -126,6 +168,9 @@ func (d *decoder) observationFacts(e *obsEntry, r *resolver) *DecodeError {
 	}
 
 	info, coding, found, conflict := d.match(o.Code)
+	if found && info.Quantity == QBodyTemp && info.Detail == "" {
+		info.Detail = bodySiteDetail(o.BodySite)
+	}
 	type compMatch struct {
 		info            CodeInfo
 		coding          Coding

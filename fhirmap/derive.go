@@ -308,13 +308,41 @@ func (g *gather) bodyTemp() physio.Celsius {
 	return 0
 }
 
+// paco2AtBodyTemp returns the blood gas's PaCO2 at the measured body
+// temperature (physio.TemperatureConvention), recording the correction as a
+// step, or the PaCO2 as measured at 37 Cel when no temperature was measured
+// (the caller's result then says so: noteUncorrected).
+func (g *gather) paco2AtBodyTemp() physio.MmHg {
+	paco2 := physio.MmHg(g.x.sel.BloodGas.Value)
+	t := g.bodyTemp()
+	if t == 0 || g.stop != nil {
+		return paco2
+	}
+	r, err := physio.PaCO2AtBodyTemp(paco2, t)
+	if err != nil {
+		g.fail(err)
+		return paco2
+	}
+	g.steps = append(g.steps, r)
+	return physio.MmHg(r.Value)
+}
+
+// noteUncorrected records on res that the PaCO2 was used as measured at 37
+// Cel because no body temperature was measured in the window.
+func (g *gather) noteUncorrected(res *physio.Result) {
+	if _, ok := g.x.sel.Input(RoleBodyTemp); !ok {
+		res.NoteUncorrectedPaCO2()
+	}
+}
+
 // measuredVDVT computes the measured dead-space fraction as a step:
 // Bohr-Enghoff from PECO2 when it was measured, else from VCO2 and the
 // minute volume.
-func (g *gather) measuredVDVT(paco2 physio.MmHg) physio.Fraction {
+func (g *gather) measuredVDVT() physio.Fraction {
 	if _, ok := g.x.sel.Input(RolePECO2); ok {
 		pe, ok := g.need(RolePECO2)
-		if !ok {
+		paco2 := g.paco2AtBodyTemp()
+		if !ok || g.stop != nil {
 			return 0
 		}
 		return g.step(physio.DeadSpaceEnghoff(paco2, physio.MmHg(pe.Fact.Value)))
@@ -331,6 +359,7 @@ func (g *gather) measuredVDVT(paco2 physio.MmHg) physio.Fraction {
 	v, _ := g.need(RoleVCO2)
 	ve, _ := g.measuredVE()
 	t := g.bodyTemp()
+	paco2 := g.paco2AtBodyTemp()
 	if g.stop != nil {
 		return 0
 	}
@@ -374,15 +403,17 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 	switch kind {
 	case KindDeadSpaceEnghoff:
 		pe, _ := g.need(RolePECO2)
+		pT := g.paco2AtBodyTemp()
 		if g.stop == nil {
-			res, err = physio.DeadSpaceEnghoff(paco2, physio.MmHg(pe.Fact.Value))
+			res, err = physio.DeadSpaceEnghoff(pT, physio.MmHg(pe.Fact.Value))
 		}
 	case KindDeadSpaceVCO2:
 		v, _ := g.need(RoleVCO2)
 		ve, _ := g.measuredVE()
 		t := g.bodyTemp()
+		pT := g.paco2AtBodyTemp()
 		if g.stop == nil {
-			res, err = physio.DeadSpaceFromVCO2(paco2, physio.MLPerMin(v.Fact.Value), physio.LPerMin(ve.Fact.Value), t)
+			res, err = physio.DeadSpaceFromVCO2(pT, physio.MLPerMin(v.Fact.Value), physio.LPerMin(ve.Fact.Value), t)
 		}
 	case KindDeadSpaceEstimated:
 		ve, _ := g.measuredVE()
@@ -400,13 +431,13 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			}
 		}
 	case KindDeadSpaceVolume:
-		vdvt := g.measuredVDVT(paco2)
+		vdvt := g.measuredVDVT()
 		vt, _ := g.need(RoleTidalVolume)
 		if g.stop == nil {
 			res, err = physio.DeadSpaceVolume(vdvt, physio.ML(vt.Fact.Value))
 		}
 	case KindAlveolarVentilation:
-		vdvt := g.measuredVDVT(paco2)
+		vdvt := g.measuredVDVT()
 		ve, _ := g.measuredVE()
 		if g.stop == nil {
 			res, err = physio.AlveolarVentilationFromDeadSpace(physio.LPerMin(ve.Fact.Value), vdvt)
@@ -422,18 +453,21 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 	case KindVentilatoryRatio:
 		ve, _ := g.measuredVE()
 		pbw := g.pbw()
+		pT := g.paco2AtBodyTemp()
 		if g.stop == nil {
-			res, err = physio.VentilatoryRatio(physio.LPerMin(ve.Fact.Value), paco2, pbw)
+			res, err = physio.VentilatoryRatio(physio.LPerMin(ve.Fact.Value), pT, pbw)
 		}
 	case KindPaCO2PETCO2Gradient:
 		et, _ := g.need(RolePETCO2)
+		pT := g.paco2AtBodyTemp()
 		if g.stop == nil {
-			res, err = physio.EndTidalGradient(paco2, physio.MmHg(et.Fact.Value))
+			res, err = physio.EndTidalGradient(pT, physio.MmHg(et.Fact.Value))
 		}
 	case KindAlveolarDeadSpace:
 		et, _ := g.need(RolePETCO2)
+		pT := g.paco2AtBodyTemp()
 		if g.stop == nil {
-			res, err = physio.AlveolarDeadSpaceFraction(paco2, physio.MmHg(et.Fact.Value))
+			res, err = physio.AlveolarDeadSpaceFraction(pT, physio.MmHg(et.Fact.Value))
 		}
 	case KindRateForTarget:
 		rr, _ := g.need(RoleRespRate)
@@ -446,7 +480,7 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 			x.flagWithinGoalRange(&res, paco2, err)
 		}
 	case KindTidalVolumeForTarget:
-		vdvt := g.measuredVDVT(paco2)
+		vdvt := g.measuredVDVT()
 		vt, _ := g.need(RoleTidalVolume)
 		pbw := g.pbw()
 		target := x.target(g)
@@ -470,7 +504,25 @@ func (x *deriver) derive(kind string) (Derivation, Refusal, bool) {
 	if g.stop != nil {
 		return Derivation{}, x.refusal(kind, g.stop.reason, g.stop.detail, g.used), false
 	}
+	if temperatureDependent[kind] {
+		g.noteUncorrected(&res)
+	}
 	return x.derivation(kind, res, g), Refusal{}, true
+}
+
+// temperatureDependent lists the kinds that combine the measured PaCO2 with
+// a gas-phase quantity and so follow physio.TemperatureConvention: without
+// a measured body temperature their basis says the PaCO2 was used
+// uncorrected. The estimated dead-space fraction follows its published
+// method (K 0.86, PaCO2 as reported); predicted PaCO2 uses no measured
+// PaCO2 (its K(T) step records the temperature assumed) and measured minus
+// predicted compares both at 37 Cel; the two for-target values use the
+// ratio PaCO2 / target, which the correction does not change (both read at
+// 37 Cel), and the tidal volume for target takes its dead space from a
+// corrected fraction.
+var temperatureDependent = map[string]bool{
+	KindDeadSpaceEnghoff: true, KindDeadSpaceVCO2: true, KindDeadSpaceVolume: true, KindAlveolarVentilation: true,
+	KindVentilatoryRatio: true, KindPaCO2PETCO2Gradient: true, KindAlveolarDeadSpace: true, KindTidalVolumeForTarget: true,
 }
 
 // hasMeasuredFraction reports whether a measured dead-space fraction
@@ -582,7 +634,7 @@ func (x *deriver) predicted(g *gather) physio.Result {
 	}
 	r, err := physio.PredictedPaCO2(physio.PredictedInput{
 		VCO2: physio.MLPerMin(v.Fact.Value), VT: physio.ML(vt.Fact.Value), RR: physio.PerMin(rr.Fact.Value),
-		PBW: pbw, ApparatusVD: app, ApparatusVDKnown: true, ApparatusVDFromPatient: fromPatient, BodyTemp: t,
+		PBW: pbw, Anatomic: x.site.AnatomicDeadSpace, ApparatusVD: app, ApparatusVDKnown: true, ApparatusVDFromPatient: fromPatient, BodyTemp: t,
 	})
 	if err != nil {
 		g.fail(err)
@@ -659,7 +711,9 @@ func inputSpan(used []Input) time.Duration {
 	var lo, hi time.Duration
 	for _, in := range used {
 		switch in.Role {
-		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD:
+		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD, RoleBodyTemp:
+			// Body temperature has its own, wider window: it changes
+			// slowly and is charted hourly or less often.
 			continue
 		}
 		lo, hi = min(lo, in.Offset), max(hi, in.Offset)

@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/google/uuid"
+	"github.com/ventderive/ventderive/physio"
 )
 
 // byKind indexes derivations and refusals by kind.
@@ -129,7 +130,10 @@ func TestDeriveSectionChecks(t *testing.T) {
 			facts: []Fact{arterial("abg", 45), newFact("vco2", QVCO2, 200, -2*time.Minute),
 				newFact("vt", QTidalVol, 420, -2*time.Minute, detail("expired")), newFact("rr", QRespRate, 20, -2*time.Minute, detail("total")),
 				newFact("sex", QSex, 0, -time.Hour, fromPatient("sex"), text("male")), newFact("h", QHeight, 172.38, -time.Hour)},
-			site: func(s *Site) { s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 0, true },
+			site: func(s *Site) {
+				s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 0, true
+				s.AnatomicDeadSpace = physio.AnatomicWholeAirway // Radford 2.2 mL/kg x PBW 68.18 kg = 150 mL
+			},
 			kind: KindPredictedPaCO2, want: 0.863004 * 200 / 5.4, tol: 0.01,
 			source: "physiology.md s7: VT 420, RR 20, VD 150 -> VA 5.4 L/min [derived]; s1: K 0.863 [published]",
 		},
@@ -138,7 +142,10 @@ func TestDeriveSectionChecks(t *testing.T) {
 			facts: []Fact{arterial("abg", 45), newFact("vco2", QVCO2, 200, -2*time.Minute),
 				newFact("vt", QTidalVol, 420, -2*time.Minute, detail("expired")), newFact("rr", QRespRate, 20, -2*time.Minute, detail("total")),
 				newFact("sex", QSex, 0, -time.Hour, fromPatient("sex"), text("male")), newFact("h", QHeight, 172.38, -time.Hour)},
-			site: func(s *Site) { s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 120, true },
+			site: func(s *Site) {
+				s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 120, true
+				s.AnatomicDeadSpace = physio.AnatomicWholeAirway
+			},
 			kind: KindPredictedPaCO2, want: 0.863004 * 200 / 3.0, tol: 0.02,
 			source: "physiology.md s7: with 120 mL more apparatus dead space VA 3.0 L/min [derived]",
 		},
@@ -147,9 +154,25 @@ func TestDeriveSectionChecks(t *testing.T) {
 			facts: []Fact{arterial("abg", 45), newFact("vco2", QVCO2, 200, -2*time.Minute),
 				newFact("vt", QTidalVol, 420, -2*time.Minute, detail("expired")), newFact("rr", QRespRate, 20, -2*time.Minute, detail("total")),
 				newFact("sex", QSex, 0, -time.Hour, fromPatient("sex"), text("male")), newFact("h", QHeight, 172.38, -time.Hour)},
-			site: func(s *Site) { s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 0, true },
+			site: func(s *Site) {
+				s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 0, true
+				s.AnatomicDeadSpace = physio.AnatomicWholeAirway
+			},
 			kind: KindPaCO2Discrepancy, want: 45 - 0.863004*200/5.4, tol: 0.01,
 			source: "physiology.md s7 predicted 31.96 mmHg [derived]; difference [derived]",
+		},
+		{
+			// The site default, a tracheal tube or tracheostomy: VDanat =
+			// 0.43 mL/lb (0.948 mL/kg) x PBW 68.18 kg = 64.64 mL (Nunn,
+			// Campbell & Peckett, J Appl Physiol 1959;14:174-6 [published]),
+			// VA = (420 - 64.64) x 20 / 1000 = 7.107 L/min [derived].
+			name: "predicted_PaCO2_artificial_airway_default_is_24.29_mmHg",
+			facts: []Fact{arterial("abg", 45), newFact("vco2", QVCO2, 200, -2*time.Minute),
+				newFact("vt", QTidalVol, 420, -2*time.Minute, detail("expired")), newFact("rr", QRespRate, 20, -2*time.Minute, detail("total")),
+				newFact("sex", QSex, 0, -time.Hour, fromPatient("sex"), text("male")), newFact("h", QHeight, 172.38, -time.Hour)},
+			site: func(s *Site) { s.ApparatusDeadSpaceML, s.ApparatusDeadSpaceConfigured = 0, true },
+			kind: KindPredictedPaCO2, want: 0.863004 * 200 / ((420 - 0.43/0.45359237*(50+0.91*(172.38-152.4))) * 20 / 1000), tol: 0.001,
+			source: "Nunn, Campbell & Peckett 1959, 0.43 mL/lb intrathoracic [published]; ARDS Network PBW [published]; alveolar equation [derived]",
 		},
 	}
 	for _, tc := range tests {

@@ -19,7 +19,7 @@ const (
 	RoleTidalVolume  Role = "tidal-volume"  // measured expired > other measured > set
 	RoleRespRate     Role = "resp-rate"     // total > unspecified > mechanical > set
 	RolePETCO2       Role = "petco2"        // end-tidal PCO2, measured > calculated
-	RoleBodyTemp     Role = "body-temp"     // for K(T); 37 Cel assumed when absent
+	RoleBodyTemp     Role = "body-temp"     // for K(T) and PaCO2 at body temperature; own window; core > unstated > peripheral; 37 Cel when absent
 	RoleSex          Role = "sex"           // patient-level
 	RoleBirthDate    Role = "birth-date"    // patient-level
 	RoleHeight       Role = "height"        // patient-level
@@ -106,6 +106,9 @@ type roleRule struct {
 	standing      bool
 	allowance     func(Site) time.Duration
 	sameEncounter bool
+	// ownWindow marks body temperature, paired within
+	// Site.TemperatureWindow instead of Site.Window.
+	ownWindow bool
 	// rank returns the preference of a fact (0 best) or false when the fact
 	// cannot fill the role at all.
 	rank func(Fact) (int, bool)
@@ -189,11 +192,26 @@ var (
 	rulePECO2 = roleRule{role: RolePECO2, ventilator: true,
 		rank:   measuredOnly,
 		labels: []string{"measured mixed-expired PCO2"}}
-	ruleBodyTemp = roleRule{role: RoleBodyTemp, rank: measuredOnly, labels: []string{"measured body temperature"}}
-	ruleSex      = roleRule{role: RoleSex, patient: true}
-	ruleBirth    = roleRule{role: RoleBirthDate, patient: true}
-	ruleHeight   = roleRule{role: RoleHeight, patient: true}
-	ruleWeight   = roleRule{role: RoleWeight, patient: true}
+	// Body temperature has its own window (Site.TemperatureWindow): it is
+	// charted hourly or less often. A core site beats a site not stated,
+	// which beats a peripheral one.
+	ruleBodyTemp = roleRule{role: RoleBodyTemp, ownWindow: true,
+		rank: func(f Fact) (int, bool) {
+			switch {
+			case isSetting(f):
+				return 0, false
+			case f.Detail == "core":
+				return 0, true
+			case f.Detail == "peripheral":
+				return 2, true
+			}
+			return 1, true
+		},
+		labels: []string{"measured core body temperature", "measured body temperature (site not stated)", "measured peripheral body temperature"}}
+	ruleSex    = roleRule{role: RoleSex, patient: true}
+	ruleBirth  = roleRule{role: RoleBirthDate, patient: true}
+	ruleHeight = roleRule{role: RoleHeight, patient: true}
+	ruleWeight = roleRule{role: RoleWeight, patient: true}
 	// Bicarbonate and base excess come from the blood gas itself (the same
 	// resource, or an arterial value at the same time), never from the
 	// pairing window: they describe that sample.
@@ -324,14 +342,16 @@ func (a candidate) standingBetter(b candidate) bool {
 //     arterial PCO2 measured at 37 Cel with a plausible value; otherwise
 //     Selection.Reason says why and no input is selected;
 //   - only facts with Status.Usable(), of the same Patient, are considered;
-//     ventilator and body-temperature readings must also lie in
-//     site.Window around the blood gas (both ends included) and belong to the
+//     ventilator readings must also lie in site.Window around the blood
+//     gas, body temperatures in site.TemperatureWindow (both ends included),
+//     and belong to the
 //     blood gas's Encounter when both name one (another encounter's readings
 //     are mismatched data, counted in OtherEncounter);
 //   - per role, the preferred kind wins (measured over set: expired minute
 //     volume > unspecified > inspired > setting; expired tidal volume >
 //     delivered > setting; total breath rate > unspecified > mechanical >
-//     setting; measured end-tidal PCO2 > calculated), then the nearest in
+//     setting; measured end-tidal PCO2 > calculated; core body temperature
+//     > site not stated > peripheral), then the nearest in
 //     time, then the earlier, then the smaller Key; a fallback is recorded
 //     in Input.Fallback;
 //   - patient-level facts (sex, birth date, height, weight) come from any
@@ -393,7 +413,11 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 			}
 			continue
 		}
-		inWindow := off >= -site.Window.Before && off <= site.Window.After
+		win := site.Window
+		if rule.ownWindow {
+			win = site.TemperatureWindow
+		}
+		inWindow := off >= -win.Before && off <= win.After
 		if !f.Status.Usable() {
 			if inWindow && !rule.patient {
 				sel.NotUsable++

@@ -38,6 +38,18 @@ const (
 	// around a blood gas; see the README section "Pairing window" for why.
 	DefaultWindowBefore = 30 * time.Minute
 	DefaultWindowAfter  = 10 * time.Minute
+	// DefaultTemperatureWindowBefore and DefaultTemperatureWindowAfter bound
+	// the window in which a body temperature is paired with a blood gas:
+	// temperatures are charted hourly or less often, so the ventilator
+	// window would miss most of them; see the README section "Pairing
+	// window" for why 2 h before and 30 min after.
+	DefaultTemperatureWindowBefore = 2 * time.Hour
+	DefaultTemperatureWindowAfter  = 30 * time.Minute
+	// DefaultAnatomicDeadSpace is the anatomic dead space model of predicted
+	// PaCO2: a tracheal tube or tracheostomy (the ventilated adult of an
+	// ICU), 0.948 mL/kg PBW of intrathoracic airway (Nunn, Campbell &
+	// Peckett, J Appl Physiol 1959;14:174-6).
+	DefaultAnatomicDeadSpace = physio.AnatomicArtificialAirway
 )
 
 // Site is the site configuration that selection, derivation and FHIR output
@@ -52,6 +64,14 @@ type Site struct {
 	// never computed with a silent zero. Default: not configured.
 	ApparatusDeadSpaceML         float64
 	ApparatusDeadSpaceConfigured bool
+
+	// AnatomicDeadSpace is the airway the anatomic dead space estimate of
+	// predicted PaCO2 describes: physio.AnatomicArtificialAirway (tracheal
+	// tube or tracheostomy: the intrathoracic airway, 0.948 mL/kg PBW) or
+	// physio.AnatomicWholeAirway (mouth and nose to the alveoli, 2.2 mL/kg
+	// PBW, for mask ventilation). Every predicted PaCO2 names the model and
+	// figure used. Default DefaultAnatomicDeadSpace.
+	AnatomicDeadSpace physio.AnatomicModel
 
 	// Energy is the resting-energy equation of the estimated dead-space
 	// fraction (VCO2 not measured). Default physio.HarrisBenedict1919, as
@@ -95,12 +115,17 @@ type Site struct {
 	// blood gas, else the earliest after it (see Select). Default 30 min
 	// before to 10 min after.
 	Window Window
+	// TemperatureWindow is the window in which a measured body temperature
+	// is paired with a blood gas (core sites preferred, then the nearest).
+	// Default 2 h before to 30 min after.
+	TemperatureWindow Window
 }
 
 // DefaultSite returns the documented defaults: apparatus dead space not
 // configured, Harris-Benedict 1919 with RQ 0.8, target PaCO2 not
-// configured, the example.org URLs, and a window of 30 min before to 10 min
-// after.
+// configured, the example.org URLs, a window of 30 min before to 10 min
+// after, the artificial-airway anatomic dead space, and a body-temperature
+// window of 2 h before to 30 min after.
 func DefaultSite() Site {
 	return Site{
 		Energy:        physio.HarrisBenedict1919,
@@ -110,6 +135,9 @@ func DefaultSite() Site {
 		Device:        DefaultDevice,
 		DeviceDisplay: DefaultDeviceDisplay,
 		Window:        Window{Before: DefaultWindowBefore, After: DefaultWindowAfter},
+
+		AnatomicDeadSpace: DefaultAnatomicDeadSpace,
+		TemperatureWindow: Window{Before: DefaultTemperatureWindowBefore, After: DefaultTemperatureWindowAfter},
 	}
 }
 
@@ -143,6 +171,12 @@ func (s Site) Validate() error {
 	}
 	if s.Window.Before < 0 || s.Window.After < 0 || s.Window.Before+s.Window.After == 0 {
 		errs = append(errs, fmt.Errorf("window %v before to %v after: must be non-negative and not empty", s.Window.Before, s.Window.After))
+	}
+	if s.AnatomicDeadSpace != physio.AnatomicWholeAirway && s.AnatomicDeadSpace != physio.AnatomicArtificialAirway {
+		errs = append(errs, fmt.Errorf("anatomic dead space model %d: unknown", s.AnatomicDeadSpace))
+	}
+	if s.TemperatureWindow.Before < 0 || s.TemperatureWindow.After < 0 || s.TemperatureWindow.Before+s.TemperatureWindow.After == 0 {
+		errs = append(errs, fmt.Errorf("temperature window %v before to %v after: must be non-negative and not empty", s.TemperatureWindow.Before, s.TemperatureWindow.After))
 	}
 	return errors.Join(errs...)
 }

@@ -205,6 +205,7 @@ func TestPanelMemberWithoutID(t *testing.T) {
 func TestDiscrepancyFrame(t *testing.T) {
 	site := DefaultSite()
 	site.ApparatusDeadSpaceML, site.ApparatusDeadSpaceConfigured = 50, true
+	site.AnatomicDeadSpace = physio.AnatomicWholeAirway // Radford 2.2 mL/kg, as the vector below
 	// Vector of physiology.md s11 with VT 500 mL, RR 20 /min, PBW 70.566 kg:
 	// VA = (500 - 155.2 - 50) x 20 / 1000 = 5.896 L/min, predicted PaCO2 =
 	// 0.863 x 200 / 5.896 = 29.27 mm[Hg] [derived].

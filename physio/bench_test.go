@@ -33,6 +33,11 @@ var derivations = []struct {
 	{"PredictedPaCO2", func() (physio.Result, error) {
 		return physio.PredictedPaCO2(physio.PredictedInput{VCO2: 200, VCO2Estimated: true, VT: 420, RR: 20, PBW: 70.566, ApparatusVD: 120, ApparatusVDKnown: true})
 	}},
+	{"PredictedPaCO2ArtificialAirwayAt33.5Cel", func() (physio.Result, error) {
+		return physio.PredictedPaCO2(physio.PredictedInput{VCO2: 140, VT: 520, RR: 10, PBW: 76.94, ApparatusVD: 50, ApparatusVDKnown: true,
+			Anatomic: physio.AnatomicArtificialAirway, BodyTemp: 33.5})
+	}},
+	{"PaCO2AtBodyTemp", func() (physio.Result, error) { return physio.PaCO2AtBodyTemp(45, 33.5) }},
 	{"PaCO2Discrepancy", func() (physio.Result, error) { return physio.PaCO2Discrepancy(57, 41.1, physio.VCO2Measured) }},
 	{"VentilatoryRatio", func() (physio.Result, error) { return physio.VentilatoryRatio(10, 45, 70.566) }},
 	{"EndTidalGradient", func() (physio.Result, error) { return physio.EndTidalGradient(35, 38) }},

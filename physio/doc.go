@@ -73,10 +73,20 @@
 //     men 50 + 0.91 x (H - 152.4), women 45.5 + 0.91 x (H - 152.4)
 //     (PredictedBodyWeight).
 //   - Predicted PaCO2: VA = (VT - VDanat - VDapp) x RR, PaCO2 = K x VCO2 /
-//     VA, with anatomic dead space 2.2 mL/kg PBW unless given (Radford, J
-//     Appl Physiol 1955) and an apparatus dead space that must be declared,
-//     recorded as a constant with its source (the patient's circuit or the
-//     site's setting) (PredictedPaCO2). Measured minus predicted, described as material
+//     VA, with anatomic dead space unless given from the AnatomicModel:
+//     2.2 mL/kg PBW for the whole airway (Radford, J Appl Physiol 1955) or
+//     0.948 mL/kg PBW, the intrathoracic airway, for a tracheal tube or
+//     tracheostomy (Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6),
+//     and an apparatus dead space that must be declared, recorded as a
+//     constant with its source (the patient's circuit or the site's
+//     setting); with a measured
+//     body temperature the prediction is given back at 37 Cel
+//     (PredictedPaCO2).
+//   - Temperature correction of blood PCO2: PaCO2(T) = PaCO2(37) x
+//     10^(0.019 x (T - 37)), in vitro coefficient of fresh human blood (J
+//     Appl Physiol, submitted 1964; 0.0185 in Bradley, Severinghaus &
+//     Stupfel, J Appl Physiol 1956;9:201-4) (PaCO2AtBodyTemp,
+//     PCO2TempFactor; the convention is TemperatureConvention). Measured minus predicted, described as material
 //     beyond +/- 5 mm[Hg], a derived band without interpretation code
 //     (PaCO2Discrepancy).
 //   - Ventilatory ratio (Sinha et al., Br J Anaesth 2009;102:692-697):

@@ -53,7 +53,7 @@ func FuzzDerivations(f *testing.F) {
 					t.Fatalf("%s: error %v is not an *InputError naming its input", name, err)
 				}
 				known := false
-				for _, k := range []error{physio.ErrNotFinite, physio.ErrNotPositive, physio.ErrImplausible, physio.ErrOutOfMeaning, physio.ErrNotGiven} {
+				for _, k := range []error{physio.ErrNotFinite, physio.ErrNotPositive, physio.ErrImplausible, physio.ErrOutOfMeaning, physio.ErrNotGiven, physio.ErrBeyondModel} {
 					known = known || errors.Is(err, k)
 				}
 				if !known {
@@ -120,6 +120,11 @@ func FuzzDerivations(f *testing.F) {
 		r, err = physio.PredictedPaCO2(physio.PredictedInput{VCO2: physio.MLPerMin(vco2), VCO2Estimated: true, VT: physio.ML(vt), RR: physio.PerMin(rr),
 			PBW: physio.Kg(pbw), ApparatusVD: physio.ML(p2), ApparatusVDKnown: known, BodyTemp: physio.Celsius(temp)})
 		check("PredictedPaCO2 default anatomic", r, err)
+		r, err = physio.PredictedPaCO2(physio.PredictedInput{VCO2: physio.MLPerMin(vco2), VT: physio.ML(vt), RR: physio.PerMin(rr),
+			PBW: physio.Kg(pbw), Anatomic: physio.AnatomicModel(sex), ApparatusVD: physio.ML(p2), ApparatusVDKnown: known, BodyTemp: physio.Celsius(temp)})
+		check("PredictedPaCO2 anatomic model", r, err)
+		r, err = physio.PaCO2AtBodyTemp(physio.MmHg(paCO2), physio.Celsius(temp))
+		check("PaCO2AtBodyTemp", r, err)
 		r, err = physio.PaCO2Discrepancy(physio.MmHg(paCO2), physio.MmHg(p2), physio.VCO2Measured)
 		check("PaCO2Discrepancy", r, err)
 		r, err = physio.VentilatoryRatio(physio.LPerMin(ve), physio.MmHg(paCO2), physio.Kg(pbw))

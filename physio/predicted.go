@@ -10,7 +10,9 @@ var (
 	anatomicPerKg      = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]"}
 	apparatusSiteDef   = constDef{name: "apparatus dead space", unit: UnitML, source: "the site's setting for its circuits: none recorded for the patient's circuit"}
 	apparatusInputDef  = constDef{name: "apparatus dead space", unit: UnitML, source: "recorded for the patient's circuit (an input of this value), preferred over the site's setting"}
-	discrepancyDef     = constDef{name: "material PaCO2 difference", unit: UnitMmHg,
+	anatomicTubePerKg  = constDef{name: "anatomic dead space per kg PBW, tracheal tube or tracheostomy (intrathoracic airway)", unit: "mL/kg",
+		source: "Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6: intrathoracic anatomic dead space 0.43 mL per lb body weight in intubated subjects, extrathoracic 0.55 mL per lb (72 mL) bypassed by the tube [published]; 0.43 mL/lb = 0.948 mL/kg [derived]"}
+	discrepancyDef = constDef{name: "material PaCO2 difference", unit: UnitMmHg,
 		source: "half-width of the healthy 35-45 mmHg range [derived from published textbooks; common practice]"}
 )
 
@@ -20,6 +22,9 @@ const (
 	pbwMaleKg       = 50.0
 	pbwFemaleKg     = 45.5
 	anatomicMLPerKg = 2.2
+	// anatomicTubeMLPerKg is 0.43 mL per lb (Nunn, Campbell & Peckett 1959)
+	// in mL per kg: 0.43 / 0.45359237.
+	anatomicTubeMLPerKg = 0.43 / 0.45359237
 
 	// DiscrepancyThreshold is the measured-minus-predicted PaCO2 difference,
 	// in mm[Hg], beyond which PaCO2Discrepancy's text calls the difference
@@ -37,7 +42,8 @@ const (
 	methodDiscrepancy = "measured minus predicted PaCO2"
 
 	assumePBWAdult     = "height is the measured adult standing height"
-	assumeAnatomicPBW  = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed (Radford 1955; a poor predictor for an individual, Brewer & Orr)"
+	assumeAnatomicPBW  = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed, the whole airway from mouth and nose (Radford 1955; a poor predictor for an individual, Brewer & Orr)"
+	assumeAnatomicTube = "anatomic dead space not given: 0.95 mL/kg of predicted body weight assumed, the intrathoracic airway only, since a tracheal tube or tracheostomy bypasses the extrathoracic airway (Nunn, Campbell & Peckett 1959; a poor predictor for an individual, Brewer & Orr); the tube's own volume belongs to the apparatus dead space"
 	assumeNoAlveolarVD = "no alveolar dead space and no shunt: a measured PaCO2 above the predicted one points to them"
 	assumeVCO2Estimate = "estimated: VCO2 not measured"
 	assumePredictedVT  = "VT and RR are the tidal volume and breath rate supplied (measured or set); the prediction holds for the tidal volume and total breath rate actually delivered"
@@ -73,6 +79,58 @@ func PredictedBodyWeight(sex Sex, height Cm) (Result, error) {
 	return r, nil
 }
 
+// AnatomicModel says which airway the anatomic dead space estimate
+// describes when PredictedInput.AnatomicVD is not given.
+type AnatomicModel uint8
+
+const (
+	// AnatomicWholeAirway is the zero value: the whole conducting airway
+	// from mouth and nose, about 1 mL per lb of body weight, 2.2 mL/kg
+	// (Radford, J Appl Physiol 1955). It fits a patient breathing through
+	// the upper airway (mask ventilation, no artificial airway).
+	AnatomicWholeAirway AnatomicModel = iota
+	// AnatomicArtificialAirway is the airway of a patient with a tracheal
+	// tube or a tracheostomy, which bypasses the extrathoracic airway (72 mL,
+	// 0.55 mL per lb): the intrathoracic airway only, 0.43 mL per lb, 0.948
+	// mL/kg (Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6, measured
+	// in intubated subjects; 1.03 mL/kg intrathoracic in children, Numa &
+	// Newth, J Appl Physiol 1996;80:1485-9). The tube's own volume is
+	// apparatus dead space.
+	AnatomicArtificialAirway
+)
+
+// String returns the model's configuration name: "whole-airway" or
+// "artificial-airway".
+func (m AnatomicModel) String() string {
+	switch m {
+	case AnatomicWholeAirway:
+		return "whole-airway"
+	case AnatomicArtificialAirway:
+		return "artificial-airway"
+	}
+	return "unknown"
+}
+
+// ParseAnatomicModel reads a configuration name written by String.
+func ParseAnatomicModel(s string) (AnatomicModel, bool) {
+	switch s {
+	case "whole-airway":
+		return AnatomicWholeAirway, true
+	case "artificial-airway":
+		return AnatomicArtificialAirway, true
+	}
+	return 0, false
+}
+
+// PerKg returns the model's anatomic dead space per kg of predicted body
+// weight, in mL/kg: 2.2 or 0.948.
+func (m AnatomicModel) PerKg() float64 {
+	if m == AnatomicArtificialAirway {
+		return anatomicTubeMLPerKg
+	}
+	return anatomicMLPerKg
+}
+
 // PredictedInput holds the inputs of PredictedPaCO2.
 type PredictedInput struct {
 	VCO2          MLPerMin // CO2 production, mL/min STPD, VCO2Range
@@ -80,8 +138,11 @@ type PredictedInput struct {
 	VT            ML       // tidal volume, mL, TidalVolumeRange (expired measured preferred; the caller records what it passed)
 	RR            PerMin   // breath rate, /min, RespRateRange (total measured preferred; the caller records what it passed)
 	// AnatomicVD is the anatomic dead space, mL (AnatomicDeadSpaceRange);
-	// 0 means 2.2 mL/kg of PBW (Radford 1955), recorded as an assumption.
+	// 0 means Anatomic's estimate per kg of PBW (2.2 mL/kg, Radford 1955,
+	// for the whole airway; 0.948 mL/kg for a tracheal tube or
+	// tracheostomy), recorded as an assumption with its model and figure.
 	AnatomicVD ML
+	Anatomic   AnatomicModel
 	PBW        Kg // predicted body weight, kg (PBWRange); needed only when AnatomicVD is 0
 	// ApparatusVD is the dead space of the apparatus beyond the Y-piece (HME,
 	// closed suction, extensions), mL (ApparatusDeadSpaceRange). It must be
@@ -93,7 +154,11 @@ type PredictedInput struct {
 	// recorded constant: true for a value recorded for the patient's
 	// circuit, false for the site's setting.
 	ApparatusVDFromPatient bool
-	BodyTemp               Celsius // 0 means 37 Cel (recorded)
+	// BodyTemp is the measured body temperature; 0 means 37 Cel
+	// (recorded). When measured, the prediction (at body temperature, where
+	// K(T) puts it) is given back at 37 Cel with PCO2TempFactor, so that it
+	// compares with the blood gas as reported (TemperatureConvention).
+	BodyTemp Celsius
 }
 
 // PredictedPaCO2 returns the PaCO2, in mm[Hg], that the alveolar
@@ -137,9 +202,18 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 		if err := PBWRange.Check("PBW", float64(p.PBW)); err != nil {
 			return Result{}, err
 		}
-		anat = anatomicMLPerKg * float64(p.PBW)
-		r.addConst(&anatomicPerKg, anatomicMLPerKg)
-		r.assume(assumeAnatomicPBW)
+		switch p.Anatomic {
+		case AnatomicWholeAirway:
+			r.addConst(&anatomicPerKg, anatomicMLPerKg)
+			r.assume(assumeAnatomicPBW)
+		case AnatomicArtificialAirway:
+			r.addConst(&anatomicTubePerKg, anatomicTubeMLPerKg)
+			r.assume(assumeAnatomicTube)
+		default:
+			return Result{}, &InputError{Input: "anatomic dead space model", Value: float64(p.Anatomic), Unit: UnitOne, Kind: ErrNotGiven,
+				Detail: "whole-airway or artificial-airway"}
+		}
+		anat = p.Anatomic.PerKg() * float64(p.PBW)
 	} else if err := AnatomicDeadSpaceRange.Check("anatomic dead space", anat); err != nil {
 		return Result{}, err
 	}
@@ -153,7 +227,14 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 			"tidal volume must exceed anatomic plus apparatus dead space")
 	}
 	va := effective * float64(p.RR) / 1000
-	v := k * float64(p.VCO2) / va
+	vT := k * float64(p.VCO2) / va
+	v, back := vT, 1.0
+	backTo37 := p.BodyTemp != 0 && t != analyserTemp
+	if backTo37 {
+		back = PCO2TempFactor(t, analyserTemp)
+		v = vT * back
+		r.addConst(&pco2TempDef, PCO2TempCoefficient)
+	}
 	if err := checkComputed("predicted PaCO2", v, PaCO2Range); err != nil {
 		return Result{}, err
 	}
@@ -164,17 +245,54 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 	if p.VCO2Estimated {
 		r.assume(assumeVCO2Estimate)
 	}
+	perKg := p.Anatomic.PerKg()
+	ops := [maxOperands]float64{}
+	n := 0
 	if defaultAnat {
-		r.basis("VDanat = 2.2 mL/kg x %.2f kg = %.1f mL; VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg",
-			float64(p.PBW), anat, float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
-			float64(t), k, float64(p.VCO2), va, v)
-	} else {
-		r.basis("VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg",
-			float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
-			float64(t), k, float64(p.VCO2), va, v)
+		ops[0], ops[1], ops[2] = perKg, float64(p.PBW), anat
+		n = 3
 	}
+	n += copy(ops[n:], []float64{float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
+		float64(t), k, float64(p.VCO2), va, vT})
+	if !backTo37 {
+		r.basis(basisFormats[basisKey{defaultAnat, p.Anatomic, false}], ops[:n]...)
+		return r, nil
+	}
+	n += copy(ops[n:], []float64{float64(t), float64(t), vT, back, v})
+	r.basis(basisFormats[basisKey{defaultAnat, p.Anatomic, true}], ops[:n]...)
 	return r, nil
 }
+
+// basisKey selects the basis format of PredictedPaCO2: whether the anatomic
+// dead space was estimated, by which model, and whether the prediction is
+// given back at 37 Cel from a measured body temperature. The formats are
+// built once so that a derivation does not allocate.
+type basisKey struct {
+	estimated bool
+	model     AnatomicModel
+	back37    bool
+}
+
+var basisFormats = func() map[basisKey]string {
+	const core = "VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg"
+	const back = "; at 37 °C, as the blood gas is reported: PaCO2(37 °C) = PaCO2(%.1f °C) x 10^(0.019 x (37 °C - %.1f °C)) = %.2f mmHg x %.4f = %.2f mmHg"
+	anat := map[AnatomicModel]string{
+		AnatomicWholeAirway:      "VDanat (whole airway) = %.1f mL/kg x %.2f kg = %.1f mL; ",
+		AnatomicArtificialAirway: "VDanat (tube or tracheostomy: intrathoracic airway) = %.3g mL/kg x %.2f kg = %.1f mL; ",
+	}
+	m := map[basisKey]string{}
+	for model, prefix := range anat {
+		for _, b := range []bool{false, true} {
+			tail := ""
+			if b {
+				tail = back
+			}
+			m[basisKey{true, model, b}] = prefix + core + tail
+			m[basisKey{false, model, b}] = core + tail
+		}
+	}
+	return m
+}()
 
 // VCO2Basis says how the VCO2 behind a predicted PaCO2 was obtained, which
 // decides what a measured-minus-predicted difference can mean: with a

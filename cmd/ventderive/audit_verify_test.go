@@ -309,7 +309,7 @@ func TestAuditVerifyReplay(t *testing.T) {
 		t.Errorf("verify after altering a stored tidal volume: err = %v, want 1 mismatch", err)
 	}
 	out := stdout.String()
-	if !strings.Contains(out, "mismatch") || !strings.Contains(out, "value: published 42.6 mmHg, re-derived ") {
+	if !strings.Contains(out, "mismatch") || !strings.Contains(out, "value: published 31.5 mmHg, re-derived ") {
 		t.Errorf("verify output does not report the mismatch with both values:\n%s", out)
 	}
 	if !strings.Contains(out, "not verifiable with this build: no settings snapshot was recorded") {

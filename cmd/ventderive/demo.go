@@ -332,6 +332,7 @@ type patientSummary struct {
 	amended   int // derivation versions amended or corrected
 	refusals  map[string]int
 	latest    map[string]string // kind -> value of the latest blood gas
+	outside   []string          // current values outside the story's ranges
 }
 
 // summarise prints what happened per patient and checks every story's
@@ -359,6 +360,10 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 	}
 	gases := map[string]map[string]bool{}
 	lastGas := map[string]time.Time{}
+	ranges := map[string][]scenario.ValueRange{}
+	for _, p := range sc.Patients {
+		ranges[p.Ref] = p.Expect.Ranges
+	}
 	for rows.Next() {
 		var ref, gas, kind, reason, status, unit string
 		var refused bool
@@ -383,6 +388,12 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 			s.retracted++
 		default:
 			s.derived++
+			for _, r := range ranges[ref] {
+				if r.Kind == kind && (value < r.Min || value > r.Max) {
+					s.outside = append(s.outside, fmt.Sprintf("%s %.3g outside the story's %g to %g (blood gas at %s)",
+						kind, value, r.Min, r.Max, eff.UTC().Format("15:04")))
+				}
+			}
 			if !eff.Before(lastGas[ref]) {
 				if eff.After(lastGas[ref]) {
 					s.latest = map[string]string{}
@@ -427,6 +438,7 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 		if want.Retracted > 0 && s.retracted == 0 {
 			bad = append(bad, "nothing retracted")
 		}
+		bad = append(bad, s.outside...)
 		mark := "ok"
 		if len(bad) > 0 {
 			mark = "UNEXPECTED: " + strings.Join(bad, "; ")
@@ -434,6 +446,13 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 		}
 		fmt.Fprintf(tw, "\n%s: %s\n", p.Label, mark)
 		fmt.Fprintf(tw, "  story\t%s\n", p.Story)
+		if len(p.Expect.Ranges) > 0 {
+			parts := make([]string, len(p.Expect.Ranges))
+			for i, r := range p.Expect.Ranges {
+				parts[i] = fmt.Sprintf("%s %g to %g", r.Kind, r.Min, r.Max)
+			}
+			fmt.Fprintf(tw, "  expected\t%s\n", strings.Join(parts, ", "))
+		}
 		fmt.Fprintf(tw, "  store\t%d blood gases, %d current derived values, %d retracted, %d amended\n", s.gases, s.derived, s.retracted, s.amended)
 		if len(s.refusals) > 0 {
 			fmt.Fprintf(tw, "  refusals\t%s\n", formatCounts(s.refusals))

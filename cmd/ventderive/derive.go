@@ -56,6 +56,9 @@ func parseDerive(args []string, stderr io.Writer, now time.Time) (deriveConfig, 
 	fs.Float64Var(&apparatus, "apparatus-dead-space-ml", 0, "the site's apparatus dead space beyond the Y-piece in mL (HME, closed suction); a value recorded for the patient's circuit (aliased Observation) is preferred; unset and none recorded: predicted PaCO2 is refused, never computed with zero")
 	fs.DurationVar(&c.site.Window.Before, "window-before", c.site.Window.Before, "pairing window before the blood gas")
 	fs.DurationVar(&c.site.Window.After, "window-after", c.site.Window.After, "pairing window after the blood gas")
+	fs.DurationVar(&c.site.TemperatureWindow.Before, "temperature-window-before", c.site.TemperatureWindow.Before, "pair a body temperature up to this long before the blood gas")
+	fs.DurationVar(&c.site.TemperatureWindow.After, "temperature-window-after", c.site.TemperatureWindow.After, "pair a body temperature up to this long after the blood gas")
+	anatomic := fs.String("anatomic-dead-space", c.site.AnatomicDeadSpace.String(), "anatomic dead space model of predicted PaCO2: artificial-airway (tracheal tube or tracheostomy, 0.948 mL/kg PBW) or whole-airway (2.2 mL/kg PBW)")
 	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mmHg for the ventilation-for-target advice; a patient's PaCO2 Goal in force overrides it; 0 or unset: not configured, and without a Goal the for-target values are refused (40 is the usual suggestion)")
 	fs.StringVar(&c.site.CodeSystemURL, "codesystem-url", c.site.CodeSystemURL, "canonical URL of the service CodeSystem")
 	fs.StringVar(&recorded, "recorded", "", "RFC 3339 time written as Provenance.recorded and Bundle.timestamp (default: now)")
@@ -70,6 +73,12 @@ func parseDerive(args []string, stderr io.Writer, now time.Time) (deriveConfig, 
 			c.site.ApparatusDeadSpaceML, c.site.ApparatusDeadSpaceConfigured = apparatus, true
 		}
 	})
+	m, err := anatomicModel(*anatomic)
+	if err != nil {
+		fmt.Fprintf(stderr, "ventderive derive: --%v\n", err)
+		return c, errUsage
+	}
+	c.site.AnatomicDeadSpace = m
 	c.recorded = now
 	if recorded != "" {
 		t, err := time.Parse(time.RFC3339Nano, recorded)
@@ -182,8 +191,9 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 	if site.TargetPaCO2mmHg != 0 {
 		target = fmt.Sprintf("%g mmHg (the site's; a patient's PaCO2 Goal in force overrides it)", site.TargetPaCO2mmHg)
 	}
-	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas; apparatus dead space %s; target PaCO2 %s; %s, RQ %g.\n\n",
-		shortDuration(site.Window.Before), shortDuration(site.Window.After), apparatus, target, site.Energy, site.RQ)
+	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas (body temperature %s before to %s after); apparatus dead space %s; anatomic dead space %s; target PaCO2 %s; %s, RQ %g.\n\n",
+		shortDuration(site.Window.Before), shortDuration(site.Window.After), shortDuration(site.TemperatureWindow.Before),
+		shortDuration(site.TemperatureWindow.After), apparatus, site.AnatomicDeadSpace, target, site.Energy, site.RQ)
 	// Read by patient, then blood-gas time, then kind.
 	ds = slices.Clone(ds)
 	slices.SortStableFunc(ds, func(x, y fhirmap.Derivation) int {

@@ -28,6 +28,7 @@ import (
 	"github.com/ventderive/ventderive/consumer/postgres"
 	"github.com/ventderive/ventderive/fhirmap"
 	"github.com/ventderive/ventderive/migrations"
+	"github.com/ventderive/ventderive/physio"
 )
 
 func init() {
@@ -49,6 +50,7 @@ type serveConfig struct {
 	patientHashKey                             string
 	apparatusDeadSpaceML                       float64 // < 0: not configured
 	targetPaCO2mmHg                            float64 // 0: not configured
+	anatomicDeadSpace                          string  // physio.AnatomicModel name
 	migrate                                    bool
 	workers                                    int
 	pipeline                                   consumer.Config
@@ -192,8 +194,11 @@ func bindServe(fs *flag.FlagSet, getenv func(string) string, c *serveConfig) (*s
 		s.dur(&c.pipeline.Window.Before, "window-before", fhirmap.DefaultSite().Window.Before, "pair ventilator data up to this long before a blood gas"),
 		s.dur(&c.pipeline.Window.After, "window-after", fhirmap.DefaultSite().Window.After, "pair ventilator data up to this long after a blood gas"),
 		s.num(&c.apparatusDeadSpaceML, "apparatus-dead-space-ml", -1, "apparatus dead space of the site's circuits in mL (HME, closed suction); a value recorded for the patient's circuit is preferred; negative: not configured, and without a recorded value derivations that need it are refused"),
+		s.dur(&c.pipeline.TemperatureWindow.Before, "temperature-window-before", fhirmap.DefaultTemperatureWindowBefore, "pair a body temperature up to this long before a blood gas (charted hourly or less often)"),
+		s.dur(&c.pipeline.TemperatureWindow.After, "temperature-window-after", fhirmap.DefaultTemperatureWindowAfter, "pair a body temperature up to this long after a blood gas"),
 		s.num(&c.targetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mm[Hg] for the ventilation-for-target values; a patient's PaCO2 Goal in force overrides it; 0: not configured, and without a Goal those values are refused (40 is the usual adult suggestion)"),
 	}
+	s.str(&c.anatomicDeadSpace, "anatomic-dead-space", fhirmap.DefaultAnatomicDeadSpace.String(), "anatomic dead space model of predicted PaCO2: artificial-airway (tracheal tube or tracheostomy, 0.948 mL/kg PBW) or whole-airway (2.2 mL/kg PBW)")
 	s.str(&c.codeAliases, "code-aliases", "", "site code-alias file mapping local codes onto known quantities")
 	s.str(&c.codeSystemURL, "codesystem-url", fhirmap.DefaultSite().CodeSystemURL, "canonical URL of the service's CodeSystem for derived values")
 	s.secret(&c.patientHashKey, "patient-hash-key", "", "secret key for the keyed hash of patient references in logs and lookups (required)")
@@ -236,6 +241,18 @@ func runServe(ctx context.Context, args []string, e env) error {
 	return serve(ctx, c, log, nil)
 }
 
+// anatomicModel reads the --anatomic-dead-space setting; "" is the default.
+func anatomicModel(name string) (physio.AnatomicModel, error) {
+	if name == "" {
+		return fhirmap.DefaultAnatomicDeadSpace, nil
+	}
+	m, ok := physio.ParseAnatomicModel(name)
+	if !ok {
+		return 0, fmt.Errorf("anatomic dead space %q: not artificial-airway or whole-airway", name)
+	}
+	return m, nil
+}
+
 // newLogger builds the JSON logger every command that logs uses.
 func newLogger(e env, level string) (*slog.Logger, error) {
 	var l slog.Level
@@ -250,6 +267,12 @@ func newLogger(e env, level string) (*slog.Logger, error) {
 func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *consumer.Pipeline) error {
 	site := fhirmap.DefaultSite()
 	site.Window = c.pipeline.Window
+	site.TemperatureWindow = c.pipeline.TemperatureWindow
+	model, err := anatomicModel(c.anatomicDeadSpace)
+	if err != nil {
+		return err
+	}
+	site.AnatomicDeadSpace = model
 	site.CodeSystemURL = c.codeSystemURL
 	if c.apparatusDeadSpaceML >= 0 {
 		site.ApparatusDeadSpaceML = c.apparatusDeadSpaceML

@@ -25,10 +25,12 @@
 // itself; by a new patient-level fact (sex, birth date, height, weight) when
 // it lies within Message.Horizon before the patient's latest blood gas; and by
 // any other new fact at time t when its effective time lies in
-// [t - Window.After, t + Window.Before], where t ranges over every stored
-// version of that fact (a corrected time also reopens the blood gases around
-// the old one). The snapshot holds every version of every fact key of the
-// patient that has a version in the window of an affected blood gas, every
+// [t - Window.After, t + Window.Before] (for a body temperature, TempWindow
+// instead of Window: temperatures are paired in a window of their own),
+// where t ranges over every stored version of that fact (a corrected time
+// also reopens the blood gases around the old one). The snapshot holds every
+// version of every fact key of the patient that has a version in the window
+// of an affected blood gas (or, for body temperatures, in its TempWindow), every
 // version of the affected blood gases, and every patient-level fact, in the
 // order they were stored.
 //

@@ -28,6 +28,9 @@ var t0 = time.Date(2026, 3, 1, 8, 0, 0, 0, time.UTC)
 
 var window = fhirmap.Window{Before: 30 * time.Minute, After: 10 * time.Minute}
 
+// tempWindow is the body-temperature window (fhirmap defaults).
+var tempWindow = fhirmap.Window{Before: fhirmap.DefaultTemperatureWindowBefore, After: fhirmap.DefaultTemperatureWindowAfter}
+
 const horizon = 14 * 24 * time.Hour
 
 var testKey = []byte("pgtest-patient-hash-key-0123456789abcdef")
@@ -117,7 +120,7 @@ func vent(patient, id string, q fhirmap.Quantity, at time.Time, v float64, unit 
 
 // message wraps observations into one input message, keyed by its payload.
 func message(subject string, seq uint64, os ...obs) consumer.Message {
-	m := consumer.Message{Subject: subject, StreamSeq: seq, Received: t0.Add(time.Hour), Window: window, Horizon: horizon}
+	m := consumer.Message{Subject: subject, StreamSeq: seq, Received: t0.Add(time.Hour), Window: window, TempWindow: tempWindow, Horizon: horizon}
 	var raws []string
 	for _, o := range os {
 		r := o.resource()

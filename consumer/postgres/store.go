@@ -164,6 +164,12 @@ ON CONFLICT (key, digest) DO NOTHING`
 	// window join read 10,131 rows to keep 285 at 24 h of one bed (11 ms per
 	// message); with statistics, the patient-level lookup read all 23,141
 	// facts of a 96 h stay to keep 0 (6.4 ms). Both grow with the stay.
+	//
+	// Body temperatures ($11, the body-temp quantity) are paired in a window
+	// of their own ($9 before, $10 after a blood gas): a new one reopens the
+	// blood gases of that window, and the snapshot adds them by a lateral
+	// lookup on (patient_hash, quantity, effective) per affected blood gas,
+	// so the wider window costs no ventilator readings.
 	affectedCTE = `
 WITH cand AS MATERIALIZED (
     SELECT f.quantity, f.effective, f.key, f.patient_hash, f.inbox_key FROM fact f
@@ -184,8 +190,8 @@ WITH cand AS MATERIALIZED (
     SELECT b.key FROM changed c CROSS JOIN LATERAL (
         SELECT b.key FROM fact b
         WHERE b.patient_hash = $1 AND b.quantity = $7::text
-          AND b.effective BETWEEN c.effective - $4::bigint * interval '1 microsecond'
-                              AND c.effective + $3::bigint * interval '1 microsecond'
+          AND b.effective BETWEEN c.effective - CASE WHEN c.quantity = $11::text THEN $10::bigint ELSE $4::bigint END * interval '1 microsecond'
+                              AND c.effective + CASE WHEN c.quantity = $11::text THEN $9::bigint ELSE $3::bigint END * interval '1 microsecond'
         OFFSET 0) b
     WHERE c.quantity <> $7::text AND NOT c.quantity = ANY($6::text[])
 )`
@@ -225,6 +231,12 @@ gas AS MATERIALIZED (
         SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.effective > win.hi
           AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
         ORDER BY f.effective LIMIT ` + nearestOutside + `) n
+    UNION SELECT t.key FROM gas g CROSS JOIN LATERAL (
+        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.quantity = $11::text
+          AND f.effective BETWEEN g.effective - $9::bigint * interval '1 microsecond'
+                              AND g.effective + $10::bigint * interval '1 microsecond'
+        OFFSET 0) t
+    WHERE g.patient_hash = $1
 ), found AS MATERIALIZED (
     SELECT id, patient_hash, ` + factColumns + `
     FROM fact WHERE key = ANY(ARRAY(SELECT key FROM keys)) AND EXISTS (SELECT 1 FROM affected)
@@ -614,9 +626,14 @@ func optTime(t time.Time) pgtype.Timestamptz {
 // snapshot facts and the heads (three statements sharing affectedCTE).
 func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
 	before, after, horizon := msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(), msg.Horizon.Microseconds()
+	tw := msg.TempWindow
+	if tw == (fhirmap.Window{}) {
+		tw = msg.Window
+	}
 	keys := factKeys(msg)
 	for _, p := range order {
-		args := []any{p.hash, keys, before, after, horizon, patientLevel, string(fhirmap.QPCO2), msg.InboxKey}
+		args := []any{p.hash, keys, before, after, horizon, patientLevel, string(fhirmap.QPCO2), msg.InboxKey,
+			tw.Before.Microseconds(), tw.After.Microseconds(), string(fhirmap.QBodyTemp)}
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
 		b.Queue(snapshotHeadsSQL, args...)

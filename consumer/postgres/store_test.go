@@ -148,14 +148,23 @@ func TestAffected(t *testing.T) {
 		{"height 10 days before", vent(p1, "height", fhirmap.QHeight, t0.Add(-240*time.Hour), 170, "cm"), true},
 		{"weight 1 day after", vent(p1, "weight", fhirmap.QWeight, t0.Add(24*time.Hour), 70, "kg"), true},
 		{"other patient's minute volume", vent("Patient/lg-icu-0002", "ve-other", fhirmap.QMinuteVol, t0, 9, "L/min"), false},
+		// Body temperature has its own window, 2 h before to 30 min after
+		// (fhirmap.Site.TemperatureWindow: charted hourly [common practice]).
+		{"temperature 90 min before", vent(p1, "temp-late", fhirmap.QBodyTemp, t0.Add(-90*time.Minute), 36.2, "Cel"), true},
+		{"temperature 2 h before (edge)", vent(p1, "temp-late", fhirmap.QBodyTemp, t0.Add(-2*time.Hour), 36.2, "Cel"), true},
+		{"temperature 2 h 1 min before", vent(p1, "temp-late", fhirmap.QBodyTemp, t0.Add(-121*time.Minute), 36.2, "Cel"), false},
+		{"temperature 30 min after (edge)", vent(p1, "temp-late", fhirmap.QBodyTemp, t0.Add(30*time.Minute), 36.2, "Cel"), true},
+		{"temperature 31 min after", vent(p1, "temp-late", fhirmap.QBodyTemp, t0.Add(31*time.Minute), 36.2, "Cel"), false},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			t.Parallel()
 			f := newFixture(t)
 			early := vent(p1, "ve-early", fhirmap.QMinuteVol, t0.Add(-50*time.Minute), 8, "L/min") // outside the window
-			// Eight more readings further out, then one beyond them.
-			older := []obs{abg(p1, "abg-1", t0, 45), early}
+			// Eight more readings further out, then one beyond them, and a
+			// body temperature inside the temperature window only.
+			temp := vent(p1, "temp-early", fhirmap.QBodyTemp, t0.Add(-100*time.Minute), 36.4, "Cel")
+			older := []obs{abg(p1, "abg-1", t0, 45), early, temp}
 			for i := range 8 {
 				older = append(older, vent(p1, fmt.Sprintf("rr-%d", i), fhirmap.QRespRate, t0.Add(-time.Duration(60+i)*time.Minute), 14, "/min"))
 			}
@@ -194,6 +203,9 @@ func TestAffected(t *testing.T) {
 			}
 			if slices.Contains(keys, "Observation/ve-far") {
 				t.Errorf("snapshot facts %v hold a reading beyond the nearest ones outside the window", keys)
+			}
+			if !slices.Contains(keys, "Observation/temp-early") {
+				t.Errorf("snapshot facts %v lack the body temperature 100 min before the blood gas", keys)
 			}
 		})
 	}

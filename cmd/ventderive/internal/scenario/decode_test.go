@@ -3,11 +3,13 @@ package scenario
 import (
 	"errors"
 	"math"
+	"slices"
 	"strings"
 	"testing"
 	"time"
 
 	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/physio"
 )
 
 // TestServiceDecodesScenario feeds every message to the service's decoder:
@@ -102,14 +104,31 @@ func TestExpectationsHoldOffline(t *testing.T) {
 	for _, p := range sc.Patients {
 		t.Run(strings.ReplaceAll(p.Label, " ", "_"), func(t *testing.T) {
 			derivedGases := map[string]bool{}
+			seen := map[string]int{}
 			vr := []float64{}
 			for _, d := range ds {
 				if d.Patient != p.Ref || d.Status == fhirmap.StatusEnteredInError {
 					continue
 				}
 				derivedGases[d.BloodGas] = true
+				// Every value lies in the range the story states, and no
+				// measured PaCO2 is flagged implausibly below predicted.
+				for _, r := range p.Expect.Ranges {
+					if r.Kind == d.Kind && (d.Result.Value < r.Min || d.Result.Value > r.Max) {
+						t.Errorf("%s %s = %.3f outside the story's %g..%g", d.BloodGas, d.Kind, d.Result.Value, r.Min, r.Max)
+					}
+				}
+				seen[d.Kind]++
+				if slices.Contains(d.Result.Flags(), physio.FlagPaCO2BelowPredicted) {
+					t.Errorf("%s %s flagged: %s", d.BloodGas, d.Kind, physio.FlagPaCO2BelowPredicted)
+				}
 				if d.Kind == fhirmap.KindVentilatoryRatio {
 					vr = append(vr, d.Result.Value)
+				}
+			}
+			for _, r := range p.Expect.Ranges {
+				if seen[r.Kind] == 0 {
+					t.Errorf("the story states a range for %s but none was derived", r.Kind)
 				}
 			}
 			reasons := map[string]bool{}

@@ -12,22 +12,32 @@
 //
 // Each story fixes, as a function of the time of day, the true CO2
 // production VCO2 (mL/min, STPD), the physiologic dead-space fraction VD/VT,
-// the tidal volume VT (mL) and the breath rate RR (/min), so that the expired
-// minute volume is VE = VT x RR / 1000 (L/min). The arterial CO2 tension then
-// follows from the alveolar ventilation equation with the Enghoff dead space
-// (shared reference physiology.md, sections 1 and 2):
+// the tidal volume VT (mL), the breath rate RR (/min) and the body
+// temperature T (Cel), so that the expired minute volume is VE = VT x RR /
+// 1000 (L/min). The arterial CO2 tension in the patient then follows from the
+// alveolar ventilation equation with the Enghoff dead space at body
+// temperature (shared reference physiology.md, sections 1 and 2), and the
+// analyser reports it at 37 Cel with the in vitro coefficient 0.019 (J Appl
+// Physiol, submitted 1964 [published]):
 //
-//	PaCO2 [mm[Hg]] = 0.863 x VCO2 / (VE x (1 - VD/VT))
+//	PaCO2(T) [mm[Hg]] = 0.760 x (273 + T) / 273 x VCO2 / (VE x (1 - VD/VT))
+//	PaCO2 reported    = PaCO2(T) x 10^(0.019 x (37 - T))
 //
-// End-tidal CO2 is PaCO2 minus a story-specific arterial to end-tidal
+// Every bed is intubated, and each story's VD/VT is at least the anatomic
+// dead space of an artificial airway (0.948 mL/kg of predicted body weight,
+// Nunn, Campbell & Peckett 1959) plus the apparatus dead space plus 0.05 of
+// VT of alveolar dead space (TestStoriesPhysiologicallyConsistent), so that
+// the measured PaCO2 is never materially below the predicted one. Each story
+// states the ranges its derived values must lie in (Expectation.Ranges).
+//
+// End-tidal CO2 is PaCO2(T) minus a story-specific arterial to end-tidal
 // gradient (normal 4.6 +/- 2.5 mm[Hg], Nunn & Hill 1960). pH follows from
 // the Henderson-Hasselbalch equation, pH = 6.1 + log10(HCO3 / (0.0307 x
 // PaCO2)) [common practice], and base excess from the Van Slyke form used by
 // blood-gas analysers, BE = 0.93 x (HCO3 - 24.4 + 14.8 x (pH - 7.4))
 // [memory]. PaO2 is the story's PaO2/FiO2 ratio times FiO2. Measurement
 // noise is added on top: analyser noise on blood gases, breath-to-breath
-// noise on ventilator readings. The constant 0.863 is the 37 Cel value; for
-// the cooled patient the difference from K(33.5 Cel) = 0.853 is about 1 %.
+// noise on ventilator readings.
 //
 // # Assumptions the demo must configure to match
 //
@@ -37,7 +47,9 @@
 //     the patient.
 //   - Pairing window: PairingBefore (30 min) before and PairingAfter (10 min)
 //     after a blood gas, the defaults of consumer.DefaultConfig. Expectation
-//     counts are computed with this window.
+//     counts are computed with this window. Body temperature is paired in
+//     the service's own default window (2 h before to 30 min after).
+//   - Anatomic dead space: the service's default, artificial airway.
 //
 // # Feeds and shapes
 //

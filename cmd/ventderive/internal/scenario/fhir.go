@@ -46,6 +46,7 @@ var (
 	loincWeight   = code{systemLOINC, "29463-7", "Body weight"}
 	loincHeight   = code{systemLOINC, "8302-2", "Body height"}
 	loincTemp     = code{systemLOINC, "8310-5", "Body temperature"}
+	loincTempEso  = code{systemLOINC, "60836-4", "Esophageal temperature"}
 	mdcVT         = code{systemMDC, "151980", "tidal volume delivered"}
 	mdcVEinsp     = code{systemMDC, "152004", "inspired minute volume"}
 	mdcRRtotal    = code{systemMDC, "152490", "total breath rate (spontaneous + mechanical)"}

@@ -153,6 +153,14 @@ type Expectation struct {
 	Retracted int
 	// DeadLetters counts the patient's malformed messages.
 	DeadLetters int
+	// Ranges are the ranges the patient's current derived values must lie
+	// in, one per kind the story states (VD/VT from VCO2, ventilatory
+	// ratio, arterial to end-tidal gradient, measured minus predicted
+	// PaCO2). They follow from the story's model (physiologic dead space at
+	// least anatomic plus apparatus plus 0.05 of VT of alveolar dead space),
+	// widened by the noise of the readings; measured minus predicted PaCO2
+	// never goes below DiscrepancyFloor. Empty when nothing is derived.
+	Ranges []ValueRange
 }
 
 // Message is one input message to publish.
@@ -309,6 +317,16 @@ func (g *generator) run() Patient {
 	if st.malformed != wellFormed {
 		p.Expect.DeadLetters = 1
 	}
+	if p.Expect.MinDerived > 0 {
+		for _, r := range st.ranges {
+			if r.Kind == KindDeadSpaceVCO2 || r.Kind == KindDiscrepancy {
+				if !st.vco2Measured {
+					continue
+				}
+			}
+			p.Expect.Ranges = append(p.Expect.Ranges, r)
+		}
+	}
 	return p
 }
 
@@ -365,12 +383,18 @@ func (g *generator) temperatures() {
 		}
 		t := st.at(g.frac(eff)).tempC + 0.1*g.rng.NormFloat64()
 		q := qty(t, 1, unitCel)
+		c := concept(loincTemp)
+		if st.coreTemp {
+			// As the MII-ICU oesophageal profile codes it: the vital-signs
+			// code and the site's.
+			c = concept(loincTemp, loincTempEso)
+		}
 		if st.tempF {
 			q = qty(t*9/5+32, 1, unitDegF) // Fahrenheit = Celsius x 9/5 + 32 (UCUM [degF])
 		}
 		g.emit(at, SubjectDevice, mustJSON(jsonObservation{
 			ResourceType: "Observation", ID: fmt.Sprintf("lg-%04d-temp-%03d", st.bed, h), Status: "final",
-			Category: []jsonConcept{concept(categoryVital)}, Code: concept(loincTemp),
+			Category: []jsonConcept{concept(categoryVital)}, Code: c,
 			Subject: &jsonRef{Reference: g.ref}, Encounter: &jsonRef{Reference: g.enc},
 			EffectiveDateTime: fhirTime(eff), ValueQuantity: q,
 		}))
@@ -433,12 +457,15 @@ func (g *generator) ventReading(m int, eff, at time.Time, s state) {
 
 	ve := s.ve() * (1 + 0.025*r.NormFloat64())
 	vt := s.vt * (1 + 0.03*r.NormFloat64())
-	rr := s.rr + 0.6*r.NormFloat64()
-	etco2 := s.paCO2() - s.gap + 0.7*r.NormFloat64()
+	// Measured total rate averaged over the minute: on controlled ventilation
+	// it stays within a few tenths of the set rate [common practice].
+	rr := s.rr + 0.3*r.NormFloat64()
+	// End-tidal gas is in equilibrium with blood at body temperature.
+	etco2 := s.paCO2AtBody() - s.gap + 0.7*r.NormFloat64()
 	rs := []reading{
 		{"ve", []code{loincVEexp}, qty(ve, 2, unitLMin)},
 		{"vt", pick(mdcVT, loincVT), qty(vt, 0, unitML)},
-		{"rr", pick(mdcRRtotal, loincRRtotal), qty(rr, 0, rrUnit)},
+		{"rr", pick(mdcRRtotal, loincRRtotal), qty(rr, 1, rrUnit)},
 	}
 	if st.etco2KPa {
 		rs = append(rs, reading{"etco2", pick(mdcETCO2, loincPETCO2), qty(etco2/mmHgPerKPa, 2, unitKPa)})
@@ -461,7 +488,7 @@ func (g *generator) ventReading(m int, eff, at time.Time, s state) {
 		rs = append(rs, reading{"vei", pick(mdcVEinsp, loincVEinsp), qty(ve*1.04, 2, unitLMin)})
 	}
 	if st.vco2Measured {
-		rs = append(rs, reading{"vco2", []code{loincVCO2}, qty(s.vco2*(1+0.04*r.NormFloat64()), 0, unitMLMin)})
+		rs = append(rs, reading{"vco2", []code{loincVCO2}, qty(s.vco2*(1+0.03*r.NormFloat64()), 0, unitMLMin)})
 	}
 	// Plateau pressure needs an inspiratory hold: every 30th reading.
 	if s.plateau > 0 && m%30 == 0 {

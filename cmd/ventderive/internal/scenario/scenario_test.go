@@ -142,6 +142,7 @@ var knownCodes = map[string]struct {
 	"http://loinc.org|29463-7":           {[]string{"kg", "[lb_av]"}, 35, 250}, // body weight
 	"http://loinc.org|8302-2":            {[]string{"cm", "[in_i]"}, 120, 220}, // body height
 	"http://loinc.org|8310-5":            {[]string{"Cel", "[degF]"}, 30, 43},  // body temperature; cooling to 32-36 is TTM
+	"http://loinc.org|60836-4":           {[]string{"Cel", "[degF]"}, 30, 43},  // oesophageal (core) temperature, MII-ICU profile
 	"urn:iso:std:iso:11073:10101|151980": {[]string{"mL"}, 150, 1000},          // tidal volume delivered
 	"urn:iso:std:iso:11073:10101|152004": {[]string{"L/min"}, 2, 30},           // inspired minute volume
 	"urn:iso:std:iso:11073:10101|152490": {[]string{"/min", "{breaths}/min"}, 5, 45},

@@ -18,13 +18,22 @@ type gasReading struct {
 	tempC     float64 // nearest temperature, Cel
 }
 
+// pT is the PaCO2 at the patient's temperature: the analyser's 37 Cel value
+// x 10^(0.019 x (T - 37)) (in vitro coefficient, J Appl Physiol, submitted
+// 1964 [published]), as the service corrects it for the gas-phase formulas.
+func (g gasReading) pT() float64 { return g.paCO2 * math.Pow(10, 0.019*(g.tempC-37)) }
+
 // vdvt is the Enghoff dead-space fraction from VCO2 and VE:
-// 1 - 0.863 VCO2 / (VE PaCO2) [derived, reference/physiology.md s2].
-func (g gasReading) vdvt() float64 { return 1 - 0.863*g.vco2/(g.ve*g.paCO2) }
+// 1 - K(T) VCO2 / (VE PaCO2(T)), K(T) = 0.760 (273 + T) / 273 [derived,
+// reference/physiology.md s1 and s2].
+func (g gasReading) vdvt() float64 {
+	return 1 - 0.760*(273+g.tempC)/273*g.vco2/(g.ve*g.pT())
+}
 
 // vr is the ventilatory ratio, VE[mL/min] PaCO2 / (PBW 100 37.5)
-// [published: Sinha et al., Br J Anaesth 2009; reference/physiology.md s6].
-func (g gasReading) vr(pbwKg float64) float64 { return g.ve * 1000 * g.paCO2 / (pbwKg * 100 * 37.5) }
+// [published: Sinha et al., Br J Anaesth 2009; reference/physiology.md s6],
+// with the PaCO2 at body temperature.
+func (g gasReading) vr(pbwKg float64) float64 { return g.ve * 1000 * g.pT() / (pbwKg * 100 * 37.5) }
 
 // pbw is the ARDS Network predicted body weight, kg [published: NEJM 2000;
 // reference/physiology.md s5].
@@ -116,8 +125,8 @@ func TestStoryPhysiology(t *testing.T) {
 			// healthy lungs [published: Sinha 2009]; gradient 4.6 +/- 2.5 mm[Hg]
 			// [published: Nunn & Hill 1960].
 			for _, g := range gs {
-				if !between(g.vdvt(), 0.25, 0.40) || !between(g.vr(pbwKg), 0.75, 1.25) || !between(g.paCO2-g.petCO2, 2, 8) {
-					t.Errorf("%v: VD/VT %.3f VR %.2f gradient %.1f", g.effective, g.vdvt(), g.vr(pbwKg), g.paCO2-g.petCO2)
+				if !between(g.vdvt(), 0.25, 0.40) || !between(g.vr(pbwKg), 0.75, 1.25) || !between(g.pT()-g.petCO2, 2, 8) {
+					t.Errorf("%v: VD/VT %.3f VR %.2f gradient %.1f", g.effective, g.vdvt(), g.vr(pbwKg), g.pT()-g.petCO2)
 				}
 			}
 		}},
@@ -134,8 +143,8 @@ func TestStoryPhysiology(t *testing.T) {
 		}},
 		{3, "COPD_PaCO2_above_50mmHg_gradient_above_10mmHg_falls_with_rate", func(t *testing.T, gs []gasReading, _ float64) {
 			first, last := gs[0], gs[len(gs)-1]
-			if first.paCO2 < 50 || first.paCO2-first.petCO2 < 10 {
-				t.Errorf("first PaCO2 %.1f gradient %.1f", first.paCO2, first.paCO2-first.petCO2)
+			if first.paCO2 < 50 || first.pT()-first.petCO2 < 10 {
+				t.Errorf("first PaCO2 %.1f gradient %.1f", first.paCO2, first.pT()-first.petCO2)
 			}
 			// PaCO2 is inversely proportional to alveolar ventilation
 			// [derived, reference/physiology.md s9]: rate 14 -> 16 lowers it by 1/8.
@@ -149,8 +158,8 @@ func TestStoryPhysiology(t *testing.T) {
 		{4, "PE_gradient_above_13_then_below_10mmHg_VDVT_falls", func(t *testing.T, gs []gasReading, _ float64) {
 			// Trauma survival best with gradient <= 9 mm[Hg] [published: Tyburski 2002].
 			first, last := gs[0], gs[len(gs)-1]
-			if first.paCO2-first.petCO2 < 13 || last.paCO2-last.petCO2 > 10 {
-				t.Errorf("gradient %.1f -> %.1f", first.paCO2-first.petCO2, last.paCO2-last.petCO2)
+			if first.pT()-first.petCO2 < 13 || last.pT()-last.petCO2 > 10 {
+				t.Errorf("gradient %.1f -> %.1f", first.pT()-first.petCO2, last.pT()-last.petCO2)
 			}
 			if !(first.vdvt() >= 0.50 && last.vdvt() <= 0.46) {
 				t.Errorf("VD/VT %.3f -> %.3f", first.vdvt(), last.vdvt())
