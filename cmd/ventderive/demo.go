@@ -399,7 +399,7 @@ func summarise(ctx context.Context, pool *pgxpool.Pool, js jetstream.JetStream, 
 					s.latest = map[string]string{}
 				}
 				lastGas[ref] = eff
-				s.latest[kind] = strings.TrimSpace(fmt.Sprintf("%.3g %s", value, physio.DisplayUnit(unit)))
+				s.latest[kind] = strings.TrimSpace(fhirmap.FormatValue(kind, value) + " " + physio.DisplayUnit(unit)) // as published
 			}
 		}
 	}
