@@ -103,20 +103,13 @@ const (
     set_config('jit', 'off', true)`
 
 	claimInboxSQL = `
-INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
-VALUES ($1, $2, $3, $4, $5, $6, $7)
+INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
+VALUES ($1, $2, $3, $4, $5, $6, $7, $8)
 ON CONFLICT (inbox_key) DO NOTHING`
 
 	// One lock per patient, taken in sorted order by the caller so that two
 	// messages about the same patients cannot deadlock.
 	lockPatientSQL = `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`
-
-	insertResourcesSQL = `
-INSERT INTO input_resource (reference, resource_type, version_id, patient_ref, patient_hash, digest, raw, inbox_key, received, recorded_at)
-SELECT u.reference, u.resource_type, u.version_id, u.patient_ref, u.patient_hash, u.digest, u.raw, $8, $9, $10
-FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::text[], $6::text[], $7::bytea[])
-     AS u(reference, resource_type, version_id, patient_ref, patient_hash, digest, raw)
-ON CONFLICT (reference, digest) DO NOTHING`
 
 	insertFactsSQL = `
 INSERT INTO fact (key, digest, resource_ref, version_id, last_updated, patient_ref, patient_hash, encounter,
@@ -377,7 +370,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		b := &pgx.Batch{}
 		b.Queue(pointLookupsSQL)
 		b.Queue(claimInboxSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), msg.Received.UTC(), now,
-			len(msg.Resources), len(msg.Facts))
+			len(msg.Resources), len(msg.Facts), msg.Raw)
 		for _, p := range order {
 			b.Queue(lockPatientSQL, p.ref)
 		}
@@ -454,12 +447,11 @@ func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
 	return order
 }
 
-// queueInput queues the statements that store a claimed message's resources
-// and facts and load, per patient, what the new facts affect.
+// queueInput queues the statements that store a claimed message's facts
+// and load, per patient, what the new facts affect. The resources are kept
+// in the message's bytes, which the inbox row holds (migration 0011); no
+// row per resource is written.
 func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time) {
-	if len(msg.Resources) > 0 {
-		b.Queue(insertResourcesSQL, s.resourceArgs(msg, now)...)
-	}
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
 		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
@@ -506,11 +498,6 @@ func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, 
 // readInput reads the results of what queueInput queued. others are the
 // patients the message moved facts away from (see loadMoved).
 func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, res *consumer.IngestResult) (others []string, err error) {
-	if len(msg.Resources) > 0 {
-		if _, err := br.Exec(); err != nil {
-			return nil, fmt.Errorf("insert resources: %w", err)
-		}
-	}
 	if len(msg.Facts) > 0 {
 		tag, err := br.Exec()
 		if err != nil {
@@ -563,16 +550,6 @@ func messagePatients(msg consumer.Message) []string {
 	}
 	slices.Sort(ps)
 	return slices.Compact(ps)
-}
-
-func (s *Store) resourceArgs(msg consumer.Message, now time.Time) []any {
-	n := len(msg.Resources)
-	ref, typ, ver, pat, hash, dig := make([]string, n), make([]string, n), make([]string, n), make([]string, n), make([]string, n), make([]string, n)
-	raw := make([][]byte, n)
-	for i, r := range msg.Resources {
-		ref[i], typ[i], ver[i], pat[i], hash[i], dig[i], raw[i] = r.Reference, r.Type, r.VersionID, r.Patient, s.hash(r.Patient), r.Digest, r.Raw
-	}
-	return []any{ref, typ, ver, pat, hash, dig, raw, msg.InboxKey, msg.Received.UTC(), now}
 }
 
 func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
