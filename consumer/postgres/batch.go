@@ -193,6 +193,11 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 				if err := br.Close(); err != nil {
 					return fmt.Errorf("store group: %w", err)
 				}
+				if i < n {
+					if err := s.loadSnapshots(ctx, tx, msgs[i], orders[i]); err != nil {
+						return err
+					}
+				}
 				if len(others) > 0 {
 					moved, err := s.loadMoved(ctx, tx, msgs[i], others)
 					if err != nil {

@@ -399,6 +399,9 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
 		}
+		if err := s.loadSnapshots(ctx, tx, msg, order); err != nil {
+			return err
+		}
 		if len(others) > 0 {
 			moved, err := s.loadMoved(ctx, tx, msg, others)
 			if err != nil {
@@ -455,8 +458,56 @@ func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientP
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
 		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
-		s.queueSnapshots(b, msg, order)
+		s.queueAffected(b, msg, order)
 	}
+}
+
+// queueAffected queues, per patient, the blood gases the message's facts
+// affect: the only snapshot statement most messages need (a reading that
+// arrives before its gas affects none). loadSnapshots then loads facts and
+// heads for the patients with affected gases only.
+func (s *Store) queueAffected(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
+	for _, p := range order {
+		b.Queue(affectedSQL, snapshotArgs(msg, p)...)
+	}
+}
+
+// snapshotArgs are the arguments of affectedCTE's statements.
+func snapshotArgs(msg consumer.Message, p *patientPlan) []any {
+	return []any{p.hash, factKeys(msg), msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(),
+		msg.Horizon.Microseconds(), patientLevel, string(fhirmap.QPCO2), msg.InboxKey}
+}
+
+// loadSnapshots loads, in one round trip, the snapshot facts and heads of
+// every patient of the message with affected blood gases (readInput read
+// which); a message that affects none costs no further statement. The
+// statements run in the same transaction after the message's inserts, so
+// they see the same rows as when queued with them.
+func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan) error {
+	b := &pgx.Batch{}
+	var need []*patientPlan
+	for _, p := range order {
+		if len(p.affected) > 0 {
+			args := snapshotArgs(msg, p)
+			b.Queue(snapshotFactsSQL, args...)
+			b.Queue(snapshotHeadsSQL, args...)
+			need = append(need, p)
+		}
+	}
+	if len(need) == 0 {
+		return nil
+	}
+	br := tx.SendBatch(ctx, b)
+	defer br.Close()
+	for _, p := range need {
+		if err := readSnapshot(br, p); err != nil {
+			return err
+		}
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("load snapshot: %w", err)
+	}
+	return nil
 }
 
 // factKeys lists the fact keys of a message, once each.
@@ -511,8 +562,10 @@ func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, 
 		if others, err = pgx.CollectRows(rows, pgx.RowTo[string]); err != nil {
 			return nil, fmt.Errorf("other patients: %w", err)
 		}
-		if err := readSnapshots(br, order); err != nil {
-			return nil, err
+		for _, p := range order {
+			if err := readAffected(br, p); err != nil {
+				return nil, err
+			}
 		}
 	}
 	return others, nil
@@ -585,10 +638,8 @@ func optTime(t time.Time) pgtype.Timestamptz {
 // queueSnapshots queues, per patient, the affected blood gases, the
 // snapshot facts and the heads (three statements sharing affectedCTE).
 func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
-	before, after, horizon := msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(), msg.Horizon.Microseconds()
-	keys := factKeys(msg)
 	for _, p := range order {
-		args := []any{p.hash, keys, before, after, horizon, patientLevel, string(fhirmap.QPCO2), msg.InboxKey}
+		args := snapshotArgs(msg, p)
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
 		b.Queue(snapshotHeadsSQL, args...)
@@ -597,36 +648,52 @@ func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*pati
 
 func readSnapshots(br pgx.BatchResults, order []*patientPlan) error {
 	for _, p := range order {
-		rows, err := br.Query()
-		if err != nil {
-			return fmt.Errorf("affected blood gases: %w", err)
+		if err := readAffected(br, p); err != nil {
+			return err
 		}
-		p.affected, err = pgx.CollectRows(rows, pgx.RowTo[string])
-		if err != nil {
-			return fmt.Errorf("affected blood gases: %w", err)
+		if err := readSnapshot(br, p); err != nil {
+			return err
 		}
-		rows, err = br.Query()
-		if err != nil {
-			return fmt.Errorf("load snapshot: %w", err)
-		}
-		p.facts, err = pgx.CollectRows(rows, scanFact)
-		if err != nil {
-			return fmt.Errorf("load snapshot: %w", err)
-		}
-		rows, err = br.Query()
-		if err != nil {
-			return fmt.Errorf("load heads: %w", err)
-		}
-		p.current, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.Stored, error) {
-			var st consumer.Stored
-			var status string
-			err := row.Scan(&st.Key, &st.Kind, &st.Version, &st.Digest, &st.Refused, &status, &st.Value)
-			st.Status = fhirmap.Status(status)
-			return st, err
-		})
-		if err != nil {
-			return fmt.Errorf("load heads: %w", err)
-		}
+	}
+	return nil
+}
+
+// readAffected reads one patient's affectedSQL.
+func readAffected(br pgx.BatchResults, p *patientPlan) error {
+	rows, err := br.Query()
+	if err != nil {
+		return fmt.Errorf("affected blood gases: %w", err)
+	}
+	p.affected, err = pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		return fmt.Errorf("affected blood gases: %w", err)
+	}
+	return nil
+}
+
+// readSnapshot reads one patient's snapshotFactsSQL and snapshotHeadsSQL.
+func readSnapshot(br pgx.BatchResults, p *patientPlan) error {
+	rows, err := br.Query()
+	if err != nil {
+		return fmt.Errorf("load snapshot: %w", err)
+	}
+	p.facts, err = pgx.CollectRows(rows, scanFact)
+	if err != nil {
+		return fmt.Errorf("load snapshot: %w", err)
+	}
+	rows, err = br.Query()
+	if err != nil {
+		return fmt.Errorf("load heads: %w", err)
+	}
+	p.current, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.Stored, error) {
+		var st consumer.Stored
+		var status string
+		err := row.Scan(&st.Key, &st.Kind, &st.Version, &st.Digest, &st.Refused, &status, &st.Value)
+		st.Status = fhirmap.Status(status)
+		return st, err
+	})
+	if err != nil {
+		return fmt.Errorf("load heads: %w", err)
 	}
 	return nil
 }
