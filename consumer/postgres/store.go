@@ -358,6 +358,9 @@ type patientPlan struct {
 	facts    []fhirmap.Fact
 	current  []consumer.Stored
 	changes  consumer.Changes
+	// eager: the snapshot facts and heads were queued with the input
+	// (queueInput), not by loadSnapshots.
+	eager bool
 }
 
 func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consumer.PlanFunc) (consumer.IngestResult, error) {
@@ -458,8 +461,31 @@ func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientP
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
 		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
-		s.queueAffected(b, msg, order)
+		eager := surelyAffects(msg)
+		for _, p := range order {
+			p.eager = eager
+		}
+		if eager {
+			s.queueSnapshots(b, msg, order)
+		} else {
+			s.queueAffected(b, msg, order)
+		}
 	}
+}
+
+// surelyAffects reports a message that affects a blood gas whenever it is
+// stored: one with a blood gas (a new version of it is affected) or a
+// patient-level fact (which reopens the patient's recent gases, if any).
+// Its snapshot statements travel with its inserts, as before the cheap
+// path, rather than one round trip later: these are the messages whose
+// latency to a derived output counts.
+func surelyAffects(msg consumer.Message) bool {
+	for _, f := range msg.Facts {
+		if f.Quantity == fhirmap.QPCO2 || slices.Contains(patientLevel, string(f.Quantity)) {
+			return true
+		}
+	}
+	return false
 }
 
 // queueAffected queues, per patient, the blood gases the message's facts
@@ -487,7 +513,7 @@ func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Messa
 	b := &pgx.Batch{}
 	var need []*patientPlan
 	for _, p := range order {
-		if len(p.affected) > 0 {
+		if len(p.affected) > 0 && !p.eager {
 			args := snapshotArgs(msg, p)
 			b.Queue(snapshotFactsSQL, args...)
 			b.Queue(snapshotHeadsSQL, args...)
@@ -565,6 +591,11 @@ func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, 
 		for _, p := range order {
 			if err := readAffected(br, p); err != nil {
 				return nil, err
+			}
+			if p.eager {
+				if err := readSnapshot(br, p); err != nil {
+					return nil, err
+				}
 			}
 		}
 	}
