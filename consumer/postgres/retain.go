@@ -143,7 +143,7 @@ WHERE effective < $1 AND quantity IN (`+ventilatorQuantitiesSQL+`) ORDER BY 1`, 
 			return err
 		})
 		if err != nil {
-			return rep, fmt.Errorf("retain: %w", translate("retain", err, false))
+			return rep, translate("retain", err, false)
 		}
 		if keys > 0 {
 			rep.Patients++
