@@ -25,8 +25,10 @@
 --    rows recorded before; nothing reads them but an auditor with the
 --    owner's rights). Its per-row CHECKs (three regular expressions and a
 --    SHA-256 per resource) leave the hot path with it.
--- 3. fact_pkey: no query looks a fact up by id (idx_scan 0 under the
---    bench, the demo and the audit tests; id is compared, never searched:
+-- 3. fact_pkey: no query looks a fact up by id (idx_scan 0 on a demo
+--    store after the service's ingest and the audit questions list,
+--    refusals, refused, changes, discrepancies, daily and verify; id is
+--    compared, never searched:
 --    "ORDER BY id", "g.id + 0 > f.id"). The identity column stays and
 --    still numbers versions in order; its index (22 bytes a fact, about 95
 --    bytes an input) goes.
