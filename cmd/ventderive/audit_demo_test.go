@@ -13,6 +13,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgxpool"
 
 	"github.com/ventderive/ventderive/consumer"
@@ -151,7 +152,124 @@ func TestAuditDemoStoreMatchesPublished(t *testing.T) {
 	checkSettingsPublished(ctx, t, r, all)
 	t.Logf("%d keys, %d versions (%d steps), %d refusals checked against their published bytes and settings", len(keys), versions, steps, refusals)
 
+	retainDemoStore(ctx, t, demoURL)
 	verifyDemoStore(ctx, t, r, demoURL, versions)
+}
+
+// retainDemoStore runs "ventderive retain" over the demo store with a
+// horizon that puts every reading past it: the dry run removes nothing and
+// reports what --apply then removes; afterwards every input any derivation
+// or refusal cites is stored exactly as before (key, digest, value, unit,
+// effective time, status), ventilator readings were removed, the payloads
+// of messages left without facts are dropped while their inbox rows (the
+// duplicate check) stay, and a second run finds nothing. The caller then
+// runs audit verify over what is left.
+func retainDemoStore(ctx context.Context, t *testing.T, demoURL string) {
+	owner, err := pgxpool.New(ctx, demoURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer owner.Close()
+	cited := func() []string {
+		rows, err := owner.Query(ctx, `
+SELECT 'd' || i.derivation_id || '/' || i.ordinal || ' ' || f.key || ' ' || f.digest || ' ' || f.value || ' ' || f.unit || ' ' || f.effective || ' ' || f.status
+FROM derivation_input i LEFT JOIN fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+UNION ALL
+SELECT 'r' || i.refusal_id || '/' || i.ordinal || ' ' || f.key || ' ' || f.digest || ' ' || f.value || ' ' || f.unit || ' ' || f.effective || ' ' || f.status
+FROM refusal_input i LEFT JOIN fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+ORDER BY 1`)
+		if err != nil {
+			t.Fatal(err)
+		}
+		out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (string, error) {
+			var s *string
+			err := r.Scan(&s)
+			if s == nil {
+				return "", err
+			}
+			return *s, err
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return out
+	}
+	count := func(q string) int64 {
+		var n int64
+		if err := owner.QueryRow(ctx, q).Scan(&n); err != nil {
+			t.Fatal(err)
+		}
+		return n
+	}
+	const readings = `SELECT count(*) FROM fact WHERE quantity IN ('minute-volume', 'tidal-volume', 'resp-rate', 'petco2', 'vco2', 'peco2', 'peep', 'plateau', 'mean-airway', 'fetco2')`
+	before := cited()
+	if len(before) == 0 {
+		t.Fatal("the demo store cites no inputs")
+	}
+	for _, c := range before {
+		if strings.Count(c, " ") < 6 {
+			t.Fatalf("a cited input is not stored before retain: %q", c)
+		}
+	}
+	facts0, readings0, inbox0 := count(`SELECT count(*) FROM fact`), count(readings), count(`SELECT count(*) FROM inbox`)
+	raws0 := count(`SELECT count(*) FROM inbox WHERE raw IS NOT NULL`)
+	var last time.Time
+	if err := owner.QueryRow(ctx, `SELECT max(effective) FROM fact`).Scan(&last); err != nil {
+		t.Fatal(err)
+	}
+	asOf := last.Add(48 * time.Hour).UTC().Format(time.RFC3339)
+	retain := func(args ...string) string {
+		var stdout, stderr bytes.Buffer
+		e := env{getenv: func(string) string { return "" }, stdout: &stdout, stderr: &stderr}
+		if err := run(ctx, append([]string{"retain", "--database-url", demoURL, "--horizon", "24h", "--as-of", asOf}, args...), e); err != nil {
+			t.Fatalf("retain %v: %v\n%s", args, err, stderr.String())
+		}
+		return stdout.String()
+	}
+	removedRe := regexp.MustCompile(`(?:would remove|removed) (\d+) readings \((\d+) fact rows\) of (\d+) patients and the payloads of (\d+) messages`)
+	parse := func(out string) []int64 {
+		m := removedRe.FindStringSubmatch(out)
+		if m == nil {
+			t.Fatalf("retain printed no report:\n%s", out)
+		}
+		var v []int64
+		for _, x := range m[1:] {
+			n, _ := strconv.ParseInt(x, 10, 64)
+			v = append(v, n)
+		}
+		return v
+	}
+	dry := retain()
+	want := parse(dry)
+	if !strings.Contains(dry, "dry run") || count(`SELECT count(*) FROM fact`) != facts0 {
+		t.Fatalf("the dry run removed something or did not say it is one:\n%s", dry)
+	}
+	if want[1] == 0 || want[1] >= readings0 || want[3] == 0 {
+		t.Fatalf("retain would remove %v of %d readings: want some readings and payloads, and not every reading (some are cited)", want, readings0)
+	}
+	got := parse(retain("--apply"))
+	if !slices.Equal(got, want) {
+		t.Errorf("--apply removed %v, the dry run said %v", got, want)
+	}
+	if n := count(`SELECT count(*) FROM fact`); n != facts0-want[1] {
+		t.Errorf("facts %d after retain, want %d - %d", n, facts0, want[1])
+	}
+	if n := count(readings); n != readings0-want[1] {
+		t.Errorf("ventilator readings %d after retain, want %d - %d (only readings go)", n, readings0, want[1])
+	}
+	if n := count(`SELECT count(*) FROM inbox`); n != inbox0 {
+		t.Errorf("inbox rows %d after retain, want %d (they stay for the duplicate check)", n, inbox0)
+	}
+	if n := count(`SELECT count(*) FROM inbox WHERE raw IS NOT NULL`); n != raws0-want[3] {
+		t.Errorf("payloads %d after retain, want %d - %d", n, raws0, want[3])
+	}
+	if after := cited(); !slices.Equal(after, before) {
+		t.Errorf("cited inputs changed by retain: %d before, %d after", len(before), len(after))
+	}
+	if again := parse(retain("--apply")); again[1] != 0 {
+		t.Errorf("a second retain removed %v, want nothing", again)
+	}
+	t.Logf("retain removed %d readings (%d fact rows) of %d patients and %d payloads; %d cited inputs intact", want[0], want[1], want[2], want[3], len(before))
 }
 
 // verifyDemoStore runs audit verify over the whole demo store: every

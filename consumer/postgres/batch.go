@@ -29,10 +29,10 @@ FROM unnest($1::text[]) AS u(ref)`
 	// message cannot deadlock on it) and returns those it claimed; a key
 	// listed twice is claimed once.
 	claimInboxesSQL = `
-INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
-SELECT u.inbox_key, u.subject, u.stream_seq, u.received, $8, u.resources, u.facts
-FROM unnest($1::text[], $2::text[], $3::bigint[], $4::timestamptz[], $5::int[], $6::int[], $7::int[])
-     AS u(inbox_key, subject, stream_seq, received, resources, facts, ord)
+INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
+SELECT u.inbox_key, u.subject, u.stream_seq, u.received, $8, u.resources, u.facts, u.raw
+FROM unnest($1::text[], $2::text[], $3::bigint[], $4::timestamptz[], $5::int[], $6::int[], $7::int[], $9::bytea[])
+     AS u(inbox_key, subject, stream_seq, received, resources, facts, ord, raw)
 ORDER BY u.inbox_key, u.ord
 ON CONFLICT (inbox_key) DO NOTHING
 RETURNING inbox_key`
@@ -101,13 +101,14 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 		keys, subjects := make([]string, n), make([]string, n)
 		seqs, received := make([]int64, n), make([]time.Time, n)
 		nres, nfacts, ords := make([]int32, n), make([]int32, n), make([]int32, n)
+		raws := make([][]byte, n)
 		for i, m := range msgs {
 			orders[i] = patientPlans(s, m)
 			for _, p := range orders[i] {
 				refs = append(refs, p.ref)
 			}
 			keys[i], subjects[i], seqs[i], received[i] = m.InboxKey, m.Subject, int64(m.StreamSeq), m.Received.UTC()
-			nres[i], nfacts[i], ords[i] = int32(len(m.Resources)), int32(len(m.Facts)), int32(i)
+			nres[i], nfacts[i], ords[i], raws[i] = int32(len(m.Resources)), int32(len(m.Facts)), int32(i), m.Raw
 		}
 		slices.Sort(refs)
 		refs = slices.Compact(refs)
@@ -116,7 +117,7 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 		if len(refs) > 0 {
 			b.Queue(lockPatientsSQL, refs)
 		}
-		b.Queue(claimInboxesSQL, keys, subjects, seqs, received, nres, nfacts, ords, now)
+		b.Queue(claimInboxesSQL, keys, subjects, seqs, received, nres, nfacts, ords, now, raws)
 		br := tx.SendBatch(ctx, b)
 		if _, err := br.Exec(); err != nil {
 			br.Close()
@@ -191,6 +192,11 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 				}
 				if err := br.Close(); err != nil {
 					return fmt.Errorf("store group: %w", err)
+				}
+				if i < n {
+					if err := s.loadSnapshots(ctx, tx, msgs[i], orders[i]); err != nil {
+						return err
+					}
 				}
 				if len(others) > 0 {
 					moved, err := s.loadMoved(ctx, tx, msgs[i], others)

@@ -215,3 +215,69 @@ func BenchmarkIngestLongStay(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkIngestGroupReadings records groups of 64 ventilator readings
+// (four facts each, 16 patients) as the pipeline's lanes do
+// (IngestBatch). With gas=none no blood gas is stored, so no reading can
+// affect one: the cheap path, which should cost little more than storing
+// the rows. With gas=stored each patient has a blood gas every 30 min, so
+// every reading lies in a stored gas's window and its snapshot is loaded
+// and planned. Reports messages per second; compare the two cases of one
+// run.
+func BenchmarkIngestGroupReadings(b *testing.B) {
+	for _, c := range []struct {
+		name string
+		gas  bool
+	}{{"gas=none", false}, {"gas=stored", true}} {
+		b.Run(c.name, func(b *testing.B) {
+			f := newFixture(b)
+			var p testPlan
+			const patients, group = 16, 64
+			pat := func(i int) string { return fmt.Sprintf("Patient/lg-grp-%02d", i%patients) }
+			if c.gas {
+				var gases []consumer.Message
+				for i := range patients * 400 {
+					at := t0.Add(time.Duration(i/patients) * 30 * time.Minute)
+					gases = append(gases, message("fhir.input.lab", uint64(i+1), abg(pat(i), fmt.Sprintf("g-%d", i), at, 45)))
+				}
+				for i := 0; i < len(gases); i += group {
+					for _, r := range f.store.IngestBatch(f.ctx, gases[i:min(i+group, len(gases))], p.plan) {
+						if r.Err != nil {
+							b.Fatal(r.Err)
+						}
+					}
+				}
+			}
+			n := 0
+			start := time.Now()
+			for b.Loop() {
+				msgs := make([]consumer.Message, group)
+				for j := range msgs {
+					i := n*group + j
+					// A reading a minute after a (possible) gas, per patient.
+					at := t0.Add(time.Duration(i/patients)*30*time.Minute + time.Minute)
+					id := fmt.Sprintf("r-%d", i)
+					msgs[j] = message("fhir.input.device", uint64(1_000_000+i),
+						vent(pat(i), id+"-ve", fhirmap.QMinuteVol, at, 9, "L/min"),
+						vent(pat(i), id+"-vt", fhirmap.QTidalVol, at, 450, "mL"),
+						vent(pat(i), id+"-rr", fhirmap.QRespRate, at, 18, "/min"),
+						vent(pat(i), id+"-et", fhirmap.QPETCO2, at, 35, "mm[Hg]"))
+				}
+				n++
+				for _, r := range f.store.IngestBatch(f.ctx, msgs, p.plan) {
+					if r.Err != nil {
+						b.Fatal(r.Err)
+					}
+				}
+				if !c.gas && len(p.snaps) != 0 {
+					b.Fatalf("%d snapshots planned without any stored blood gas", len(p.snaps))
+				}
+				if c.gas && len(p.snaps) == 0 {
+					b.Fatal("readings in stored gases' windows planned nothing")
+				}
+				p.snaps = nil
+			}
+			b.ReportMetric(float64(n*group)/time.Since(start).Seconds(), "msg/s")
+		})
+	}
+}

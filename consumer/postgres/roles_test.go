@@ -89,6 +89,8 @@ func TestRoles(t *testing.T) {
 		"TRUNCATE refusal", "DROP TABLE dead_letter", "SELECT * FROM review_derivation",
 		// Migration 0005: raw payloads are written, never read back.
 		"SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM input_resource",
+		// Migration 0011: the message payload in the inbox likewise.
+		"SELECT raw FROM inbox", "SELECT * FROM inbox",
 		// Migration 0006: settings snapshots are written once, never changed.
 		"UPDATE site_settings SET snapshot = '{}'", "DELETE FROM site_settings",
 	} {
@@ -97,8 +99,12 @@ func TestRoles(t *testing.T) {
 	}
 	// What the writer still reads of those tables: every column but raw.
 	var refs int
-	if err := writer.QueryRow(ctx, "SELECT count(reference) FROM input_resource").Scan(&refs); err != nil || refs == 0 {
+	if err := writer.QueryRow(ctx, "SELECT count(reference) FROM input_resource").Scan(&refs); err != nil {
 		t.Errorf("writer reads input_resource.reference: %d, %v", refs, err)
+	}
+	var inbox int
+	if err := writer.QueryRow(ctx, "SELECT count(inbox_key) FROM inbox WHERE subject <> '' AND facts >= 0").Scan(&inbox); err != nil || inbox == 0 {
+		t.Errorf("writer reads inbox's columns but raw: %d, %v", inbox, err)
 	}
 	// Migration 0005: the writer cannot queue an outbox row for a NATS
 	// system subject, a wildcard or an empty token; a plain subject passes

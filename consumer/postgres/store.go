@@ -108,20 +108,13 @@ const (
     set_config('jit', 'off', true)`
 
 	claimInboxSQL = `
-INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
-VALUES ($1, $2, $3, $4, $5, $6, $7)
+INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
+VALUES ($1, $2, $3, $4, $5, $6, $7, $8)
 ON CONFLICT (inbox_key) DO NOTHING`
 
 	// One lock per patient, taken in sorted order by the caller so that two
 	// messages about the same patients cannot deadlock.
 	lockPatientSQL = `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`
-
-	insertResourcesSQL = `
-INSERT INTO input_resource (reference, resource_type, version_id, patient_ref, patient_hash, digest, raw, inbox_key, received, recorded_at)
-SELECT u.reference, u.resource_type, u.version_id, u.patient_ref, u.patient_hash, u.digest, u.raw, $8, $9, $10
-FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::text[], $6::text[], $7::bytea[])
-     AS u(reference, resource_type, version_id, patient_ref, patient_hash, digest, raw)
-ON CONFLICT (reference, digest) DO NOTHING`
 
 	insertFactsSQL = `
 INSERT INTO fact (key, digest, resource_ref, version_id, last_updated, patient_ref, patient_hash, encounter,
@@ -382,6 +375,9 @@ type patientPlan struct {
 	facts    []fhirmap.Fact
 	current  []consumer.Stored
 	changes  consumer.Changes
+	// eager: the snapshot facts and heads were queued with the input
+	// (queueInput), not by loadSnapshots.
+	eager bool
 }
 
 func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consumer.PlanFunc) (consumer.IngestResult, error) {
@@ -394,7 +390,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		b := &pgx.Batch{}
 		b.Queue(pointLookupsSQL)
 		b.Queue(claimInboxSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), msg.Received.UTC(), now,
-			len(msg.Resources), len(msg.Facts))
+			len(msg.Resources), len(msg.Facts), msg.Raw)
 		for _, p := range order {
 			b.Queue(lockPatientSQL, p.ref)
 		}
@@ -422,6 +418,9 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		}
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
+		}
+		if err := s.loadSnapshots(ctx, tx, msg, order); err != nil {
+			return err
 		}
 		if len(others) > 0 {
 			moved, err := s.loadMoved(ctx, tx, msg, others)
@@ -471,17 +470,92 @@ func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
 	return order
 }
 
-// queueInput queues the statements that store a claimed message's resources
-// and facts and load, per patient, what the new facts affect.
+// queueInput queues the statements that store a claimed message's facts
+// and load, per patient, what the new facts affect. The resources are kept
+// in the message's bytes, which the inbox row holds (migration 0011); no
+// row per resource is written.
 func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time) {
-	if len(msg.Resources) > 0 {
-		b.Queue(insertResourcesSQL, s.resourceArgs(msg, now)...)
-	}
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
 		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
-		s.queueSnapshots(b, msg, order)
+		eager := surelyAffects(msg)
+		for _, p := range order {
+			p.eager = eager
+		}
+		if eager {
+			s.queueSnapshots(b, msg, order)
+		} else {
+			s.queueAffected(b, msg, order)
+		}
 	}
+}
+
+// surelyAffects reports a message that affects a blood gas whenever it is
+// stored: one with a blood gas (a new version of it is affected) or a
+// patient-level fact (which reopens the patient's recent gases, if any).
+// Its snapshot statements travel with its inserts, as before the cheap
+// path, rather than one round trip later: these are the messages whose
+// latency to a derived output counts.
+func surelyAffects(msg consumer.Message) bool {
+	for _, f := range msg.Facts {
+		if f.Quantity == fhirmap.QPCO2 || slices.Contains(patientLevel, string(f.Quantity)) {
+			return true
+		}
+	}
+	return false
+}
+
+// queueAffected queues, per patient, the blood gases the message's facts
+// affect: the only snapshot statement most messages need (a reading that
+// arrives before its gas affects none). loadSnapshots then loads facts and
+// heads for the patients with affected gases only.
+func (s *Store) queueAffected(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
+	for _, p := range order {
+		b.Queue(affectedSQL, snapshotArgs(msg, p)...)
+	}
+}
+
+// snapshotArgs are the arguments of affectedCTE's statements.
+func snapshotArgs(msg consumer.Message, p *patientPlan) []any {
+	tw := msg.TempWindow
+	if tw == (fhirmap.Window{}) {
+		tw = msg.Window
+	}
+	return []any{p.hash, factKeys(msg), msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(),
+		msg.Horizon.Microseconds(), patientLevel, string(fhirmap.QPCO2), msg.InboxKey,
+		tw.Before.Microseconds(), tw.After.Microseconds(), string(fhirmap.QBodyTemp)}
+}
+
+// loadSnapshots loads, in one round trip, the snapshot facts and heads of
+// every patient of the message with affected blood gases (readInput read
+// which); a message that affects none costs no further statement. The
+// statements run in the same transaction after the message's inserts, so
+// they see the same rows as when queued with them.
+func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan) error {
+	b := &pgx.Batch{}
+	var need []*patientPlan
+	for _, p := range order {
+		if len(p.affected) > 0 && !p.eager {
+			args := snapshotArgs(msg, p)
+			b.Queue(snapshotFactsSQL, args...)
+			b.Queue(snapshotHeadsSQL, args...)
+			need = append(need, p)
+		}
+	}
+	if len(need) == 0 {
+		return nil
+	}
+	br := tx.SendBatch(ctx, b)
+	defer br.Close()
+	for _, p := range need {
+		if err := readSnapshot(br, p); err != nil {
+			return err
+		}
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("load snapshot: %w", err)
+	}
+	return nil
 }
 
 // factKeys lists the fact keys of a message, once each.
@@ -523,11 +597,6 @@ func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, 
 // readInput reads the results of what queueInput queued. others are the
 // patients the message moved facts away from (see loadMoved).
 func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, res *consumer.IngestResult) (others []string, err error) {
-	if len(msg.Resources) > 0 {
-		if _, err := br.Exec(); err != nil {
-			return nil, fmt.Errorf("insert resources: %w", err)
-		}
-	}
 	if len(msg.Facts) > 0 {
 		tag, err := br.Exec()
 		if err != nil {
@@ -541,8 +610,15 @@ func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, 
 		if others, err = pgx.CollectRows(rows, pgx.RowTo[string]); err != nil {
 			return nil, fmt.Errorf("other patients: %w", err)
 		}
-		if err := readSnapshots(br, order); err != nil {
-			return nil, err
+		for _, p := range order {
+			if err := readAffected(br, p); err != nil {
+				return nil, err
+			}
+			if p.eager {
+				if err := readSnapshot(br, p); err != nil {
+					return nil, err
+				}
+			}
 		}
 	}
 	return others, nil
@@ -582,16 +658,6 @@ func messagePatients(msg consumer.Message) []string {
 	return slices.Compact(ps)
 }
 
-func (s *Store) resourceArgs(msg consumer.Message, now time.Time) []any {
-	n := len(msg.Resources)
-	ref, typ, ver, pat, hash, dig := make([]string, n), make([]string, n), make([]string, n), make([]string, n), make([]string, n), make([]string, n)
-	raw := make([][]byte, n)
-	for i, r := range msg.Resources {
-		ref[i], typ[i], ver[i], pat[i], hash[i], dig[i], raw[i] = r.Reference, r.Type, r.VersionID, r.Patient, s.hash(r.Patient), r.Digest, r.Raw
-	}
-	return []any{ref, typ, ver, pat, hash, dig, raw, msg.InboxKey, msg.Received.UTC(), now}
-}
-
 func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
 	n := len(msg.Facts)
 	var (
@@ -625,15 +691,8 @@ func optTime(t time.Time) pgtype.Timestamptz {
 // queueSnapshots queues, per patient, the affected blood gases, the
 // snapshot facts and the heads (three statements sharing affectedCTE).
 func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
-	before, after, horizon := msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(), msg.Horizon.Microseconds()
-	tw := msg.TempWindow
-	if tw == (fhirmap.Window{}) {
-		tw = msg.Window
-	}
-	keys := factKeys(msg)
 	for _, p := range order {
-		args := []any{p.hash, keys, before, after, horizon, patientLevel, string(fhirmap.QPCO2), msg.InboxKey,
-			tw.Before.Microseconds(), tw.After.Microseconds(), string(fhirmap.QBodyTemp)}
+		args := snapshotArgs(msg, p)
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
 		b.Queue(snapshotHeadsSQL, args...)
@@ -642,36 +701,52 @@ func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*pati
 
 func readSnapshots(br pgx.BatchResults, order []*patientPlan) error {
 	for _, p := range order {
-		rows, err := br.Query()
-		if err != nil {
-			return fmt.Errorf("affected blood gases: %w", err)
+		if err := readAffected(br, p); err != nil {
+			return err
 		}
-		p.affected, err = pgx.CollectRows(rows, pgx.RowTo[string])
-		if err != nil {
-			return fmt.Errorf("affected blood gases: %w", err)
+		if err := readSnapshot(br, p); err != nil {
+			return err
 		}
-		rows, err = br.Query()
-		if err != nil {
-			return fmt.Errorf("load snapshot: %w", err)
-		}
-		p.facts, err = pgx.CollectRows(rows, scanFact)
-		if err != nil {
-			return fmt.Errorf("load snapshot: %w", err)
-		}
-		rows, err = br.Query()
-		if err != nil {
-			return fmt.Errorf("load heads: %w", err)
-		}
-		p.current, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.Stored, error) {
-			var st consumer.Stored
-			var status string
-			err := row.Scan(&st.Key, &st.Kind, &st.Version, &st.Digest, &st.Refused, &status, &st.Value)
-			st.Status = fhirmap.Status(status)
-			return st, err
-		})
-		if err != nil {
-			return fmt.Errorf("load heads: %w", err)
-		}
+	}
+	return nil
+}
+
+// readAffected reads one patient's affectedSQL.
+func readAffected(br pgx.BatchResults, p *patientPlan) error {
+	rows, err := br.Query()
+	if err != nil {
+		return fmt.Errorf("affected blood gases: %w", err)
+	}
+	p.affected, err = pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		return fmt.Errorf("affected blood gases: %w", err)
+	}
+	return nil
+}
+
+// readSnapshot reads one patient's snapshotFactsSQL and snapshotHeadsSQL.
+func readSnapshot(br pgx.BatchResults, p *patientPlan) error {
+	rows, err := br.Query()
+	if err != nil {
+		return fmt.Errorf("load snapshot: %w", err)
+	}
+	p.facts, err = pgx.CollectRows(rows, scanFact)
+	if err != nil {
+		return fmt.Errorf("load snapshot: %w", err)
+	}
+	rows, err = br.Query()
+	if err != nil {
+		return fmt.Errorf("load heads: %w", err)
+	}
+	p.current, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.Stored, error) {
+		var st consumer.Stored
+		var status string
+		err := row.Scan(&st.Key, &st.Kind, &st.Version, &st.Digest, &st.Refused, &status, &st.Value)
+		st.Status = fhirmap.Status(status)
+		return st, err
+	})
+	if err != nil {
+		return fmt.Errorf("load heads: %w", err)
 	}
 	return nil
 }

@@ -1,6 +1,9 @@
 package scenario
 
 import (
+	"bytes"
+	"crypto/sha256"
+	"encoding/hex"
 	"errors"
 	"math"
 	"slices"
@@ -163,5 +166,36 @@ func TestExpectationsHoldOffline(t *testing.T) {
 				}
 			}
 		})
+	}
+}
+
+// TestResourcesInsidePayload checks what the store relies on since migration
+// 0011 (it keeps each message's bytes in its inbox row and no copy per
+// resource): every resource the decoder accepts is a byte-for-byte part of
+// the message payload, and its digest is the SHA-256 of those bytes
+// (FIPS 180-4, checked with crypto/sha256).
+func TestResourcesInsidePayload(t *testing.T) {
+	sc, _ := generated(t, Options{Seed: 4, Duration: MinDuration, VentEvery: 2 * time.Minute})
+	checked := 0
+	for i, m := range sc.Messages {
+		if m.Malformed {
+			continue
+		}
+		d, err := fhirmap.Decode(m.Payload, nil)
+		if err != nil {
+			t.Fatalf("message %d: %v", i, err)
+		}
+		for _, r := range d.Resources {
+			if len(r.Raw) == 0 || !bytes.Contains(m.Payload, r.Raw) {
+				t.Fatalf("message %d: resource %s is not a part of the payload", i, r.Reference)
+			}
+			if sum := sha256.Sum256(r.Raw); hex.EncodeToString(sum[:]) != r.Digest {
+				t.Fatalf("message %d: resource %s digest %s is not of its bytes", i, r.Reference, r.Digest)
+			}
+			checked++
+		}
+	}
+	if checked < 100 {
+		t.Fatalf("only %d resources checked", checked)
 	}
 }
