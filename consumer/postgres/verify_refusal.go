@@ -56,7 +56,8 @@ var allQuantities = []string{string(fhirmap.QPCO2), string(fhirmap.QPO2), string
 	string(fhirmap.QApparatusVD)}
 
 // ventilatorQuantities are the quantities fhirmap counts as ventilator
-// readings (a test keeps them in step with fhirmap.IsVentilatorReading).
+// readings (fhirmap.IsVentilatorReading; TestRefusalVerifyQuantities keeps
+// them equal to the snapshot's ventilatorQuantitiesSQL).
 func ventilatorQuantities() []string {
 	var out []string
 	for _, q := range allQuantities {
