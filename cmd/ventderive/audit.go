@@ -52,9 +52,12 @@ questions (time basis: the blood gas's effective time, except deadletters):
                  can change a value, the code alias file's SHA-256, the algorithm version
   verify [<observation-id or key>]  re-derive each stored version from its stored inputs and
                  settings snapshot with this build and report per version whether the published
-                 value, interpretation, digest and Observation bytes reproduce; a mismatch names
-                 both values and the command exits non-zero. Versions of another algorithm:
-                 "not verifiable with this build".  [--patient] [--from] [--to] [--kind]
+                 value, interpretation, digest and Observation bytes reproduce, then each stored
+                 refusal (STATUS refused) from the facts stored by its time and its snapshot:
+                 whether its reason, detail and digest reproduce; a mismatch names both and the
+                 command exits non-zero. Another algorithm or no snapshot: "not verifiable with
+                 this build". --limit and --offset page versions and refusals each.
+                 [--patient] [--from] [--to] [--kind]
   replay --algorithm current --from T --to T  recompute the period's blood gases with this build
                  and the latest recorded settings (--site JSON overrides settings by name, e.g.
                  '{"TargetPaCO2mmHg":38}') and report per kind how many values would change, the
@@ -292,7 +295,7 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		if len(positional) == 1 {
 			vs, err = r.VerifyKey(ctx, positional[0])
 			if errors.Is(err, postgres.ErrNotFound) {
-				return fmt.Errorf("audit verify: no derivation with that id or key")
+				return fmt.Errorf("audit verify: no derivation or refusal with that id or key")
 			}
 			if err == nil {
 				err = writePage(out, postgres.Page[postgres.Verdict]{Rows: vs, Limit: len(vs)}, verifyColumns)
@@ -302,7 +305,9 @@ func runAudit(ctx context.Context, args []string, e env) error {
 			p, err = r.Verify(ctx, f)
 			if err == nil {
 				vs = p.Rows
-				err = writePage(out, p, verifyColumns)
+				each := out
+				each.pagedEach = true
+				err = writePage(each, p, verifyColumns)
 			}
 		}
 		if err != nil {
@@ -313,7 +318,7 @@ func runAudit(ctx context.Context, args []string, e env) error {
 			fmt.Fprintf(e.stdout, "verified (this page): %s\n", sum)
 		}
 		if sum.Mismatches > 0 {
-			return fmt.Errorf("audit verify: %d mismatch(es): a stored value does not follow from its stored basis", sum.Mismatches)
+			return fmt.Errorf("audit verify: %d mismatch(es): a stored value or refusal does not follow from its stored basis", sum.Mismatches)
 		}
 		return nil
 	case "replay":
@@ -524,6 +529,17 @@ func yes(b bool) string {
 type auditOutput struct {
 	w      io.Writer
 	format string
+	// pagedEach: the page holds two lists paged each by the same --limit
+	// and --offset (verify: versions, then refusals).
+	pagedEach bool
+}
+
+// moreText says which rows a page holds and where the next starts.
+func (o auditOutput) moreText(offset, rows, next int) string {
+	if o.pagedEach {
+		return fmt.Sprintf("versions and refusals are paged each: this page has those from row %d of each list; next page --offset %d", offset+1, next)
+	}
+	return fmt.Sprintf("this page has rows %d-%d; next page --offset %d", offset+1, offset+rows, next)
 }
 
 func (o auditOutput) json(v any) error {
@@ -585,8 +601,7 @@ func writePage[T any](o auditOutput, p postgres.Page[T], cols []column[T]) error
 			return err
 		}
 		if p.More {
-			_, err := fmt.Fprintf(o.w, "# more rows: this page has rows %d-%d; next page --offset %d\n",
-				p.Offset+1, p.Offset+len(p.Rows), p.NextOffset)
+			_, err := fmt.Fprintf(o.w, "# more rows: %s\n", o.moreText(p.Offset, len(p.Rows), p.NextOffset))
 			return err
 		}
 		return nil
@@ -615,8 +630,7 @@ func writePage[T any](o auditOutput, p postgres.Page[T], cols []column[T]) error
 		return err
 	}
 	if p.More {
-		_, err := fmt.Fprintf(o.w, "more rows: this page has rows %d-%d; next page --offset %d\n",
-			p.Offset+1, p.Offset+len(p.Rows), p.NextOffset)
+		_, err := fmt.Fprintf(o.w, "more rows: %s\n", o.moreText(p.Offset, len(p.Rows), p.NextOffset))
 		return err
 	}
 	return nil
@@ -967,7 +981,12 @@ var verifyColumns = []column[postgres.Verdict]{
 	{name: "PATIENT", cell: func(v postgres.Verdict) string { return v.Patient }},
 	{name: "BLOOD GAS", cell: func(v postgres.Verdict) string { return v.BloodGas }},
 	{name: "KIND", cell: func(v postgres.Verdict) string { return v.Kind }},
-	{name: "VERSION", cell: func(v postgres.Verdict) string { return strconv.Itoa(v.Version) }},
+	{name: "VERSION", cell: func(v postgres.Verdict) string {
+		if v.Status == postgres.StatusRefused {
+			return ""
+		}
+		return strconv.Itoa(v.Version)
+	}},
 	{name: "STATUS", cell: func(v postgres.Verdict) string { return v.Status }},
 	{name: "OUTCOME", cell: func(v postgres.Verdict) string { return v.Outcome }},
 	{name: "PUBLISHED", where: tableOnly, cell: func(v postgres.Verdict) string { return withUnit(valueText(v.Published, v.Status), v.DisplayUnit) }},
@@ -981,6 +1000,10 @@ var verifyColumns = []column[postgres.Verdict]{
 	{name: "DIGEST", csv: "digest_reproduced", cell: func(v postgres.Verdict) string { return same(v.Digest, v.RederivedDigest) }},
 	{name: "OBSERVATION BYTES", csv: "observation_bytes_reproduced", cell: func(v postgres.Verdict) string { return same(v.ObservationDigest, v.RederivedObservation) }},
 	{name: "SETTINGS", csv: "settings_digest", cell: func(v postgres.Verdict) string { return short(v.Settings) }},
+	{name: "REASON", csv: "reason", where: csvOnly, cell: func(v postgres.Verdict) string { return v.Reason }},
+	{name: "DETAIL", csv: "detail", where: csvOnly, cell: func(v postgres.Verdict) string { return v.Detail }},
+	{name: "RE-DERIVED REASON", csv: "rederived_reason", where: csvOnly, cell: func(v postgres.Verdict) string { return v.RederivedReason }},
+	{name: "RE-DERIVED DETAIL", csv: "rederived_detail", where: csvOnly, cell: func(v postgres.Verdict) string { return v.RederivedDetail }},
 	{name: "FINDINGS", csv: "findings", cell: func(v postgres.Verdict) string {
 		if v.Why != "" {
 			return strings.Join(append([]string{v.Why}, v.Findings...), "; ")

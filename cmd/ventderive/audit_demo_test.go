@@ -276,8 +276,22 @@ ORDER BY 1`)
 // version that has a value must reproduce (value, interpretation, digest
 // and the published Observation's bytes). Then, as the superuser in this
 // throwaway database, it alters one stored input of a value and checks
-// that verify reports that value as a mismatch with both values.
+// that verify reports that value as a mismatch with both values. Every
+// refusal must reproduce too (reason, detail and digest), and altering the
+// blood gas one considered makes it a mismatch with both reasons.
 func verifyDemoStore(ctx context.Context, t *testing.T, r *postgres.Reviewer, demoURL string, versions int) {
+	refusals := 0
+	for offset := 0; ; {
+		page, err := r.Refused(ctx, postgres.Filter{Limit: 500, Offset: offset})
+		if err != nil {
+			t.Fatal(err)
+		}
+		refusals += len(page.Rows)
+		if !page.More {
+			break
+		}
+		offset = page.NextOffset
+	}
 	var all []postgres.Verdict
 	for offset := 0; ; {
 		page, err := r.Verify(ctx, postgres.Filter{Limit: 200, Offset: offset})
@@ -292,13 +306,24 @@ func verifyDemoStore(ctx context.Context, t *testing.T, r *postgres.Reviewer, de
 	}
 	sum := postgres.Summarise(all)
 	t.Logf("verify: %s", sum)
-	if sum.Versions != versions || sum.Reproduced+sum.Retractions != versions || sum.Reproduced == 0 {
+	if sum.Versions != versions || sum.Refusals != refusals || refusals == 0 ||
+		sum.Reproduced+sum.Retractions != versions+refusals || sum.Reproduced == 0 {
 		for _, v := range all {
 			if v.Outcome != postgres.OutcomeReproduced && v.Outcome != postgres.OutcomeRetraction {
-				t.Errorf("%s version %d: %s %s %q", v.Key, v.Version, v.Outcome, v.Why, v.Findings)
+				t.Errorf("%s version %d (%s): %s %s %q", v.Key, v.Version, v.Status, v.Outcome, v.Why, v.Findings)
 			}
 		}
-		t.Fatalf("verify over the demo store: %s; want every one of %d versions reproduced (or a retraction)", sum, versions)
+		t.Fatalf("verify over the demo store: %s; want every one of %d versions and %d refusals reproduced (or a retraction)", sum, versions, refusals)
+	}
+	var refused postgres.Verdict
+	for _, v := range all {
+		if v.Status == postgres.StatusRefused && v.Reason != fhirmap.ReasonImplausible && v.Outcome == postgres.OutcomeReproduced {
+			refused = v
+			break
+		}
+	}
+	if refused.Key == "" {
+		t.Fatal("the demo stored no refusal to alter")
 	}
 
 	// Alter the blood gas of one current predicted PaCO2 discrepancy (the
@@ -342,6 +367,34 @@ func verifyDemoStore(ctx context.Context, t *testing.T, r *postgres.Reviewer, de
 	}
 	if !found {
 		t.Fatalf("verify of %s returned no version %d", target.Key, target.Version)
+	}
+
+	// A PaCO2 of 400 mmHg is outside physio's plausible range: every kind
+	// of that blood gas is then refused as implausible, whatever the
+	// stored refusal said.
+	if refused.BloodGas != target.BloodGas {
+		tag, err = admin.Exec(ctx, `UPDATE fact SET value = 400 WHERE key = $1 AND quantity = 'pco2'`, refused.BloodGas)
+		if err != nil || tag.RowsAffected() == 0 {
+			t.Fatalf("alter the stored blood gas %s: %v", refused.BloodGas, err)
+		}
+		got, err = r.VerifyKey(ctx, refused.Key)
+		if err != nil {
+			t.Fatal(err)
+		}
+		found = false
+		for _, v := range got {
+			if v.Status != postgres.StatusRefused || !v.Recorded.Equal(refused.Recorded) {
+				continue
+			}
+			found = true
+			want := "reason: stored " + refused.Reason + ", re-derived " + fhirmap.ReasonImplausible
+			if v.Outcome != postgres.OutcomeMismatch || v.RederivedReason != fhirmap.ReasonImplausible || !slices.Contains(v.Findings, want) {
+				t.Errorf("after altering its blood gas, refusal %s: %s %q, want a mismatch with %q", v.Key, v.Outcome, v.Findings, want)
+			}
+		}
+		if !found {
+			t.Fatalf("verify of %s returned no refusal", refused.Key)
+		}
 	}
 }
 

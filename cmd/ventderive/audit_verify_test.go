@@ -140,8 +140,17 @@ func TestAuditVerifyReplay(t *testing.T) {
 		t.Fatal(err)
 	}
 	sum := postgres.Summarise(page.Rows)
-	if sum.Versions < 10 || sum.Reproduced != sum.Versions {
-		t.Fatalf("verify: %s; want every version reproduced: %+v", sum, page.Rows)
+	// abg-c3 has no ventilator reading in its window: its kinds that need
+	// one are refused, and those refusals reproduce too.
+	if sum.Versions < 10 || sum.Refusals < 5 || sum.Reproduced != sum.Versions+sum.Refusals {
+		t.Fatalf("verify: %s; want every version and refusal reproduced: %+v", sum, page.Rows)
+	}
+	for _, v := range page.Rows {
+		if v.Status == postgres.StatusRefused && v.BloodGas == "Observation/abg-c3" && v.Kind == fhirmap.KindPredictedPaCO2 &&
+			(v.RederivedReason != fhirmap.ReasonNoVentilatorData || v.RederivedDetail != v.Detail || !strings.Contains(v.Detail, "the nearest is")) {
+			t.Errorf("abg-c3 predicted PaCO2 refusal: stored %s %q, re-derived %s %q; want the same, naming the nearest reading",
+				v.Reason, v.Detail, v.RederivedReason, v.RederivedDetail)
+		}
 	}
 
 	// What each site gives, derived directly from the facts sent.
@@ -314,6 +323,62 @@ func TestAuditVerifyReplay(t *testing.T) {
 	}
 	if !strings.Contains(out, "not verifiable with this build: no settings snapshot was recorded") {
 		t.Errorf("verify output does not report the version without settings as not verifiable:\n%s", out)
+	}
+
+	// Refusals: a PaCO2 of 400 mmHg stored for abg-c3 (outside physio's
+	// plausible range) turns its refusals for want of ventilator data into
+	// mismatches naming both reasons; a refusal without its settings link,
+	// or linked to a snapshot of another algorithm, is not verifiable.
+	if _, err := admin.Exec(ctx, `UPDATE fact SET value = 400 WHERE key = 'Observation/abg-c3'`); err != nil {
+		t.Fatal(err)
+	}
+	discrepancy := patC + "|Observation/abg-c3|" + fhirmap.KindPaCO2Discrepancy
+	if _, err := admin.Exec(ctx, `UPDATE refusal SET settings_digest = NULL WHERE key = $1`, discrepancy); err != nil {
+		t.Fatal(err)
+	}
+	var snapshot, inbox string
+	if err := admin.QueryRow(ctx, `SELECT snapshot, inbox_key FROM site_settings WHERE digest = $1`, snapDigest).Scan(&snapshot, &inbox); err != nil {
+		t.Fatal(err)
+	}
+	older := strings.Replace(snapshot, `"algorithm":"`+fhirmap.Algorithm+`"`, `"algorithm":"ventderive-derive/0"`, 1)
+	if older == snapshot {
+		t.Fatalf("the snapshot does not name its algorithm as expected: %s", snapshot)
+	}
+	if _, err := admin.Exec(ctx, `INSERT INTO site_settings (digest, snapshot, algorithm, alias_digest, inbox_key, created_at)
+		VALUES ($1, $2, 'ventderive-derive/0', '', $3, now())`, auditSHA([]byte(older)), older, inbox); err != nil {
+		t.Fatal(err)
+	}
+	ratio := patC + "|Observation/abg-c3|" + fhirmap.KindVentilatoryRatio
+	if tag, err := admin.Exec(ctx, `UPDATE refusal SET settings_digest = $1 WHERE key = $2`, auditSHA([]byte(older)), ratio); err != nil || tag.RowsAffected() == 0 {
+		t.Fatalf("link %s to the older snapshot: %v", ratio, err)
+	}
+	for _, format := range []string{"table", "json", "csv"} {
+		stdout.Reset()
+		err = run(ctx, []string{"audit", "verify", "--patient", patC, "--from", "2026-03-01T13:30:00Z", "--to", "2026-03-01T14:30:00Z", "--format", format}, e)
+		if err == nil || !strings.Contains(err.Error(), "10 mismatch") {
+			t.Errorf("verify --format %s after altering abg-c3: err = %v, want 10 mismatches (its refusals but the two not verifiable)", format, err)
+		}
+		checkAuditGolden(t, "verify/verify-refusals-altered."+format, stdout.Bytes())
+	}
+	vs, err := r.VerifyKey(ctx, patC+"|Observation/abg-c3|"+fhirmap.KindPredictedPaCO2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	wantFinding := "reason: stored " + fhirmap.ReasonNoVentilatorData + ", re-derived " + fhirmap.ReasonImplausible
+	if len(vs) != 1 || vs[0].Outcome != postgres.OutcomeMismatch || !slices.Contains(vs[0].Findings, wantFinding) {
+		t.Errorf("verify of abg-c3's predicted PaCO2 refusal after the alteration: %+v; want a mismatch with %q", vs, wantFinding)
+	}
+	for key, why := range map[string]string{
+		discrepancy: "no settings snapshot was recorded with this refusal",
+		ratio:       "made under algorithm ventderive-derive/0, this build runs " + fhirmap.Algorithm,
+	} {
+		vs, err := r.VerifyKey(ctx, key)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(vs) != 1 || vs[0].Outcome != postgres.OutcomeNotVerifiable || !strings.Contains(vs[0].Why, why) {
+			t.Errorf("verify of %s: %+v; want not verifiable: %q", key, vs, why)
+		}
 	}
 }
 

@@ -3,6 +3,7 @@ package main
 import (
 	"bytes"
 	"context"
+	"encoding/json"
 	"flag"
 	"fmt"
 	"net/http"
@@ -15,6 +16,7 @@ import (
 	"strconv"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/chromedp/cdproto/cdp"
 	"github.com/chromedp/cdproto/emulation"
@@ -210,6 +212,59 @@ func reviewBrowserTest(t *testing.T, ctx context.Context, cs consoleStore, base,
 	}
 	screenshot(t, bctx, screens, "value")
 
+	// The site settings in force, as the browser shows them for this
+	// version, against the snapshot the store holds for it: the display
+	// units are the test's own reading of the stored JSON (mL, mmHg, the
+	// window's nanoseconds in minutes).
+	var digest, siteJSON string
+	if err := cs.adminPool.QueryRow(ctx, `SELECT s.digest, (s.snapshot::jsonb -> 'site')::text FROM derivation d
+		JOIN site_settings s ON s.digest = d.settings_digest WHERE d.key = $1 AND d.version = $2`,
+		cs.text(t, ctx, `SELECT key FROM derivation WHERE observation_id::text = $1 OR key = $1 LIMIT 1`, key), version).Scan(&digest, &siteJSON); err != nil {
+		t.Fatal(err)
+	}
+	var site struct {
+		ApparatusDeadSpaceML float64
+		TargetPaCO2mmHg      float64
+		Window               struct{ Before, After int64 }
+	}
+	if err := json.Unmarshal([]byte(siteJSON), &site); err != nil {
+		t.Fatal(err)
+	}
+	leaves := settingLeaves(t, []byte(siteJSON))
+	shown, err := chromedp.Run(bctx, chromedp.Evaluate[map[string]string](fmt.Sprintf(`Object.fromEntries(Array.from(
+		document.querySelectorAll('#version-%d dd.setting')).map(d => [d.dataset.setting, d.textContent]))`, version)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	wantSettings := map[string]string{
+		"ApparatusDeadSpaceML": strconv.FormatFloat(site.ApparatusDeadSpaceML, 'f', -1, 64) + " mL",
+		"TargetPaCO2mmHg":      strconv.FormatFloat(site.TargetPaCO2mmHg, 'f', -1, 64) + " mmHg",
+		"Window.Before":        strconv.FormatInt(site.Window.Before/int64(time.Minute), 10) + " min",
+		"Window.After":         strconv.FormatInt(site.Window.After/int64(time.Minute), 10) + " min",
+	}
+	for name, want := range wantSettings {
+		if shown[name] != want {
+			t.Errorf("value page setting %s: %q, the store's snapshot gives %q", name, shown[name], want)
+		}
+	}
+	// Every stored setting is shown (an object such as the window as its
+	// members).
+	if len(shown) != leaves {
+		t.Errorf("value page shows %d settings, the snapshot holds %d", len(shown), leaves)
+	}
+	do("open the settings snapshot", chromedp.Click(fmt.Sprintf(`#version-%d a.settings-link`, version)), chromedp.WaitVisible(`#settings-digest`))
+	if got := text(`#settings-digest`); got != digest {
+		t.Errorf("the settings link opened snapshot %q, the version's is %q", got, digest)
+	}
+	rowsShown, err := chromedp.Run(bctx, chromedp.Evaluate[int](`document.querySelectorAll('#table-settings tbody tr').length`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if rowsShown != leaves {
+		t.Errorf("settings page lists %d settings, the snapshot holds %d", rowsShown, leaves)
+	}
+	screenshot(t, bctx, screens, "settings")
+
 	// Refusal and retraction marks: as many as the store's current ones;
 	// a retraction mark opens a page that shows the retraction.
 	do("open the patient again", chromedp.Navigate(base+"/patients/"+pid), chromedp.WaitVisible(`#fig-marks img`))
@@ -323,4 +378,23 @@ func reviewBrowserTest(t *testing.T, ctx context.Context, cs consoleStore, base,
 	if page := text(`body`); r == nil || r.Status != 401 || !strings.Contains(page, "authentication required") {
 		t.Errorf("unauthenticated request beyond loopback: response %v, page %q", r, page)
 	}
+}
+
+// settingLeaves counts the settings of a snapshot's site JSON, an object's
+// members counted one by one.
+func settingLeaves(t *testing.T, raw []byte) int {
+	t.Helper()
+	var m map[string]json.RawMessage
+	if err := json.Unmarshal(raw, &m); err != nil {
+		t.Fatal(err)
+	}
+	n := 0
+	for _, v := range m {
+		if bytes.HasPrefix(bytes.TrimSpace(v), []byte("{")) {
+			n += settingLeaves(t, v)
+		} else {
+			n++
+		}
+	}
+	return n
 }

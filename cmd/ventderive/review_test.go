@@ -319,6 +319,136 @@ func TestReviewConsole(t *testing.T) {
 		}
 	})
 
+	t.Run("value page shows the settings snapshot and the steps", func(t *testing.T) {
+		// A predicted PaCO2 uses the apparatus dead space and keeps its
+		// predicted-body-weight step (review_derivation_step).
+		var key, digest, alias, algorithm string
+		var version int
+		var ml, target float64
+		var before, after int64
+		err := cs.adminPool.QueryRow(ctx, `
+			SELECT d.key, d.version, d.settings_digest, s.alias_digest, s.algorithm,
+			       (s.snapshot::jsonb -> 'site' ->> 'ApparatusDeadSpaceML')::float8,
+			       (s.snapshot::jsonb -> 'site' ->> 'TargetPaCO2mmHg')::float8,
+			       (s.snapshot::jsonb -> 'site' -> 'Window' ->> 'Before')::bigint,
+			       (s.snapshot::jsonb -> 'site' -> 'Window' ->> 'After')::bigint
+			FROM derivation d JOIN site_settings s ON s.digest = d.settings_digest
+			WHERE d.patient_ref = $1 AND d.kind = 'paco2-predicted' AND d.record IS NOT NULL ORDER BY d.id LIMIT 1`, patient).
+			Scan(&key, &version, &digest, &alias, &algorithm, &ml, &target, &before, &after)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, body := get(t, c, ts.URL+"/values?key="+url.QueryEscape(key))
+		// The heading names the snapshot of each version.
+		if want := `version ` + strconv.Itoa(version) + `: snapshot <a class="mono" href="/settings?digest=` + digest + `">` + digest[:12] + `</a>: apparatus dead space ` +
+			strconv.FormatFloat(ml, 'f', -1, 64) + ` mL`; !strings.Contains(body, want) {
+			t.Errorf("the page's heading lacks %q", want)
+		}
+		i := strings.Index(body, `id="version-`+strconv.Itoa(version)+`"`)
+		if i < 0 {
+			t.Fatalf("no section for version %d", version)
+		}
+		section := body[i:]
+		if j := strings.Index(section, "</section>"); j > 0 {
+			section = section[:j]
+		}
+		// Display units: mL, mmHg, minutes (the window is stored in ns).
+		for _, want := range []string{
+			`<a class="settings-link" href="/settings?digest=` + digest + `">` + digest + `</a>`,
+			"<dd>" + algorithm + "</dd>",
+			`data-setting="ApparatusDeadSpaceML">` + strconv.FormatFloat(ml, 'f', -1, 64) + " mL<",
+			`data-setting="TargetPaCO2mmHg">` + strconv.FormatFloat(target, 'f', -1, 64) + " mmHg<",
+			`data-setting="Window.Before">` + strconv.FormatInt(before/int64(time.Minute), 10) + " min<",
+			`data-setting="Window.After">` + strconv.FormatInt(after/int64(time.Minute), 10) + " min<",
+		} {
+			if !strings.Contains(section, want) {
+				t.Errorf("version %d's section lacks %q", version, want)
+			}
+		}
+		if alias == "" && !strings.Contains(section, "none (no code alias file)") || alias != "" && !strings.Contains(section, "SHA-256 "+alias) {
+			t.Errorf("version %d's section does not name the alias file %q", version, alias)
+		}
+		rows, err := cs.adminPool.Query(ctx, `SELECT s.basis FROM review_derivation_step s JOIN derivation d ON d.id = s.derivation_id
+			WHERE d.key = $1 AND d.version = $2 ORDER BY s.ordinal`, key, version)
+		if err != nil {
+			t.Fatal(err)
+		}
+		steps, err := pgx.CollectRows(rows, pgx.RowTo[string])
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(steps) == 0 {
+			t.Fatal("the predicted PaCO2 kept no step")
+		}
+		_, csvBody := get(t, c, ts.URL+"/values?"+url.Values{"key": {key}, "format": {"csv"}, "table": {"steps-v" + strconv.Itoa(version)}}.Encode())
+		recs, err := csv.NewReader(strings.NewReader(csvBody)).ReadAll()
+		if err != nil || len(recs) != len(steps)+1 {
+			t.Fatalf("steps CSV: %v, %d rows; want %d steps", err, len(recs)-1, len(steps))
+		}
+		for n, b := range steps {
+			if recs[n+1][4] != b || !strings.Contains(section, htmlEscape(b)) {
+				t.Errorf("step %d: shown %q, the store %q", n+1, recs[n+1][4], b)
+			}
+		}
+
+		// The whole snapshot on its own page: every setting, the exact bytes.
+		resp, page := get(t, c, ts.URL+"/settings?digest="+digest)
+		if resp.StatusCode != 200 {
+			t.Fatalf("settings page: status %d", resp.StatusCode)
+		}
+		var snapshot string
+		var names []string
+		if err := cs.adminPool.QueryRow(ctx, `SELECT snapshot, ARRAY(SELECT jsonb_object_keys(snapshot::jsonb -> 'site') ORDER BY 1)
+			FROM site_settings WHERE digest = $1`, digest).Scan(&snapshot, &names); err != nil {
+			t.Fatal(err)
+		}
+		if !strings.Contains(page, htmlEscape(snapshot)) || !strings.Contains(page, `id="settings-digest">`+digest+"<") {
+			t.Errorf("settings page lacks the stored bytes or the digest")
+		}
+		for _, n := range names {
+			if !strings.Contains(page, "<td>"+n) {
+				t.Errorf("settings page lacks the setting %s", n)
+			}
+		}
+		if !strings.Contains(page, "<td>"+strconv.FormatFloat(ml, 'f', -1, 64)+" mL</td>") {
+			t.Errorf("settings page does not show the apparatus dead space in mL")
+		}
+		if resp, _ := get(t, c, ts.URL+"/settings?digest=nothex"); resp.StatusCode != 400 {
+			t.Errorf("malformed digest: status %d, want 400", resp.StatusCode)
+		}
+		if resp, _ := get(t, c, ts.URL+"/settings?digest="+strings.Repeat("0", 64)); resp.StatusCode != 404 {
+			t.Errorf("unknown digest: status %d, want 404", resp.StatusCode)
+		}
+	})
+
+	t.Run("refusal page shows its settings snapshot; a refusal without one says so", func(t *testing.T) {
+		var key, digest string
+		var id int64
+		if err := cs.adminPool.QueryRow(ctx, `SELECT r.key, r.id, r.settings_digest FROM refusal r
+			WHERE r.settings_digest IS NOT NULL ORDER BY r.id LIMIT 1`).Scan(&key, &id, &digest); err != nil {
+			t.Fatal(err)
+		}
+		_, body := get(t, c, ts.URL+"/values?key="+url.QueryEscape(key))
+		i := strings.Index(body, `id="refusal-`+strconv.FormatInt(id, 10)+`"`)
+		if i < 0 || !strings.Contains(body[i:], `href="/settings?digest=`+digest+`"`) {
+			t.Errorf("refusal %d's section does not link its snapshot %s", id, digest)
+		}
+		// As recorded before migration 0006: no snapshot. Restored after.
+		if _, err := cs.adminPool.Exec(ctx, `UPDATE refusal SET settings_digest = NULL WHERE id = $1`, id); err != nil {
+			t.Fatal(err)
+		}
+		defer func() {
+			if _, err := cs.adminPool.Exec(ctx, `UPDATE refusal SET settings_digest = $2 WHERE id = $1`, id, digest); err != nil {
+				t.Fatal(err)
+			}
+		}()
+		_, body = get(t, c, ts.URL+"/values?key="+url.QueryEscape(key))
+		i = strings.Index(body, `id="refusal-`+strconv.FormatInt(id, 10)+`"`)
+		if i < 0 || !strings.Contains(body[i:], `class="hint settings-none">none recorded: made before the store kept settings snapshots`) {
+			t.Errorf("a refusal without a snapshot does not say so")
+		}
+	})
+
 	t.Run("quality views", func(t *testing.T) {
 		for _, p := range []string{"/quality/refusals", "/quality/deadletters", "/quality/changes", "/quality/discrepancies?threshold=3"} {
 			resp, body := get(t, c, ts.URL+p)
@@ -360,7 +490,7 @@ func TestReviewConsole(t *testing.T) {
 
 	t.Run("no script and no inline style on any page", func(t *testing.T) {
 		for _, p := range []string{"/patients", "/patients/" + pid, "/patients/" + pid + "/report", "/quality/refusals",
-			"/quality/deadletters", "/quality/changes", "/quality/discrepancies"} {
+			"/quality/deadletters", "/quality/changes", "/quality/discrepancies", "/settings?digest=" + cs.text(t, ctx, `SELECT digest FROM site_settings LIMIT 1`)} {
 			_, body := get(t, c, ts.URL+p)
 			for _, bad := range []string{"<script", " style=", "<style", "javascript:", " onclick=", " onload="} {
 				if strings.Contains(body, bad) {

@@ -39,7 +39,8 @@ type RetainReport struct {
 // retainCandidatesSQL lists, for one patient ($1 hash), the fact keys Retain
 // may remove: ventilator readings (fhirmap.IsVentilatorReading) whose every
 // version is of this patient, a ventilator quantity and older than $2, and
-// that no derivation or refusal cites (any version: a cited reading keeps
+// that no derivation or refusal cites nor a refusal's detail may name
+// (retainNearestSQL) (any version: a cited reading keeps
 // all its versions, so that what a recomputation sees as its latest version
 // does not change). The cited keys are one hashed set (NOT IN over NOT
 // NULL columns): as NOT EXISTS, the planner estimated one candidate and
@@ -51,7 +52,32 @@ WHERE f.patient_hash = $1 AND f.effective < $2
   AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
   AND NOT EXISTS (SELECT 1 FROM fact g WHERE g.key = f.key
       AND (g.patient_hash <> $1 OR g.effective >= $2 OR g.quantity NOT IN (` + ventilatorQuantitiesSQL + `)))
-  AND f.key NOT IN (SELECT fact_key FROM derivation_input UNION ALL SELECT fact_key FROM refusal_input)`
+  AND f.key NOT IN (SELECT fact_key FROM derivation_input UNION ALL SELECT fact_key FROM refusal_input)
+  AND f.key NOT IN (` + retainNearestSQL + `)`
+
+// retainNearestSQL lists the readings a refusal's detail may name without
+// citing them: the ventilator readings nearest before and after each
+// refusal's pairing window (its settings snapshot's window; the default 30
+// min before, 10 min after for a refusal recorded before snapshots). The
+// service loads the eight nearest on each side into a snapshot for the
+// detail of "no-ventilator-data-in-window" ("the nearest is 1 h 28 min
+// before the blood gas"), and audit verify loads them again to reproduce
+// it; sixteen per side are kept so that ties at the edge cannot drop one.
+const retainNearestSQL = `
+SELECT n.key FROM (
+    SELECT DISTINCT
+        r.effective - coalesce((s.snapshot::jsonb -> 'site' -> 'Window' ->> 'Before')::bigint / 1000, 1800000000)
+            * interval '1 microsecond' AS lo,
+        r.effective + coalesce((s.snapshot::jsonb -> 'site' -> 'Window' ->> 'After')::bigint / 1000, 600000000)
+            * interval '1 microsecond' AS hi
+    FROM refusal r LEFT JOIN site_settings s ON s.digest = r.settings_digest
+    WHERE r.patient_hash = $1) w
+CROSS JOIN LATERAL (
+    (SELECT b.key FROM fact b WHERE b.patient_hash = $1 AND b.effective < w.lo
+       AND b.quantity IN (` + ventilatorQuantitiesSQL + `) ORDER BY b.effective DESC LIMIT 16)
+    UNION ALL
+    (SELECT a.key FROM fact a WHERE a.patient_hash = $1 AND a.effective > w.hi
+       AND a.quantity IN (` + ventilatorQuantitiesSQL + `) ORDER BY a.effective LIMIT 16)) n`
 
 const (
 	// retainSizeSQL counts what removing the keys $1 removes: fact rows

@@ -32,3 +32,38 @@ func TestVentilatorQuantitiesMatchFhirmap(t *testing.T) {
 		}
 	}
 }
+
+// TestRefusalVerifyQuantities checks that the refusal verification loads
+// every quantity the code table can produce (a fact of a quantity left out
+// would be missing from the re-derivation) and counts as ventilator
+// readings exactly those the snapshot does.
+func TestRefusalVerifyQuantities(t *testing.T) {
+	for _, e := range fhirmap.DefaultCodes().Entries() {
+		if e.Panel { // a panel code carries its quantities in components
+			continue
+		}
+		if !slices.Contains(allQuantities, string(e.Quantity)) {
+			t.Errorf("quantity %q of the code table (%s) is not loaded by refusal verification", e.Quantity, e.Code)
+		}
+	}
+	for _, q := range []fhirmap.Quantity{fhirmap.QTargetPaCO2, fhirmap.QApparatusVD} {
+		if !slices.Contains(allQuantities, string(q)) {
+			t.Errorf("standing quantity %s is not loaded by refusal verification", q)
+		}
+	}
+	for _, q := range patientLevel {
+		if !slices.Contains(allQuantities, q) {
+			t.Errorf("patient-level quantity %s is not loaded by refusal verification", q)
+		}
+	}
+	var listed []string
+	for _, m := range regexp.MustCompile(`'([a-z0-9-]+)'`).FindAllStringSubmatch(ventilatorQuantitiesSQL, -1) {
+		listed = append(listed, m[1])
+	}
+	got := ventilatorQuantities()
+	slices.Sort(got)
+	slices.Sort(listed)
+	if !slices.Equal(got, listed) {
+		t.Errorf("refusal verification counts %q as ventilator readings, the snapshot %q", got, listed)
+	}
+}

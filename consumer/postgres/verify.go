@@ -49,20 +49,26 @@ type Verdict struct {
 	// Published and Rederived are the values as published (rounded);
 	// *Value the full precision. Rederived* are empty when nothing was
 	// re-derived.
-	Published            string    `json:"published,omitempty"`
-	PublishedValue       *float64  `json:"publishedValue,omitempty"`
-	Rederived            string    `json:"rederived,omitempty"`
-	RederivedValue       *float64  `json:"rederivedValue,omitempty"`
-	Unit                 string    `json:"unit"`
-	DisplayUnit          string    `json:"displayUnit,omitempty"`
-	Interpretation       string    `json:"interpretation,omitempty"`
-	RederivedInterp      string    `json:"rederivedInterpretation,omitempty"`
-	Digest               string    `json:"digest"`
-	RederivedDigest      string    `json:"rederivedDigest,omitempty"`
-	ObservationDigest    string    `json:"observationSha256,omitempty"`
-	RederivedObservation string    `json:"rederivedObservationSha256,omitempty"`
-	Findings             []string  `json:"findings"`
-	Recorded             time.Time `json:"recorded"`
+	Published            string   `json:"published,omitempty"`
+	PublishedValue       *float64 `json:"publishedValue,omitempty"`
+	Rederived            string   `json:"rederived,omitempty"`
+	RederivedValue       *float64 `json:"rederivedValue,omitempty"`
+	Unit                 string   `json:"unit"`
+	DisplayUnit          string   `json:"displayUnit,omitempty"`
+	Interpretation       string   `json:"interpretation,omitempty"`
+	RederivedInterp      string   `json:"rederivedInterpretation,omitempty"`
+	Digest               string   `json:"digest"`
+	RederivedDigest      string   `json:"rederivedDigest,omitempty"`
+	ObservationDigest    string   `json:"observationSha256,omitempty"`
+	RederivedObservation string   `json:"rederivedObservationSha256,omitempty"`
+	// Reason and Detail are a refusal's stored reason and detail,
+	// Rederived* what this build gives (Status is StatusRefused).
+	Reason          string    `json:"reason,omitempty"`
+	Detail          string    `json:"detail,omitempty"`
+	RederivedReason string    `json:"rederivedReason,omitempty"`
+	RederivedDetail string    `json:"rederivedDetail,omitempty"`
+	Findings        []string  `json:"findings"`
+	Recorded        time.Time `json:"recorded"`
 }
 
 const verifyInputsSQL = `
@@ -100,7 +106,10 @@ WHERE derivation_id = ANY($1::bigint[]) AND resource_type = 'Observation'`
 // Verify re-derives every stored derivation version the filter selects
 // (List's order and paging) from its stored inputs and its settings
 // snapshot, with this build's code, and reports per version whether the
-// published value, interpretation, digest and Observation bytes reproduce.
+// published value, interpretation, digest and Observation bytes reproduce;
+// then the refusals the filter selects (VerifyRefusals). The page's limit
+// and offset apply to the versions and to the refusals each; More is set
+// when either has more.
 func (r *Reviewer) Verify(ctx context.Context, f Filter) (Page[Verdict], error) {
 	versions, err := r.List(ctx, f)
 	if err != nil {
@@ -110,6 +119,14 @@ func (r *Reviewer) Verify(ctx context.Context, f Filter) (Page[Verdict], error) 
 	out.Rows, err = r.verifyVersions(ctx, versions.Rows)
 	if err != nil {
 		return Page[Verdict]{}, fmt.Errorf("verify: %w", err)
+	}
+	refused, err := r.VerifyRefusals(ctx, f)
+	if err != nil {
+		return Page[Verdict]{}, err
+	}
+	out.Rows = append(out.Rows, refused.Rows...)
+	if refused.More {
+		out.More, out.NextOffset = true, refused.NextOffset
 	}
 	return out, nil
 }
@@ -125,7 +142,11 @@ func (r *Reviewer) VerifyKey(ctx context.Context, idOrKey string) ([]Verdict, er
 	if err != nil {
 		return nil, fmt.Errorf("verify: %w", err)
 	}
-	return out, nil
+	refused, err := r.verifyRefusals(ctx, h.Refusals)
+	if err != nil {
+		return nil, fmt.Errorf("verify refusals: %w", err)
+	}
+	return append(out, refused...), nil
 }
 
 // storedInput is an input as a derivation stored it, with its whole fact.
@@ -324,9 +345,11 @@ func interpText(code, text string) string {
 	return code + " " + text
 }
 
-// VerifySummary counts verdicts by outcome.
+// VerifySummary counts verdicts by outcome (versions and refusals
+// together).
 type VerifySummary struct {
 	Versions      int `json:"versions"`
+	Refusals      int `json:"refusals"`
 	Reproduced    int `json:"reproduced"`
 	Mismatches    int `json:"mismatches"`
 	NotVerifiable int `json:"notVerifiable"`
@@ -335,8 +358,13 @@ type VerifySummary struct {
 
 // Summarise counts vs by outcome.
 func Summarise(vs []Verdict) VerifySummary {
-	s := VerifySummary{Versions: len(vs)}
+	var s VerifySummary
 	for _, v := range vs {
+		if v.Status == StatusRefused {
+			s.Refusals++
+		} else {
+			s.Versions++
+		}
 		switch v.Outcome {
 		case OutcomeReproduced:
 			s.Reproduced++
@@ -352,7 +380,7 @@ func Summarise(vs []Verdict) VerifySummary {
 }
 
 func (s VerifySummary) String() string {
-	return strconv.Itoa(s.Versions) + " version(s): " + strconv.Itoa(s.Reproduced) + " reproduced, " +
+	return strconv.Itoa(s.Versions) + " version(s) and " + strconv.Itoa(s.Refusals) + " refusal(s): " + strconv.Itoa(s.Reproduced) + " reproduced, " +
 		strconv.Itoa(s.Mismatches) + " mismatch(es), " + strconv.Itoa(s.NotVerifiable) + " not verifiable with this build, " +
 		strconv.Itoa(s.Retractions) + " retraction(s) (no value to reproduce)"
 }

@@ -385,6 +385,8 @@ type versionView struct {
 	V         postgres.Version
 	Inputs    *Table
 	Constants *Table
+	Steps     *Table // nil when the version kept no intermediate step
+	Settings  *settingsView
 	Links     []zoomLink
 }
 
@@ -407,6 +409,7 @@ func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 		Columns: []string{"version", "status", "value as published", "unit", "interpretation", "supersedes", "superseded by", "current", "recorded", "observation id"}}
 	var views []versionView
 	var tables = []*Table{vt}
+	snapshots := map[string]*settingsView{}
 	for _, v := range h.Versions {
 		vt.add(num(v.Version), txt(v.Status), txt(v.Published), txt(v.DisplayUnit), txt(v.Interpretation.Text),
 			txt(optVersion(v.Supersedes)), txt(optVersion(v.SupersededBy)), txt(strconv.FormatBool(v.Current)), when(v.Recorded), txt(v.ObservationID))
@@ -416,6 +419,14 @@ func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 			ct.add(txt(c.Name), txt(strconv.FormatFloat(c.Value, 'g', -1, 64)), txt(postgres.DisplayUnit(c.Unit)), txt(c.Source))
 		}
 		vv := versionView{V: v, Inputs: in, Constants: ct}
+		if vv.Settings, err = s.settingsFor(r, v.Settings, snapshots); err != nil {
+			s.fail(w, r, err)
+			return
+		}
+		if v.Record != nil && len(v.Record.Steps) > 0 {
+			vv.Steps = stepsTable(fmt.Sprintf("steps-v%d", v.Version), v.Record.Steps)
+			tables = append(tables, vv.Steps)
+		}
 		for _, m := range v.Messages {
 			q := url.Values{"key": {h.Key}, "version": {strconv.Itoa(v.Version)}, "type": {m.ResourceType}}
 			vv.Links = append(vv.Links, zoomLink{fmt.Sprintf("published %s (JSON, %d bytes, SHA-256 %s)", m.ResourceType, m.SizeBytes, m.Digest), "/published?" + q.Encode()})
@@ -426,49 +437,55 @@ func (s *Server) value(w http.ResponseWriter, r *http.Request) {
 	rt := &Table{ID: "refusals", Title: "Refusals",
 		Columns: []string{"refusal id", "reason", "detail", "current", "recorded", "blood-gas time"}}
 	type refusalView struct {
-		R       postgres.Refusal
-		Meaning string
-		Inputs  *Table
+		R        postgres.Refusal
+		Meaning  string
+		Inputs   *Table
+		Settings *settingsView
 	}
 	var refusals []refusalView
 	for _, x := range h.Refusals {
 		rt.add(txt(strconv.FormatInt(x.ID, 10)), txt(x.Reason), txt(x.Detail), txt(strconv.FormatBool(x.Current)), when(x.Recorded), when(x.Effective))
 		in := inputsTable(fmt.Sprintf("considered-%d", x.ID), x.Considered)
 		in.Title = "Inputs considered"
-		refusals = append(refusals, refusalView{R: x, Meaning: reasonMeaning(x.Reason), Inputs: in})
+		sv, err := s.settingsFor(r, x.Settings, snapshots)
+		if err != nil {
+			s.fail(w, r, err)
+			return
+		}
+		refusals = append(refusals, refusalView{R: x, Meaning: reasonMeaning(x.Reason), Inputs: in, Settings: sv})
 		tables = append(tables, in)
 	}
 	tables = append(tables, rt)
+	var who []string
+	var used []*settingsView
+	for _, v := range views {
+		who, used = append(who, "version "+strconv.Itoa(v.V.Version)), append(used, v.Settings)
+	}
+	for _, x := range refusals {
+		who, used = append(who, "refusal "+strconv.FormatInt(x.R.ID, 10)), append(used, x.Settings)
+	}
 	patient, gas, kind := splitKey(h.Key)
 	info, _ := fhirmap.LookupKind(kind)
 	s.render(w, r, "value.html", &page{Title: kind + " — " + patient, Nav: "patients", Tables: tables,
 		Data: map[string]any{"Key": h.Key, "Patient": patient, "PatientHref": patientHref(patient), "BloodGas": gas,
-			"Kind": info, "KindCode": kind, "Versions": views, "Refusals": refusals, "Settings": settingsInForce(h)}})
+			"Kind": info, "KindCode": kind, "Versions": views, "Refusals": refusals,
+			"Settings": summarise(who, used)}})
 }
 
-// settingsInForce is what the store records today of the site settings a
-// value was derived under: the constants each version recorded as given
-// by the site or caller (the target PaCO2, for instance); the apparatus
-// dead space and pairing window are not stored apart from the basis text.
-// Hook: once the store keeps a snapshot of the site settings per version
-// (issue 11), list that snapshot here instead.
-func settingsInForce(h postgres.History) []string {
-	var out []string
-	seen := map[string]bool{}
-	for _, v := range h.Versions {
-		for _, c := range v.Constants {
-			src := strings.ToLower(c.Source)
-			if !strings.Contains(src, "caller") && !strings.Contains(src, "site") {
-				continue
-			}
-			line := fmt.Sprintf("version %d: %s %s %s (%s)", v.Version, c.Name, strconv.FormatFloat(c.Value, 'g', -1, 64), displayUnit(c.Unit), c.Source)
-			if !seen[line] {
-				seen[line] = true
-				out = append(out, line)
-			}
+// stepsTable lists the intermediate steps a version kept (its record; the
+// rows of review_derivation_step), in order.
+func stepsTable(id string, steps []fhirmap.RecordStep) *Table {
+	t := &Table{ID: id, Title: "Intermediate steps",
+		Columns: []string{"step", "method", "value", "unit", "formula with the numbers", "constants", "assumptions", "flags"}}
+	for i, st := range steps {
+		var cs []string
+		for _, c := range st.Constants {
+			cs = append(cs, strings.TrimSpace(fmt.Sprintf("%s %s %s (%s)", c.Name, shownNumber(c.Value), displayUnit(c.Unit), c.Source)))
 		}
+		t.add(num(i+1), txt(st.Method+" "+st.MethodVersion), txt(shownNumber(st.Value)), txt(displayUnit(st.Unit)), txt(st.Basis),
+			txt(strings.Join(cs, "; ")), txt(strings.Join(st.Assumptions, "; ")), txt(strings.Join(st.Flags, "; ")))
 	}
-	return out
+	return t
 }
 
 func optVersion(v int) string {

@@ -89,6 +89,7 @@ func (s *Server) routes() {
 	s.mux.HandleFunc("GET /patients/{id}/report", s.report)
 	s.mux.HandleFunc("GET /values", s.value)
 	s.mux.HandleFunc("GET /published", s.published)
+	s.mux.HandleFunc("GET /settings", s.settings)
 	s.mux.HandleFunc("GET /quality/refusals", s.refusals)
 	s.mux.HandleFunc("GET /quality/deadletters", s.deadLetters)
 	s.mux.HandleFunc("GET /quality/changes", s.changes)
