@@ -47,15 +47,15 @@ const (
 	methodPredicted   = "alveolar ventilation equation, predicted PaCO2"
 	methodDiscrepancy = "measured minus predicted PaCO2"
 
-	assumePBWAdult     = "height is the measured adult standing height"
+	assumePBWAdult          = "height is the measured adult standing height"
 	assumeAnatomicPBW       = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed, the whole airway from mouth and nose (Radford 1955; a poor predictor for an individual, Brewer & Orr); model whole-airway: the site's setting, no airway recorded for the patient"
 	assumeAnatomicPBWInput  = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed, the whole airway from mouth and nose (Radford 1955; a poor predictor for an individual, Brewer & Orr); model whole-airway: the patient's airway as recorded (no tracheal tube or tracheostomy)"
 	assumeAnatomicTube      = "anatomic dead space not given: 0.95 mL/kg of predicted body weight assumed, the intrathoracic airway only, since a tracheal tube or tracheostomy bypasses the extrathoracic airway (Nunn, Campbell & Peckett 1959; a poor predictor for an individual, Brewer & Orr); the tube's own volume belongs to the apparatus dead space; model artificial-airway: the site's setting, no airway recorded for the patient"
 	assumeAnatomicTubeInput = "anatomic dead space not given: 0.95 mL/kg of predicted body weight assumed, the intrathoracic airway only, since a tracheal tube or tracheostomy bypasses the extrathoracic airway (Nunn, Campbell & Peckett 1959; a poor predictor for an individual, Brewer & Orr); the tube's own volume belongs to the apparatus dead space; model artificial-airway: the patient's airway as recorded (tracheal tube or tracheostomy)"
-	assumeNoAlveolarVD = "no alveolar dead space and no shunt: a measured PaCO2 above the predicted one points to them"
-	assumeVCO2Estimate = "estimated: VCO2 not measured"
-	assumePredictedVT  = "VT and RR are the tidal volume and breath rate supplied (measured or set); the prediction holds for the tidal volume and total breath rate actually delivered"
-	assumeDiscrepancy  = "predicted PaCO2 from the same steady state as the measured one, with the VCO2 and dead space it assumed"
+	assumeNoAlveolarVD      = "no alveolar dead space and no shunt: a measured PaCO2 above the predicted one points to them"
+	assumeVCO2Estimate      = "estimated: VCO2 not measured"
+	assumePredictedVT       = "VT and RR are the tidal volume and breath rate supplied (measured or set); the prediction holds for the tidal volume and total breath rate actually delivered"
+	assumeDiscrepancy       = "predicted PaCO2 from the same steady state as the measured one, with the VCO2 and dead space it assumed"
 )
 
 // PredictedBodyWeight returns the ARDS Network predicted body weight, in
@@ -155,7 +155,7 @@ type PredictedInput struct {
 	// constant, assumption and basis: true for the patient's airway as
 	// recorded (an input of the value), false for the site's setting.
 	AnatomicFromPatient bool
-	PBW        Kg // predicted body weight, kg (PBWRange); needed only when AnatomicVD is 0
+	PBW                 Kg // predicted body weight, kg (PBWRange); needed only when AnatomicVD is 0
 	// ApparatusVD is the dead space of the apparatus beyond the Y-piece (HME,
 	// closed suction, extensions), mL (ApparatusDeadSpaceRange). It must be
 	// declared: ApparatusVDKnown false is refused with ErrNotGiven, so that a
