@@ -20,8 +20,8 @@ const (
 	codeDerivedCategory       = "derived-physiology"
 	advisoryTagDisplay        = "Advisory: not an order; verify at the bedside"
 	derivedCategoryDisplay    = "Derived ventilation physiology (computed, advisory)"
-	codeSystemVersion         = "1"
-	codeSystemDate            = "2026-12-01"
+	codeSystemVersion         = "2" // 2: the airway-model input codes
+	codeSystemDate            = "2026-12-02"
 	codeSystemID              = "ventderive-derived"
 	codeSystemName            = "VentderiveDerived"
 	codeSystemTitle           = "ventderive derived ventilation physiology"

@@ -112,6 +112,7 @@ func runDerive(ctx context.Context, args []string, e env) error {
 	if err != nil {
 		return err
 	}
+	codes = codes.WithCodeSystemURL(c.site.CodeSystemURL)
 	var facts []fhirmap.Fact
 	for _, name := range c.files {
 		if err := ctx.Err(); err != nil {
