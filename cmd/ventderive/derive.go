@@ -192,7 +192,7 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 	if site.TargetPaCO2mmHg != 0 {
 		target = fmt.Sprintf("%g mmHg (the site's; a patient's PaCO2 Goal in force overrides it)", site.TargetPaCO2mmHg)
 	}
-	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas (body temperature %s before to %s after); apparatus dead space %s; anatomic dead space %s; target PaCO2 %s; %s, RQ %g.\n\n",
+	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas (body temperature %s before to %s after); apparatus dead space %s; anatomic dead space %s (a patient's recorded airway is preferred); target PaCO2 %s; %s, RQ %g.\n\n",
 		shortDuration(site.Window.Before), shortDuration(site.Window.After), shortDuration(site.TemperatureWindow.Before),
 		shortDuration(site.TemperatureWindow.After), apparatus, site.AnatomicDeadSpace, target, site.Energy, site.RQ)
 	// Read by patient, then blood-gas time, then kind.
