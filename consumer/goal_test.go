@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/physio"
 )
 
 // goalMsg is a FHIR R4 Goal of patient i (invented) whose target is arterial
@@ -154,5 +155,84 @@ func TestGoalArrivalOrder(t *testing.T) {
 				t.Error("no rate for target of the first blood gas")
 			}
 		})
+	}
+}
+
+const airwayAlias = `{"system":"https://larkspur-general.example/fhir/resp-codes","code":"AIRWAY","quantity":"airway"}`
+
+// airwayMsg is an Observation of patient i's airway (site alias code of
+// airwayAlias) whose value is the SNOMED CT endotracheal tube (26412008) or
+// the service's own whole-airway code.
+func airwayMsg(i int, id string, tube bool, at time.Time) testMsg {
+	ref := patientRef(i)
+	value := map[string]any{"system": "http://snomed.info/sct", "code": "26412008", "display": "Endotracheal tube"}
+	if !tube {
+		value = map[string]any{"system": fhirmap.DefaultCodeSystemURL, "code": "whole-airway"}
+	}
+	o := observation(ref[len("Patient/"):]+"-"+id, ref, "", "", 0, at, map[string]any{
+		"code":                 map[string]any{"coding": []any{map[string]any{"system": "https://larkspur-general.example/fhir/resp-codes", "code": "AIRWAY"}}},
+		"valueCodeableConcept": map[string]any{"coding": []any{value}},
+	})
+	delete(o, "valueQuantity")
+	return msgOf("fhir.input.adt", o)
+}
+
+// The patient's recorded airway gives the same final state whatever the
+// order in which it and the blood gases arrive (it is a standing,
+// patient-level fact of the store): a tracheal tube charted 5 h before the
+// gases and a mask (whole airway) charted 2 h before them, in either order
+// before or after the gases, leave the mask in force, preferred over the
+// site's artificial-airway model. The predicted PaCO2 of patient 0's first
+// gas is then K x VCO2 / ((VT - 2.2 mL/kg x PBW - VDapp) x RR) = 0.863 x 200
+// / ((500 - 155.2 - 50) x 20 / 1000) = 29.28 mmHg (alveolar ventilation
+// equation [published]; Radford, J Appl Physiol 1955, 2.2 mL/kg whole
+// airway [published]; PBW men 50 + 0.91 x (175 - 152.4) kg, ARDS Network
+// 2000 [published]) instead of the 22.53 mmHg of the site's tube model
+// (0.43 mL per lb, Nunn, Campbell & Peckett 1959 [published]).
+func TestAirwayArrivalOrder(t *testing.T) {
+	codes, err := fhirmap.DefaultCodes().WithAliases(strings.NewReader(airwayAlias))
+	if err != nil {
+		t.Fatal(err)
+	}
+	base := generate(genOpts{patients: 1, gases: 2})
+	tube := airwayMsg(0, "airway-tube", true, genStart.Add(-5*time.Hour))
+	mask := airwayMsg(0, "airway-mask", false, genStart.Add(-2*time.Hour))
+	var states []map[string]headState
+	for _, msgs := range [][]testMsg{
+		append([]testMsg{tube, mask}, base...),
+		append(append([]testMsg(nil), base...), mask, tube),
+	} {
+		h := newHarness(t)
+		h.codes = codes
+		if h.site.AnatomicDeadSpace != physio.AnatomicArtificialAirway || h.site.ApparatusDeadSpaceML != 50 {
+			t.Fatalf("harness site %v, %v mL: the expected value assumes the artificial-airway model and 50 mL", h.site.AnatomicDeadSpace, h.site.ApparatusDeadSpaceML)
+		}
+		h.startReplica(nil)
+		for _, m := range msgs {
+			h.publish([]testMsg{m})
+			h.waitSettled(30 * time.Second)
+		}
+		h.reconcile(msgs)
+		states = append(states, h.heads())
+	}
+	for k, a := range states[0] {
+		b := states[1][k]
+		if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
+			t.Errorf("%s: %+v vs %+v", k, a, b)
+		}
+	}
+	pbw := 50 + 0.91*(175-152.4)
+	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 2.2*pbw - 50) * 20 / 1000)
+	found := false
+	for k, s := range states[0] {
+		if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindPredictedPaCO2) {
+			found = true
+			if s.refused || math.Abs(s.value-want) > 1e-6 || math.Abs(s.value-29.28) > 0.005 {
+				t.Errorf("predicted PaCO2 %+v, want %.3f mmHg", s, want)
+			}
+		}
+	}
+	if !found {
+		t.Error("no predicted PaCO2 of the first blood gas")
 	}
 }

@@ -113,6 +113,11 @@ func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
 	if o.Codes == nil {
 		o.Codes = fhirmap.DefaultCodes()
 	}
+	if o.Site.CodeSystemURL != "" {
+		// An airway Observation may send the service's own airway-model
+		// codes, under the site's CodeSystem URL.
+		o.Codes = o.Codes.WithCodeSystemURL(o.Site.CodeSystemURL)
+	}
 	if o.Logger == nil {
 		o.Logger = slog.New(slog.DiscardHandler)
 	}

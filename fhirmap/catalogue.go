@@ -20,8 +20,8 @@ const (
 	codeDerivedCategory       = "derived-physiology"
 	advisoryTagDisplay        = "Advisory: not an order; verify at the bedside"
 	derivedCategoryDisplay    = "Derived ventilation physiology (computed, advisory)"
-	codeSystemVersion         = "1"
-	codeSystemDate            = "2026-12-01"
+	codeSystemVersion         = "2" // 2: the airway-model input codes
+	codeSystemDate            = "2026-12-02"
 	codeSystemID              = "ventderive-derived"
 	codeSystemName            = "VentderiveDerived"
 	codeSystemTitle           = "ventderive derived ventilation physiology"
@@ -95,9 +95,9 @@ var Catalogue = []KindInfo{
 	{
 		Code:       KindPredictedPaCO2,
 		Display:    "Predicted PaCO2 from measured VCO2, tidal volume and rate (measured preferred, settings as fallback) and predicted dead space",
-		Definition: "PaCO2 expected from the alveolar ventilation equation if dead space were only anatomic (the site's model: 0.948 mL/kg predicted body weight of intrathoracic airway for a tracheal tube or tracheostomy, the default, or 2.2 mL/kg for the whole airway) plus the configured apparatus dead space, at the measured tidal volume and breath rate (or the settings, recorded as a fallback); computed at the measured body temperature and given at 37 °C, as the blood gas is reported.",
+		Definition: "PaCO2 expected from the alveolar ventilation equation if dead space were only anatomic (by the patient's recorded airway, else the site's model: 0.948 mL/kg predicted body weight of intrathoracic airway for a tracheal tube or tracheostomy, the site default, or 2.2 mL/kg for the whole airway) plus the configured apparatus dead space, at the measured tidal volume and breath rate (or the settings, recorded as a fallback); computed at the measured body temperature and given at 37 °C, as the blood gas is reported.",
 		Unit:       "mm[Hg]", Decimals: 1,
-		Formula: "PaCO2pred = K(T) x VCO2 / ((VT - VDanat - VDapp) x RR / 1000) x 10^(0.019 x (37 - T)); VDanat = 0.948 mL/kg x PBW (tracheal tube or tracheostomy) or 2.2 mL/kg x PBW (whole airway); PBW (ARDS Network) from height and sex; T the measured body temperature (37 °C when not measured)",
+		Formula: "PaCO2pred = K(T) x VCO2 / ((VT - VDanat - VDapp) x RR / 1000) x 10^(0.019 x (37 - T)); VDanat = 0.948 mL/kg x PBW (tracheal tube or tracheostomy) or 2.2 mL/kg x PBW (whole airway), by the patient's recorded airway, else the site's model; PBW (ARDS Network) from height and sex; T the measured body temperature (37 °C when not measured)",
 		Source:  "alveolar ventilation equation [published]; Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6 (intrathoracic 0.43 mL/lb) [published]; Radford, J Appl Physiol 1955 [published]; ARDS Network, NEJM 2000;342:1301-8 [published]; PCO2 temperature coefficient 0.019, J Appl Physiol (submitted 1964) [published]",
 		Refused: "no-vco2; no-tidal-volume; no-resp-rate; no-sex; no-height; apparatus-dead-space-not-configured (neither recorded for the patient's circuit nor set by the site); implausible-input (including a recorded apparatus dead space outside 0-500 mL); inconsistent-inputs (VT not above dead space)",
 	},

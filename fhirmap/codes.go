@@ -10,6 +10,10 @@ import (
 	"maps"
 	"slices"
 	"strings"
+
+	"github.com/samply/golang-fhir-models/fhir-models/fhir"
+
+	"github.com/ventderive/ventderive/physio"
 )
 
 // Code systems the decoder matches. A code is matched only together with
@@ -72,6 +76,81 @@ type codeKey struct{ system, code string }
 // concurrent use.
 type CodeTable struct {
 	m map[codeKey]CodeInfo
+	// serviceSystem is the URL of the service's CodeSystem, whose
+	// airway-model codes an airway Observation may send
+	// (WithCodeSystemURL); "" means DefaultCodeSystemURL.
+	serviceSystem string
+}
+
+// SNOMED CT physical-object concepts an airway Observation (QAirway) may
+// send as its value: both are artificial airways that bypass the
+// extrathoracic airway. Verified against the HL7 Germany GECCO value set
+// "Respiratory Therapy Devices" (SNOMED CT 26412008 "Endotracheal tube,
+// device (physical object)", 129121000 "Tracheostomy tube, device (physical
+// object)") and the OMOP CDM ventilation conventions, which pair each code
+// with this meaning.
+const (
+	SNOMEDEndotrachealTube = "26412008"
+	SNOMEDTracheostomyTube = "129121000"
+)
+
+// AirwayArtificial and AirwayWhole are the codes of the service's
+// CodeSystem (Site.CodeSystemURL) an airway Observation may send as its
+// value: the physio.AnatomicModel names. No SNOMED CT concept for "no
+// artificial airway" was verified, so the whole-airway model is read only
+// from the service's own code.
+const (
+	AirwayArtificial = "artificial-airway"
+	AirwayWhole      = "whole-airway"
+)
+
+// WithCodeSystemURL returns a copy of t whose airway Observations read the
+// service's own airway-model codes (AirwayArtificial, AirwayWhole) under
+// url, the site's CodeSystem URL (Site.CodeSystemURL); the default table
+// reads them under DefaultCodeSystemURL. t is not modified.
+func (t *CodeTable) WithCodeSystemURL(url string) *CodeTable {
+	base := t
+	if base == nil {
+		base = defaultTable
+	}
+	return &CodeTable{m: base.m, serviceSystem: url}
+}
+
+// airwayModel reads the anatomic dead space model from the value of an
+// airway Observation: SNOMED CT endotracheal or tracheostomy tube, or the
+// service's own codes. It returns the reason to ignore the value instead:
+// "unsupported-value" when no coding is one of these, "conflicting-codes"
+// when two codings name different models.
+func (t *CodeTable) airwayModel(cc *fhir.CodeableConcept) (physio.AnatomicModel, string) {
+	own := DefaultCodeSystemURL
+	if t != nil && t.serviceSystem != "" {
+		own = t.serviceSystem
+	}
+	var (
+		model physio.AnatomicModel
+		found bool
+	)
+	for _, c := range cc.Coding {
+		sys, code := deref(c.System), deref(c.Code)
+		var m physio.AnatomicModel
+		switch {
+		case sys == SNOMEDSystem && (code == SNOMEDEndotrachealTube || code == SNOMEDTracheostomyTube),
+			sys == own && code == AirwayArtificial:
+			m = physio.AnatomicArtificialAirway
+		case sys == own && code == AirwayWhole:
+			m = physio.AnatomicWholeAirway
+		default:
+			continue
+		}
+		if found && m != model {
+			return 0, "conflicting-codes"
+		}
+		model, found = m, true
+	}
+	if !found {
+		return 0, "unsupported-value"
+	}
+	return model, ""
 }
 
 // Lookup returns what (system, code) means. It reports false for a code the
@@ -255,7 +334,7 @@ func (t *CodeTable) WithAliases(r io.Reader) (*CodeTable, error) {
 	if base == nil {
 		base = defaultTable
 	}
-	out := &CodeTable{m: maps.Clone(base.m)}
+	out := &CodeTable{m: maps.Clone(base.m), serviceSystem: base.serviceSystem}
 	sc := bufio.NewScanner(r)
 	sc.Buffer(make([]byte, 0, 4096), maxAliasLine)
 	line := 0

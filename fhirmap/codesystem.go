@@ -102,7 +102,7 @@ func CodeSystem(site Site) ([]byte, error) {
 		CaseSensitive: true,
 		Content:       "complete",
 		Property: []codeSystemProperty{
-			{propUse, "What the code is used for: derived-value (Observation.code), tag (Meta.tag) or category (Observation.category)", "code"},
+			{propUse, "What the code is used for: derived-value (Observation.code), tag (Meta.tag), category (Observation.category) or airway-model (the valueCodeableConcept of an input Observation of the patient's airway)", "code"},
 			{propUnit, "UCUM code of the value", "string"},
 			{propDecimals, "Decimals of the published value", "integer"},
 			{propFormula, "Formula of the value", "string"},
@@ -131,6 +131,12 @@ func CodeSystem(site Site) ([]byte, error) {
 		codeSystemConcept{Code: codeDerivedCategory, Display: derivedCategoryDisplay,
 			Definition: "Observations computed by ventderive from an arterial blood gas and the ventilator and patient data around it.",
 			Property:   []conceptPropertyJSON{{Code: propUse, ValueCode: "category"}}},
+		codeSystemConcept{Code: AirwayArtificial, Display: "Artificial airway (tracheal tube or tracheostomy)",
+			Definition: "Input value: the patient breathes through a tracheal tube or a tracheostomy, which bypasses the extrathoracic airway. Predicted PaCO2 then estimates the anatomic dead space as the intrathoracic airway only, 0.43 mL per lb (0.948 mL/kg) of predicted body weight (Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6 [published]); the tube's own volume is apparatus dead space.",
+			Property:   []conceptPropertyJSON{{Code: propUse, ValueCode: "airway-model"}}},
+		codeSystemConcept{Code: AirwayWhole, Display: "Whole airway (no artificial airway)",
+			Definition: "Input value: the patient breathes through mouth and nose, without a tracheal tube or tracheostomy (for example mask ventilation). Predicted PaCO2 then estimates the anatomic dead space of the whole conducting airway, 2.2 mL/kg of predicted body weight (about 1 mL per lb; Radford, J Appl Physiol 1955 [published]).",
+			Property:   []conceptPropertyJSON{{Code: propUse, ValueCode: "airway-model"}}},
 	)
 	cs.Count = len(cs.Concept)
 	return marshal(cs)

@@ -424,6 +424,15 @@ func (d *decoder) value(base Fact, key string, info CodeInfo, coding Coding, spe
 		default:
 			return missing(".valueCodeableConcept", "a coded value is required for this code")
 		}
+		if info.Quantity == QAirway {
+			m, reason := d.codes.airwayModel(v.concept)
+			if reason != "" {
+				return ignore(reason)
+			}
+			f.Text = m.String()
+			d.out.Facts = append(d.out.Facts, f)
+			return nil
+		}
 		for _, c := range v.concept.Coding {
 			if deref(c.System) != GenderSystem {
 				continue

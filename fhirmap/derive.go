@@ -629,12 +629,14 @@ func (x *deriver) predicted(g *gather) physio.Result {
 	pbw := g.pbw()
 	t := g.bodyTemp()
 	app, fromPatient := x.apparatus(g)
+	model, airwayFromPatient := x.airway(g)
 	if g.stop != nil {
 		return physio.Result{}
 	}
 	r, err := physio.PredictedPaCO2(physio.PredictedInput{
 		VCO2: physio.MLPerMin(v.Fact.Value), VT: physio.ML(vt.Fact.Value), RR: physio.PerMin(rr.Fact.Value),
-		PBW: pbw, Anatomic: x.site.AnatomicDeadSpace, ApparatusVD: app, ApparatusVDKnown: true, ApparatusVDFromPatient: fromPatient, BodyTemp: t,
+		PBW: pbw, Anatomic: model, AnatomicFromPatient: airwayFromPatient,
+		ApparatusVD: app, ApparatusVDKnown: true, ApparatusVDFromPatient: fromPatient, BodyTemp: t,
 	})
 	if err != nil {
 		g.fail(err)
@@ -661,6 +663,26 @@ func (x *deriver) apparatus(g *gather) (physio.ML, bool) {
 		g.stop = &stop{ReasonApparatusNotSet, "the site has not configured its apparatus dead space (HME, closed suction, extensions) and none is recorded for the patient's circuit; it is never assumed to be zero"}
 	}
 	return physio.ML(x.site.ApparatusDeadSpaceML), false
+}
+
+// airway returns the anatomic dead space model of a predicted PaCO2: the
+// patient's airway as recorded when Select found one (an input of the
+// value), else the site's setting (Site.AnatomicDeadSpace). An airway fact
+// whose text is not a model name (it cannot come from Decode) stops with
+// "inconsistent-inputs" rather than falling back to the site's setting.
+func (x *deriver) airway(g *gather) (physio.AnatomicModel, bool) {
+	if _, ok := x.sel.Input(RoleAirway); !ok {
+		return x.site.AnatomicDeadSpace, false
+	}
+	in, ok := g.need(RoleAirway)
+	if !ok {
+		return x.site.AnatomicDeadSpace, true
+	}
+	m, ok := physio.ParseAnatomicModel(in.Fact.Text)
+	if !ok && g.stop == nil {
+		g.stop = &stop{ReasonInconsistent, fmt.Sprintf("airway recorded as %q; artificial-airway or whole-airway is needed", in.Fact.Text)}
+	}
+	return m, true
 }
 
 // publishedInterpretation reads the value of a kind as it is published,
@@ -711,7 +733,7 @@ func inputSpan(used []Input) time.Duration {
 	var lo, hi time.Duration
 	for _, in := range used {
 		switch in.Role {
-		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD, RoleBodyTemp:
+		case RoleSex, RoleBirthDate, RoleHeight, RoleWeight, RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD, RoleAirway, RoleBodyTemp:
 			// Body temperature has its own, wider window: it changes
 			// slowly and is charted hourly or less often.
 			continue

@@ -110,9 +110,12 @@
 // and accepted are final; cancelled, completed and rejected are cancelled;
 // entered-in-error withdraws; the others are registered), a range is kept in
 // Text and read at its midpoint. The apparatus dead space of the patient's
-// circuit (QApparatusVD) comes from an Observation with a site alias code.
-// Both are standing facts for Select: the latest at or before the blood gas
-// holds.
+// circuit (QApparatusVD) comes from an Observation with a site alias code,
+// and so does the patient's airway (QAirway: a valueCodeableConcept of
+// SNOMED CT endotracheal or tracheostomy tube, or the service's own
+// artificial-airway / whole-airway code), which chooses the anatomic dead
+// space model over Site.AnatomicDeadSpace. All three are standing facts for
+// Select: the latest at or before the blood gas holds.
 //
 // # Versions
 //

@@ -336,7 +336,7 @@ func describeInput(in Input, bloodGasTime time.Time) string {
 		} else {
 			b.WriteString("unknown")
 		}
-	case QSex:
+	case QSex, QAirway:
 		b.WriteString(f.Text)
 	default:
 		b.WriteString(num(f.Value))

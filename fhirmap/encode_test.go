@@ -12,6 +12,8 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/ventderive/ventderive/physio"
 )
 
 // The -update flag is shared by every golden test of the package; whichever
@@ -429,8 +431,13 @@ func TestCodeSystemGolden(t *testing.T) {
 	if err := json.Unmarshal(b, &cs); err != nil {
 		t.Fatal(err)
 	}
-	if cs.URL != DefaultCodeSystemURL || cs.Content != "complete" || cs.Count != len(cs.Concept) || cs.Count != len(Catalogue)+2 {
+	if cs.URL != DefaultCodeSystemURL || cs.Content != "complete" || cs.Count != len(cs.Concept) || cs.Count != len(Catalogue)+4 { // + tag, category and the two airway-model codes
 		t.Errorf("url %s content %s count %d concepts %d", cs.URL, cs.Content, cs.Count, len(cs.Concept))
+	}
+	// The airway-model codes are the physio.AnatomicModel names, which the
+	// decoder reads back (airwayModel) and the --anatomic-dead-space flag takes.
+	if n := len(cs.Concept); n >= 2 && (cs.Concept[n-2].Code != physio.AnatomicArtificialAirway.String() || cs.Concept[n-1].Code != physio.AnatomicWholeAirway.String()) {
+		t.Errorf("airway-model codes %s, %s", cs.Concept[n-2].Code, cs.Concept[n-1].Code)
 	}
 	for i, k := range Catalogue {
 		c := cs.Concept[i]

@@ -45,6 +45,13 @@ const (
 	// (HME, closed suction, extensions beyond the Y-piece), in mL, from an
 	// Observation with a site alias code (no LOINC code exists for it).
 	QApparatusVD Quantity = "apparatus-dead-space"
+	// QAirway is the patient's airway, which decides the anatomic dead
+	// space model of predicted PaCO2: Text is a physio.AnatomicModel name,
+	// "artificial-airway" (a tracheal tube or tracheostomy) or
+	// "whole-airway" (no artificial airway: mask ventilation), read from the
+	// valueCodeableConcept of an Observation with a site alias code (see
+	// AirwayValue for the value codes).
+	QAirway Quantity = "airway"
 )
 
 // Origin tells a measured value from a ventilator setting. Measured values

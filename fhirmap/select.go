@@ -33,6 +33,7 @@ const (
 const (
 	RoleTarget      Role = "target-paco2"         // the patient's own target PaCO2 (a FHIR Goal in force)
 	RoleApparatusVD Role = "apparatus-dead-space" // the patient's circuit, recorded by Observation
+	RoleAirway      Role = "airway"               // the patient's airway (tube, tracheostomy or none), recorded by Observation
 )
 
 // SameSampleTolerance is how far from the blood gas's time a bicarbonate or
@@ -227,6 +228,14 @@ var (
 	ruleApparatus = roleRule{role: RoleApparatusVD, standing: true, sameEncounter: true,
 		allowance: func(s Site) time.Duration { return s.Window.After },
 		labels:    []string{"apparatus dead space recorded for the patient's circuit"}}
+	// The patient's airway holds until it changes (intubation,
+	// tracheostomy, extubation: a new Observation), in the same encounter.
+	// Unlike the circuit's dead space it has no allowance after the blood
+	// gas: the airway changes at a moment, and one recorded after the gas
+	// may describe a change made after it (a gas drawn on the mask just
+	// before intubation is a whole-airway gas).
+	ruleAirway = roleRule{role: RoleAirway, standing: true, sameEncounter: true,
+		labels: []string{"the patient's airway as recorded"}}
 	// ruleVentOther marks ventilator readings that no derivation uses but
 	// that show the ventilator feed was present.
 	ruleVentOther = roleRule{ventilator: true}
@@ -271,6 +280,8 @@ func ruleFor(q Quantity) (*roleRule, bool) {
 		return &ruleTarget, true
 	case QApparatusVD:
 		return &ruleApparatus, true
+	case QAirway:
+		return &ruleAirway, true
 	case QPEEP, QPlateau, QMeanAirway, QFETCO2:
 		return &ruleVentOther, true
 	}
@@ -359,10 +370,12 @@ func (a candidate) standingBetter(b candidate) bool {
 //     a zero Effective, from a Patient resource, counts as before), else the
 //     earliest after it, then the smaller Key;
 //   - standing facts (the patient's PaCO2 goal, the apparatus dead space of
-//     the patient's circuit) hold until replaced: the latest at or before
-//     the blood gas (a goal from its startDate; a circuit's dead space up to
-//     Window.After after the gas, in the same encounter) wins, then the later
-//     meta.lastUpdated, then the smaller Key; one starting later never applies.
+//     the patient's circuit, the patient's airway) hold until replaced: the
+//     latest at or before the blood gas (a goal from its startDate; a
+//     circuit's dead space up to Window.After after the gas, in the same
+//     encounter; an airway at or before the gas, in the same encounter) wins,
+//     then the later meta.lastUpdated, then the smaller Key; one starting
+//     later never applies.
 func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 	sel := Selection{BloodGas: bloodGas, Window: site.Window}
 	sel.Inputs = append(sel.Inputs, Input{Role: RoleBloodGas, Fact: bloodGas})
@@ -476,7 +489,7 @@ func Select(bloodGas Fact, facts []Fact, site Site) Selection {
 var roleOrderArray = [...]Role{
 	RoleBloodGas, RolePECO2, RoleVCO2, RoleMinuteVolume, RoleTidalVolume, RoleRespRate,
 	RolePETCO2, RoleBodyTemp, RoleSex, RoleBirthDate, RoleHeight, RoleWeight,
-	RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD,
+	RoleBicarbonate, RoleBaseExcess, RoleTarget, RoleApparatusVD, RoleAirway,
 }
 
 // sameSample reports whether f (a bicarbonate or base excess) belongs to

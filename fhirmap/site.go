@@ -69,8 +69,10 @@ type Site struct {
 	// predicted PaCO2 describes: physio.AnatomicArtificialAirway (tracheal
 	// tube or tracheostomy: the intrathoracic airway, 0.948 mL/kg PBW) or
 	// physio.AnatomicWholeAirway (mouth and nose to the alveoli, 2.2 mL/kg
-	// PBW, for mask ventilation). Every predicted PaCO2 names the model and
-	// figure used. Default DefaultAnatomicDeadSpace.
+	// PBW, for mask ventilation). It applies when no airway is recorded for
+	// the patient (QAirway, preferred: see Select). Every predicted PaCO2
+	// names the model, the figure and where the model came from. Default
+	// DefaultAnatomicDeadSpace.
 	AnatomicDeadSpace physio.AnatomicModel
 
 	// Energy is the resting-energy equation of the estimated dead-space

@@ -80,11 +80,11 @@ func (q Quantity) Unit() string {
 
 // known reports whether q is a quantity the decoder can emit.
 func (q Quantity) known() bool {
-	return q.Unit() != "" || q == QSex || q == QBirthDate
+	return q.Unit() != "" || q == QSex || q == QBirthDate || q == QAirway
 }
 
 // coded reports whether facts of q carry Text rather than a number.
-func (q Quantity) coded() bool { return q == QSex || q == QBirthDate }
+func (q Quantity) coded() bool { return q == QSex || q == QBirthDate || q == QAirway }
 
 // negativeAllowed reports whether a negative value of q is physically
 // possible. Base excess is signed by definition; nothing else here is.

@@ -1,17 +1,23 @@
 package physio
 
-import "math"
+import (
+	"fmt"
+	"math"
+)
 
 var (
 	pbwInterceptMale   = constDef{name: "PBW intercept, men", unit: UnitKg, source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
 	pbwInterceptFemale = constDef{name: "PBW intercept, women", unit: UnitKg, source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
 	pbwSlope           = constDef{name: "PBW slope", unit: "kg/cm", source: "ARDS Network, NEJM 2000;342:1301-8 [published]"}
 	pbwRefHeight       = constDef{name: "PBW reference height", unit: UnitCm, source: "ARDS Network, NEJM 2000;342:1301-8 [published] (60 in)"}
-	anatomicPerKg      = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]"}
+	anatomicPerKg      = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]; model whole-airway from the site's setting"}
+	anatomicPerKgInput = constDef{name: "anatomic dead space per kg PBW", unit: "mL/kg", source: "Radford, J Appl Physiol 1955 (about 1 mL per lb) [published]; model whole-airway from the patient's airway as recorded (an input of this value), preferred over the site's setting"}
 	apparatusSiteDef   = constDef{name: "apparatus dead space", unit: UnitML, source: "the site's setting for its circuits: none recorded for the patient's circuit"}
 	apparatusInputDef  = constDef{name: "apparatus dead space", unit: UnitML, source: "recorded for the patient's circuit (an input of this value), preferred over the site's setting"}
 	anatomicTubePerKg  = constDef{name: "anatomic dead space per kg PBW, tracheal tube or tracheostomy (intrathoracic airway)", unit: "mL/kg",
-		source: "Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6: intrathoracic anatomic dead space 0.43 mL per lb body weight in intubated subjects, extrathoracic 0.55 mL per lb (72 mL) bypassed by the tube [published]; 0.43 mL/lb = 0.948 mL/kg [derived]"}
+		source: "Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6: intrathoracic anatomic dead space 0.43 mL per lb body weight in intubated subjects, extrathoracic 0.55 mL per lb (72 mL) bypassed by the tube [published]; 0.43 mL/lb = 0.948 mL/kg [derived]; model artificial-airway from the site's setting"}
+	anatomicTubePerKgInput = constDef{name: anatomicTubePerKg.name, unit: "mL/kg",
+		source: "Nunn, Campbell & Peckett, J Appl Physiol 1959;14:174-6: intrathoracic anatomic dead space 0.43 mL per lb body weight in intubated subjects, extrathoracic 0.55 mL per lb (72 mL) bypassed by the tube [published]; 0.43 mL/lb = 0.948 mL/kg [derived]; model artificial-airway from the patient's airway as recorded (an input of this value), preferred over the site's setting"}
 	discrepancyDef = constDef{name: "material PaCO2 difference", unit: UnitMmHg,
 		source: "half-width of the healthy 35-45 mmHg range [derived from published textbooks; common practice]"}
 )
@@ -41,13 +47,15 @@ const (
 	methodPredicted   = "alveolar ventilation equation, predicted PaCO2"
 	methodDiscrepancy = "measured minus predicted PaCO2"
 
-	assumePBWAdult     = "height is the measured adult standing height"
-	assumeAnatomicPBW  = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed, the whole airway from mouth and nose (Radford 1955; a poor predictor for an individual, Brewer & Orr)"
-	assumeAnatomicTube = "anatomic dead space not given: 0.95 mL/kg of predicted body weight assumed, the intrathoracic airway only, since a tracheal tube or tracheostomy bypasses the extrathoracic airway (Nunn, Campbell & Peckett 1959; a poor predictor for an individual, Brewer & Orr); the tube's own volume belongs to the apparatus dead space"
-	assumeNoAlveolarVD = "no alveolar dead space and no shunt: a measured PaCO2 above the predicted one points to them"
-	assumeVCO2Estimate = "estimated: VCO2 not measured"
-	assumePredictedVT  = "VT and RR are the tidal volume and breath rate supplied (measured or set); the prediction holds for the tidal volume and total breath rate actually delivered"
-	assumeDiscrepancy  = "predicted PaCO2 from the same steady state as the measured one, with the VCO2 and dead space it assumed"
+	assumePBWAdult          = "height is the measured adult standing height"
+	assumeAnatomicPBW       = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed, the whole airway from mouth and nose (Radford 1955; a poor predictor for an individual, Brewer & Orr); model whole-airway: the site's setting, no airway recorded for the patient"
+	assumeAnatomicPBWInput  = "anatomic dead space not given: 2.2 mL/kg of predicted body weight assumed, the whole airway from mouth and nose (Radford 1955; a poor predictor for an individual, Brewer & Orr); model whole-airway: the patient's airway as recorded (no tracheal tube or tracheostomy)"
+	assumeAnatomicTube      = "anatomic dead space not given: 0.95 mL/kg of predicted body weight assumed, the intrathoracic airway only, since a tracheal tube or tracheostomy bypasses the extrathoracic airway (Nunn, Campbell & Peckett 1959; a poor predictor for an individual, Brewer & Orr); the tube's own volume belongs to the apparatus dead space; model artificial-airway: the site's setting, no airway recorded for the patient"
+	assumeAnatomicTubeInput = "anatomic dead space not given: 0.95 mL/kg of predicted body weight assumed, the intrathoracic airway only, since a tracheal tube or tracheostomy bypasses the extrathoracic airway (Nunn, Campbell & Peckett 1959; a poor predictor for an individual, Brewer & Orr); the tube's own volume belongs to the apparatus dead space; model artificial-airway: the patient's airway as recorded (tracheal tube or tracheostomy)"
+	assumeNoAlveolarVD      = "no alveolar dead space and no shunt: a measured PaCO2 above the predicted one points to them"
+	assumeVCO2Estimate      = "estimated: VCO2 not measured"
+	assumePredictedVT       = "VT and RR are the tidal volume and breath rate supplied (measured or set); the prediction holds for the tidal volume and total breath rate actually delivered"
+	assumeDiscrepancy       = "predicted PaCO2 from the same steady state as the measured one, with the VCO2 and dead space it assumed"
 )
 
 // PredictedBodyWeight returns the ARDS Network predicted body weight, in
@@ -143,7 +151,11 @@ type PredictedInput struct {
 	// tracheostomy), recorded as an assumption with its model and figure.
 	AnatomicVD ML
 	Anatomic   AnatomicModel
-	PBW        Kg // predicted body weight, kg (PBWRange); needed only when AnatomicVD is 0
+	// AnatomicFromPatient says where Anatomic comes from, for the recorded
+	// constant, assumption and basis: true for the patient's airway as
+	// recorded (an input of the value), false for the site's setting.
+	AnatomicFromPatient bool
+	PBW                 Kg // predicted body weight, kg (PBWRange); needed only when AnatomicVD is 0
 	// ApparatusVD is the dead space of the apparatus beyond the Y-piece (HME,
 	// closed suction, extensions), mL (ApparatusDeadSpaceRange). It must be
 	// declared: ApparatusVDKnown false is refused with ErrNotGiven, so that a
@@ -202,11 +214,17 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 		if err := PBWRange.Check("PBW", float64(p.PBW)); err != nil {
 			return Result{}, err
 		}
-		switch p.Anatomic {
-		case AnatomicWholeAirway:
+		switch {
+		case p.Anatomic == AnatomicWholeAirway && p.AnatomicFromPatient:
+			r.addConst(&anatomicPerKgInput, anatomicMLPerKg)
+			r.assume(assumeAnatomicPBWInput)
+		case p.Anatomic == AnatomicWholeAirway:
 			r.addConst(&anatomicPerKg, anatomicMLPerKg)
 			r.assume(assumeAnatomicPBW)
-		case AnatomicArtificialAirway:
+		case p.Anatomic == AnatomicArtificialAirway && p.AnatomicFromPatient:
+			r.addConst(&anatomicTubePerKgInput, anatomicTubeMLPerKg)
+			r.assume(assumeAnatomicTubeInput)
+		case p.Anatomic == AnatomicArtificialAirway:
 			r.addConst(&anatomicTubePerKg, anatomicTubeMLPerKg)
 			r.assume(assumeAnatomicTube)
 		default:
@@ -255,31 +273,34 @@ func PredictedPaCO2(p PredictedInput) (Result, error) {
 	n += copy(ops[n:], []float64{float64(p.VT), anat, float64(p.ApparatusVD), float64(p.RR), va,
 		float64(t), k, float64(p.VCO2), va, vT})
 	if !backTo37 {
-		r.basis(basisFormats[basisKey{defaultAnat, p.Anatomic, false}], ops[:n]...)
+		r.basis(basisFormats[basisKey{defaultAnat, p.Anatomic, defaultAnat && p.AnatomicFromPatient, false}], ops[:n]...)
 		return r, nil
 	}
 	n += copy(ops[n:], []float64{float64(t), float64(t), vT, back, v})
-	r.basis(basisFormats[basisKey{defaultAnat, p.Anatomic, true}], ops[:n]...)
+	r.basis(basisFormats[basisKey{defaultAnat, p.Anatomic, defaultAnat && p.AnatomicFromPatient, true}], ops[:n]...)
 	return r, nil
 }
 
 // basisKey selects the basis format of PredictedPaCO2: whether the anatomic
-// dead space was estimated, by which model, and whether the prediction is
-// given back at 37 Cel from a measured body temperature. The formats are
-// built once so that a derivation does not allocate.
+// dead space was estimated, by which model, whether the model is the
+// patient's recorded airway (else the site's setting), and whether the
+// prediction is given back at 37 Cel from a measured body temperature. The
+// formats are built once so that a derivation does not allocate.
 type basisKey struct {
-	estimated bool
-	model     AnatomicModel
-	back37    bool
+	estimated   bool
+	model       AnatomicModel
+	fromPatient bool
+	back37      bool
 }
 
 var basisFormats = func() map[basisKey]string {
 	const core = "VA = (VT - VDanat - VDapp) x RR = (%.0f mL - %.1f mL - %.0f mL) x %.1f /min = %.3f L/min; PaCO2 = K(%.1f °C) x VCO2 / VA = %.4g x %.1f mL/min / %.3f L/min = %.2f mmHg"
 	const back = "; at 37 °C, as the blood gas is reported: PaCO2(37 °C) = PaCO2(%.1f °C) x 10^(0.019 x (37 °C - %.1f °C)) = %.2f mmHg x %.4f = %.2f mmHg"
 	anat := map[AnatomicModel]string{
-		AnatomicWholeAirway:      "VDanat (whole airway) = %.1f mL/kg x %.2f kg = %.1f mL; ",
-		AnatomicArtificialAirway: "VDanat (tube or tracheostomy: intrathoracic airway) = %.3g mL/kg x %.2f kg = %.1f mL; ",
+		AnatomicWholeAirway:      "VDanat (whole airway, %s) = %%.1f mL/kg x %%.2f kg = %%.1f mL; ",
+		AnatomicArtificialAirway: "VDanat (tube or tracheostomy: intrathoracic airway, %s) = %%.3g mL/kg x %%.2f kg = %%.1f mL; ",
 	}
+	whence := map[bool]string{false: "site setting", true: "patient's recorded airway"}
 	m := map[basisKey]string{}
 	for model, prefix := range anat {
 		for _, b := range []bool{false, true} {
@@ -287,8 +308,10 @@ var basisFormats = func() map[basisKey]string {
 			if b {
 				tail = back
 			}
-			m[basisKey{true, model, b}] = prefix + core + tail
-			m[basisKey{false, model, b}] = core + tail
+			for fromPatient, w := range whence {
+				m[basisKey{true, model, fromPatient, b}] = fmt.Sprintf(prefix, w) + core + tail
+			}
+			m[basisKey{false, model, false, b}] = core + tail
 		}
 	}
 	return m

@@ -182,3 +182,73 @@ func TestTemperatureConventionConsistent(t *testing.T) {
 		t.Errorf("predicted %.4f mmHg at 37 °C, measured %.4f", pred.Value, paco2At37)
 	}
 }
+
+func TestAnatomicModelFromPatient(t *testing.T) {
+	// The same vector as TestAnatomicModels (reference §7 [derived]): man
+	// 175 cm, PBW 70.566 kg, VT 420 mL, RR 20 /min, apparatus 0 mL, VCO2 200
+	// mL/min. The value depends only on the model; where the model came from
+	// (the patient's recorded airway or the site's setting) is named in the
+	// constant, the assumption and the basis.
+	for _, c := range []struct {
+		name   string
+		model  physio.AnatomicModel
+		perKg  float64 // mL/kg
+		source string
+	}{
+		// Nunn, Campbell & Peckett 1959 [published]: 0.43 mL/lb intrathoracic.
+		{"artificial_airway_0.948mL_per_kg", physio.AnatomicArtificialAirway, 0.43 / 0.45359237, "Nunn, Campbell & Peckett"},
+		// Radford 1955 [published]: 2.2 mL/kg whole airway.
+		{"whole_airway_2.2mL_per_kg", physio.AnatomicWholeAirway, 2.2, "Radford"},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			want := 0.76 * 310 / 273 * 200 / ((420 - c.perKg*70.566) * 20 / 1000)
+			for _, fromPatient := range []bool{false, true} {
+				in := physio.PredictedInput{VCO2: 200, VT: 420, RR: 20, PBW: 70.566, ApparatusVDKnown: true,
+					Anatomic: c.model, AnatomicFromPatient: fromPatient}
+				r, err := physio.PredictedPaCO2(in)
+				if err != nil {
+					t.Fatal(err)
+				}
+				if math.Abs(r.Value-want) > 1e-9 {
+					t.Errorf("fromPatient %v: predicted %.4f, want %.4f", fromPatient, r.Value, want)
+				}
+				whence, other := "site setting", "patient's recorded airway"
+				if fromPatient {
+					whence, other = other, whence
+				}
+				if b := r.Basis(); !strings.Contains(b, whence) || strings.Contains(b, other) {
+					t.Errorf("fromPatient %v: basis %q does not say %q alone", fromPatient, b, whence)
+				}
+				src, assumed := "", ""
+				for _, k := range r.Constants() {
+					if strings.Contains(k.Source, c.source) {
+						src = k.Source
+					}
+				}
+				for _, a := range r.Assumptions() {
+					if strings.Contains(a, "model "+c.model.String()) {
+						assumed = a
+					}
+				}
+				wantWord := "the site's setting"
+				if fromPatient {
+					wantWord = "the patient's airway as recorded"
+				}
+				if !strings.Contains(src, "model "+c.model.String()+" from "+wantWord) {
+					t.Errorf("fromPatient %v: constant source %q", fromPatient, src)
+				}
+				if !strings.Contains(assumed, "model "+c.model.String()+": "+wantWord) {
+					t.Errorf("fromPatient %v: assumption %q", fromPatient, assumed)
+				}
+			}
+		})
+	}
+	// A given anatomic dead space needs no model: nothing is said about one.
+	r, err := physio.PredictedPaCO2(physio.PredictedInput{VCO2: 200, VT: 420, RR: 20, AnatomicVD: 150, ApparatusVDKnown: true, AnatomicFromPatient: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if strings.Contains(r.Basis(), "airway") {
+		t.Errorf("basis names a model for a given anatomic dead space: %q", r.Basis())
+	}
+}

@@ -58,7 +58,7 @@ func parseDerive(args []string, stderr io.Writer, now time.Time) (deriveConfig, 
 	fs.DurationVar(&c.site.Window.After, "window-after", c.site.Window.After, "pairing window after the blood gas")
 	fs.DurationVar(&c.site.TemperatureWindow.Before, "temperature-window-before", c.site.TemperatureWindow.Before, "pair a body temperature up to this long before the blood gas")
 	fs.DurationVar(&c.site.TemperatureWindow.After, "temperature-window-after", c.site.TemperatureWindow.After, "pair a body temperature up to this long after the blood gas")
-	anatomic := fs.String("anatomic-dead-space", c.site.AnatomicDeadSpace.String(), "anatomic dead space model of predicted PaCO2: artificial-airway (tracheal tube or tracheostomy, 0.948 mL/kg PBW) or whole-airway (2.2 mL/kg PBW)")
+	anatomic := fs.String("anatomic-dead-space", c.site.AnatomicDeadSpace.String(), "anatomic dead space model of predicted PaCO2: artificial-airway (tracheal tube or tracheostomy, 0.948 mL/kg PBW) or whole-airway (2.2 mL/kg PBW); a patient's airway recorded by an aliased Observation is preferred")
 	fs.Float64Var(&c.site.TargetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mmHg for the ventilation-for-target advice; a patient's PaCO2 Goal in force overrides it; 0 or unset: not configured, and without a Goal the for-target values are refused (40 is the usual suggestion)")
 	fs.StringVar(&c.site.CodeSystemURL, "codesystem-url", c.site.CodeSystemURL, "canonical URL of the service CodeSystem")
 	fs.StringVar(&recorded, "recorded", "", "RFC 3339 time written as Provenance.recorded and Bundle.timestamp (default: now)")
@@ -112,6 +112,7 @@ func runDerive(ctx context.Context, args []string, e env) error {
 	if err != nil {
 		return err
 	}
+	codes = codes.WithCodeSystemURL(c.site.CodeSystemURL)
 	var facts []fhirmap.Fact
 	for _, name := range c.files {
 		if err := ctx.Err(); err != nil {
@@ -191,7 +192,7 @@ func explain(w io.Writer, c deriveConfig, ds []fhirmap.Derivation, rs []fhirmap.
 	if site.TargetPaCO2mmHg != 0 {
 		target = fmt.Sprintf("%g mmHg (the site's; a patient's PaCO2 Goal in force overrides it)", site.TargetPaCO2mmHg)
 	}
-	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas (body temperature %s before to %s after); apparatus dead space %s; anatomic dead space %s; target PaCO2 %s; %s, RQ %g.\n\n",
+	fmt.Fprintf(&b, "Site: window %s before to %s after the blood gas (body temperature %s before to %s after); apparatus dead space %s; anatomic dead space %s (a patient's recorded airway is preferred); target PaCO2 %s; %s, RQ %g.\n\n",
 		shortDuration(site.Window.Before), shortDuration(site.Window.After), shortDuration(site.TemperatureWindow.Before),
 		shortDuration(site.TemperatureWindow.After), apparatus, site.AnatomicDeadSpace, target, site.Energy, site.RQ)
 	// Read by patient, then blood-gas time, then kind.

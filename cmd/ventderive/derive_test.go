@@ -88,6 +88,15 @@ func TestDeriveCommandGolden(t *testing.T) {
 		{"goal_and_circuit_override_site", append([]string{"--aliases", filepath.Join(deriveDir, "hv-aliases.jsonl"), "--explain",
 			"--apparatus-dead-space-ml", "50", "--target-paco2", "40", "--recorded", "2026-11-20T15:00:00Z"},
 			inDeriveDir("icu-morning.json", "goal-and-circuit.ndjson")...), "goal-and-circuit.explain.golden.txt"},
+		// The patient's recorded airway (aliased Observation, SNOMED CT
+		// 129121000 tracheostomy tube) over the site's whole-airway model:
+		// hv-p001's predicted PaCO2 at 07:00 UTC uses 0.948 mL/kg PBW (Nunn,
+		// Campbell & Peckett 1959 [published]): 22.53 mmHg, where the site's
+		// 2.2 mL/kg (Radford 1955 [published]) would give 29.28 mmHg
+		// [derived: see fhirmap TestAirwayFromInput].
+		{"airway_overrides_site", append([]string{"--aliases", filepath.Join(deriveDir, "hv-aliases.jsonl"), "--explain",
+			"--anatomic-dead-space", "whole-airway", "--apparatus-dead-space-ml", "50", "--recorded", "2026-11-20T15:00:00Z"},
+			inDeriveDir("icu-morning.json", "airway.ndjson")...), "airway.explain.golden.txt"},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {

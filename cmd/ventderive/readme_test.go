@@ -3,6 +3,7 @@ package main
 import (
 	"flag"
 	"os"
+	"path/filepath"
 	"strings"
 	"testing"
 
@@ -49,5 +50,46 @@ func TestREADMEDocumentsContract(t *testing.T) {
 		if !strings.Contains(readme, env) && !strings.Contains(readme, "`"+short+"`") {
 			t.Errorf("README configuration lacks %s", env)
 		}
+	}
+}
+
+// TestREADMEDeriveExampleIsCurrent: the README's `ventderive derive
+// --explain` example is an excerpt of a real run of the documented command
+// (the golden file of TestDeriveCommandGolden/explain): every line of it,
+// except the command and the "..." elisions, is a line of that output.
+func TestREADMEDeriveExampleIsCurrent(t *testing.T) {
+	b, err := os.ReadFile("../../README.md")
+	if err != nil {
+		t.Fatal(err)
+	}
+	const cmd = "$ ventderive derive --explain --apparatus-dead-space-ml 50 --target-paco2 40 --recorded 2026-11-20T15:00:00Z \\\n    icu-morning.json ward-feed.ndjson\n"
+	_, rest, ok := strings.Cut(string(b), cmd)
+	if !ok {
+		t.Fatal("README lacks the derive example command")
+	}
+	excerpt, _, ok := strings.Cut(rest, "\n```")
+	if !ok {
+		t.Fatal("derive example not closed")
+	}
+	golden, err := os.ReadFile(filepath.Join(deriveDir, "example.explain.golden.txt"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	lines := map[string]bool{}
+	for _, l := range strings.Split(string(golden), "\n") {
+		lines[l] = true
+	}
+	n := 0
+	for _, l := range strings.Split(excerpt, "\n") {
+		if l == "..." {
+			continue
+		}
+		n++
+		if !lines[l] {
+			t.Errorf("README example line not in the output of the command:\n%s", l)
+		}
+	}
+	if n < 5 {
+		t.Errorf("README example has %d lines of output", n)
 	}
 }

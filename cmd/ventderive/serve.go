@@ -198,7 +198,7 @@ func bindServe(fs *flag.FlagSet, getenv func(string) string, c *serveConfig) (*s
 		s.dur(&c.pipeline.TemperatureWindow.After, "temperature-window-after", fhirmap.DefaultTemperatureWindowAfter, "pair a body temperature up to this long after a blood gas"),
 		s.num(&c.targetPaCO2mmHg, "target-paco2", 0, "the site's target PaCO2 in mm[Hg] for the ventilation-for-target values; a patient's PaCO2 Goal in force overrides it; 0: not configured, and without a Goal those values are refused (40 is the usual adult suggestion)"),
 	}
-	s.str(&c.anatomicDeadSpace, "anatomic-dead-space", fhirmap.DefaultAnatomicDeadSpace.String(), "anatomic dead space model of predicted PaCO2: artificial-airway (tracheal tube or tracheostomy, 0.948 mL/kg PBW) or whole-airway (2.2 mL/kg PBW)")
+	s.str(&c.anatomicDeadSpace, "anatomic-dead-space", fhirmap.DefaultAnatomicDeadSpace.String(), "anatomic dead space model of predicted PaCO2: artificial-airway (tracheal tube or tracheostomy, 0.948 mL/kg PBW) or whole-airway (2.2 mL/kg PBW); a patient's airway recorded by an aliased Observation is preferred")
 	s.str(&c.codeAliases, "code-aliases", "", "site code-alias file mapping local codes onto known quantities")
 	s.str(&c.codeSystemURL, "codesystem-url", fhirmap.DefaultSite().CodeSystemURL, "canonical URL of the service's CodeSystem for derived values")
 	s.secret(&c.patientHashKey, "patient-hash-key", "", "secret key for the keyed hash of patient references in logs and lookups (required)")

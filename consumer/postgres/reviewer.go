@@ -453,7 +453,7 @@ func collectInputs(br pgx.BatchResults) (map[int64][]Input, error) {
 // offset (the stored one is the saturated difference to year 1).
 func makeInput(in Input, value, sourceValue float64, effective time.Time, offset pgtype.Interval) Input {
 	switch fhirmap.Quantity(in.Quantity) {
-	case fhirmap.QSex, fhirmap.QBirthDate:
+	case fhirmap.QSex, fhirmap.QBirthDate, fhirmap.QAirway:
 		in.Shown, in.Unit, in.SourceUnit = in.Text, "", ""
 	default:
 		in.Value = &value

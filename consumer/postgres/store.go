@@ -75,11 +75,12 @@ func (s *Store) inTx(ctx context.Context, op string, fn func(pgx.Tx) error) erro
 
 // Patient-level quantities: a new one reopens the patient's recent blood
 // gases, and every fact of them is in each snapshot (they are not bound to
-// the pairing window). The patient's PaCO2 goal and the apparatus dead space
-// of the patient's circuit are standing facts (fhirmap.Select): they hold
-// from their time until replaced, so they are patient-level too.
+// the pairing window). The patient's PaCO2 goal, the apparatus dead space
+// of the patient's circuit and the patient's airway are standing facts
+// (fhirmap.Select): they hold from their time until replaced, so they are
+// patient-level too.
 var patientLevel = []string{string(fhirmap.QSex), string(fhirmap.QBirthDate), string(fhirmap.QHeight), string(fhirmap.QWeight),
-	string(fhirmap.QTargetPaCO2), string(fhirmap.QApparatusVD)}
+	string(fhirmap.QTargetPaCO2), string(fhirmap.QApparatusVD), string(fhirmap.QAirway)}
 
 const (
 	// pointLookupsSQL starts every ingest transaction. Its statements are
