@@ -541,7 +541,7 @@ func TestTargetRecordedAsConstant(t *testing.T) {
 			t.Fatal(err)
 		}
 		if !slices.ContainsFunc(r.Constants(), func(c physio.Constant) bool {
-			return c.Name == "target PaCO2" && c.Value == 40 && c.Unit == "mm[Hg]" && strings.Contains(c.Source, "given by the caller")
+			return c.Name == "target PaCO2" && c.Value == 40 && c.Unit == "mm[Hg]" && strings.Contains(c.Source, "not derived here")
 		}) {
 			t.Errorf("%s: constants %+v lack the target PaCO2 40 mmHg", r.Method, r.Constants())
 		}

@@ -42,7 +42,7 @@ var (
 	minVTDef   = constDef{name: "advisory lower tidal volume", unit: "mL/kg", source: "NIH NHLBI ARDS Network protocol card: minimum 4 mL/kg predicted body weight [published]"}
 	maxRateDef = constDef{name: "advisory upper rate", unit: UnitPerMin, source: "NIH NHLBI ARDS Network protocol card: set rate not above 35 /min [published]"}
 	minRateDef = constDef{name: "advisory lower rate", unit: UnitPerMin, source: "[common practice]"}
-	targetDef  = constDef{name: "target PaCO2", unit: UnitMmHg, source: "given by the caller, not derived; a patient-specific goal only if the caller made it one"}
+	targetDef  = constDef{name: "target PaCO2", unit: UnitMmHg, source: "the target the value aims at, not derived here: the assumptions say whether it is the patient's PaCO2 Goal or the site's setting"}
 )
 
 // FlagWithinGoalRange is the flag of a value for a target that is the
@@ -97,7 +97,8 @@ func (r *Result) flagVT(vtPerKg float64) {
 // target. vt (mL) and pbw (kg) do not enter the formula; they are used to
 // flag the tidal volume per kg PBW. Flags mark an answer above MaxRate or
 // below MinRate and a VT outside MinVTPerKgPBW..MaxVTPerKgPBW. The target
-// is recorded as the constant "target PaCO2" (given by the caller).
+// is recorded as the constant "target PaCO2" (given by the caller; the
+// caller names its origin in the assumptions).
 //
 // It refuses rr outside RespRateRange, paco2 outside PaCO2Range, target
 // outside TargetPaCO2Range, vt outside TidalVolumeRange, pbw outside
