@@ -218,6 +218,7 @@ func demo(ctx context.Context, f demoFlags, e env) (err error) {
 		fmt.Fprintf(out, "  go run ./cmd/ventderive audit refusals\n")
 		fmt.Fprintf(out, "  go run ./cmd/ventderive audit changes\n")
 		fmt.Fprintf(out, "  go run ./cmd/ventderive audit discrepancies --threshold 5\n")
+		fmt.Fprintf(out, "  go run ./cmd/ventderive audit verify\n")
 		fmt.Fprintf(out, "The reviewer console over the same store (read-only; open http://127.0.0.1:8470/):\n")
 		fmt.Fprintf(out, "  go run ./cmd/ventderive review\n")
 		fmt.Fprintf(out, "Files (NATS store, service log%s) are in %s\n", map[bool]string{true: ", PostgreSQL cluster", false: ""}[e.getenv("DATABASE_URL") == ""], f.dir)
