@@ -69,7 +69,7 @@ var allQuantities = []string{string(fhirmap.QPCO2), string(fhirmap.QPO2), string
 	string(fhirmap.QPEEP), string(fhirmap.QPlateau), string(fhirmap.QMeanAirway), string(fhirmap.QPFRatio),
 	string(fhirmap.QWeight), string(fhirmap.QHeight), string(fhirmap.QBodyTemp), string(fhirmap.QSex),
 	string(fhirmap.QBirthDate), string(fhirmap.QPECO2), string(fhirmap.QFETCO2), string(fhirmap.QTargetPaCO2),
-	string(fhirmap.QApparatusVD)}
+	string(fhirmap.QApparatusVD), string(fhirmap.QAirway)}
 
 // ventilatorQuantities are the quantities fhirmap counts as ventilator
 // readings (fhirmap.IsVentilatorReading; TestRefusalVerifyQuantities keeps
