@@ -56,7 +56,9 @@ func New(pool *pgxpool.Pool, opts Options) *Store {
 	return s
 }
 
-// hash is the keyed patient hash stored beside every patient reference.
+// hash is the keyed patient hash stored beside the patient reference of
+// every derivation, refusal and head (fact rows hold the reference only
+// since migration 0012).
 func (s *Store) hash(ref string) string { return consumer.PatientHash(s.key, ref) }
 
 // inTx runs fn in a transaction and translates errors, telling a failed
