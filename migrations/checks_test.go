@@ -51,7 +51,6 @@ func TestRewrittenChecksAcceptSameStrings(t *testing.T) {
 		{"refusal_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
 		{"head_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
 		{"input_resource_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
-		{"fact_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
 		{"derivation_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
 		{"refusal_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
 		{"head_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},

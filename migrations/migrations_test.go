@@ -158,11 +158,11 @@ func TestChecksRefuseBadRows(t *testing.T) {
 	}
 	const hash = "0123456789abcdef0123456789abcdef"
 	const dig = "bbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbbb"
-	factSQL := `INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, patient_hash, encounter,
+	factSQL := `INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, encounter,
 	  quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
 	  code_system, code, code_display, status, effective, inbox_key, recorded_at)
-	  VALUES ('Observation/a', $1, 'Observation/a', '', $2, $3, '', $4, 'measured', '', $5, false, $6, 'mm[Hg]', '',
-	  1, 'mm[Hg]', 'http://loinc.org', '2019-8', '', $7, now(), $8, now())`
+	  VALUES ('Observation/a', $1, 'Observation/a', '', $2, '', $3, 'measured', '', $4, false, $5, 'mm[Hg]', '',
+	  1, 'mm[Hg]', 'http://loinc.org', '2019-8', '', $6, now(), $7, now())`
 	derivSQL := `INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
 	  blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
 	  interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest, inbox_key, created_at)
@@ -174,12 +174,12 @@ func TestChecksRefuseBadRows(t *testing.T) {
 		args       []any
 		constraint string // "" : must succeed; else the constraint(s) it breaks, "|"-separated
 	}{
-		{"fact ok", factSQL, []any{dig, "Patient/p1", hash, "pco2", "arterial", 40.0, "final", key}, ""},
-		{"fact unknown status", factSQL, []any{dig, "Patient/p1", hash, "po2", "", 40.0, "done", key}, "fact_status_check"},
-		{"fact NaN value", factSQL, []any{dig, "Patient/p1", hash, "po2", "", nan(), "final", key}, "fact_value_check"},
-		{"fact blood gas without specimen", factSQL, []any{dig, "Patient/p1", hash, "pco2", "", 40.0, "final", key}, "fact_blood_gas_has_specimen"},
-		{"fact bad digest", factSQL, []any{"XYZ", "Patient/p1", hash, "po2", "", 40.0, "final", key}, "fact_digest_check"},
-		{"fact bad patient reference", factSQL, []any{dig, "Group/g", hash, "po2", "", 40.0, "final", key}, "fact_patient_ref_check"},
+		{"fact ok", factSQL, []any{dig, "Patient/p1", "pco2", "arterial", 40.0, "final", key}, ""},
+		{"fact unknown status", factSQL, []any{dig, "Patient/p1", "po2", "", 40.0, "done", key}, "fact_status_check"},
+		{"fact NaN value", factSQL, []any{dig, "Patient/p1", "po2", "", nan(), "final", key}, "fact_value_check"},
+		{"fact blood gas without specimen", factSQL, []any{dig, "Patient/p1", "pco2", "", 40.0, "final", key}, "fact_blood_gas_has_specimen"},
+		{"fact bad digest", factSQL, []any{"XYZ", "Patient/p1", "po2", "", 40.0, "final", key}, "fact_digest_check"},
+		{"fact bad patient reference", factSQL, []any{dig, "Group/g", "po2", "", 40.0, "final", key}, "fact_patient_ref_check"},
 		{"derivation ok", derivSQL, []any{"Patient/p1|Observation/a|vdvt", 1, hash, 0.3, "1", "final", dig, key}, ""},
 		{"derivation key mismatch", derivSQL, []any{"Patient/p2|Observation/a|vdvt", 1, hash, 0.3, "1", "final", dig, key}, "derivation_key_parts"},
 		{"derivation version 0", derivSQL, []any{"Patient/p1|Observation/a|vdvt", 0, hash, 0.3, "1", "final", dig, key}, "derivation_version_check|derivation_supersedes_previous"},

@@ -1270,7 +1270,7 @@ func (b *bench) memory(ctx context.Context) error {
 		return err
 	}
 	var patients, gases, derived int
-	if err := pool.QueryRow(ctx, `SELECT (SELECT count(DISTINCT patient_hash) FROM fact),
+	if err := pool.QueryRow(ctx, `SELECT (SELECT count(DISTINCT patient_ref) FROM fact),
 		(SELECT count(DISTINCT blood_gas_key) FROM head), (SELECT count(*) FROM derivation)`).Scan(&patients, &gases, &derived); err != nil {
 		return err
 	}

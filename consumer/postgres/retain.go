@@ -48,10 +48,10 @@ type RetainReport struct {
 // store, against tens of milliseconds).
 const retainCandidatesSQL = `
 SELECT DISTINCT f.key FROM fact f
-WHERE f.patient_hash = $1 AND f.effective < $2
+WHERE f.patient_ref = $1 AND f.effective < $2
   AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
   AND NOT EXISTS (SELECT 1 FROM fact g WHERE g.key = f.key
-      AND (g.patient_hash <> $1 OR g.effective >= $2 OR g.quantity NOT IN (` + ventilatorQuantitiesSQL + `)))
+      AND (g.patient_ref <> $1 OR g.effective >= $2 OR g.quantity NOT IN (` + ventilatorQuantitiesSQL + `)))
   AND f.key NOT IN (SELECT fact_key FROM derivation_input UNION ALL SELECT fact_key FROM refusal_input)
   AND f.key NOT IN (` + retainNearestSQL + `)`
 
@@ -71,12 +71,12 @@ SELECT n.key FROM (
         r.effective + coalesce((s.snapshot::jsonb -> 'site' -> 'Window' ->> 'After')::bigint / 1000, 600000000)
             * interval '1 microsecond' AS hi
     FROM refusal r LEFT JOIN site_settings s ON s.digest = r.settings_digest
-    WHERE r.patient_hash = $1) w
+    WHERE r.patient_ref = $1) w
 CROSS JOIN LATERAL (
-    (SELECT b.key FROM fact b WHERE b.patient_hash = $1 AND b.effective < w.lo
+    (SELECT b.key FROM fact b WHERE (b.patient_ref || '') = $1 AND b.effective < w.lo
        AND b.quantity IN (` + ventilatorQuantitiesSQL + `) ORDER BY b.effective DESC LIMIT 16)
     UNION ALL
-    (SELECT a.key FROM fact a WHERE a.patient_hash = $1 AND a.effective > w.hi
+    (SELECT a.key FROM fact a WHERE (a.patient_ref || '') = $1 AND a.effective > w.hi
        AND a.quantity IN (` + ventilatorQuantitiesSQL + `) ORDER BY a.effective LIMIT 16)) n`
 
 const (
@@ -122,15 +122,15 @@ func Retain(ctx context.Context, pool *pgxpool.Pool, o RetainOptions) (RetainRep
 	}
 	rep := RetainReport{Cutoff: asOf.Add(-o.Horizon).UTC(), Applied: o.Apply}
 	rows, err := pool.Query(ctx, `
-SELECT DISTINCT patient_ref, patient_hash FROM fact
+SELECT DISTINCT patient_ref FROM fact
 WHERE effective < $1 AND quantity IN (`+ventilatorQuantitiesSQL+`) ORDER BY 1`, rep.Cutoff)
 	if err != nil {
 		return rep, fmt.Errorf("retain: patients: %w", err)
 	}
-	type patient struct{ ref, hash string }
+	type patient struct{ ref string }
 	ps, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (patient, error) {
 		var p patient
-		return p, r.Scan(&p.ref, &p.hash)
+		return p, r.Scan(&p.ref)
 	})
 	if err != nil {
 		return rep, fmt.Errorf("retain: patients: %w", err)
@@ -142,7 +142,7 @@ WHERE effective < $1 AND quantity IN (`+ventilatorQuantitiesSQL+`) ORDER BY 1`, 
 				return err
 			}
 			var ks []string
-			rows, err := tx.Query(ctx, retainCandidatesSQL, p.hash, rep.Cutoff)
+			rows, err := tx.Query(ctx, retainCandidatesSQL, p.ref, rep.Cutoff)
 			if err != nil {
 				return err
 			}

@@ -56,7 +56,9 @@ func New(pool *pgxpool.Pool, opts Options) *Store {
 	return s
 }
 
-// hash is the keyed patient hash stored beside every patient reference.
+// hash is the keyed patient hash stored beside the patient reference of
+// every derivation, refusal and head (fact rows hold the reference only
+// since migration 0012).
 func (s *Store) hash(ref string) string { return consumer.PatientHash(s.key, ref) }
 
 // inTx runs fn in a transaction and translates errors, telling a failed
@@ -118,22 +120,22 @@ ON CONFLICT (inbox_key) DO NOTHING`
 	lockPatientSQL = `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`
 
 	insertFactsSQL = `
-INSERT INTO fact (key, digest, resource_ref, version_id, last_updated, patient_ref, patient_hash, encounter,
+INSERT INTO fact (key, digest, resource_ref, version_id, last_updated, patient_ref, encounter,
     quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
     code_system, code, code_display, status, effective, issued, inbox_key, recorded_at)
-SELECT u.key, u.digest, u.resource_ref, u.version_id, u.last_updated, u.patient_ref, u.patient_hash, u.encounter,
+SELECT u.key, u.digest, u.resource_ref, u.version_id, u.last_updated, u.patient_ref, u.encounter,
     u.quantity, u.origin, u.detail, u.specimen, u.temp_corrected, u.value, u.unit, u.text, u.source_value, u.source_unit,
-    u.code_system, u.code, u.code_display, u.status, u.effective, u.issued, $25, $26
-FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[], $8::text[],
-    $9::text[], $10::text[], $11::text[], $12::text[], $13::boolean[], $14::float8[], $15::text[], $16::text[],
-    $17::float8[], $18::text[], $19::text[], $20::text[], $21::text[], $22::text[], $23::timestamptz[], $24::timestamptz[])
-    AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, patient_hash, encounter,
+    u.code_system, u.code, u.code_display, u.status, u.effective, u.issued, $24, $25
+FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[],
+    $8::text[], $9::text[], $10::text[], $11::text[], $12::boolean[], $13::float8[], $14::text[], $15::text[],
+    $16::float8[], $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::timestamptz[], $23::timestamptz[])
+    AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, encounter,
     quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
     code_system, code, code_display, status, effective, issued)
 ON CONFLICT (key, digest) DO NOTHING`
 
 	// affectedCTE works out the affected blood gases of one patient.
-	// $1 patient hash, $2 keys of the message's facts, $3 window before and
+	// $1 patient reference, $2 keys of the message's facts, $3 window before and
 	// $4 window after (microseconds), $5 horizon (microseconds), $6
 	// patient-level quantities, $7 the blood-gas quantity, $8 the inbox key.
 	// changed holds the patient's stored versions of each key that this
@@ -159,31 +161,39 @@ ON CONFLICT (key, digest) DO NOTHING`
 	// message); with statistics, the patient-level lookup read all 23,141
 	// facts of a 96 h stay to keep 0 (6.4 ms). Both grow with the stay.
 	//
+	// A lookup over every quantity of a patient (a blood gas's window, the
+	// nearest readings outside it) writes the patient as
+	// (f.patient_ref || ''), the expression of fact_patient_ref_effective
+	// (migration 0012); a lookup by patient and quantity writes plain
+	// f.patient_ref, which only fact_patient_ref_quantity_effective
+	// serves. Without that split a generic plan took the smaller index for
+	// lookups by quantity and filtered the window's every quantity.
+	//
 	// Body temperatures ($11, the body-temp quantity) are paired in a window
 	// of their own ($9 before, $10 after a blood gas): a new one reopens the
 	// blood gases of that window, and the snapshot adds them by a lateral
-	// lookup on (patient_hash, quantity, effective) per affected blood gas,
+	// lookup on (patient_ref, quantity, effective) per affected blood gas,
 	// so the wider window costs no ventilator readings.
 	affectedCTE = `
 WITH cand AS MATERIALIZED (
-    SELECT f.quantity, f.effective, f.key, f.patient_hash, f.inbox_key FROM fact f
+    SELECT f.quantity, f.effective, f.key, f.patient_ref, f.inbox_key FROM fact f
     WHERE f.key = ANY($2::text[])
 ), changed AS (
     SELECT c.quantity, c.effective, c.key FROM cand c
-    WHERE c.patient_hash = $1
+    WHERE c.patient_ref = $1
       AND EXISTS (SELECT 1 FROM cand n WHERE n.key = c.key AND n.inbox_key = $8)
 ), affected AS (
     SELECT key FROM changed WHERE quantity = $7::text
     UNION
     SELECT b.key FROM fact b
-    WHERE b.patient_hash = $1 AND b.quantity = $7::text
+    WHERE b.patient_ref = $1 AND b.quantity = $7::text
       AND EXISTS (SELECT 1 FROM changed WHERE quantity = ANY($6::text[]))
-      AND b.effective >= (SELECT max(effective) FROM fact WHERE patient_hash = $1 AND quantity = $7::text)
+      AND b.effective >= (SELECT max(effective) FROM fact WHERE patient_ref = $1 AND quantity = $7::text)
                          - $5::bigint * interval '1 microsecond'
     UNION
     SELECT b.key FROM changed c CROSS JOIN LATERAL (
         SELECT b.key FROM fact b
-        WHERE b.patient_hash = $1 AND b.quantity = $7::text
+        WHERE b.patient_ref = $1 AND b.quantity = $7::text
           AND b.effective BETWEEN c.effective - CASE WHEN c.quantity = $11::text THEN $10::bigint ELSE $4::bigint END * interval '1 microsecond'
                               AND c.effective + CASE WHEN c.quantity = $11::text THEN $9::bigint ELSE $3::bigint END * interval '1 microsecond'
         OFFSET 0) b
@@ -204,39 +214,39 @@ SELECT DISTINCT key FROM affected ORDER BY key`
 
 	snapshotFactsSQL = affectedCTE + `,
 gas AS MATERIALIZED (
-    SELECT b.effective, b.patient_hash FROM fact b WHERE b.key = ANY(ARRAY(SELECT key FROM affected))
+    SELECT b.effective, b.patient_ref FROM fact b WHERE b.key = ANY(ARRAY(SELECT key FROM affected))
 ), win AS (
     SELECT g.effective - $3::bigint * interval '1 microsecond' AS lo,
            g.effective + $4::bigint * interval '1 microsecond' AS hi
-    FROM gas g WHERE g.patient_hash = $1
+    FROM gas g WHERE g.patient_ref = $1
 ), keys AS (
     SELECT key FROM affected
     UNION SELECT l.key FROM unnest($6::text[]) AS q(quantity) CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.quantity = q.quantity
+        SELECT f.key FROM fact f WHERE f.patient_ref = $1 AND f.quantity = q.quantity
         OFFSET 0) l
     UNION SELECT w.key FROM win CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.effective BETWEEN win.lo AND win.hi
+        SELECT f.key FROM fact f WHERE (f.patient_ref || '') = $1 AND f.effective BETWEEN win.lo AND win.hi
         OFFSET 0) w
     UNION SELECT n.key FROM win CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.effective < win.lo
+        SELECT f.key FROM fact f WHERE (f.patient_ref || '') = $1 AND f.effective < win.lo
           AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
         ORDER BY f.effective DESC LIMIT ` + nearestOutside + `) n
     UNION SELECT n.key FROM win CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.effective > win.hi
+        SELECT f.key FROM fact f WHERE (f.patient_ref || '') = $1 AND f.effective > win.hi
           AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
         ORDER BY f.effective LIMIT ` + nearestOutside + `) n
     UNION SELECT t.key FROM gas g CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE f.patient_hash = $1 AND f.quantity = $11::text
+        SELECT f.key FROM fact f WHERE f.patient_ref = $1 AND f.quantity = $11::text
           AND f.effective BETWEEN g.effective - $9::bigint * interval '1 microsecond'
                               AND g.effective + $10::bigint * interval '1 microsecond'
         OFFSET 0) t
-    WHERE g.patient_hash = $1
+    WHERE g.patient_ref = $1
 ), found AS MATERIALIZED (
-    SELECT id, patient_hash, ` + factColumns + `
+    SELECT id, ` + factColumns + `
     FROM fact WHERE key = ANY(ARRAY(SELECT key FROM keys)) AND EXISTS (SELECT 1 FROM affected)
 )
 SELECT ` + factColumns + `
-FROM found WHERE patient_hash = $1 OR key = ANY($2::text[])
+FROM found WHERE patient_ref = $1 OR key = ANY($2::text[])
 ORDER BY id`
 
 	// ventilatorQuantitiesSQL lists the quantities fhirmap counts as
@@ -259,7 +269,7 @@ ORDER BY id`
 SELECT h.key, h.kind, h.version, h.digest, h.refused, h.status, h.value
 FROM affected a CROSS JOIN LATERAL (
     SELECT key, kind, version, digest, refused, status, value FROM head
-    WHERE patient_hash = $1 AND blood_gas_key = a.key
+    WHERE patient_ref = $1 AND blood_gas_key = a.key
     OFFSET 0) h
 ORDER BY h.key`
 
@@ -371,7 +381,6 @@ func retryInPlace(err error) bool {
 // patientPlan is one patient's part of an ingest.
 type patientPlan struct {
 	ref      string
-	hash     string
 	affected []string
 	facts    []fhirmap.Fact
 	current  []consumer.Stored
@@ -466,7 +475,7 @@ func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
 	refs := messagePatients(msg)
 	order := make([]*patientPlan, len(refs))
 	for i, ref := range refs {
-		order[i] = &patientPlan{ref: ref, hash: s.hash(ref)}
+		order[i] = &patientPlan{ref: ref}
 	}
 	return order
 }
@@ -522,7 +531,7 @@ func snapshotArgs(msg consumer.Message, p *patientPlan) []any {
 	if tw == (fhirmap.Window{}) {
 		tw = msg.Window
 	}
-	return []any{p.hash, factKeys(msg), msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(),
+	return []any{p.ref, factKeys(msg), msg.Window.Before.Microseconds(), msg.Window.After.Microseconds(),
 		msg.Horizon.Microseconds(), patientLevel, string(fhirmap.QPCO2), msg.InboxKey,
 		tw.Before.Microseconds(), tw.After.Microseconds(), string(fhirmap.QBodyTemp)}
 }
@@ -576,7 +585,7 @@ func factKeys(msg consumer.Message) []string {
 func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, others []string) ([]*patientPlan, error) {
 	plans := make([]*patientPlan, len(others))
 	for i, ref := range others {
-		plans[i] = &patientPlan{ref: ref, hash: s.hash(ref)}
+		plans[i] = &patientPlan{ref: ref}
 	}
 	b := &pgx.Batch{}
 	b.Queue(lockPatientsSQL, others)
@@ -662,20 +671,20 @@ func messagePatients(msg consumer.Message) []string {
 func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
 	n := len(msg.Facts)
 	var (
-		key, dig, res, ver, pat, hash, enc, qty, org, det, spc = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
-		unit, text, sunit, csys, code, cdisp, st               = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
-		lastUpd, eff, iss                                      = make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n)
-		tc                                                     = make([]bool, n)
-		val, sval                                              = make([]float64, n), make([]float64, n)
+		key, dig, res, ver, pat, enc, qty, org, det, spc = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+		unit, text, sunit, csys, code, cdisp, st         = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+		lastUpd, eff, iss                                = make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n)
+		tc                                               = make([]bool, n)
+		val, sval                                        = make([]float64, n), make([]float64, n)
 	)
 	for i, f := range msg.Facts {
-		key[i], dig[i], res[i], ver[i], pat[i], hash[i], enc[i] = f.Key, f.Digest, f.Resource, f.VersionID, f.Patient, s.hash(f.Patient), f.Encounter
+		key[i], dig[i], res[i], ver[i], pat[i], enc[i] = f.Key, f.Digest, f.Resource, f.VersionID, f.Patient, f.Encounter
 		qty[i], org[i], det[i], spc[i], tc[i] = string(f.Quantity), string(f.Origin), f.Detail, string(f.Specimen), f.TempCorrected
 		val[i], unit[i], text[i], sval[i], sunit[i] = f.Value, f.Unit, f.Text, f.SourceValue, f.SourceUnit
 		csys[i], code[i], cdisp[i], st[i] = f.Code.System, f.Code.Code, f.Code.Display, string(f.Status)
 		lastUpd[i], eff[i], iss[i] = optTime(f.LastUpdated), pgtype.Timestamptz{Time: f.Effective.UTC(), Valid: true}, optTime(f.Issued)
 	}
-	return []any{key, dig, res, ver, lastUpd, pat, hash, enc, qty, org, det, spc, tc, val, unit, text, sval, sunit,
+	return []any{key, dig, res, ver, lastUpd, pat, enc, qty, org, det, spc, tc, val, unit, text, sval, sunit,
 		csys, code, cdisp, st, eff, iss, msg.InboxKey, now}
 }
 

@@ -37,17 +37,17 @@ UNION ALL
 SELECT 'Patient/bench-' || lpad(p::text, 5, '0'), 'Observation/b' || p || '-abg-' || i || '#http://loinc.org|2019-8',
        'Observation/b' || p || '-abg-' || i, timestamptz '2026-03-01 00:30:00Z' + i * interval '4 hours' + p * interval '1 second', p + i
 FROM generate_series(1, $1::int) p, generate_series(0, 2) i;
-INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, patient_hash, encounter, quantity, origin, detail,
+INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, encounter, quantity, origin, detail,
     specimen, temp_corrected, value, unit, text, source_value, source_unit, code_system, code, code_display, status,
     effective, inbox_key, recorded_at)
-SELECT bg, repeat('b', 64), res, '1', ref, repeat('c', 32), '', 'pco2', 'measured', '', 'arterial', false,
+SELECT bg, repeat('b', 64), res, '1', ref, '', 'pco2', 'measured', '', 'arterial', false,
        40 + (n % 7), 'mm[Hg]', '', 0, '', 'http://loinc.org', '2019-8', '', 'final', eff, repeat('a', 64), eff
 FROM g;
-INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, patient_hash, encounter, quantity, origin, detail,
+INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, encounter, quantity, origin, detail,
     specimen, temp_corrected, value, unit, text, source_value, source_unit, code_system, code, code_display, status,
     effective, inbox_key, recorded_at)
 SELECT 'Observation/bl-' || q.n || '-' || m || '#http://loinc.org|x', repeat('b', 64), 'Observation/bl-' || q.n || '-' || m,
-       '1', 'Patient/bench-long', repeat('c', 32), '', q.n, 'measured', '', '', false, q.base * (1 + 0.1 * sin(m / 50.0)),
+       '1', 'Patient/bench-long', '', q.n, 'measured', '', '', false, q.base * (1 + 0.1 * sin(m / 50.0)),
        q.unit, '', 0, '', 'http://loinc.org', 'x', '', 'final', timestamptz '2026-03-01 00:00:00Z' + m * interval '1 minute',
        repeat('a', 64), timestamptz '2026-03-01 00:00:00Z' + m * interval '1 minute'
 FROM generate_series(0, 30 * 24 * 60 - 1) m,
