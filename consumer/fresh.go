@@ -50,6 +50,9 @@ func (p *Pipeline) currentFresh() jetstream.Consumer {
 	return p.fresh
 }
 
+// freshPullWait is the expiry of the fresh lane's pulls.
+const freshPullWait = 100 * time.Millisecond
+
 // freshLoop pulls the fresh lane until ctx is cancelled.
 func (p *Pipeline) freshLoop(ctx context.Context) {
 	failures := 0
@@ -65,7 +68,9 @@ func (p *Pipeline) freshLoop(ctx context.Context) {
 			}
 			c = p.currentFresh()
 		}
-		batch, err := c.Fetch(p.cfg.Fetch, jetstream.FetchMaxWait(time.Second))
+		// A pull waits for a full batch until it expires: a short expiry
+		// bounds what a few fresh messages wait for the batch to fill.
+		batch, err := c.Fetch(p.cfg.Fetch, jetstream.FetchMaxWait(freshPullWait))
 		got := 0
 		if err == nil {
 			got = p.processFresh(context.WithoutCancel(ctx), batch.Messages())
