@@ -75,6 +75,9 @@ type benchFlags struct {
 	// backlog inputs are in the stream before a replica starts in the
 	// backlog-and-replay measurement (0: skip it).
 	backlog int
+	// freshAge is the replicas' consumer.Config FreshAge (negative: the
+	// fresh lane off, for comparison).
+	freshAge time.Duration
 }
 
 func runBench(ctx context.Context, args []string, e env) error {
@@ -97,6 +100,7 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.BoolVar(&f.stayAnalyze, "stay-analyze", false, "run ANALYZE after storing each long stay, before the measured part (as autovacuum would; default: no statistics, as on a server with autovacuum off)")
 	fs.IntVar(&f.historyH, "history-hours", 0, "hours of simulated history stored before the history-growth measurement, which drains the last --stay-inputs inputs after it and after the admissions alone (0: skip)")
 	fs.IntVar(&f.historyCopies, "history-copies", 4, "copies of the unit (10 patients each) in the history-growth measurement")
+	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative: the lane off, for comparison)")
 	fs.IntVar(&f.backlog, "backlog", 100000, "inputs in the stream before one replica starts, drained with a fresh blood gas published during the drain (0: skip)")
 	if err := fs.Parse(args); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
@@ -1031,6 +1035,9 @@ func (b *bench) startReplicas(ctx context.Context, url string, n int) ([]*benchR
 	cfg.Window = b.site.Window
 	if b.f.fetch > 0 {
 		cfg.Fetch = b.f.fetch
+	}
+	if b.f.freshAge != 0 {
+		cfg.FreshAge = b.f.freshAge
 	}
 	var rs []*benchReplica
 	for range n {

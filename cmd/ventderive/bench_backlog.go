@@ -200,8 +200,12 @@ func (b *bench) reportBacklog(r backlogResult, sustained float64) {
 	if sustained > 0 {
 		ratio = fmt.Sprintf("%.2f", r.perSec/sustained)
 	}
+	lane := "on"
+	if b.f.freshAge < 0 {
+		lane = "off (--fresh-age negative)"
+	}
 	fmt.Fprintf(b.out, "\nBacklog and replay, 1 replica: %d inputs in the stream before the replica starts; %d fresh inputs (a new patient's admission,\n"+
-		"readings and first blood gas, the gas last) published when %d of them were recorded.\n", r.inputs, r.freshN, r.publishAt)
+		"readings and first blood gas, the gas last) published when %d of them were recorded; fresh lane %s.\n", r.inputs, r.freshN, r.publishAt, lane)
 	fmt.Fprintf(b.out, "  drain: %.0f inputs/s (%.1f s); sustained (pipeline, 1 replica, above): %.0f inputs/s; drain/sustained: %s\n",
 		r.perSec, r.drain.Seconds(), sustained, ratio)
 	fmt.Fprintf(b.out, "  fresh blood gas: publish to its last derived Observation in the output stream %.0f ms (%d Observations of the fresh inputs);\n"+
