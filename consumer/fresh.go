@@ -34,14 +34,25 @@ func (p *Pipeline) ensureFresh(ctx context.Context) error {
 	defer cancel()
 	c, err := p.js.CreateOrUpdateConsumer(ctx, p.cfg.InputStream, FreshConsumerConfig(p.cfg))
 	if err != nil {
-		p.freshActive.Store(false)
+		p.setFreshActive(false)
 		return fmt.Errorf("create consumer %s on %s: %w", p.cfg.FreshDurable, p.cfg.InputStream, err)
 	}
 	p.mu.Lock()
 	p.fresh = c
 	p.mu.Unlock()
-	p.freshActive.Store(true)
+	p.setFreshActive(true)
 	return nil
+}
+
+// setFreshActive notes whether the fresh lane works, for readiness and
+// ventderive_fresh_lane_active.
+func (p *Pipeline) setFreshActive(ok bool) {
+	p.freshActive.Store(ok)
+	if ok {
+		p.metrics.FreshActive.Set(1)
+	} else {
+		p.metrics.FreshActive.Set(0)
+	}
 }
 
 func (p *Pipeline) currentFresh() jetstream.Consumer {
@@ -79,7 +90,7 @@ func (p *Pipeline) freshLoop(ctx context.Context) {
 		switch {
 		case err == nil, errors.Is(err, nats.ErrTimeout), errors.Is(err, context.DeadlineExceeded):
 			failures = 0
-			p.freshActive.Store(true)
+			p.setFreshActive(true)
 			if got == 0 && time.Since(lastCheck) > 10*time.Second {
 				// A consumer deleted between two pulls only makes pulls
 				// time out: look for it now and then while idle.
@@ -98,7 +109,7 @@ func (p *Pipeline) freshLoop(ctx context.Context) {
 			if ctx.Err() != nil {
 				return
 			}
-			p.freshActive.Store(false)
+			p.setFreshActive(false)
 			p.log.Warn("fresh lane: fetch failed", "err", err)
 		}
 		failures++
@@ -112,7 +123,7 @@ func (p *Pipeline) dropFresh() {
 	p.mu.Lock()
 	p.fresh = nil
 	p.mu.Unlock()
-	p.freshActive.Store(false)
+	p.setFreshActive(false)
 }
 
 // isFresh says whether the fresh lane records a message itself.

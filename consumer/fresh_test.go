@@ -6,6 +6,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/nats-io/nats-server/v2/server"
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/ventderive/ventderive/consumer"
@@ -114,5 +115,57 @@ func TestFreshInputOvertakesBacklog(t *testing.T) {
 	}
 	if strings.Contains(h.logs.String(), "fresh lane: fetch failed") {
 		t.Error("the fresh lane's pulls failed")
+	}
+}
+
+// A fresh-lane consumer deleted by hand is recreated by the replica, and
+// readiness names the lane while it is missing at the start.
+func TestFreshConsumerRecreated(t *testing.T) {
+	h := newHarness(t)
+	r := h.startReplica(nil)
+	h.waitReady(r)
+	ctx := context.Background()
+	if _, err := h.js.Consumer(ctx, consumer.DefaultInputStream, consumer.DefaultFreshDurable); err != nil {
+		t.Fatalf("the replica did not create the fresh lane's consumer: %v", err)
+	}
+	if err := h.js.DeleteConsumer(ctx, consumer.DefaultInputStream, consumer.DefaultFreshDurable); err != nil {
+		t.Fatal(err)
+	}
+	for deadline := time.Now().Add(time.Minute); ; time.Sleep(100 * time.Millisecond) {
+		if _, err := h.js.Consumer(ctx, consumer.DefaultInputStream, consumer.DefaultFreshDurable); err == nil {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatal("the fresh lane's consumer was not recreated")
+		}
+	}
+	h.waitReady(r)
+	msgs := generate(genOpts{patients: 1, gases: 1})
+	h.publish(msgs)
+	h.waitSettled(time.Minute)
+	h.reconcile(msgs)
+}
+
+// With the fresh lane's consumer denied by the NATS permissions, input is
+// still recorded by the main consumer and readiness names the lane.
+func TestFreshLaneDeniedIsNamedInReadiness(t *testing.T) {
+	h := newHarness(t, withNATSUsers(func(o *server.Options) {
+		o.Users = []*server.User{
+			{Username: "admin", Password: "admin-test-only"},
+			{Username: "svc", Password: "svc-test-only", Permissions: &server.Permissions{
+				Publish: &server.SubjectPermission{Deny: []string{
+					"$JS.API.CONSUMER.CREATE." + consumer.DefaultInputStream + "." + consumer.DefaultFreshDurable,
+					"$JS.API.CONSUMER.CREATE." + consumer.DefaultInputStream + "." + consumer.DefaultFreshDurable + ".>",
+				}},
+			}},
+		}
+	}, "admin:admin-test-only@", "svc:svc-test-only@"))
+	r := h.startReplica(nil)
+	msgs := generate(genOpts{patients: 1, gases: 1})
+	h.publish(msgs)
+	h.waitSettled(time.Minute)
+	h.reconcile(msgs)
+	if got := r.p.Ready(context.Background()); !strings.Contains(got["fresh"], "inactive") || len(got) != 1 {
+		t.Errorf("readiness %v: want only fresh named", got)
 	}
 }

@@ -40,13 +40,8 @@ func (p *Pipeline) Ready(ctx context.Context) map[string]string {
 	if !p.active.Load() {
 		problems["consumer"] = "inactive"
 	}
-	if p.cfg.FreshAge >= 0 {
-		if p.freshActive.Load() {
-			p.metrics.FreshActive.Set(1)
-		} else {
-			p.metrics.FreshActive.Set(0)
-			problems["fresh"] = "inactive: live input waits behind any backlog"
-		}
+	if p.cfg.FreshAge >= 0 && !p.freshActive.Load() {
+		problems["fresh"] = "inactive: live input waits behind any backlog"
 	}
 	now := p.now()
 	// A message settled since the watchdog's last look ends the stall.

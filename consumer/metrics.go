@@ -40,7 +40,7 @@ type Metrics struct {
 	// main consumer), duplicate, failed (left to the main consumer).
 	Fresh *prometheus.CounterVec
 	// FreshActive is 1 while the fresh lane's consumer exists and its
-	// pulls succeed, else 0 (set by Ready).
+	// pulls succeed, else 0.
 	FreshActive prometheus.Gauge
 }
 

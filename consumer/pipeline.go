@@ -216,14 +216,14 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	wg.Go(func() { p.watchdog(ctx) })
 	var fresh sync.WaitGroup
 	if p.cfg.FreshAge >= 0 {
-		if err := p.ensureFresh(ctx); err != nil {
-			p.log.Warn("fresh lane: no consumer yet; retrying", "err", err)
-		}
+		// The lane creates its consumer itself: a denied or slow create
+		// must not hold the main consumer back.
 		fresh.Go(func() { p.freshLoop(ctx) })
 	}
 
 	p.fetchLoop(ctx)
 	fresh.Wait()
+	p.setFreshActive(false)
 
 	// Input is settled; publish what it produced before stopping, bounded
 	// so that a dead NATS cannot hold shutdown forever (the outbox keeps

@@ -100,7 +100,7 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.BoolVar(&f.stayAnalyze, "stay-analyze", false, "run ANALYZE after storing each long stay, before the measured part (as autovacuum would; default: no statistics, as on a server with autovacuum off)")
 	fs.IntVar(&f.historyH, "history-hours", 0, "hours of simulated history stored before the history-growth measurement, which drains the last --stay-inputs inputs after it and after the admissions alone (0: skip)")
 	fs.IntVar(&f.historyCopies, "history-copies", 4, "copies of the unit (10 patients each) in the history-growth measurement")
-	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative: the lane off, for comparison)")
+	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative, e.g. -1s: the lane off, for comparison)")
 	fs.IntVar(&f.backlog, "backlog", 100000, "inputs in the stream before one replica starts, drained with a fresh blood gas published during the drain (0: skip)")
 	if err := fs.Parse(args); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
