@@ -14,10 +14,14 @@ import (
 // Default names of the message contract. A site may change every one of them
 // through configuration; deploy/ uses these values and a test checks that.
 const (
-	DefaultInputStream    = "FHIR_INPUT"
-	DefaultInputSubjects  = "fhir.input.>" // e.g. fhir.input.lab, fhir.input.device, fhir.input.adt
-	DefaultOutputStream   = "VENTDERIVE"
-	DefaultDurable        = "ventderive"
+	DefaultInputStream   = "FHIR_INPUT"
+	DefaultInputSubjects = "fhir.input.>" // e.g. fhir.input.lab, fhir.input.device, fhir.input.adt
+	DefaultOutputStream  = "VENTDERIVE"
+	DefaultDurable       = "ventderive"
+	// DefaultFreshDurable is the fresh lane's durable consumer
+	// (FreshConsumerConfig): the Durable's name with "-fresh".
+	DefaultFreshDurable   = DefaultDurable + FreshSuffix
+	FreshSuffix           = "-fresh"
 	DefaultObservationSub = "ventderive.observation"
 	DefaultProvenanceSub  = "ventderive.provenance"
 	DefaultDeadLetterSub  = "ventderive.deadletter"
@@ -74,6 +78,17 @@ type Config struct {
 	// FailingAfter is how long the outbox relay or the dead-letter path may
 	// keep failing before readiness reports it ("relay", "dead-letter").
 	FailingAfter time.Duration
+
+	// FreshDurable is the fresh lane's durable consumer ("": Durable
+	// with "-fresh"). The lane records at once an input published while
+	// the replica runs, less than FreshAge old when it is received and
+	// more than FreshLag stream sequences ahead of the main consumer, so
+	// that live input does not wait behind a backlog; it acknowledges
+	// every other input unrecorded (the main consumer records each input
+	// in any case). FreshAge below zero turns the lane off.
+	FreshDurable string
+	FreshAge     time.Duration
+	FreshLag     int
 }
 
 // DefaultConfig returns the defaults documented in the README.
@@ -97,6 +112,8 @@ func DefaultConfig() Config {
 		RelayInterval: 200 * time.Millisecond,
 		StallAfter:    2 * time.Minute,
 		FailingAfter:  time.Minute,
+		FreshAge:      5 * time.Second,
+		FreshLag:      512,
 	}
 }
 
@@ -149,6 +166,38 @@ func ConsumerConfig(c Config) jetstream.ConsumerConfig {
 		Description:   "ventderive: derive CO2-elimination physiology from blood gases and ventilator data",
 		DeliverPolicy: jetstream.DeliverAllPolicy,
 		AckPolicy:     jetstream.AckExplicitPolicy,
+		AckWait:       c.AckWait,
+		MaxDeliver:    c.MaxDeliver,
+		MaxAckPending: c.MaxAckPending,
+		FilterSubject: DefaultInputSubjects,
+		ReplayPolicy:  jetstream.ReplayInstantPolicy,
+	}
+}
+
+// orDurable is the main durable's name, the default when unset.
+func orDurable(d string) string {
+	if d == "" {
+		return DefaultDurable
+	}
+	return d
+}
+
+// FreshConsumerConfig is the fresh lane's durable pull consumer, created
+// or updated beside the main one. It sees every input subject, as the main
+// consumer does, from the moment it is first created (deliver new: a
+// backlog already in the stream is the main consumer's), and acknowledges
+// all up to a message with one ack (ack all): nothing depends on its
+// acknowledgements, since the main consumer records every input.
+func FreshConsumerConfig(c Config) jetstream.ConsumerConfig {
+	durable := c.FreshDurable
+	if durable == "" {
+		durable = orDurable(c.Durable) + FreshSuffix
+	}
+	return jetstream.ConsumerConfig{
+		Durable:       durable,
+		Description:   "ventderive fresh lane: live input recorded ahead of a backlog (the main consumer records every input too)",
+		DeliverPolicy: jetstream.DeliverNewPolicy,
+		AckPolicy:     jetstream.AckAllPolicy,
 		AckWait:       c.AckWait,
 		MaxDeliver:    c.MaxDeliver,
 		MaxAckPending: c.MaxAckPending,

@@ -18,6 +18,9 @@ import (
 //   - nats: the connection's state when not connected;
 //   - postgres: "unreachable" when a round trip fails;
 //   - consumer: "inactive" when the durable consumer is missing or fetches fail;
+//   - fresh: "inactive" when the fresh lane's consumer is missing or its
+//     pulls fail (input is still recorded, but live input waits behind a
+//     backlog); absent when the lane is off;
 //   - intake: input is pending and no message was settled for StallAfter
 //     (a full in-flight limit, a store that refuses every write);
 //   - relay: the outbox relay has failed for longer than FailingAfter
@@ -36,6 +39,9 @@ func (p *Pipeline) Ready(ctx context.Context) map[string]string {
 	}
 	if !p.active.Load() {
 		problems["consumer"] = "inactive"
+	}
+	if p.cfg.FreshAge >= 0 && !p.freshActive.Load() {
+		problems["fresh"] = "inactive: live input waits behind any backlog"
 	}
 	now := p.now()
 	// A message settled since the watchdog's last look ends the stall.

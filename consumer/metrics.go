@@ -35,6 +35,13 @@ type Metrics struct {
 	// LockFallbacks counts group commits that waited out a patient lock
 	// and were recorded message by message.
 	LockFallbacks prometheus.Counter
+	// Fresh counts the fresh lane's messages by outcome: recorded (ahead
+	// of the main consumer), passed (not fresh, or poison: left to the
+	// main consumer), duplicate, failed (left to the main consumer).
+	Fresh *prometheus.CounterVec
+	// FreshActive is 1 while the fresh lane's consumer exists and its
+	// pulls succeed, else 0.
+	FreshActive prometheus.Gauge
 }
 
 // NewMetrics creates the metrics and registers them with reg when it is not nil.
@@ -95,11 +102,18 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		LockFallbacks: prometheus.NewCounter(prometheus.CounterOpts{
 			Name: "ventderive_lock_fallbacks_total", Help: "Group commits that waited out a patient lock (lock_timeout) and were recorded message by message.",
 		}),
+		Fresh: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "ventderive_fresh_inputs_total", Help: "Messages of the fresh lane by outcome (recorded ahead of the main consumer, passed to it, duplicate, failed).",
+		}, []string{"outcome"}),
+		FreshActive: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_fresh_lane_active", Help: "1 while the fresh lane's consumer exists and its pulls succeed, else 0.",
+		}),
 	}
 	if reg != nil {
 		reg.MustRegister(m.Inputs, m.Ignored, m.Derived, m.Retractions, m.Refusals, m.DeadLetters,
 			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls,
-			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.IntakeStalled, m.LockFallbacks)
+			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.IntakeStalled, m.LockFallbacks,
+			m.Fresh, m.FreshActive)
 	}
 	return m
 }

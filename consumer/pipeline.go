@@ -47,8 +47,16 @@ type Pipeline struct {
 
 	mu       sync.Mutex
 	consumer jetstream.Consumer
-	active   atomic.Bool  // the consumer exists and the last fetch did not fail
-	progress atomic.Int64 // messages settled for good (acked or terminated)
+	// fresh is the fresh lane's consumer (nil until created, or after it
+	// was deleted), freshActive whether it exists and its last pull did
+	// not fail, mainSeq the highest stream sequence the main consumer
+	// delivered to this replica and started when Run began (fresh.go).
+	fresh       jetstream.Consumer
+	freshActive atomic.Bool
+	mainSeq     atomic.Uint64
+	started     time.Time
+	active      atomic.Bool  // the consumer exists and the last fetch did not fail
+	progress    atomic.Int64 // messages settled for good (acked or terminated)
 	// dlFailingSince is when the dead-letter path (copy or record) began
 	// to fail, in Unix nanoseconds; 0 while it works.
 	dlFailingSince atomic.Int64
@@ -177,6 +185,9 @@ func (c Config) withDefaults() Config {
 	orDefault(&c.RelayInterval, d.RelayInterval)
 	orDefault(&c.StallAfter, d.StallAfter)
 	orDefault(&c.FailingAfter, d.FailingAfter)
+	orDefault(&c.FreshDurable, c.Durable+FreshSuffix)
+	orDefault(&c.FreshAge, d.FreshAge)
+	orDefault(&c.FreshLag, d.FreshLag)
 	return c
 }
 
@@ -198,12 +209,21 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	if err := p.ensureConsumer(ctx); err != nil {
 		return err
 	}
+	p.started = time.Now()
 	relayCtx, stopRelay := context.WithCancel(context.WithoutCancel(ctx))
 	var wg sync.WaitGroup
 	wg.Go(func() { p.relayLoop(relayCtx) })
 	wg.Go(func() { p.watchdog(ctx) })
+	var fresh sync.WaitGroup
+	if p.cfg.FreshAge >= 0 {
+		// The lane creates its consumer itself: a denied or slow create
+		// must not hold the main consumer back.
+		fresh.Go(func() { p.freshLoop(ctx) })
+	}
 
 	p.fetchLoop(ctx)
+	fresh.Wait()
+	p.setFreshActive(false)
 
 	// Input is settled; publish what it produced before stopping, bounded
 	// so that a dead NATS cannot hold shutdown forever (the outbox keeps
@@ -229,6 +249,7 @@ func (p *Pipeline) ensureConsumer(ctx context.Context) error {
 	p.mu.Lock()
 	p.consumer = c
 	p.mu.Unlock()
+	p.noteMain(c.CachedInfo().Delivered.Stream)
 	p.active.Store(true)
 	return nil
 }
@@ -303,7 +324,7 @@ func (p *Pipeline) process(ctx context.Context, msgs <-chan jetstream.Msg) {
 		wg.Go(func() { p.lane(ctx, bs, lanes[i]) })
 	}
 	for msg := range msgs {
-		if it := p.receive(msg); it != nil {
+		if it := p.receive(msg, true); it != nil {
 			lanes[laneOf(it, len(lanes))] <- it
 		}
 	}
@@ -453,8 +474,9 @@ type inflight struct {
 }
 
 // receive reads a message's metadata, starts its InProgress ticker and
-// decodes it. It returns nil for a message it cannot settle.
-func (p *Pipeline) receive(msg jetstream.Msg) *inflight {
+// decodes it. It returns nil for a message it cannot settle. main says
+// whether the main consumer delivered it.
+func (p *Pipeline) receive(msg jetstream.Msg, main bool) *inflight {
 	start := p.now()
 	meta, err := msg.Metadata()
 	if err != nil {
@@ -462,8 +484,11 @@ func (p *Pipeline) receive(msg jetstream.Msg) *inflight {
 		p.log.Error("message without metadata", "err", err)
 		return nil
 	}
-	if meta.NumDelivered > 1 {
-		p.metrics.Redeliveries.Inc()
+	if main {
+		p.noteMain(meta.Sequence.Stream)
+		if meta.NumDelivered > 1 {
+			p.metrics.Redeliveries.Inc()
+		}
 	}
 	it := &inflight{msg: msg, meta: meta, start: start}
 	// Work that may outlast AckWait tells the server it is alive.
@@ -507,7 +532,7 @@ func (p *Pipeline) planFunc(recorded time.Time) PlanFunc {
 
 // handle processes one message on its own and settles it exactly once.
 func (p *Pipeline) handle(ctx context.Context, msg jetstream.Msg) {
-	it := p.receive(msg)
+	it := p.receive(msg, true)
 	if it == nil {
 		return
 	}

@@ -90,6 +90,7 @@ var (
 	inputStreamFile  = filepath.Join("nats", "streams", "input-stream.json")
 	outputStreamFile = filepath.Join("nats", "streams", "output-stream.json")
 	consumerFile     = filepath.Join("nats", "streams", "consumer.json")
+	freshFile        = filepath.Join("nats", "streams", "fresh-consumer.json")
 )
 
 func loadStreams(t *testing.T) (in, out jetstream.StreamConfig, cons jetstream.ConsumerConfig) {
@@ -100,12 +101,20 @@ func loadStreams(t *testing.T) (in, out jetstream.StreamConfig, cons jetstream.C
 	return in, out, cons
 }
 
+// loadFresh reads (or with -update writes) the fresh lane's consumer.
+func loadFresh(t *testing.T) (fresh jetstream.ConsumerConfig) {
+	t.Helper()
+	strictJSON(t, freshFile, writeOrRead(t, freshFile, indentJSON(t, consumer.FreshConsumerConfig(consumer.DefaultConfig()))), &fresh)
+	return fresh
+}
+
 // TestStreamDefinitions checks that the JSON definitions equal the
 // service's, and that a JetStream server takes them as the same definitions
 // (creating an existing stream or consumer succeeds only when the
 // configuration is identical).
 func TestStreamDefinitions(t *testing.T) {
 	in, out, cons := loadStreams(t)
+	fresh := loadFresh(t)
 	for _, c := range []struct {
 		name      string
 		got, want any
@@ -113,6 +122,7 @@ func TestStreamDefinitions(t *testing.T) {
 		{"input_stream", in, consumer.InputStreamConfig("")},
 		{"output_stream", out, consumer.OutputStreamConfig()},
 		{"durable_consumer", cons, consumer.ConsumerConfig(consumer.DefaultConfig())},
+		{"fresh_consumer", fresh, consumer.FreshConsumerConfig(consumer.DefaultConfig())},
 	} {
 		t.Run(c.name, func(t *testing.T) {
 			if !reflect.DeepEqual(c.got, c.want) {
@@ -147,6 +157,12 @@ func TestStreamDefinitions(t *testing.T) {
 		}
 		if _, err := js.CreateConsumer(ctx, in.Name, consumer.ConsumerConfig(consumer.DefaultConfig())); err != nil {
 			t.Errorf("service consumer differs from the file's on the server: %v", err)
+		}
+		if _, err := js.CreateConsumer(ctx, in.Name, fresh); err != nil {
+			t.Fatalf("create fresh-lane consumer from file: %v", err)
+		}
+		if _, err := js.CreateConsumer(ctx, in.Name, consumer.FreshConsumerConfig(consumer.DefaultConfig())); err != nil {
+			t.Errorf("service fresh-lane consumer differs from the file's on the server: %v", err)
 		}
 	})
 }

@@ -37,6 +37,7 @@ var KnownEnv = []string{
 	"VENTDERIVE_ACK_WAIT",                  // consumer ack wait, Go duration
 	"VENTDERIVE_MAX_ACK_PENDING",           // consumer max ack pending
 	"VENTDERIVE_WORKERS",                   // messages handled at once per replica
+	"VENTDERIVE_FRESH_AGE",                 // fresh lane's age limit, Go duration; negative: off
 }
 
 // SecretEnv are the entries of KnownEnv that carry secrets: deployment files

@@ -39,12 +39,18 @@ const (
 // nats.go's jetstream package uses for what the service does.
 func servicePublish() []string {
 	in, dur, out := consumer.DefaultInputStream, consumer.DefaultDurable, consumer.DefaultOutputStream
+	fresh := consumer.DefaultFreshDurable
 	return []string{
 		fmt.Sprintf("$JS.API.CONSUMER.CREATE.%s.%s", in, dur),   // create or update the durable
 		fmt.Sprintf("$JS.API.CONSUMER.CREATE.%s.%s.>", in, dur), // the same with its filter subject
 		fmt.Sprintf("$JS.API.CONSUMER.INFO.%s.%s", in, dur),     // watchdog
 		fmt.Sprintf("$JS.API.CONSUMER.MSG.NEXT.%s.%s", in, dur), // Fetch
 		fmt.Sprintf("$JS.ACK.%s.%s.>", in, dur),                 // ack, nak, term, in progress
+		fmt.Sprintf("$JS.API.CONSUMER.CREATE.%s.%s", in, fresh), // the fresh lane's durable, likewise
+		fmt.Sprintf("$JS.API.CONSUMER.CREATE.%s.%s.>", in, fresh),
+		fmt.Sprintf("$JS.API.CONSUMER.INFO.%s.%s", in, fresh),
+		fmt.Sprintf("$JS.API.CONSUMER.MSG.NEXT.%s.%s", in, fresh),
+		fmt.Sprintf("$JS.ACK.%s.%s.>", in, fresh),
 		"$JS.API.STREAM.INFO." + in,
 		"$JS.API.STREAM.INFO." + out,
 		consumer.DefaultObservationSub,
@@ -255,6 +261,32 @@ func TestNATSServerConfigEnforced(t *testing.T) {
 	}
 	if _, err := cons.Info(ctx); err != nil {
 		t.Errorf("service reads consumer info: %v", err)
+	}
+	// The fresh lane's consumer (deliver new): created before the next
+	// input, it pulls and acks it.
+	fresh, err := serviceJS.CreateOrUpdateConsumer(ctx, consumer.DefaultInputStream, consumer.FreshConsumerConfig(consumer.DefaultConfig()))
+	if err != nil {
+		t.Fatalf("service creates its fresh-lane consumer: %v", err)
+	}
+	if _, err := gatewayJS.Publish(ctx, "fhir.input.lab", []byte(`{"resourceType":"Observation","id":"2"}`), jetstream.WithMsgID("t-2")); err != nil {
+		t.Fatalf("gateway publishes input: %v", err)
+	}
+	fbatch, err := fresh.Fetch(1, jetstream.FetchMaxWait(2*time.Second))
+	if err != nil {
+		t.Fatalf("service fetches the fresh lane: %v", err)
+	}
+	got = 0
+	for m := range fbatch.Messages() {
+		got++
+		if err := m.DoubleAck(ctx); err != nil {
+			t.Errorf("service acks on the fresh lane: %v", err)
+		}
+	}
+	if got != 1 || fbatch.Error() != nil {
+		t.Fatalf("service fetched %d messages on the fresh lane (%v)", got, fbatch.Error())
+	}
+	if _, err := fresh.Info(ctx); err != nil {
+		t.Errorf("service reads fresh-lane consumer info: %v", err)
 	}
 	for _, name := range []string{consumer.DefaultInputStream, consumer.DefaultOutputStream} {
 		if _, err := serviceJS.Stream(ctx, name); err != nil {

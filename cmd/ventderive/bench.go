@@ -72,6 +72,12 @@ type benchFlags struct {
 	// the history-growth measurement (0 hours: skip it).
 	historyH      int
 	historyCopies int
+	// backlog inputs are in the stream before a replica starts in the
+	// backlog-and-replay measurement (0: skip it).
+	backlog int
+	// freshAge is the replicas' consumer.Config FreshAge (negative: the
+	// fresh lane off, for comparison).
+	freshAge time.Duration
 }
 
 func runBench(ctx context.Context, args []string, e env) error {
@@ -94,6 +100,8 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.BoolVar(&f.stayAnalyze, "stay-analyze", false, "run ANALYZE after storing each long stay, before the measured part (as autovacuum would; default: no statistics, as on a server with autovacuum off)")
 	fs.IntVar(&f.historyH, "history-hours", 0, "hours of simulated history stored before the history-growth measurement, which drains the last --stay-inputs inputs after it and after the admissions alone (0: skip)")
 	fs.IntVar(&f.historyCopies, "history-copies", 4, "copies of the unit (10 patients each) in the history-growth measurement")
+	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative, e.g. -1s: the lane off, for comparison)")
+	fs.IntVar(&f.backlog, "backlog", 100000, "inputs in the stream before one replica starts, drained with a fresh blood gas published during the drain (0: skip)")
 	if err := fs.Parse(args); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
 			return nil
@@ -102,8 +110,8 @@ func runBench(ctx context.Context, args []string, e env) error {
 	}
 	replicas, err := parseCounts(f.replicas)
 	if err != nil || f.inputs < 1 || f.copies < 1 || f.rate <= 0 || f.workers < 1 || f.stayH < 0 || (f.stayH > 0 && f.stayN < 1) ||
-		f.historyH < 0 || (f.historyH > 0 && (f.historyCopies < 1 || f.stayN < 1)) {
-		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers, --stay-inputs, --history-copies must be positive, --stay-hours and --history-hours not negative and --replicas a list of positive counts")
+		f.historyH < 0 || (f.historyH > 0 && (f.historyCopies < 1 || f.stayN < 1)) || f.backlog < 0 {
+		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers, --stay-inputs, --history-copies must be positive, --stay-hours, --history-hours and --backlog not negative and --replicas a list of positive counts")
 		return errUsage
 	}
 	b, err := newBench(ctx, f, e)
@@ -363,6 +371,19 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 		if r.storage != nil {
 			b.reportStorage("the drain of "+r.name, *r.storage)
 		}
+	}
+	if b.f.backlog > 0 {
+		sustained := 0.0
+		for i, n := range replicas {
+			if n == 1 {
+				sustained = rows[i+1].perSec
+			}
+		}
+		r, err := b.backlog(ctx)
+		if err != nil {
+			return fmt.Errorf("backlog: %w", err)
+		}
+		b.reportBacklog(r, sustained)
 	}
 	if b.f.stayH > 0 {
 		if err := b.stays(ctx); err != nil {
@@ -1014,6 +1035,9 @@ func (b *bench) startReplicas(ctx context.Context, url string, n int) ([]*benchR
 	cfg.Window = b.site.Window
 	if b.f.fetch > 0 {
 		cfg.Fetch = b.f.fetch
+	}
+	if b.f.freshAge != 0 {
+		cfg.FreshAge = b.f.freshAge
 	}
 	var rs []*benchReplica
 	for range n {

@@ -31,7 +31,7 @@ func TestBenchSmall(t *testing.T) {
 	defer cancel()
 	err := run(ctx, []string{"bench", "--inputs", "400", "--copies", "1", "--rate", "200", "--paced", "2s",
 		"--replicas", "1", "--patients", "0", "--stay-hours", "6", "--stay-inputs", "300",
-		"--history-hours", "6", "--history-copies", "1", "--dir", t.TempDir()}, e)
+		"--history-hours", "6", "--history-copies", "1", "--backlog", "3000", "--dir", t.TempDir()}, e)
 	if err != nil {
 		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
 	}
@@ -88,6 +88,7 @@ func TestBenchSmall(t *testing.T) {
 		!regexp.MustCompile(`after history/admissions only: PostgreSQL CPU per input (n/a|[0-9.]+).*service CPU per input [0-9.]+`).MatchString(report) {
 		t.Error("no history-growth table with both stores and the ratio line")
 	}
+	checkBenchBacklog(t, report)
 	if !strings.Contains(report, "produced derived Observations") {
 		t.Error("no latency note for the pipeline")
 	}
@@ -221,5 +222,27 @@ func checkBenchStorage(t *testing.T, report string) {
 	}
 	if want := float64(total) / float64(inputs); float64(perInput) < want-1 || float64(perInput) > want+1 {
 		t.Errorf("bytes/input %d, want total/inputs %.1f", perInput, want)
+	}
+}
+
+// checkBenchBacklog checks the backlog-and-replay lines: a drain rate and
+// its ratio to the sustained rate, and a fresh blood gas derived while part
+// of the backlog was still unrecorded (it overtook the backlog: an order,
+// not a time).
+func checkBenchBacklog(t *testing.T, report string) {
+	t.Helper()
+	m := regexp.MustCompile(`Backlog and replay, 1 replica: ([0-9]+) inputs in the stream`).FindStringSubmatch(report)
+	d := regexp.MustCompile(`drain: ([0-9.]+) inputs/s .*drain/sustained: ([0-9.]+)`).FindStringSubmatch(report)
+	f := regexp.MustCompile(`fresh blood gas: publish to its last derived Observation in the output stream ([0-9.]+) ms \(([0-9]+) Observations`).FindStringSubmatch(report)
+	o := regexp.MustCompile(`([0-9]+) of ([0-9]+) backlog inputs recorded when its first Observation was published`).FindStringSubmatch(report)
+	if m == nil || d == nil || f == nil || o == nil {
+		t.Fatal("no backlog-and-replay report")
+	}
+	num := func(s string) float64 { v, _ := strconv.ParseFloat(s, 64); return v }
+	if num(m[1]) != 3000 || num(d[1]) <= 0 || num(d[2]) <= 0 || num(f[1]) <= 0 || num(f[2]) < 1 {
+		t.Errorf("implausible backlog figures: %q %q %q", m[0], d[0], f[0])
+	}
+	if num(o[1]) >= num(o[2]) {
+		t.Errorf("the fresh gas was derived only after the whole backlog (%s): it did not overtake it", o[0])
 	}
 }

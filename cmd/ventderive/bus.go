@@ -16,12 +16,13 @@ import (
 )
 
 func init() {
-	register(command{name: "bus", summary: "check or create the streams and the durable consumer (deploy identity)", run: runBus})
+	register(command{name: "bus", summary: "check or create the streams and the durable consumers (deploy identity)", run: runBus})
 }
 
 // runBus compares the server's input and output streams and the durable
-// consumer with the definitions the service and deploy/nats/streams use
-// (consumer.InputStreamConfig, OutputStreamConfig, ConsumerConfig), prints
+// consumers (the main one and the fresh lane's) with the definitions the service and deploy/nats/streams use
+// (consumer.InputStreamConfig, OutputStreamConfig, ConsumerConfig,
+// FreshConsumerConfig), prints
 // every difference, and with "apply" creates or updates them first. It
 // fails when a difference remains.
 func runBus(ctx context.Context, args []string, e env) error {
@@ -63,7 +64,8 @@ func runBus(ctx context.Context, args []string, e env) error {
 	defer cancel()
 	cfg := consumer.DefaultConfig()
 	streams := []jetstream.StreamConfig{consumer.InputStreamConfig(cfg.InputStream), consumer.OutputStreamConfig()}
-	cc := consumer.ConsumerConfig(cfg)
+	// The main durable and the fresh lane's (consumer.FreshConsumerConfig).
+	consumers := []jetstream.ConsumerConfig{consumer.ConsumerConfig(cfg), consumer.FreshConsumerConfig(cfg)}
 	if fs.Arg(0) == "apply" {
 		for _, sc := range streams {
 			if _, err := js.CreateOrUpdateStream(ctx, sc); err != nil {
@@ -71,20 +73,24 @@ func runBus(ctx context.Context, args []string, e env) error {
 			}
 			fmt.Fprintf(e.stdout, "stream %s: created or updated\n", sc.Name)
 		}
-		if _, err := js.CreateOrUpdateConsumer(ctx, cfg.InputStream, cc); err != nil {
-			return fmt.Errorf("consumer %s: %w", cc.Durable, err)
+		for _, cc := range consumers {
+			if _, err := js.CreateOrUpdateConsumer(ctx, cfg.InputStream, cc); err != nil {
+				return fmt.Errorf("consumer %s: %w", cc.Durable, err)
+			}
+			fmt.Fprintf(e.stdout, "consumer %s on %s: created or updated\n", cc.Durable, cfg.InputStream)
 		}
-		fmt.Fprintf(e.stdout, "consumer %s on %s: created or updated\n", cc.Durable, cfg.InputStream)
 	}
 	diffs := 0
 	for _, want := range streams {
 		diffs += checkStream(ctx, js, want, e.stdout)
 	}
-	diffs += checkConsumer(ctx, js, cfg.InputStream, cc, e.stdout)
+	for _, cc := range consumers {
+		diffs += checkConsumer(ctx, js, cfg.InputStream, cc, e.stdout)
+	}
 	if diffs > 0 {
 		return fmt.Errorf("%d differences from the service's definitions (run 'ventderive bus apply' as the deploy identity)", diffs)
 	}
-	fmt.Fprintln(e.stdout, "streams and consumer match the service's definitions")
+	fmt.Fprintln(e.stdout, "streams and consumers match the service's definitions")
 	return nil
 }
 

@@ -13,7 +13,8 @@ import (
 )
 
 // bus check reports what is missing or different; bus apply creates the
-// streams and consumer from the service's definitions.
+// streams and both consumers (main and fresh lane) from the service's
+// definitions.
 func TestBusCheckAndApply(t *testing.T) {
 	ns, err := startEmbeddedNATS(t.TempDir())
 	if err != nil {
@@ -27,7 +28,8 @@ func TestBusCheckAndApply(t *testing.T) {
 		return out.String(), err
 	}
 	out, err := bus("check")
-	if err == nil || !strings.Contains(out, "stream "+consumer.DefaultInputStream) || !strings.Contains(out, "consumer "+consumer.DefaultDurable) {
+	if err == nil || !strings.Contains(out, "stream "+consumer.DefaultInputStream) || !strings.Contains(out, "consumer "+consumer.DefaultDurable+" ") ||
+		!strings.Contains(out, "consumer "+consumer.DefaultFreshDurable+" ") {
 		t.Fatalf("check on an empty server: %v\n%s", err, out)
 	}
 	if out, err := bus("apply"); err != nil || !strings.Contains(out, "match") {
@@ -51,5 +53,19 @@ func TestBusCheckAndApply(t *testing.T) {
 	out, err = bus("check")
 	if err == nil || !strings.Contains(out, "stream "+consumer.DefaultOutputStream+": max_age is 1h0m0s, want 720h0m0s") {
 		t.Fatalf("check after a change by hand: %v\n%s", err, out)
+	}
+	if _, err := js.UpdateStream(context.Background(), consumer.OutputStreamConfig()); err != nil {
+		t.Fatal(err)
+	}
+	// Someone deletes the fresh lane's consumer.
+	if err := js.DeleteConsumer(context.Background(), consumer.DefaultInputStream, consumer.DefaultFreshDurable); err != nil {
+		t.Fatal(err)
+	}
+	out, err = bus("check")
+	if err == nil || !strings.Contains(out, "consumer "+consumer.DefaultFreshDurable+" on "+consumer.DefaultInputStream) || strings.Contains(out, "stream ") {
+		t.Fatalf("check after the fresh consumer was deleted: %v\n%s", err, out)
+	}
+	if out, err := bus("apply"); err != nil || !strings.Contains(out, "consumer "+consumer.DefaultFreshDurable+" on "+consumer.DefaultInputStream+": created or updated") {
+		t.Fatalf("apply again: %v\n%s", err, out)
 	}
 }

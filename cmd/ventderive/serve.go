@@ -208,6 +208,7 @@ func bindServe(fs *flag.FlagSet, getenv func(string) string, c *serveConfig) (*s
 		s.dur(&c.pipeline.AckWait, "ack-wait", d.AckWait, "consumer ack wait: how long before a dead replica's messages go to another"),
 		s.integer(&c.pipeline.MaxAckPending, "max-ack-pending", d.MaxAckPending, "consumer max ack pending"),
 		s.integer(&c.workers, "workers", 4, "messages handled at once per replica"),
+		s.dur(&c.pipeline.FreshAge, "fresh-age", d.FreshAge, "fresh lane: input published while the replica runs and younger than this is recorded ahead of a backlog the main consumer drains (consumer <durable>-fresh); negative (e.g. -1s): off"),
 	)
 	fs.BoolVar(&c.migrate, "migrate", false, "apply database migrations before starting (needs the owner role)")
 	return s, errors.Join(errs...)
