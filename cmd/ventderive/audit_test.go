@@ -338,10 +338,7 @@ func TestAuditGolden(t *testing.T) {
 
 	key := patA + "|Observation/abg-a1|deadspace-fraction-vco2"
 	obsID := uuid.NewSHA1(uuid.NameSpaceURL, []byte(patA+"|Observation/abg-a2|paco2-petco2-gradient")).String()
-	questions := []struct {
-		name string
-		args []string
-	}{
+	questions := []goldenQuestion{
 		{"show-key", []string{"show", key}},
 		{"show-retracted-by-id", []string{"show", obsID}},
 		{"show-patient-level-inputs", []string{"show", patA + "|Observation/abg-a1|paco2-predicted"}},
@@ -373,25 +370,7 @@ func TestAuditGolden(t *testing.T) {
 		// snapshots: nothing to re-derive with this build, and it says so.
 		{"verify-older-algorithm-page", []string{"verify", "--limit", "5"}},
 	}
-	for _, q := range questions {
-		for _, format := range []string{"table", "json", "csv"} {
-			name := q.name + "." + format
-			t.Run(name, func(t *testing.T) {
-				var stdout, stderr bytes.Buffer
-				args := append(append([]string{"audit"}, q.args...), "--format", format)
-				e := env{getenv: func(k string) string {
-					if k == "DATABASE_URL" {
-						return ru
-					}
-					return ""
-				}, stdout: &stdout, stderr: &stderr}
-				if err := run(ctx, args, e); err != nil {
-					t.Fatalf("ventderive %s: %v\n%s", strings.Join(args, " "), err, stderr.String())
-				}
-				checkAuditGolden(t, name, stdout.Bytes())
-			})
-		}
-	}
+	runAuditGoldens(ctx, t, ru, "", questions)
 }
 
 func checkAuditGolden(t *testing.T, name string, got []byte) {
@@ -755,5 +734,37 @@ func TestMigrateCommand(t *testing.T) {
 	var n int
 	if err := conn.QueryRow(ctx, "SELECT count(*) FROM schema_version").Scan(&n); err != nil || n != len(files) {
 		t.Errorf("schema_version rows = %d, %v; want %d", n, err, len(files))
+	}
+}
+
+// goldenQuestion is one audit question of a golden test: its name (the
+// golden file's stem) and its arguments after "audit".
+type goldenQuestion struct {
+	name string
+	args []string
+}
+
+// runAuditGoldens asks every question in every format against the store at
+// ru and compares each output with testdata/audit/<prefix><name>.<format>.
+func runAuditGoldens(ctx context.Context, t *testing.T, ru, prefix string, questions []goldenQuestion) {
+	t.Helper()
+	for _, q := range questions {
+		for _, format := range []string{"table", "json", "csv"} {
+			name := q.name + "." + format
+			t.Run(name, func(t *testing.T) {
+				var stdout, stderr bytes.Buffer
+				args := append(append([]string{"audit"}, q.args...), "--format", format)
+				e := env{getenv: func(k string) string {
+					if k == "DATABASE_URL" {
+						return ru
+					}
+					return ""
+				}, stdout: &stdout, stderr: &stderr}
+				if err := run(ctx, args, e); err != nil {
+					t.Fatalf("ventderive %s: %v\n%s", strings.Join(args, " "), err, stderr.String())
+				}
+				checkAuditGolden(t, prefix+name, stdout.Bytes())
+			})
+		}
 	}
 }

@@ -220,10 +220,7 @@ func TestAuditVerifyReplay(t *testing.T) {
 		t.Fatal(err)
 	}
 	snapDigest := snap.Digest
-	questions := []struct {
-		name string
-		args []string
-	}{
+	questions := []goldenQuestion{
 		{"settings-latest", []string{"settings"}},
 		{"settings-by-digest", []string{"settings", snapDigest}},
 		{"verify", []string{"verify"}},
@@ -235,25 +232,7 @@ func TestAuditVerifyReplay(t *testing.T) {
 		{"replay-page", []string{"replay", "--algorithm", "current", "--from", "2026-03-01", "--to", "2026-03-02", "--site", `{"TargetPaCO2mmHg":40}`, "--limit", "1", "--offset", "1"}},
 		{"replay-unchanged", []string{"replay", "--algorithm", "current", "--from", "2026-03-01", "--to", "2026-03-02", "--kind", fhirmap.KindPredictedPaCO2}},
 	}
-	for _, q := range questions {
-		for _, format := range []string{"table", "json", "csv"} {
-			name := q.name + "." + format
-			t.Run(name, func(t *testing.T) {
-				var stdout, stderr bytes.Buffer
-				args := append(append([]string{"audit"}, q.args...), "--format", format)
-				e := env{getenv: func(k string) string {
-					if k == "DATABASE_URL" {
-						return ru
-					}
-					return ""
-				}, stdout: &stdout, stderr: &stderr}
-				if err := run(ctx, args, e); err != nil {
-					t.Fatalf("ventderive %s: %v\n%s", strings.Join(args, " "), err, stderr.String())
-				}
-				checkAuditGolden(t, "verify/"+name, stdout.Bytes())
-			})
-		}
-	}
+	runAuditGoldens(ctx, t, ru, "verify/", questions)
 
 	// Refusals that become values and the reverse: without an apparatus
 	// dead space the predicted PaCO2 and its discrepancy are refused (never
