@@ -60,39 +60,14 @@ func TestCircuitDeadSpaceArrivalOrder(t *testing.T) {
 	}
 	base := generate(genOpts{patients: 1, gases: 2})
 	circuit := circuitMsg(0, 100, genStart.Add(-2*time.Hour))
-	var states []map[string]headState
-	for _, msgs := range [][]testMsg{append([]testMsg{circuit}, base...), append(append([]testMsg(nil), base...), circuit)} {
-		h := newHarness(t)
-		h.codes = codes
-		h.startReplica(nil)
-		for _, m := range msgs {
-			h.publish([]testMsg{m})
-			h.waitSettled(30 * time.Second)
-		}
-		h.reconcile(msgs)
-		states = append(states, h.heads())
-	}
-	for k, a := range states[0] {
-		b := states[1][k]
-		if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
-			t.Errorf("%s: %+v vs %+v", k, a, b)
-		}
-	}
+	states := statesInEachOrder(t, [][]testMsg{append([]testMsg{circuit}, base...), append(append([]testMsg(nil), base...), circuit)},
+		func(h *harness) { h.codes = codes })
 	pbw := 50 + 0.91*(175-152.4)
 	// Default anatomic model, tracheal tube: 0.43 mL per lb PBW (Nunn,
 	// Campbell & Peckett, J Appl Physiol 1959;14:174-6 [published]).
 	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 0.43/0.45359237*pbw - 100) * 20 / 1000)
-	found := false
-	for k, s := range states[0] {
-		if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindPredictedPaCO2) {
-			found = true
-			if s.refused || math.Abs(s.value-want) > 1e-6 {
-				t.Errorf("predicted PaCO2 %+v, want %.3f mmHg", s, want)
-			}
-		}
-	}
-	if !found {
-		t.Error("no predicted PaCO2 of the first blood gas")
+	if s, ok := firstGasHead(t, states[0], fhirmap.KindPredictedPaCO2); ok && (s.refused || math.Abs(s.value-want) > 1e-6) {
+		t.Errorf("predicted PaCO2 %+v, want %.3f mmHg", s, want)
 	}
 }
 
@@ -124,35 +99,9 @@ func TestGoalArrivalOrder(t *testing.T) {
 		}, 22.5},
 	} {
 		t.Run(c.name, func(t *testing.T) {
-			var states []map[string]headState
-			for _, msgs := range c.orders {
-				h := newHarness(t)
-				h.site.TargetPaCO2mmHg = 40
-				h.startReplica(nil)
-				for _, m := range msgs { // one at a time: the order is the test
-					h.publish([]testMsg{m})
-					h.waitSettled(30 * time.Second)
-				}
-				h.reconcile(msgs)
-				states = append(states, h.heads())
-			}
-			for k, a := range states[0] {
-				b := states[1][k]
-				if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
-					t.Errorf("%s: %+v vs %+v", k, a, b)
-				}
-			}
-			found := false
-			for k, s := range states[0] {
-				if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindRateForTarget) {
-					found = true
-					if s.refused || math.Abs(s.value-c.wantRR) > 1e-9 {
-						t.Errorf("rate for target %+v, want %v /min", s, c.wantRR)
-					}
-				}
-			}
-			if !found {
-				t.Error("no rate for target of the first blood gas")
+			states := statesInEachOrder(t, c.orders, func(h *harness) { h.site.TargetPaCO2mmHg = 40 })
+			if s, ok := firstGasHead(t, states[0], fhirmap.KindRateForTarget); ok && (s.refused || math.Abs(s.value-c.wantRR) > 1e-9) {
+				t.Errorf("rate for target %+v, want %v /min", s, c.wantRR)
 			}
 		})
 	}
@@ -197,16 +146,32 @@ func TestAirwayArrivalOrder(t *testing.T) {
 	base := generate(genOpts{patients: 1, gases: 2})
 	tube := airwayMsg(0, "airway-tube", true, genStart.Add(-5*time.Hour))
 	mask := airwayMsg(0, "airway-mask", false, genStart.Add(-2*time.Hour))
-	var states []map[string]headState
-	for _, msgs := range [][]testMsg{
+	states := statesInEachOrder(t, [][]testMsg{
 		append([]testMsg{tube, mask}, base...),
 		append(append([]testMsg(nil), base...), mask, tube),
-	} {
-		h := newHarness(t)
+	}, func(h *harness) {
 		h.codes = codes
 		if h.site.AnatomicDeadSpace != physio.AnatomicArtificialAirway || h.site.ApparatusDeadSpaceML != 50 {
 			t.Fatalf("harness site %v, %v mL: the expected value assumes the artificial-airway model and 50 mL", h.site.AnatomicDeadSpace, h.site.ApparatusDeadSpaceML)
 		}
+	})
+	pbw := 50 + 0.91*(175-152.4)
+	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 2.2*pbw - 50) * 20 / 1000)
+	if s, ok := firstGasHead(t, states[0], fhirmap.KindPredictedPaCO2); ok && (s.refused || math.Abs(s.value-want) > 1e-6 || math.Abs(s.value-29.28) > 0.005) {
+		t.Errorf("predicted PaCO2 %+v, want %.3f mmHg", s, want)
+	}
+}
+
+// statesInEachOrder publishes each order of messages, one at a time (the
+// order is the test), to a fresh harness prepared by setup, reconciles it,
+// and fails unless every order ends in the same heads; it returns the heads
+// of each order.
+func statesInEachOrder(t *testing.T, orders [][]testMsg, setup func(*harness)) []map[string]headState {
+	t.Helper()
+	var states []map[string]headState
+	for _, msgs := range orders {
+		h := newHarness(t)
+		setup(h)
 		h.startReplica(nil)
 		for _, m := range msgs {
 			h.publish([]testMsg{m})
@@ -215,24 +180,29 @@ func TestAirwayArrivalOrder(t *testing.T) {
 		h.reconcile(msgs)
 		states = append(states, h.heads())
 	}
-	for k, a := range states[0] {
-		b := states[1][k]
-		if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
-			t.Errorf("%s: %+v vs %+v", k, a, b)
+	for _, other := range states[1:] {
+		if len(other) != len(states[0]) {
+			t.Errorf("%d heads in one order, %d in another", len(states[0]), len(other))
 		}
-	}
-	pbw := 50 + 0.91*(175-152.4)
-	want := 0.760 * (273 + 37) / 273 * 200 / ((500 - 2.2*pbw - 50) * 20 / 1000)
-	found := false
-	for k, s := range states[0] {
-		if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+fhirmap.KindPredictedPaCO2) {
-			found = true
-			if s.refused || math.Abs(s.value-want) > 1e-6 || math.Abs(s.value-29.28) > 0.005 {
-				t.Errorf("predicted PaCO2 %+v, want %.3f mmHg", s, want)
+		for k, a := range states[0] {
+			b := other[k]
+			if a.refused != b.refused || a.reason != b.reason || math.Abs(a.value-b.value) > 1e-12 {
+				t.Errorf("%s: %+v vs %+v", k, a, b)
 			}
 		}
 	}
-	if !found {
-		t.Error("no predicted PaCO2 of the first blood gas")
+	return states
+}
+
+// firstGasHead returns the head of kind for patient 0's first blood gas,
+// failing the test when there is none.
+func firstGasHead(t *testing.T, heads map[string]headState, kind string) (headState, bool) {
+	t.Helper()
+	for k, s := range heads {
+		if strings.Contains(k, "|Observation/"+gasID(0, 0)+"|") && strings.HasSuffix(k, "|"+kind) {
+			return s, true
+		}
 	}
+	t.Errorf("no %s of the first blood gas", kind)
+	return headState{}, false
 }
