@@ -149,11 +149,8 @@ func runAudit(ctx context.Context, args []string, e env) error {
 	// Flags may follow the positional argument of show.
 	var positional []string
 	for {
-		if err := fs.Parse(args); err != nil {
-			if errors.Is(err, flag.ErrHelp) {
-				return nil
-			}
-			return errUsage
+		if done, err := parseFlags(fs, args); done {
+			return err
 		}
 		if fs.NArg() == 0 {
 			break

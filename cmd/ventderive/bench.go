@@ -102,11 +102,8 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.IntVar(&f.historyCopies, "history-copies", 4, "copies of the unit (10 patients each) in the history-growth measurement")
 	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative, e.g. -1s: the lane off, for comparison)")
 	fs.IntVar(&f.backlog, "backlog", 100000, "inputs in the stream before one replica starts, drained with a fresh blood gas published during the drain (0: skip)")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return nil
-		}
-		return errUsage
+	if done, err := parseFlags(fs, args); done {
+		return err
 	}
 	replicas, err := parseCounts(f.replicas)
 	if err != nil || f.inputs < 1 || f.copies < 1 || f.rate <= 0 || f.workers < 1 || f.stayH < 0 || (f.stayH > 0 && f.stayN < 1) ||

@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"errors"
 	"flag"
 	"fmt"
 	"io"
@@ -34,11 +33,8 @@ func runBus(ctx context.Context, args []string, e env) error {
 		fmt.Fprintln(e.stderr, "usage: ventderive bus [flags] check|apply")
 		fs.PrintDefaults()
 	}
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return nil
-		}
-		return errUsage
+	if done, err := parseFlags(fs, args); done {
+		return err
 	}
 	if fs.NArg() != 1 || (fs.Arg(0) != "check" && fs.Arg(0) != "apply") {
 		fs.Usage()

@@ -54,11 +54,8 @@ func runDemo(ctx context.Context, args []string, e env) error {
 	fs.BoolVar(&f.check, "check", false, "exit non-zero unless every story behaves as expected and no message is lost (CI smoke test)")
 	fs.StringVar(&f.dir, "dir", "", "working directory for the embedded NATS store, logs and the throwaway cluster (default: a new temporary directory)")
 	fs.StringVar(&f.cpuprof, "cpuprofile", "", "write a CPU profile of the whole demo to this file (for performance work)")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return nil
-		}
-		return errUsage
+	if done, err := parseFlags(fs, args); done {
+		return err
 	}
 	if f.cpuprof != "" {
 		pf, err := os.Create(f.cpuprof)

@@ -5,6 +5,7 @@ package main
 import (
 	"context"
 	"errors"
+	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -23,6 +24,19 @@ type env struct {
 
 // errUsage marks a command-line mistake: exit status 2.
 var errUsage = errors.New("usage")
+
+// parseFlags parses a command's flags. done says the command ends here:
+// with err nil after -h or --help (the flag package printed the usage), or
+// with errUsage after a malformed flag (the flag package named it).
+func parseFlags(fs *flag.FlagSet, args []string) (done bool, err error) {
+	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return true, nil
+		}
+		return true, errUsage
+	}
+	return false, nil
+}
 
 type command struct {
 	name    string

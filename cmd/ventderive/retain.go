@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"errors"
 	"flag"
 	"fmt"
 	"time"
@@ -30,11 +29,8 @@ func runRetain(ctx context.Context, args []string, e env) error {
 		fmt.Fprintln(e.stderr, "usage: ventderive retain [--horizon D] [--as-of T] [--apply] [--database-url URL]")
 		fs.PrintDefaults()
 	}
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return nil
-		}
-		return errUsage
+	if done, err := parseFlags(fs, args); done {
+		return err
 	}
 	if fs.NArg() != 0 || *dbURL == "" {
 		fs.Usage()

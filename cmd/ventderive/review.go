@@ -57,11 +57,8 @@ func runReview(ctx context.Context, args []string, e env) error {
 	fs.StringVar(&c.proxyHeader, "proxy-header", "", "header a trusted reverse proxy sets to the authenticated user")
 	fs.StringVar(&proxies, "trusted-proxy", "", "comma-separated addresses or CIDRs of the trusted reverse proxies")
 	fs.StringVar(&c.user, "user", "reviewer", "built-in credential user (password from $VENTDERIVE_REVIEW_PASSWORD)")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return nil
-		}
-		return errUsage
+	if done, err := parseFlags(fs, args); done {
+		return err
 	}
 	usageErr := func(msg string) error {
 		fmt.Fprintf(e.stderr, "ventderive review: %s\n", msg)
