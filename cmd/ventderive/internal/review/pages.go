@@ -123,7 +123,11 @@ func writeCSV(w http.ResponseWriter, t *Table) {
 		_ = cw.Write(rec)
 	}
 	if t.More != "" {
-		_ = cw.Write([]string{"# more rows: " + t.More})
+		// A record of the table's width, so that a CSV reader that checks
+		// the field count still reads the file.
+		more := make([]string, max(len(t.Columns), 1))
+		more[0] = "# more rows: " + t.More
+		_ = cw.Write(more)
 	}
 	cw.Flush()
 }
@@ -169,8 +173,14 @@ func period(q url.Values) (from, to time.Time, err error) {
 	return
 }
 
+// pageArgs reads limit and offset: 200 rows a page by default, and for a
+// CSV export as many as one question may return (postgres.MaxLimit), so an
+// export holds the whole table unless it is larger than that.
 func pageArgs(q url.Values) (limit, offset int, err error) {
 	limit, offset = 200, 0
+	if q.Get("format") == "csv" {
+		limit = postgres.MaxLimit
+	}
 	if v := q.Get("limit"); v != "" {
 		if limit, err = strconv.Atoi(v); err != nil || limit < 1 || limit > postgres.MaxLimit {
 			return 0, 0, fmt.Errorf("limit: want 1 to %d", postgres.MaxLimit)

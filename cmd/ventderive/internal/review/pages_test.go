@@ -1,9 +1,14 @@
 package review
 
 import (
+	"encoding/csv"
+	"net/http/httptest"
 	"net/url"
+	"strings"
 	"testing"
 	"time"
+
+	"github.com/ventderive/ventderive/consumer/postgres"
 )
 
 func TestPeriod(t *testing.T) {
@@ -45,5 +50,30 @@ func TestDisplayUnit(t *testing.T) {
 		if got := displayUnit(ucum); got != want {
 			t.Errorf("displayUnit(%q) = %q, want %q", ucum, got, want)
 		}
+	}
+}
+
+// TestCSVExportWholeAndReadable: a CSV export asks for every row one
+// question may return (not the 200 of a page), and the "more rows" notice,
+// when a table is larger still, is a record of the table's width, so that
+// a reader that checks the field count (RFC 4180, encoding/csv's default)
+// reads the whole file.
+func TestCSVExportWholeAndReadable(t *testing.T) {
+	if limit, _, err := pageArgs(url.Values{"format": {"csv"}}); err != nil || limit != postgres.MaxLimit {
+		t.Errorf("CSV export limit %d (%v), want %d", limit, err, postgres.MaxLimit)
+	}
+	if limit, _, err := pageArgs(url.Values{}); err != nil || limit != 200 {
+		t.Errorf("page limit %d (%v), want 200", limit, err)
+	}
+	tb := &Table{ID: "changes", Columns: []string{"a", "b", "c"}, More: "/quality/changes?offset=2"}
+	tb.add(Cell{Text: "1"}, Cell{Text: "2"}, Cell{Text: "3"})
+	rec := httptest.NewRecorder()
+	writeCSV(rec, tb)
+	recs, err := csv.NewReader(strings.NewReader(rec.Body.String())).ReadAll()
+	if err != nil {
+		t.Fatalf("the CSV with a more-rows notice does not read: %v\n%s", err, rec.Body.String())
+	}
+	if len(recs) != 3 || !strings.HasPrefix(recs[2][0], "# more rows: ") {
+		t.Errorf("records %q, want header, row and the notice", recs)
 	}
 }
