@@ -327,6 +327,7 @@ type benchRow struct {
 	ratio       float64
 	latencyNote string
 	storage     *storageReport // the store after the drain (pipeline runs)
+	replicas    int            // pipeline runs: the replica count (0: the floor)
 }
 
 func (b *bench) run(ctx context.Context, replicas []int) error {
@@ -368,6 +369,10 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 		if r.storage != nil {
 			b.reportStorage("the drain of "+r.name, *r.storage)
 		}
+	}
+	fmt.Fprintf(b.out, "\nTargets of the throughput and storage work, from the runs above (%d CPUs, GOMAXPROCS %d):\n", runtime.NumCPU(), runtime.GOMAXPROCS(0))
+	for _, l := range targetVerdicts(rows, b.f.rate) {
+		fmt.Fprintln(b.out, "  "+l)
 	}
 	if b.f.backlog > 0 {
 		sustained := 0.0
@@ -418,6 +423,71 @@ func (b *bench) report(rows []benchRow, parts []string) {
 		fmt.Fprintf(b.out, "  %s: %s\n", r.name, r.latencyNote)
 	}
 	fmt.Fprintln(b.out, "CPU us/input counts this process (service code and the embedded NATS server); PostgreSQL CPU is the local server's processes (0: not on this machine); machine CPU is every process, other work included. Peak RSS is this process's VmHWM during the run (embedded NATS server and the generated messages included).")
+}
+
+// Targets of the throughput and storage work (README "Performance").
+const (
+	targetFloorRatio    = 0.5
+	targetP99           = 100 * time.Millisecond
+	targetP99Rate       = 500.0
+	targetBytesPerInput = 1536.0
+)
+
+// targetVerdicts states, for each target the runs measured, the figure, the
+// target and whether it was met (and by how much it missed): the pipeline's
+// ratio to the floor and its paced p99 (one replica), bytes per input
+// recorded after the drain, and the inputs/s of every replica count
+// relative to one replica (on two cores they compete for the same cores and
+// must be no slower; on more cores they must scale).
+func targetVerdicts(rows []benchRow, rate float64) []string {
+	verdict := func(met bool) string {
+		if met {
+			return "met"
+		}
+		return "MISSED"
+	}
+	var out []string
+	var one *benchRow
+	for i := range rows {
+		if rows[i].replicas == 1 {
+			one = &rows[i]
+		}
+	}
+	if one == nil {
+		return []string{"no one-replica pipeline run: pass 1 in --replicas to judge the targets"}
+	}
+	out = append(out, fmt.Sprintf("pipeline/floor with one replica: %.2f (target at least %.1f): %s, %.1fx short",
+		one.ratio, targetFloorRatio, verdict(one.ratio >= targetFloorRatio), targetFloorRatio/max(one.ratio, 1e-9)))
+	if one.ratio >= targetFloorRatio {
+		out[len(out)-1] = fmt.Sprintf("pipeline/floor with one replica: %.2f (target at least %.1f): met", one.ratio, targetFloorRatio)
+	}
+	p99 := fmt.Sprintf("p99 input to derived output with one replica: %.1f ms from %d samples at %g inputs/s (target under %.0f ms at %g/s): %s",
+		ms(one.p99), one.latencyN, rate, ms(targetP99), targetP99Rate, verdict(one.p99 < targetP99))
+	if rate != targetP99Rate {
+		p99 += fmt.Sprintf(" (paced at %g/s, not the target's rate: run with --rate %g to judge it)", rate, targetP99Rate)
+	}
+	out = append(out, p99)
+	if one.storage != nil {
+		b := one.storage.perInput(one.storage.total)
+		l := fmt.Sprintf("bytes per input recorded: %.0f (target at most %.0f): %s", b, targetBytesPerInput, verdict(b <= targetBytesPerInput))
+		if b > targetBytesPerInput {
+			l += fmt.Sprintf(", %.1fx over", b/targetBytesPerInput)
+		}
+		out = append(out, l)
+	}
+	for _, r := range rows {
+		if r.replicas > 1 && one.perSec > 0 {
+			s := r.perSec / one.perSec
+			l := fmt.Sprintf("%d replicas: %.0f inputs/s, %.2fx one replica", r.replicas, r.perSec, s)
+			if runtime.NumCPU() <= 2 {
+				l += fmt.Sprintf(" (target on %d cores: no slower than one): %s", runtime.NumCPU(), verdict(s >= 1))
+			} else {
+				l += fmt.Sprintf(" (on %d cores; ideal scaling %dx while PostgreSQL has cores to spare)", runtime.NumCPU(), r.replicas)
+			}
+			out = append(out, l)
+		}
+	}
+	return out
 }
 
 func ms(d time.Duration) float64 { return float64(d) / float64(time.Millisecond) }
@@ -1084,7 +1154,7 @@ func stopReplicas(rs []*benchReplica) error {
 // paced with latency from input publish to the derived Observation's
 // acknowledgement by the output stream.
 func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
-	row := benchRow{name: fmt.Sprintf("pipeline, %d replica(s)", n)}
+	row := benchRow{name: fmt.Sprintf("pipeline, %d replica(s)", n), replicas: n}
 	url, pool, err := b.freshRun(ctx)
 	if err != nil {
 		return row, err

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"regexp"
+	"runtime"
 	"strconv"
 	"strings"
 	"testing"
@@ -89,6 +90,11 @@ func TestBenchSmall(t *testing.T) {
 		t.Error("no history-growth table with both stores and the ratio line")
 	}
 	checkBenchBacklog(t, report)
+	if !regexp.MustCompile(`pipeline/floor with one replica: [0-9.]+ \(target at least 0\.5\): (met|MISSED)`).MatchString(report) ||
+		!regexp.MustCompile(`bytes per input recorded: [1-9][0-9]* \(target at most 1536\): (met|MISSED)`).MatchString(report) ||
+		!strings.Contains(report, "run with --rate 500 to judge it") {
+		t.Error("no targets block judging the one-replica run (ratio, bytes per input, p99 at a rate other than the target's)")
+	}
 	if !strings.Contains(report, "produced derived Observations") {
 		t.Error("no latency note for the pipeline")
 	}
@@ -244,5 +250,47 @@ func checkBenchBacklog(t *testing.T, report string) {
 	}
 	if num(o[1]) >= num(o[2]) {
 		t.Errorf("the fresh gas was derived only after the whole backlog (%s): it did not overtake it", o[0])
+	}
+}
+
+// TestTargetVerdicts checks the targets line by line against the issue's
+// figures (pipeline at least 0.5 of the floor, p99 under 100 ms at 500
+// inputs/s, at most 1.5 KB per input, two replicas no slower than one on
+// two cores): just under and just over each bound.
+func TestTargetVerdicts(t *testing.T) {
+	store := &storageReport{inputs: 1000, total: 1536 * 1000}
+	rows := []benchRow{
+		{name: "floor", perSec: 10000},
+		{name: "one", replicas: 1, perSec: 5000, ratio: 0.5, p99: 99 * time.Millisecond, latencyN: 16, storage: store},
+		{name: "two", replicas: 2, perSec: 4900, ratio: 0.49},
+	}
+	got := strings.Join(targetVerdicts(rows, 500), "\n")
+	for _, want := range []string{
+		"pipeline/floor with one replica: 0.50 (target at least 0.5): met",
+		"p99 input to derived output with one replica: 99.0 ms from 16 samples at 500 inputs/s (target under 100 ms at 500/s): met",
+		"bytes per input recorded: 1536 (target at most 1536): met",
+		"2 replicas: 4900 inputs/s, 0.98x one replica",
+	} {
+		if !strings.Contains(got, want) {
+			t.Errorf("verdicts lack %q:\n%s", want, got)
+		}
+	}
+	if runtime.NumCPU() <= 2 && !strings.Contains(got, "no slower than one): MISSED") {
+		t.Errorf("two replicas at 0.98x on %d cores not judged missed:\n%s", runtime.NumCPU(), got)
+	}
+
+	rows[1].ratio, rows[1].p99, store.total = 0.1, 100*time.Millisecond, 5120*1000
+	got = strings.Join(targetVerdicts(rows, 200), "\n")
+	for _, want := range []string{
+		"(target at least 0.5): MISSED, 5.0x short",
+		"(target under 100 ms at 500/s): MISSED (paced at 200/s, not the target's rate: run with --rate 500 to judge it)",
+		"bytes per input recorded: 5120 (target at most 1536): MISSED, 3.3x over",
+	} {
+		if !strings.Contains(got, want) {
+			t.Errorf("verdicts lack %q:\n%s", want, got)
+		}
+	}
+	if got := targetVerdicts(rows[:1], 500); len(got) != 1 || !strings.Contains(got[0], "no one-replica pipeline run") {
+		t.Errorf("without a one-replica run: %q", got)
 	}
 }
