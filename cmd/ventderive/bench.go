@@ -461,10 +461,12 @@ func targetVerdicts(rows []benchRow, rate float64) []string {
 	if one.ratio >= targetFloorRatio {
 		out[len(out)-1] = fmt.Sprintf("pipeline/floor with one replica: %.2f (target at least %.1f): met", one.ratio, targetFloorRatio)
 	}
-	p99 := fmt.Sprintf("p99 input to derived output with one replica: %.1f ms from %d samples at %g inputs/s (target under %.0f ms at %g/s): %s",
-		ms(one.p99), one.latencyN, rate, ms(targetP99), targetP99Rate, verdict(one.p99 < targetP99))
+	p99 := fmt.Sprintf("p99 input to derived output with one replica: %.1f ms from %d samples at %g inputs/s (target under %.0f ms at %g/s): ",
+		ms(one.p99), one.latencyN, rate, ms(targetP99), targetP99Rate)
 	if rate != targetP99Rate {
-		p99 += fmt.Sprintf(" (paced at %g/s, not the target's rate: run with --rate %g to judge it)", rate, targetP99Rate)
+		p99 += fmt.Sprintf("not judged (paced at %g/s, not the target's rate: run with --rate %g to judge it)", rate, targetP99Rate)
+	} else {
+		p99 += verdict(one.p99 < targetP99)
 	}
 	out = append(out, p99)
 	if one.storage != nil {

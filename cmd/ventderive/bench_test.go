@@ -280,10 +280,14 @@ func TestTargetVerdicts(t *testing.T) {
 	}
 
 	rows[1].ratio, rows[1].p99, store.total = 0.1, 100*time.Millisecond, 5120*1000
+	got = strings.Join(targetVerdicts(rows, 500), "\n")
+	if !strings.Contains(got, "(target under 100 ms at 500/s): MISSED") {
+		t.Errorf("p99 of exactly 100 ms at 500/s not judged missed:\n%s", got)
+	}
 	got = strings.Join(targetVerdicts(rows, 200), "\n")
 	for _, want := range []string{
 		"(target at least 0.5): MISSED, 5.0x short",
-		"(target under 100 ms at 500/s): MISSED (paced at 200/s, not the target's rate: run with --rate 500 to judge it)",
+		"(target under 100 ms at 500/s): not judged (paced at 200/s, not the target's rate: run with --rate 500 to judge it)",
 		"bytes per input recorded: 5120 (target at most 1536): MISSED, 3.3x over",
 	} {
 		if !strings.Contains(got, want) {
