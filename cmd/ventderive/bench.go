@@ -456,11 +456,11 @@ func targetVerdicts(rows []benchRow, rate float64) []string {
 	if one == nil {
 		return []string{"no one-replica pipeline run: pass 1 in --replicas to judge the targets"}
 	}
-	out = append(out, fmt.Sprintf("pipeline/floor with one replica: %.2f (target at least %.1f): %s, %.1fx short",
-		one.ratio, targetFloorRatio, verdict(one.ratio >= targetFloorRatio), targetFloorRatio/max(one.ratio, 1e-9)))
-	if one.ratio >= targetFloorRatio {
-		out[len(out)-1] = fmt.Sprintf("pipeline/floor with one replica: %.2f (target at least %.1f): met", one.ratio, targetFloorRatio)
+	l := fmt.Sprintf("pipeline/floor with one replica: %.2f (target at least %.1f): %s", one.ratio, targetFloorRatio, verdict(one.ratio >= targetFloorRatio))
+	if one.ratio < targetFloorRatio {
+		l += fmt.Sprintf(", %.1fx short", targetFloorRatio/max(one.ratio, 1e-9))
 	}
+	out = append(out, l)
 	p99 := fmt.Sprintf("p99 input to derived output with one replica: %.1f ms from %d samples at %g inputs/s (target under %.0f ms at %g/s): ",
 		ms(one.p99), one.latencyN, rate, ms(targetP99), targetP99Rate)
 	if rate != targetP99Rate {
@@ -471,7 +471,7 @@ func targetVerdicts(rows []benchRow, rate float64) []string {
 	out = append(out, p99)
 	if one.storage != nil {
 		b := one.storage.perInput(one.storage.total)
-		l := fmt.Sprintf("bytes per input recorded: %.0f (target at most %.0f): %s", b, targetBytesPerInput, verdict(b <= targetBytesPerInput))
+		l = fmt.Sprintf("bytes per input recorded: %.0f (target at most %.0f): %s", b, targetBytesPerInput, verdict(b <= targetBytesPerInput))
 		if b > targetBytesPerInput {
 			l += fmt.Sprintf(", %.1fx over", b/targetBytesPerInput)
 		}
@@ -480,7 +480,7 @@ func targetVerdicts(rows []benchRow, rate float64) []string {
 	for _, r := range rows {
 		if r.replicas > 1 && one.perSec > 0 {
 			s := r.perSec / one.perSec
-			l := fmt.Sprintf("%d replicas: %.0f inputs/s, %.2fx one replica", r.replicas, r.perSec, s)
+			l = fmt.Sprintf("%d replicas: %.0f inputs/s, %.2fx one replica", r.replicas, r.perSec, s)
 			if runtime.NumCPU() <= 2 {
 				l += fmt.Sprintf(" (target on %d cores: no slower than one): %s", runtime.NumCPU(), verdict(s >= 1))
 			} else {
