@@ -371,7 +371,7 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 		}
 	}
 	fmt.Fprintf(b.out, "\nTargets of the throughput and storage work, from the runs above (%d CPUs, GOMAXPROCS %d):\n", runtime.NumCPU(), runtime.GOMAXPROCS(0))
-	for _, l := range targetVerdicts(rows, b.f.rate) {
+	for _, l := range targetVerdicts(rows, b.f.rate, runtime.NumCPU()) {
 		fmt.Fprintln(b.out, "  "+l)
 	}
 	if b.f.backlog > 0 {
@@ -437,9 +437,9 @@ const (
 // target and whether it was met (and by how much it missed): the pipeline's
 // ratio to the floor and its paced p99 (one replica), bytes per input
 // recorded after the drain, and the inputs/s of every replica count
-// relative to one replica (on two cores they compete for the same cores and
+// relative to one replica (on cpus <= 2 they compete for the same cores and
 // must be no slower; on more cores they must scale).
-func targetVerdicts(rows []benchRow, rate float64) []string {
+func targetVerdicts(rows []benchRow, rate float64, cpus int) []string {
 	verdict := func(met bool) string {
 		if met {
 			return "met"
@@ -481,10 +481,10 @@ func targetVerdicts(rows []benchRow, rate float64) []string {
 		if r.replicas > 1 && one.perSec > 0 {
 			s := r.perSec / one.perSec
 			l = fmt.Sprintf("%d replicas: %.0f inputs/s, %.2fx one replica", r.replicas, r.perSec, s)
-			if runtime.NumCPU() <= 2 {
-				l += fmt.Sprintf(" (target on %d cores: no slower than one): %s", runtime.NumCPU(), verdict(s >= 1))
+			if cpus <= 2 {
+				l += fmt.Sprintf(" (target on %d cores: no slower than one): %s", cpus, verdict(s >= 1))
 			} else {
-				l += fmt.Sprintf(" (on %d cores; ideal scaling %dx while PostgreSQL has cores to spare)", runtime.NumCPU(), r.replicas)
+				l += fmt.Sprintf(" (on %d cores; ideal scaling %dx while PostgreSQL has cores to spare)", cpus, r.replicas)
 			}
 			out = append(out, l)
 		}

@@ -4,7 +4,6 @@ import (
 	"bytes"
 	"context"
 	"regexp"
-	"runtime"
 	"strconv"
 	"strings"
 	"testing"
@@ -264,7 +263,7 @@ func TestTargetVerdicts(t *testing.T) {
 		{name: "one", replicas: 1, perSec: 5000, ratio: 0.5, p99: 99 * time.Millisecond, latencyN: 16, storage: store},
 		{name: "two", replicas: 2, perSec: 4900, ratio: 0.49},
 	}
-	got := strings.Join(targetVerdicts(rows, 500), "\n")
+	got := strings.Join(targetVerdicts(rows, 500, 2), "\n")
 	for _, want := range []string{
 		"pipeline/floor with one replica: 0.50 (target at least 0.5): met",
 		"p99 input to derived output with one replica: 99.0 ms from 16 samples at 500 inputs/s (target under 100 ms at 500/s): met",
@@ -275,16 +274,23 @@ func TestTargetVerdicts(t *testing.T) {
 			t.Errorf("verdicts lack %q:\n%s", want, got)
 		}
 	}
-	if runtime.NumCPU() <= 2 && !strings.Contains(got, "no slower than one): MISSED") {
-		t.Errorf("two replicas at 0.98x on %d cores not judged missed:\n%s", runtime.NumCPU(), got)
+	if !strings.Contains(got, "(target on 2 cores: no slower than one): MISSED") {
+		t.Errorf("two replicas at 0.98x on 2 cores not judged missed:\n%s", got)
+	}
+	rows[2].perSec = 5000
+	if got := strings.Join(targetVerdicts(rows, 500, 2), "\n"); !strings.Contains(got, "1.00x one replica (target on 2 cores: no slower than one): met") {
+		t.Errorf("two replicas as fast as one on 2 cores not judged met:\n%s", got)
+	}
+	if got := strings.Join(targetVerdicts(rows, 500, 8), "\n"); !strings.Contains(got, "(on 8 cores; ideal scaling 2x") || strings.Contains(got, "no slower") {
+		t.Errorf("on 8 cores the replica line must give the ideal scaling, not the 2-core target:\n%s", got)
 	}
 
 	rows[1].ratio, rows[1].p99, store.total = 0.1, 100*time.Millisecond, 5120*1000
-	got = strings.Join(targetVerdicts(rows, 500), "\n")
+	got = strings.Join(targetVerdicts(rows, 500, 2), "\n")
 	if !strings.Contains(got, "(target under 100 ms at 500/s): MISSED") {
 		t.Errorf("p99 of exactly 100 ms at 500/s not judged missed:\n%s", got)
 	}
-	got = strings.Join(targetVerdicts(rows, 200), "\n")
+	got = strings.Join(targetVerdicts(rows, 200, 2), "\n")
 	for _, want := range []string{
 		"(target at least 0.5): MISSED, 5.0x short",
 		"(target under 100 ms at 500/s): not judged (paced at 200/s, not the target's rate: run with --rate 500 to judge it)",
@@ -294,7 +300,7 @@ func TestTargetVerdicts(t *testing.T) {
 			t.Errorf("verdicts lack %q:\n%s", want, got)
 		}
 	}
-	if got := targetVerdicts(rows[:1], 500); len(got) != 1 || !strings.Contains(got[0], "no one-replica pipeline run") {
+	if got := targetVerdicts(rows[:1], 500, 2); len(got) != 1 || !strings.Contains(got[0], "no one-replica pipeline run") {
 		t.Errorf("without a one-replica run: %q", got)
 	}
 }
