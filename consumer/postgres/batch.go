@@ -118,6 +118,13 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			b.Queue(lockPatientsSQL, refs)
 		}
 		b.Queue(claimInboxesSQL, keys, subjects, seqs, received, nres, nfacts, ords, now, raws)
+		// The patients whose facts could affect a blood gas, under their
+		// locks; with windows that differ inside the group (not one site's
+		// settings), every message takes the sequential path.
+		setBased := sameWindows(msgs) && slices.ContainsFunc(msgs, func(m consumer.Message) bool { return len(m.Facts) > 0 })
+		if setBased {
+			b.Queue(hotPatientsSQL, hotArgs(msgs)...)
+		}
 		br := tx.SendBatch(ctx, b)
 		if _, err := br.Exec(); err != nil {
 			br.Close()
@@ -139,6 +146,20 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			br.Close()
 			return fmt.Errorf("claim inbox: %w", err)
 		}
+		cold := make([]bool, n)
+		if setBased {
+			rows, err := br.Query()
+			if err != nil {
+				br.Close()
+				return fmt.Errorf("hot patients: %w", err)
+			}
+			hot, err := pgx.CollectRows(rows, pgx.RowTo[string])
+			if err != nil {
+				br.Close()
+				return fmt.Errorf("hot patients: %w", err)
+			}
+			cold = coldMessages(msgs, hot)
+		}
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("claim inbox: %w", err)
 		}
@@ -155,15 +176,40 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			}
 		}
 
+		// The facts of every fresh cold message, in one statement: they
+		// affect no blood gas, so nothing else is read or planned for
+		// them. It travels with the first round trip below.
+		var coldLists [][]any
+		var coldFacts int
+		var coldKeys, coldInbox []string
+		for i, m := range msgs {
+			if fresh[i] && cold[i] && len(m.Facts) > 0 {
+				coldLists = append(coldLists, s.factArgs(m, now))
+				coldFacts += len(m.Facts)
+				coldKeys = append(coldKeys, factKeys(m)...)
+				coldInbox = append(coldInbox, m.InboxKey)
+			}
+		}
+		coldArgs, err := concatArgs(coldLists)
+		if err != nil {
+			return err
+		}
+		coldStored := -1
+
 		// Round trips 2..: message i's input and snapshot queries travel
 		// with the writes of the previous fresh message, so every message
-		// sees what the ones before it stored and planned.
+		// sees what the ones before it stored and planned. Cold messages
+		// were stored above; they change nothing these see.
 		prev, prevQ := -1, queued{}
 		for i := 0; i <= n; i++ {
-			if i < n && !fresh[i] {
+			if i < n && (!fresh[i] || cold[i]) {
 				continue
 			}
 			b := &pgx.Batch{}
+			coldNow := coldArgs != nil && coldStored < 0
+			if coldNow {
+				b.Queue(insertFactsSQL, coldArgs...)
+			}
 			if prev >= 0 {
 				q, err := s.queueChanges(b, msgs[prev], orders[prev], now, &res[prev])
 				if err != nil {
@@ -176,6 +222,14 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			}
 			if b.Len() > 0 {
 				br := tx.SendBatch(ctx, b)
+				if coldNow {
+					tag, err := br.Exec()
+					if err != nil {
+						br.Close()
+						return fmt.Errorf("insert facts: %w", err)
+					}
+					coldStored = int(tag.RowsAffected())
+				}
 				if prev >= 0 {
 					if err := s.readChanges(br, prevQ, &res[prev]); err != nil {
 						br.Close()
@@ -213,7 +267,7 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			}
 			prev = i
 		}
-		return nil
+		return s.countCold(ctx, tx, msgs, fresh, cold, coldStored, coldFacts, coldKeys, coldInbox, res)
 	})
 	if err != nil {
 		return err
@@ -222,6 +276,37 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 		out[i].IngestResult = res[i]
 		if !fresh[i] {
 			out[i].Err = consumer.ErrDuplicate
+		}
+	}
+	return nil
+}
+
+// countCold fills in the facts each cold message stored: all of them when
+// the group's insert stored as many rows as it was given, else as counted.
+func (s *Store) countCold(ctx context.Context, tx pgx.Tx, msgs []consumer.Message, fresh, cold []bool, stored, given int,
+	keys, inbox []string, res []consumer.IngestResult) error {
+	if stored < 0 {
+		return nil
+	}
+	counts := map[string]int{}
+	if stored != given {
+		rows, err := tx.Query(ctx, countFactsSQL, keys, inbox)
+		if err != nil {
+			return fmt.Errorf("count facts: %w", err)
+		}
+		var k string
+		var c int
+		if _, err := pgx.ForEachRow(rows, []any{&k, &c}, func() error { counts[k] = c; return nil }); err != nil {
+			return fmt.Errorf("count facts: %w", err)
+		}
+	}
+	for i, m := range msgs {
+		if fresh[i] && cold[i] && len(m.Facts) > 0 {
+			if stored == given {
+				res[i].Facts = len(m.Facts)
+			} else {
+				res[i].Facts = counts[m.InboxKey]
+			}
 		}
 	}
 	return nil

@@ -125,13 +125,14 @@ INSERT INTO fact (key, digest, resource_ref, version_id, last_updated, patient_r
     code_system, code, code_display, status, effective, issued, inbox_key, recorded_at)
 SELECT u.key, u.digest, u.resource_ref, u.version_id, u.last_updated, u.patient_ref, u.encounter,
     u.quantity, u.origin, u.detail, u.specimen, u.temp_corrected, u.value, u.unit, u.text, u.source_value, u.source_unit,
-    u.code_system, u.code, u.code_display, u.status, u.effective, u.issued, $24, $25
+    u.code_system, u.code, u.code_display, u.status, u.effective, u.issued, u.inbox_key, $25
 FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[],
     $8::text[], $9::text[], $10::text[], $11::text[], $12::boolean[], $13::float8[], $14::text[], $15::text[],
-    $16::float8[], $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::timestamptz[], $23::timestamptz[])
+    $16::float8[], $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::timestamptz[], $23::timestamptz[],
+    $24::text[])
     AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, encounter,
     quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
-    code_system, code, code_display, status, effective, issued)
+    code_system, code, code_display, status, effective, issued, inbox_key)
 ON CONFLICT (key, digest) DO NOTHING`
 
 	// affectedCTE works out the affected blood gases of one patient.
@@ -668,8 +669,16 @@ func messagePatients(msg consumer.Message) []string {
 	return slices.Compact(ps)
 }
 
+// factArgs are the arguments of insertFactsSQL for one message: one array
+// per column, the inbox key included (one element per fact, so that the
+// arrays of several messages concatenate into one statement: concatArgs),
+// then the recording time.
 func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
 	n := len(msg.Facts)
+	inbox := mk(n)
+	for i := range inbox {
+		inbox[i] = msg.InboxKey
+	}
 	var (
 		key, dig, res, ver, pat, enc, qty, org, det, spc = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
 		unit, text, sunit, csys, code, cdisp, st         = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
@@ -685,7 +694,7 @@ func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
 		lastUpd[i], eff[i], iss[i] = optTime(f.LastUpdated), pgtype.Timestamptz{Time: f.Effective.UTC(), Valid: true}, optTime(f.Issued)
 	}
 	return []any{key, dig, res, ver, lastUpd, pat, enc, qty, org, det, spc, tc, val, unit, text, sval, sunit,
-		csys, code, cdisp, st, eff, iss, msg.InboxKey, now}
+		csys, code, cdisp, st, eff, iss, inbox, now}
 }
 
 func mk(n int) []string { return make([]string, n) }
