@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"reflect"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -274,5 +275,83 @@ func BenchmarkIngestBatch(b *testing.B) {
 			}
 			b.ReportMetric(float64(msgs)/time.Since(start).Seconds(), "messages/s")
 		})
+	}
+}
+
+// Messages of patients without a blood gas in reach (cold) are stored in
+// one insert for the group, ahead of the others, and the store ends as
+// sequential Ingest leaves it: same results per message, same rows (fact
+// ids aside), the same snapshots planned. A reading of a patient with a
+// stored blood gas in its window, and a reading of a patient whose blood
+// gas arrives later in the group, stay on the per-message path.
+func TestIngestBatchColdMessagesEqualSequentialIngest(t *testing.T) {
+	t.Parallel()
+	p3, p4 := "Patient/lg-icu-0003", "Patient/lg-icu-0004" // invented
+	stored := message("fhir.input.lab", 1, abg(p3, "abg-p3", t0, 44))
+	msgs := append(groupMessages(),
+		message("fhir.input.device", 10, vent(p4, "ve-p4a", fhirmap.QMinuteVol, t0, 9, "L/min")),                  // cold
+		message("fhir.input.device", 11, vent(p3, "ve-p3", fhirmap.QMinuteVol, t0.Add(-time.Minute), 7, "L/min")), // hot: stored gas
+		message("fhir.input.device", 12, vent(p4, "ve-p4b", fhirmap.QTidalVol, t0, 450, "mL")),                    // cold
+	)
+	// Move the first cold message to the front, before every hot one.
+	msgs = append([]consumer.Message{msgs[6]}, append(msgs[:6:6], msgs[7:]...)...)
+
+	seq, grp := newFixture(t), newFixture(t)
+	var sp, gp testPlan
+	for _, f := range []*fixture{seq, grp} {
+		if _, err := f.store.Ingest(f.ctx, stored, (&testPlan{}).plan); err != nil {
+			t.Fatal(err)
+		}
+	}
+	var want []consumer.BatchResult
+	for _, m := range msgs {
+		r, err := seq.store.Ingest(seq.ctx, m, sp.plan)
+		want = append(want, consumer.BatchResult{IngestResult: r, Err: err})
+	}
+	got := grp.store.IngestBatch(grp.ctx, msgs, gp.plan)
+	for i := range msgs {
+		if errClass(got[i].Err) != errClass(want[i].Err) || !reflect.DeepEqual(got[i].IngestResult, want[i].IngestResult) {
+			t.Errorf("message %d: %+v %v, sequential Ingest %+v %v", i, got[i].IngestResult, got[i].Err, want[i].IngestResult, want[i].Err)
+		}
+	}
+	if !reflect.DeepEqual(gp.snaps, sp.snaps) {
+		t.Errorf("plan saw different snapshots:\n group %+v\n  seq  %+v", gp.snaps, sp.snaps)
+	}
+	g, w := dump(t, grp), dump(t, seq)
+	slices.Sort(g.Facts)
+	slices.Sort(w.Facts)
+	if !reflect.DeepEqual(g, w) {
+		t.Errorf("stores differ:\n group %+v\n  seq  %+v", g, w)
+	}
+	// The cold path was taken: the last message's fact (cold, p4) was
+	// stored before the facts of the hot messages ahead of it, and the
+	// stored gas's reading (hot, p3) after them.
+	id := func(key string) (n int64) {
+		t.Helper()
+		if err := grp.pool.QueryRow(grp.ctx, `SELECT id FROM fact WHERE key = $1`, key).Scan(&n); err != nil {
+			t.Fatalf("fact %s: %v", key, err)
+		}
+		return n
+	}
+	cold, hot, hotLater := id(msgs[len(msgs)-1].Facts[0].Key), id(msgs[1].Facts[0].Key), id(msgs[len(msgs)-2].Facts[0].Key)
+	if !(cold < hot && hot < hotLater) {
+		t.Errorf("fact ids: cold %d, first hot %d, stored gas's reading %d; want the cold one first", cold, hot, hotLater)
+	}
+	if len(w.Derivations) == 0 || !slices.ContainsFunc(w.Derivations, func(d string) bool { return strings.HasPrefix(d, p3) }) {
+		t.Errorf("the reading in the stored gas's window should derive a value: %v", w.Derivations)
+	}
+}
+
+// concatArgs joins per-message arrays and keeps shared scalars once; it
+// refuses scalars that differ (they cannot be one statement's parameter).
+func TestConcatArgs(t *testing.T) {
+	t.Parallel()
+	got, err := postgres.ConcatArgs([][]any{{[]string{"a"}, []int64{1}, "now"}, {[]string{"b", "c"}, []int64{2, 3}, "now"}})
+	want := []any{[]string{"a", "b", "c"}, []int64{1, 2, 3}, "now"}
+	if err != nil || !reflect.DeepEqual(got, want) {
+		t.Errorf("ConcatArgs = %v, %v; want %v", got, err, want)
+	}
+	if _, err := postgres.ConcatArgs([][]any{{"x"}, {"y"}}); err == nil {
+		t.Error("differing scalars were joined")
 	}
 }
