@@ -43,21 +43,13 @@ func TestRewrittenChecksAcceptSameStrings(t *testing.T) {
 		original   string // the 0001/0002 expression over column
 		values     []string
 	}{
-		{"inbox_inbox_key_check", "inbox_key", "inbox_key ~ '" + hex64 + "'", hexes},
-		{"dead_letter_inbox_key_check", "inbox_key", "inbox_key ~ '" + hex64 + "'", hexes},
+		// The inbox, dead letter, derivation, refusal and head rewrites
+		// were dropped by 0013: TestServiceChecksDropped.
 		{"input_resource_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
 		{"fact_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
-		{"derivation_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
-		{"refusal_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
-		{"head_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
 		{"input_resource_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
-		{"derivation_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
-		{"refusal_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
-		{"head_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
 		{"input_resource_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
 		{"fact_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
-		{"derivation_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
-		{"refusal_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
 		// As 0002 wrote it.
 		{"input_resource_reference_check", "reference", `reference ~ '^[A-Z][A-Za-z]+/[A-Za-z0-9.-]{1,64}$'
 			OR reference ~ '^urn:uuid:[0-9a-fA-F]{8}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{12}$'
@@ -130,4 +122,55 @@ func candidates(prefix, valid string) []string {
 		}
 	}
 	return out
+}
+
+// TestServiceChecksDropped checks what migration 0013 did: the pattern
+// CHECKs on values the service computes are gone from the non-fact tables,
+// and the CHECKs that guard invariants are still there.
+func TestServiceChecksDropped(t *testing.T) {
+	t.Parallel()
+	ctx := ctxFor(t)
+	conn, err := pgx.Connect(ctx, pgtest.NewDatabase(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close(ctx)
+	exists := func(name string) bool {
+		t.Helper()
+		var n int
+		if err := conn.QueryRow(ctx, `SELECT count(*) FROM pg_constraint WHERE conname = $1 AND connamespace = 'public'::regnamespace`, name).Scan(&n); err != nil {
+			t.Fatal(err)
+		}
+		return n == 1
+	}
+	for _, name := range []string{"inbox_inbox_key_check", "dead_letter_inbox_key_check",
+		"derivation_patient_ref_check", "derivation_patient_hash_check", "derivation_digest_check", "derivation_kind_check",
+		"refusal_patient_ref_check", "refusal_patient_hash_check", "refusal_digest_check", "refusal_kind_check", "refusal_reason_check",
+		"head_patient_hash_check", "head_digest_check"} {
+		if exists(name) {
+			t.Errorf("%s still exists", name)
+		}
+	}
+	for _, name := range []string{"derivation_key_parts", "refusal_key_parts", "head_key_parts", "derivation_supersedes_previous",
+		"derivation_positive_amounts", "derivation_fraction_in_range", "derivation_positive_kinds", "derivation_retraction_reason",
+		"head_refused_has_refusal", "derivation_status_check", "head_status_check", "dead_letter_reason_check", "outbox_subject_check",
+		"fact_digest_check", "fact_patient_ref_check", "fact_quantity_check"} {
+		if !exists(name) {
+			t.Errorf("%s is gone; it guards an invariant", name)
+		}
+	}
+	// No pattern CHECK is left on these tables.
+	var left []string
+	rows, err := conn.Query(ctx, `SELECT conname FROM pg_constraint
+		WHERE conrelid IN ('inbox'::regclass, 'derivation'::regclass, 'refusal'::regclass, 'head'::regclass)
+		  AND contype = 'c' AND pg_get_constraintdef(oid) LIKE '%~%' ORDER BY 1`)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if left, err = pgx.CollectRows(rows, pgx.RowTo[string]); err != nil {
+		t.Fatal(err)
+	}
+	if len(left) > 0 {
+		t.Errorf("pattern CHECKs left on inbox, derivation, refusal, head: %v", left)
+	}
 }

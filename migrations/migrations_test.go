@@ -188,10 +188,11 @@ func TestChecksRefuseBadRows(t *testing.T) {
 		{"derivation zero flow L/min", derivSQL, []any{"Patient/p1|Observation/a|vdvt", 1, hash, 0.0, "L/min", "final", dig, key}, "derivation_positive_amounts"},
 		{"derivation status cancelled", derivSQL, []any{"Patient/p1|Observation/a|vdvt", 1, hash, 0.3, "1", "cancelled", dig, key}, "derivation_status_check"},
 		{"derivation infinite value", derivSQL, []any{"Patient/p1|Observation/a|vdvt", 1, hash, inf(), "1", "final", dig, key}, "derivation_value_check"},
-		{"inbox key not a SHA-256", `INSERT INTO inbox VALUES ('abc', 's', 0, now(), now(), 0, 0)`, nil, "inbox_inbox_key_check"},
-		{"refusal reason with spaces", `INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail, digest, inbox_key, created_at)
-		  VALUES ('Patient/p1|Observation/a|vdvt', 'vdvt', 'Patient/p1', $1, 'Observation/a', now(), 'Venous specimen', '', $2, $3, now())`,
-			[]any{hash, dig, key}, "refusal_reason_check"},
+		// inbox_inbox_key_check and refusal_reason_check were dropped by
+		// 0013 (values the service computes): TestServiceChecksDropped.
+		{"refusal of another patient's key", `INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail, digest, inbox_key, created_at)
+		  VALUES ('Patient/p2|Observation/a|vdvt', 'vdvt', 'Patient/p1', $1, 'Observation/a', now(), 'venous-specimen', '', $2, $3, now())`,
+			[]any{hash, dig, key}, "refusal_key_parts"},
 		{"outbox subject with space", `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at) VALUES ('a b', 'm1', '{}', '', $1, now())`,
 			[]any{key}, "outbox_subject_check"},
 		{"resource digest not of its bytes", `INSERT INTO input_resource (reference, resource_type, version_id, patient_ref, patient_hash, digest, raw, inbox_key, received, recorded_at)
