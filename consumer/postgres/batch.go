@@ -39,13 +39,17 @@ RETURNING inbox_key`
 )
 
 // IngestBatch implements consumer.BatchStore: group commit. It records
-// msgs in one transaction, each exactly as Ingest would in that order, with
-// one round trip per message: the writes of message i travel with the
-// inserts and snapshot queries of message i+1. The transaction first takes
-// the locks of every patient of the group in sorted order, then claims all
-// inbox keys in one statement; a message whose key was already claimed
+// msgs in one transaction, each exactly as Ingest would in that order. The
+// transaction first takes the locks of every patient of the group in
+// sorted order, then claims all inbox keys in one statement and finds the
+// hot patients (hotPatientsSQL); a message whose key was already claimed
 // (by an earlier transaction or earlier in the group) gets
-// consumer.ErrDuplicate and writes nothing.
+// consumer.ErrDuplicate and writes nothing. The facts of every cold
+// message (coldMessages: it can affect no blood gas) are stored in one
+// insert, ahead of the others; they change nothing the others read, so
+// only fact ids differ from the sequential order. The hot messages take
+// one round trip each: the writes of message i travel with the inserts
+// and snapshot queries of message i+1.
 //
 // Failure modes: serialization failures and deadlocks retry the group in
 // place (three attempts, as Ingest); another transient failure, including a
