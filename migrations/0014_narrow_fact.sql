@@ -51,8 +51,9 @@
 --    so one (key, digest) has one effective time. For the same reason
 --    derivation_input and refusal_input can no longer have a foreign key
 --    to (key, digest) (a foreign key needs a unique constraint on exactly
---    its columns); audit verify checks that every cited (key, digest) is
---    stored, and the service cites only facts it loaded from the store.
+--    its columns); the service cites only facts it loaded from the store,
+--    and audit verify, which reads a derivation's inputs from the stored
+--    facts, no longer reproduces one whose input is missing.
 --    ventderive_fact_partitions(lo, hi) creates the missing monthly
 --    partitions in [lo, hi); the service calls it at start and retain
 --    before it runs (the last month through three months ahead). It skips
