@@ -54,9 +54,8 @@ func TestRewrittenChecksAcceptSameStrings(t *testing.T) {
 		{"refusal_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
 		{"head_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
 		{"input_resource_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
-		// fact_digest_check went with 0014 (fact_row keeps the digest as
-		// bytea); fact_patient_ref_check became fact_patient's check.
-		{"fact_patient_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
+		// fact_digest_check and fact_patient_ref_check went with 0014
+		// (fact_row keeps the digest as bytea; fhirmap validates both).
 		{"derivation_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
 		{"refusal_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
 		// As 0002 wrote it.

@@ -134,13 +134,12 @@ func TestFactPatientRefMigratesStoredRows(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	// Since 0014 the facts are rows of fact_row, with the patient as a key
-	// into fact_patient (whose (patient_ref || '') index keeps 0012's
-	// split between the two lookups).
+	// Since 0014 the facts are rows of fact_row, with 0012's two patient
+	// indexes.
 	want := []string{
 		"fact_row_key_digest_effective CREATE UNIQUE INDEX fact_row_key_digest_effective ON ONLY public.fact_row USING btree (key, digest, effective)",
-		"fact_row_patient_effective CREATE INDEX fact_row_patient_effective ON ONLY public.fact_row USING btree (patient_id, effective)",
-		"fact_row_patient_term_effective CREATE INDEX fact_row_patient_term_effective ON ONLY public.fact_row USING btree (patient_id, term_id, effective)",
+		"fact_row_patient_ref_effective CREATE INDEX fact_row_patient_ref_effective ON ONLY public.fact_row USING btree (((patient_ref || ''::text)), effective)",
+		"fact_row_patient_ref_quantity_effective CREATE INDEX fact_row_patient_ref_quantity_effective ON ONLY public.fact_row USING btree (patient_ref, quantity, effective)",
 	}
 	if !slices.Equal(idx, want) {
 		t.Errorf("fact_row indexes after 0012 and 0014:\n got  %q\n want %q", idx, want)

@@ -122,7 +122,7 @@ ON CONFLICT (inbox_key) DO NOTHING`
 
 	// insertFactsSQL stores facts into fact_row (migration 0014): each
 	// array holds one element per fact; $24 is the fact's inbox key and $25
-	// the time recorded. The patient, encounter and term are looked up in
+	// the time recorded. The encounter and term are looked up in
 	// their lookup tables; one this snapshot does not see is inserted, and
 	// ON CONFLICT DO UPDATE (a no-op update) returns its id even when a
 	// concurrent transaction committed it first.
@@ -135,12 +135,6 @@ WITH u AS MATERIALIZED (
     AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, encounter,
         quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
         code_system, code, code_display, status, effective, issued, inbox_key)
-), np AS (
-    INSERT INTO fact_patient (patient_ref)
-    SELECT DISTINCT u.patient_ref FROM u
-    WHERE NOT EXISTS (SELECT 1 FROM fact_patient p WHERE p.patient_ref = u.patient_ref)
-    ON CONFLICT (patient_ref) DO UPDATE SET patient_ref = EXCLUDED.patient_ref
-    RETURNING id, patient_ref
 ), ne AS (
     INSERT INTO fact_encounter (encounter)
     SELECT DISTINCT u.encounter FROM u
@@ -157,16 +151,15 @@ WITH u AS MATERIALIZED (
     RETURNING id, quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit,
         code_system, code, code_display, status
 )
-INSERT INTO fact_row (key, digest, resource_ref, version_id, last_updated, patient_id, encounter_id, term_id,
-    value, source_value, effective, issued, inbox_key, recorded_at)
+INSERT INTO fact_row (key, digest, resource_ref, version_id, last_updated, patient_ref, encounter_id, term_id,
+    quantity, value, source_value, effective, issued, inbox_key, recorded_at)
 SELECT u.key, u.digest, nullif(u.resource_ref, split_part(u.key, '#', 1)), u.version_id, u.last_updated,
-    coalesce((SELECT p.id FROM fact_patient p WHERE p.patient_ref = u.patient_ref),
-             (SELECT p.id FROM np p WHERE p.patient_ref = u.patient_ref)),
+    u.patient_ref,
     coalesce((SELECT e.id FROM fact_encounter e WHERE e.encounter = u.encounter),
              (SELECT e.id FROM ne e WHERE e.encounter = u.encounter)),
     coalesce((SELECT t.id FROM fact_term t WHERE ` + termMatchSQL + `),
              (SELECT t.id FROM nt t WHERE ` + termMatchSQL + `)),
-    u.value, u.source_value, u.effective, u.issued, u.inbox_key, $25
+    u.quantity, u.value, u.source_value, u.effective, u.issued, u.inbox_key, $25
 FROM u
 ON CONFLICT (key, digest, effective) DO NOTHING`
 

@@ -60,17 +60,16 @@ FROM generate_series(0, 30 * 24 * 60 - 1) m,
      (VALUES ('tidal-volume', 450, 'mL'), ('resp-rate', 20, '/min'), ('minute-volume', 9, 'L/min'),
              ('vco2', 220, 'mL/min'), ('petco2', 38, 'mm[Hg]')) q(n, base, unit);
 SELECT ventderive_fact_partitions(timestamptz '2026-03-01 00:00:00Z', timestamptz '2026-05-01 00:00:00Z');
-INSERT INTO fact_patient (patient_ref) SELECT DISTINCT patient_ref FROM fact_in ON CONFLICT DO NOTHING;
 INSERT INTO fact_encounter (encounter) SELECT DISTINCT encounter FROM fact_in ON CONFLICT DO NOTHING;
 INSERT INTO fact_term (quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit, code_system, code,
     code_display, status)
 SELECT DISTINCT quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit, code_system, code,
     code_display, status FROM fact_in ON CONFLICT DO NOTHING;
-INSERT INTO fact_row (key, digest, resource_ref, version_id, patient_id, encounter_id, term_id, value, source_value,
-    effective, inbox_key, recorded_at)
-SELECT f.key, decode(f.digest, 'hex'), nullif(f.resource_ref, split_part(f.key, '#', 1)), f.version_id, p.id, e.id, t.id,
-    f.value, f.source_value, f.effective, decode(f.inbox_key, 'hex'), f.recorded_at
-FROM fact_in f JOIN fact_patient p USING (patient_ref) JOIN fact_encounter e USING (encounter)
+INSERT INTO fact_row (key, digest, resource_ref, version_id, patient_ref, encounter_id, term_id, quantity, value,
+    source_value, effective, inbox_key, recorded_at)
+SELECT f.key, decode(f.digest, 'hex'), nullif(f.resource_ref, split_part(f.key, '#', 1)), f.version_id, f.patient_ref, e.id, t.id,
+    f.quantity, f.value, f.source_value, f.effective, decode(f.inbox_key, 'hex'), f.recorded_at
+FROM fact_in f JOIN fact_encounter e USING (encounter)
 JOIN fact_term t USING (quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit, code_system, code,
     code_display, status);
 INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter, blood_gas_key, effective,
