@@ -46,10 +46,8 @@ func TestRewrittenChecksAcceptSameStrings(t *testing.T) {
 		// The inbox, dead letter, derivation, refusal and head rewrites
 		// were dropped by 0013: TestServiceChecksDropped.
 		{"input_resource_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
-		{"fact_digest_check", "digest", "digest ~ '" + hex64 + "'", hexes},
 		{"input_resource_patient_hash_check", "patient_hash", "patient_hash ~ '" + hex32 + "'", hexes},
 		{"input_resource_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
-		{"fact_patient_ref_check", "patient_ref", "patient_ref ~ '" + pat + "'", pats},
 		// As 0002 wrote it.
 		{"input_resource_reference_check", "reference", `reference ~ '^[A-Z][A-Za-z]+/[A-Za-z0-9.-]{1,64}$'
 			OR reference ~ '^urn:uuid:[0-9a-fA-F]{8}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{12}$'

@@ -126,7 +126,7 @@ func TestFactPatientRefMigratesStoredRows(t *testing.T) {
 		t.Errorf("fact still has patient_hash")
 	}
 	rows, err := conn.Query(ctx, `SELECT indexname || ' ' || indexdef FROM pg_indexes
-		WHERE schemaname = current_schema() AND tablename = 'fact' ORDER BY 1`)
+		WHERE schemaname = current_schema() AND tablename = 'fact_row' ORDER BY 1`)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -134,13 +134,15 @@ func TestFactPatientRefMigratesStoredRows(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	// Since 0014 the facts are rows of fact_row, with 0012's two patient
+	// indexes.
 	want := []string{
-		"fact_key_digest_key CREATE UNIQUE INDEX fact_key_digest_key ON public.fact USING btree (key, digest)",
-		"fact_patient_ref_effective CREATE INDEX fact_patient_ref_effective ON public.fact USING btree (((patient_ref || ''::text)), effective)",
-		"fact_patient_ref_quantity_effective CREATE INDEX fact_patient_ref_quantity_effective ON public.fact USING btree (patient_ref, quantity, effective)",
+		"fact_row_key_digest_effective CREATE UNIQUE INDEX fact_row_key_digest_effective ON ONLY public.fact_row USING btree (key, digest, effective)",
+		"fact_row_patient_ref_effective CREATE INDEX fact_row_patient_ref_effective ON ONLY public.fact_row USING btree (((patient_ref || ''::text)), effective)",
+		"fact_row_patient_ref_quantity_effective CREATE INDEX fact_row_patient_ref_quantity_effective ON ONLY public.fact_row USING btree (patient_ref, quantity, effective)",
 	}
 	if !slices.Equal(idx, want) {
-		t.Errorf("fact indexes after 0012:\n got  %q\n want %q", idx, want)
+		t.Errorf("fact_row indexes after 0012 and 0014:\n got  %q\n want %q", idx, want)
 	}
 	var hashIndexes int
 	if err := conn.QueryRow(ctx, `SELECT count(*) FROM pg_indexes

@@ -343,7 +343,8 @@ func verifyDemoStore(ctx context.Context, t *testing.T, r *postgres.Reviewer, de
 		t.Fatal(err)
 	}
 	defer admin.Close()
-	tag, err := admin.Exec(ctx, `UPDATE fact SET value = value + 3 WHERE key = $1 AND quantity = 'pco2'`, target.BloodGas)
+	tag, err := admin.Exec(ctx, `UPDATE fact_row r SET value = r.value + 3 FROM fact_term t
+		WHERE t.id = r.term_id AND r.key = $1 AND t.quantity = 'pco2'`, target.BloodGas)
 	if err != nil || tag.RowsAffected() == 0 {
 		t.Fatalf("alter the stored blood gas %s: %v (%d rows)", target.BloodGas, err, tag.RowsAffected())
 	}
@@ -373,7 +374,8 @@ func verifyDemoStore(ctx context.Context, t *testing.T, r *postgres.Reviewer, de
 	// of that blood gas is then refused as implausible, whatever the
 	// stored refusal said.
 	if refused.BloodGas != target.BloodGas {
-		tag, err = admin.Exec(ctx, `UPDATE fact SET value = 400 WHERE key = $1 AND quantity = 'pco2'`, refused.BloodGas)
+		tag, err = admin.Exec(ctx, `UPDATE fact_row r SET value = 400 FROM fact_term t
+			WHERE t.id = r.term_id AND r.key = $1 AND t.quantity = 'pco2'`, refused.BloodGas)
 		if err != nil || tag.RowsAffected() == 0 {
 			t.Fatalf("alter the stored blood gas %s: %v", refused.BloodGas, err)
 		}

@@ -279,7 +279,7 @@ func TestAuditVerifyReplay(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer admin.Close()
-	if _, err := admin.Exec(ctx, `UPDATE fact SET value = 420 WHERE key = 'Observation/vt-c1'`); err != nil {
+	if _, err := admin.Exec(ctx, `UPDATE fact_row SET value = 420 WHERE key = 'Observation/vt-c1'`); err != nil {
 		t.Fatal(err)
 	}
 	if _, err := admin.Exec(ctx, `UPDATE derivation SET settings_digest = NULL WHERE key = $1`, patC+"|Observation/abg-c2|"+fhirmap.KindPredictedPaCO2); err != nil {
@@ -308,7 +308,7 @@ func TestAuditVerifyReplay(t *testing.T) {
 	// plausible range) turns its refusals for want of ventilator data into
 	// mismatches naming both reasons; a refusal without its settings link,
 	// or linked to a snapshot of another algorithm, is not verifiable.
-	if _, err := admin.Exec(ctx, `UPDATE fact SET value = 400 WHERE key = 'Observation/abg-c3'`); err != nil {
+	if _, err := admin.Exec(ctx, `UPDATE fact_row SET value = 400 WHERE key = 'Observation/abg-c3'`); err != nil {
 		t.Fatal(err)
 	}
 	discrepancy := patC + "|Observation/abg-c3|" + fhirmap.KindPaCO2Discrepancy

@@ -212,7 +212,7 @@ func checkBenchStorage(t *testing.T, report string) {
 		}
 		sum += v[5]
 	}
-	for _, name := range []string{"inbox", "fact", "derivation", "outbox"} {
+	for _, name := range []string{"inbox", "fact_row", "derivation", "outbox"} {
 		if v, ok := tables[name]; !ok || v[5] <= 0 {
 			t.Errorf("storage table lacks %s (or it is empty): %v", name, tables[name])
 		}

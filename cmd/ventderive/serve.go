@@ -304,6 +304,9 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 		}
 		log.Info("database migrated", "version", v)
 	}
+	if err := postgres.EnsurePartitions(ctx, pool, time.Now()); err != nil {
+		return fmt.Errorf("database: %w", err)
+	}
 	store := postgres.New(pool, postgres.Options{PatientKey: []byte(c.patientHashKey), Logger: log})
 
 	nc, err := connectNATS(ctx, c, log)

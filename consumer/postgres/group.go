@@ -30,7 +30,7 @@ const hotPatientsSQL = `
 WITH n AS MATERIALIZED (
     SELECT * FROM unnest($1::text[], $2::text[], $3::timestamptz[], $4::text[]) AS n(patient_ref, quantity, effective, key)
 ), s AS MATERIALIZED (
-    SELECT f.patient_ref, f.quantity, f.effective, f.key FROM fact f WHERE f.key = ANY($4::text[])
+    SELECT f.patient_ref, f.quantity, f.effective, f.key FROM fact_row f WHERE f.key = ANY($4::text[])
 ), pts AS (
     SELECT patient_ref, quantity, effective FROM n
     UNION SELECT patient_ref, quantity, effective FROM s
@@ -39,7 +39,7 @@ SELECT s.patient_ref FROM s JOIN n ON n.key = s.key WHERE s.patient_ref <> n.pat
 UNION SELECT n.patient_ref FROM s JOIN n ON n.key = s.key WHERE s.patient_ref <> n.patient_ref
 UNION SELECT patient_ref FROM pts WHERE quantity = $10::text OR quantity = ANY($11::text[])
 UNION SELECT p.patient_ref FROM pts p CROSS JOIN LATERAL (
-    SELECT 1 FROM fact b
+    SELECT 1 FROM fact_row b
     WHERE b.patient_ref = p.patient_ref AND b.quantity = $10::text
       AND b.effective BETWEEN p.effective - CASE WHEN p.quantity = $9::text THEN $8::bigint ELSE $6::bigint END * interval '1 microsecond'
                           AND p.effective + CASE WHEN p.quantity = $9::text THEN $7::bigint ELSE $5::bigint END * interval '1 microsecond'

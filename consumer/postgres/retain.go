@@ -84,18 +84,22 @@ const (
 	// and their bytes, and the payloads dropped with their bytes.
 	retainSizeSQL = `
 WITH gone AS (
-    SELECT inbox_key, count(*) AS n, sum(pg_column_size(fact.*)) AS bytes FROM fact
-    WHERE key = ANY($1) GROUP BY inbox_key)
+    SELECT encode(inbox_key, 'hex') AS inbox_key, count(*) AS n, sum(pg_column_size(fact_row.*)) AS bytes FROM fact_row
+    WHERE key = ANY($1) AND effective < $2 GROUP BY 1)
 SELECT coalesce(sum(g.n), 0)::bigint, coalesce(sum(g.bytes), 0)::bigint,
        count(*) FILTER (WHERE g.n = i.facts AND i.raw IS NOT NULL)::bigint,
        coalesce(sum(pg_column_size(i.raw)) FILTER (WHERE g.n = i.facts AND i.raw IS NOT NULL), 0)::bigint
 FROM gone g JOIN inbox i ON i.inbox_key = g.inbox_key`
 
 	// retainApplySQL removes the keys $1 and the payloads of the messages
-	// all of whose facts went with them.
+	// all of whose facts went with them. Every version of a candidate is
+	// older than the cutoff $2, so the bound changes nothing in what goes;
+	// it lets PostgreSQL prune fact_row to the monthly partitions before
+	// the cutoff (and the default one), so a patient's batch touches old
+	// partitions only and the partitions being written are not scanned.
 	retainApplySQL = `
-WITH gone AS (DELETE FROM fact WHERE key = ANY($1) RETURNING inbox_key),
-counted AS (SELECT inbox_key, count(*) AS n FROM gone GROUP BY inbox_key)
+WITH gone AS (DELETE FROM fact_row WHERE key = ANY($1) AND effective < $2 RETURNING inbox_key),
+counted AS (SELECT encode(inbox_key, 'hex') AS inbox_key, count(*) AS n FROM gone GROUP BY 1)
 UPDATE inbox i SET raw = NULL FROM counted c
 WHERE i.inbox_key = c.inbox_key AND c.n = i.facts AND i.raw IS NOT NULL`
 )
@@ -121,6 +125,11 @@ func Retain(ctx context.Context, pool *pgxpool.Pool, o RetainOptions) (RetainRep
 		asOf = time.Now()
 	}
 	rep := RetainReport{Cutoff: asOf.Add(-o.Horizon).UTC(), Applied: o.Apply}
+	if o.Apply {
+		if err := EnsurePartitions(ctx, pool, asOf); err != nil {
+			return rep, err
+		}
+	}
 	rows, err := pool.Query(ctx, `
 SELECT DISTINCT patient_ref FROM fact
 WHERE effective < $1 AND quantity IN (`+ventilatorQuantitiesSQL+`) ORDER BY 1`, rep.Cutoff)
@@ -158,14 +167,14 @@ WHERE effective < $1 AND quantity IN (`+ventilatorQuantitiesSQL+`) ORDER BY 1`, 
 			// row counts them; a fact an earlier message had already stored
 			// keeps that message's key, and then this payload is kept).
 			var rawBytes, factBytes int64
-			if err := tx.QueryRow(ctx, retainSizeSQL, ks).Scan(&facts, &factBytes, &msgs, &rawBytes); err != nil {
+			if err := tx.QueryRow(ctx, retainSizeSQL, ks, rep.Cutoff).Scan(&facts, &factBytes, &msgs, &rawBytes); err != nil {
 				return err
 			}
 			size = factBytes + rawBytes
 			if !o.Apply {
 				return nil
 			}
-			_, err = tx.Exec(ctx, retainApplySQL, ks)
+			_, err = tx.Exec(ctx, retainApplySQL, ks, rep.Cutoff)
 			return err
 		})
 		if err != nil {
@@ -180,4 +189,18 @@ WHERE effective < $1 AND quantity IN (`+ventilatorQuantitiesSQL+`) ORDER BY 1`, 
 		}
 	}
 	return rep, nil
+}
+
+// EnsurePartitions creates the monthly partitions of fact_row (migration
+// 0014) that are missing from the month before now through three months
+// after it. The service calls it at start and retain before it removes
+// anything; a fact of a month without a partition still goes to the
+// default partition, so a missing one costs speed, never a fact.
+func EnsurePartitions(ctx context.Context, pool *pgxpool.Pool, now time.Time) error {
+	_, err := pool.Exec(ctx, `SELECT ventderive_fact_partitions($1, $2)`,
+		now.AddDate(0, -1, 0).UTC(), now.AddDate(0, 3, 0).UTC())
+	if err != nil {
+		return fmt.Errorf("fact partitions: %w", err)
+	}
+	return nil
 }

@@ -84,8 +84,8 @@ func TestRoles(t *testing.T) {
 		t.Fatalf("DeadLetter as writer: %v", err)
 	}
 	for _, stmt := range []string{
-		"DELETE FROM fact", "DELETE FROM outbox", "DELETE FROM derivation", "DELETE FROM inbox",
-		"UPDATE derivation SET value = 0", "UPDATE outbox SET payload = ''", "UPDATE fact SET value = 0",
+		"DELETE FROM fact_row", "DELETE FROM fact_term", "DELETE FROM outbox", "DELETE FROM derivation", "DELETE FROM inbox",
+		"UPDATE derivation SET value = 0", "UPDATE outbox SET payload = ''", "UPDATE fact_row SET value = 0", "UPDATE fact_term SET unit = ''",
 		"TRUNCATE refusal", "DROP TABLE dead_letter", "SELECT * FROM review_derivation",
 		// Migration 0005: raw payloads are written, never read back.
 		"SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM input_resource",
@@ -151,7 +151,7 @@ func TestRoles(t *testing.T) {
 		t.Errorf("reviewer reads %d derivations linked to their settings snapshot, %v; want the writer's row", linked, err)
 	}
 	for _, stmt := range []string{
-		"SELECT * FROM fact", "SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM derivation",
+		"SELECT * FROM fact", "SELECT * FROM fact_row", "SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM derivation",
 		"SELECT * FROM outbox", "SELECT * FROM head", "SELECT * FROM site_settings", "INSERT INTO inbox VALUES ('x', 's', 0, now(), now(), 0, 0)",
 		"CREATE TABLE reviewer_notes (x int)",
 	} {

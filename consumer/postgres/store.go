@@ -2,6 +2,7 @@ package postgres
 
 import (
 	"context"
+	"encoding/hex"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -119,21 +120,54 @@ ON CONFLICT (inbox_key) DO NOTHING`
 	// messages about the same patients cannot deadlock.
 	lockPatientSQL = `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`
 
+	// insertFactsSQL stores facts into fact_row (migration 0014): each
+	// array holds one element per fact; $24 is the fact's inbox key and $25
+	// the time recorded. The encounter and term are looked up in
+	// their lookup tables; one this snapshot does not see is inserted, and
+	// ON CONFLICT DO UPDATE (a no-op update) returns its id even when a
+	// concurrent transaction committed it first.
 	insertFactsSQL = `
-INSERT INTO fact (key, digest, resource_ref, version_id, last_updated, patient_ref, encounter,
-    quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
-    code_system, code, code_display, status, effective, issued, inbox_key, recorded_at)
-SELECT u.key, u.digest, u.resource_ref, u.version_id, u.last_updated, u.patient_ref, u.encounter,
-    u.quantity, u.origin, u.detail, u.specimen, u.temp_corrected, u.value, u.unit, u.text, u.source_value, u.source_unit,
-    u.code_system, u.code, u.code_display, u.status, u.effective, u.issued, u.inbox_key, $25
-FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[],
-    $8::text[], $9::text[], $10::text[], $11::text[], $12::boolean[], $13::float8[], $14::text[], $15::text[],
-    $16::float8[], $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::timestamptz[], $23::timestamptz[],
-    $24::text[])
+WITH u AS MATERIALIZED (
+    SELECT * FROM unnest($1::text[], $2::bytea[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[],
+        $8::text[], $9::text[], $10::text[], $11::text[], $12::boolean[], $13::float8[], $14::text[], $15::text[],
+        $16::float8[], $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::timestamptz[],
+        $23::timestamptz[], $24::bytea[])
     AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, encounter,
-    quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
-    code_system, code, code_display, status, effective, issued, inbox_key)
-ON CONFLICT (key, digest) DO NOTHING`
+        quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
+        code_system, code, code_display, status, effective, issued, inbox_key)
+), ne AS (
+    INSERT INTO fact_encounter (encounter)
+    SELECT DISTINCT u.encounter FROM u
+    WHERE NOT EXISTS (SELECT 1 FROM fact_encounter e WHERE e.encounter = u.encounter)
+    ON CONFLICT (encounter) DO UPDATE SET encounter = EXCLUDED.encounter
+    RETURNING id, encounter
+), nt AS (
+    INSERT INTO fact_term (quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit,
+        code_system, code, code_display, status)
+    SELECT DISTINCT u.quantity, u.origin, u.detail, u.specimen, u.temp_corrected, u.unit, u.text, u.source_unit,
+        u.code_system, u.code, u.code_display, u.status FROM u
+    WHERE NOT EXISTS (SELECT 1 FROM fact_term t WHERE ` + termMatchSQL + `)
+    ON CONFLICT ON CONSTRAINT fact_term_values DO UPDATE SET quantity = EXCLUDED.quantity
+    RETURNING id, quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit,
+        code_system, code, code_display, status
+)
+INSERT INTO fact_row (key, digest, resource_ref, version_id, last_updated, patient_ref, encounter_id, term_id,
+    quantity, value, source_value, effective, issued, inbox_key, recorded_at)
+SELECT u.key, u.digest, nullif(u.resource_ref, split_part(u.key, '#', 1)), u.version_id, u.last_updated,
+    u.patient_ref,
+    coalesce((SELECT e.id FROM fact_encounter e WHERE e.encounter = u.encounter),
+             (SELECT e.id FROM ne e WHERE e.encounter = u.encounter)),
+    coalesce((SELECT t.id FROM fact_term t WHERE ` + termMatchSQL + `),
+             (SELECT t.id FROM nt t WHERE ` + termMatchSQL + `)),
+    u.quantity, u.value, u.source_value, u.effective, u.issued, u.inbox_key, $25
+FROM u
+ON CONFLICT (key, digest, effective) DO NOTHING`
+
+	// termMatchSQL matches a fact_term row t to a fact u.
+	termMatchSQL = `t.quantity = u.quantity AND t.origin = u.origin AND t.detail = u.detail
+        AND t.specimen = u.specimen AND t.temp_corrected = u.temp_corrected AND t.unit = u.unit AND t.text = u.text
+        AND t.source_unit = u.source_unit AND t.code_system = u.code_system AND t.code = u.code
+        AND t.code_display = u.code_display AND t.status = u.status`
 
 	// affectedCTE works out the affected blood gases of one patient.
 	// $1 patient reference, $2 keys of the message's facts, $3 window before and
@@ -675,19 +709,21 @@ func messagePatients(msg consumer.Message) []string {
 // then the recording time.
 func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
 	n := len(msg.Facts)
-	inbox := mk(n)
-	for i := range inbox {
-		inbox[i] = msg.InboxKey
-	}
 	var (
-		key, dig, res, ver, pat, enc, qty, org, det, spc = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
-		unit, text, sunit, csys, code, cdisp, st         = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
-		lastUpd, eff, iss                                = make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n)
-		tc                                               = make([]bool, n)
-		val, sval                                        = make([]float64, n), make([]float64, n)
+		key, res, ver, pat, enc, qty, org, det, spc = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+		dig, inbox                                  = make([][]byte, n), make([][]byte, n)
+		unit, text, sunit, csys, code, cdisp, st    = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+		lastUpd, eff, iss                           = make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n)
+		tc                                          = make([]bool, n)
+		val, sval                                   = make([]float64, n), make([]float64, n)
 	)
+	ik, _ := hex.DecodeString(msg.InboxKey)
 	for i, f := range msg.Facts {
-		key[i], dig[i], res[i], ver[i], pat[i], enc[i] = f.Key, f.Digest, f.Resource, f.VersionID, f.Patient, f.Encounter
+		key[i], res[i], ver[i], pat[i], enc[i] = f.Key, f.Resource, f.VersionID, f.Patient, f.Encounter
+		// The decoder makes every digest a hex SHA-256; one that is not
+		// decodes short and fact_row's length CHECK refuses it.
+		dig[i], _ = hex.DecodeString(f.Digest)
+		inbox[i] = ik
 		qty[i], org[i], det[i], spc[i], tc[i] = string(f.Quantity), string(f.Origin), f.Detail, string(f.Specimen), f.TempCorrected
 		val[i], unit[i], text[i], sval[i], sunit[i] = f.Value, f.Unit, f.Text, f.SourceValue, f.SourceUnit
 		csys[i], code[i], cdisp[i], st[i] = f.Code.System, f.Code.Code, f.Code.Display, string(f.Status)

@@ -37,13 +37,19 @@ UNION ALL
 SELECT 'Patient/bench-' || lpad(p::text, 5, '0'), 'Observation/b' || p || '-abg-' || i || '#http://loinc.org|2019-8',
        'Observation/b' || p || '-abg-' || i, timestamptz '2026-03-01 00:30:00Z' + i * interval '4 hours' + p * interval '1 second', p + i
 FROM generate_series(1, $1::int) p, generate_series(0, 2) i;
-INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, encounter, quantity, origin, detail,
+-- Facts in the columns of the view fact, then stored as migration 0014
+-- stores them (fact_row with its lookup rows).
+CREATE TEMP TABLE fact_in (key text, digest text, resource_ref text, version_id text, patient_ref text,
+    encounter text, quantity text, origin text, detail text, specimen text, temp_corrected boolean,
+    value float8, unit text, text text, source_value float8, source_unit text, code_system text, code text,
+    code_display text, status text, effective timestamptz, inbox_key text, recorded_at timestamptz);
+INSERT INTO fact_in (key, digest, resource_ref, version_id, patient_ref, encounter, quantity, origin, detail,
     specimen, temp_corrected, value, unit, text, source_value, source_unit, code_system, code, code_display, status,
     effective, inbox_key, recorded_at)
 SELECT bg, repeat('b', 64), res, '1', ref, '', 'pco2', 'measured', '', 'arterial', false,
        40 + (n % 7), 'mm[Hg]', '', 0, '', 'http://loinc.org', '2019-8', '', 'final', eff, repeat('a', 64), eff
 FROM g;
-INSERT INTO fact (key, digest, resource_ref, version_id, patient_ref, encounter, quantity, origin, detail,
+INSERT INTO fact_in (key, digest, resource_ref, version_id, patient_ref, encounter, quantity, origin, detail,
     specimen, temp_corrected, value, unit, text, source_value, source_unit, code_system, code, code_display, status,
     effective, inbox_key, recorded_at)
 SELECT 'Observation/bl-' || q.n || '-' || m || '#http://loinc.org|x', repeat('b', 64), 'Observation/bl-' || q.n || '-' || m,
@@ -53,6 +59,19 @@ SELECT 'Observation/bl-' || q.n || '-' || m || '#http://loinc.org|x', repeat('b'
 FROM generate_series(0, 30 * 24 * 60 - 1) m,
      (VALUES ('tidal-volume', 450, 'mL'), ('resp-rate', 20, '/min'), ('minute-volume', 9, 'L/min'),
              ('vco2', 220, 'mL/min'), ('petco2', 38, 'mm[Hg]')) q(n, base, unit);
+SELECT ventderive_fact_partitions(timestamptz '2026-03-01 00:00:00Z', timestamptz '2026-05-01 00:00:00Z');
+INSERT INTO fact_encounter (encounter) SELECT DISTINCT encounter FROM fact_in ON CONFLICT DO NOTHING;
+INSERT INTO fact_term (quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit, code_system, code,
+    code_display, status)
+SELECT DISTINCT quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit, code_system, code,
+    code_display, status FROM fact_in ON CONFLICT DO NOTHING;
+INSERT INTO fact_row (key, digest, resource_ref, version_id, patient_ref, encounter_id, term_id, quantity, value,
+    source_value, effective, inbox_key, recorded_at)
+SELECT f.key, decode(f.digest, 'hex'), nullif(f.resource_ref, split_part(f.key, '#', 1)), f.version_id, f.patient_ref, e.id, t.id,
+    f.quantity, f.value, f.source_value, f.effective, decode(f.inbox_key, 'hex'), f.recorded_at
+FROM fact_in f JOIN fact_encounter e USING (encounter)
+JOIN fact_term t USING (quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit, code_system, code,
+    code_display, status);
 INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter, blood_gas_key, effective,
     value, unit, method, method_version, constants, assumptions, basis, interp_code, interp_text, interp_source, flags,
     status, retracted, algorithm, digest, inbox_key, created_at)
