@@ -72,6 +72,14 @@ type benchFlags struct {
 	// the history-growth measurement (0 hours: skip it).
 	historyH      int
 	historyCopies int
+	// historyDays are the sizes (simulated days, ascending) of the
+	// history store built through the store's group ingest, each measured
+	// against an empty store (empty: skip); historyPatients its patients
+	// (a multiple of 10) and historyInputs the measured workload.
+	historyDays     []int
+	historyPatients int
+	historyInputs   int
+	historyEvery    time.Duration
 	// backlog inputs are in the stream before a replica starts in the
 	// backlog-and-replay measurement (0: skip it).
 	backlog int
@@ -100,15 +108,25 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.BoolVar(&f.stayAnalyze, "stay-analyze", false, "run ANALYZE after storing each long stay, before the measured part (as autovacuum would; default: no statistics, as on a server with autovacuum off)")
 	fs.IntVar(&f.historyH, "history-hours", 0, "hours of simulated history stored before the history-growth measurement, which drains the last --stay-inputs inputs after it and after the admissions alone (0: skip)")
 	fs.IntVar(&f.historyCopies, "history-copies", 4, "copies of the unit (10 patients each) in the history-growth measurement")
+	historyDays := fs.String("history-days", "", "simulated days of history built by the group-ingest writer before the cost-per-input measurement, comma-separated ascending sizes of one growing store, e.g. 1,3,7 or 30 (empty: skip)")
+	fs.IntVar(&f.historyPatients, "history-patients", 200, "patients of the --history-days store (a multiple of 10: copies of the unit)")
+	fs.IntVar(&f.historyInputs, "history-inputs", 5000, "inputs of the workload measured on the --history-days store and on an empty store")
+	fs.DurationVar(&f.historyEvery, "history-every", time.Minute, "ventilator reading interval of the --history-days store and its workload (the simulator's 1 min to 10 min)")
 	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative, e.g. -1s: the lane off, for comparison)")
 	fs.IntVar(&f.backlog, "backlog", 100000, "inputs in the stream before one replica starts, drained with a fresh blood gas published during the drain (0: skip)")
 	if done, err := parseFlags(fs, args); done {
 		return err
 	}
 	replicas, err := parseCounts(f.replicas)
+	if err == nil && *historyDays != "" {
+		f.historyDays, err = parseCounts(*historyDays)
+		if err == nil && (!slices.IsSorted(f.historyDays) || f.historyPatients < 10 || f.historyPatients%10 != 0 || f.historyInputs < 1) {
+			err = errors.New("history sizes")
+		}
+	}
 	if err != nil || f.inputs < 1 || f.copies < 1 || f.rate <= 0 || f.workers < 1 || f.stayH < 0 || (f.stayH > 0 && f.stayN < 1) ||
 		f.historyH < 0 || (f.historyH > 0 && (f.historyCopies < 1 || f.stayN < 1)) || f.backlog < 0 {
-		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers, --stay-inputs, --history-copies must be positive, --stay-hours, --history-hours and --backlog not negative and --replicas a list of positive counts")
+		fmt.Fprintln(e.stderr, "bench: --inputs, --copies, --rate, --workers, --stay-inputs, --history-copies must be positive, --stay-hours, --history-hours and --backlog not negative, --replicas a list of positive counts, --history-days ascending positive counts and --history-patients a multiple of 10")
 		return errUsage
 	}
 	b, err := newBench(ctx, f, e)
@@ -149,6 +167,9 @@ type bench struct {
 	dbs     []string
 	// postmaster is the local PostgreSQL server's process, 0 if remote.
 	postmaster int
+	// patientKey is the patient hash key of every store of the run (the
+	// history builder and the replicas must hash patients alike).
+	patientKey []byte
 }
 
 // benchMsg is one input message of the run.
@@ -159,7 +180,8 @@ type benchMsg struct {
 }
 
 func newBench(ctx context.Context, f benchFlags, e env) (_ *bench, err error) {
-	b := &bench{f: f, e: e, out: e.stdout, dir: f.dir}
+	b := &bench{f: f, e: e, out: e.stdout, dir: f.dir, patientKey: make([]byte, 32)}
+	_, _ = rand.Read(b.patientKey)
 	defer func() {
 		if err != nil {
 			b.close()
@@ -370,8 +392,14 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 			b.reportStorage("the drain of "+r.name, *r.storage)
 		}
 	}
+	var hist []historyPoint
+	if len(b.f.historyDays) > 0 {
+		if hist, err = b.historyDays(ctx); err != nil {
+			return fmt.Errorf("history store: %w", err)
+		}
+	}
 	fmt.Fprintf(b.out, "\nTargets of the throughput and storage work, from the runs above (%d CPUs, GOMAXPROCS %d):\n", runtime.NumCPU(), runtime.GOMAXPROCS(0))
-	for _, l := range targetVerdicts(rows, b.f.rate, runtime.NumCPU()) {
+	for _, l := range targetVerdicts(rows, b.f.rate, runtime.NumCPU(), hist) {
 		fmt.Fprintln(b.out, "  "+l)
 	}
 	if b.f.backlog > 0 {
@@ -431,6 +459,11 @@ const (
 	targetP99           = 100 * time.Millisecond
 	targetP99Rate       = 500.0
 	targetBytesPerInput = 1536.0
+	// The cost per input after targetHistoryDays of targetHistoryPatients
+	// at most targetHistoryRatio times an empty store's.
+	targetHistoryRatio    = 1.2
+	targetHistoryDays     = 30
+	targetHistoryPatients = 200
 )
 
 // targetVerdicts states, for each target the runs measured, the figure, the
@@ -439,7 +472,10 @@ const (
 // recorded after the drain, and the inputs/s of every replica count
 // relative to one replica (on cpus <= 2 they compete for the same cores and
 // must be no slower; on more cores they must scale).
-func targetVerdicts(rows []benchRow, rate float64, cpus int) []string {
+//
+// hist are the history-store measurements (--history-days); the largest
+// gives the cost-per-input line, judged at the target's size only.
+func targetVerdicts(rows []benchRow, rate float64, cpus int, hist []historyPoint) []string {
 	verdict := func(met bool) string {
 		if met {
 			return "met"
@@ -488,6 +524,9 @@ func targetVerdicts(rows []benchRow, rate float64, cpus int) []string {
 			}
 			out = append(out, l)
 		}
+	}
+	if len(hist) > 0 {
+		out = append(out, historyVerdict(hist[len(hist)-1]))
 	}
 	return out
 }
@@ -1098,8 +1137,7 @@ type benchReplica struct {
 }
 
 func (b *bench) startReplicas(ctx context.Context, url string, n int) ([]*benchReplica, error) {
-	key := make([]byte, 32)
-	_, _ = rand.Read(key)
+	key := b.patientKey
 	cfg := consumer.DefaultConfig()
 	cfg.Window = b.site.Window
 	if b.f.fetch > 0 {

@@ -263,7 +263,7 @@ func TestTargetVerdicts(t *testing.T) {
 		{name: "one", replicas: 1, perSec: 5000, ratio: 0.5, p99: 99 * time.Millisecond, latencyN: 16, storage: store},
 		{name: "two", replicas: 2, perSec: 4900, ratio: 0.49},
 	}
-	got := strings.Join(targetVerdicts(rows, 500, 2), "\n")
+	got := strings.Join(targetVerdicts(rows, 500, 2, nil), "\n")
 	for _, want := range []string{
 		"pipeline/floor with one replica: 0.50 (target at least 0.5): met",
 		"p99 input to derived output with one replica: 99.0 ms from 16 samples at 500 inputs/s (target under 100 ms at 500/s): met",
@@ -278,19 +278,19 @@ func TestTargetVerdicts(t *testing.T) {
 		t.Errorf("two replicas at 0.98x on 2 cores not judged missed:\n%s", got)
 	}
 	rows[2].perSec = 5000
-	if got := strings.Join(targetVerdicts(rows, 500, 2), "\n"); !strings.Contains(got, "1.00x one replica (target on 2 cores: no slower than one): met") {
+	if got := strings.Join(targetVerdicts(rows, 500, 2, nil), "\n"); !strings.Contains(got, "1.00x one replica (target on 2 cores: no slower than one): met") {
 		t.Errorf("two replicas as fast as one on 2 cores not judged met:\n%s", got)
 	}
-	if got := strings.Join(targetVerdicts(rows, 500, 8), "\n"); !strings.Contains(got, "(on 8 cores; ideal scaling 2x") || strings.Contains(got, "no slower") {
+	if got := strings.Join(targetVerdicts(rows, 500, 8, nil), "\n"); !strings.Contains(got, "(on 8 cores; ideal scaling 2x") || strings.Contains(got, "no slower") {
 		t.Errorf("on 8 cores the replica line must give the ideal scaling, not the 2-core target:\n%s", got)
 	}
 
 	rows[1].ratio, rows[1].p99, store.total = 0.1, 100*time.Millisecond, 5120*1000
-	got = strings.Join(targetVerdicts(rows, 500, 2), "\n")
+	got = strings.Join(targetVerdicts(rows, 500, 2, nil), "\n")
 	if !strings.Contains(got, "(target under 100 ms at 500/s): MISSED") {
 		t.Errorf("p99 of exactly 100 ms at 500/s not judged missed:\n%s", got)
 	}
-	got = strings.Join(targetVerdicts(rows, 200, 2), "\n")
+	got = strings.Join(targetVerdicts(rows, 200, 2, nil), "\n")
 	for _, want := range []string{
 		"(target at least 0.5): MISSED, 5.0x short",
 		"(target under 100 ms at 500/s): not judged (paced at 200/s, not the target's rate: run with --rate 500 to judge it)",
@@ -300,7 +300,105 @@ func TestTargetVerdicts(t *testing.T) {
 			t.Errorf("verdicts lack %q:\n%s", want, got)
 		}
 	}
-	if got := targetVerdicts(rows[:1], 500, 2); len(got) != 1 || !strings.Contains(got[0], "no one-replica pipeline run") {
+	if got := targetVerdicts(rows[:1], 500, 2, nil); len(got) != 1 || !strings.Contains(got[0], "no one-replica pipeline run") {
 		t.Errorf("without a one-replica run: %q", got)
+	}
+}
+
+// TestBenchHistorySmall runs the history-store measurement at a tiny size
+// (two sizes of 10 patients, 1 and 2 simulated days, a reading every
+// 10 min) with a real
+// PostgreSQL and checks its table, the trend line, the retention estimate
+// and the targets line.
+func TestBenchHistorySmall(t *testing.T) {
+	admin := pgtest.AdminURL(t)
+	var out, errOut bytes.Buffer
+	e := env{getenv: func(k string) string {
+		if k == "DATABASE_URL" {
+			return admin
+		}
+		return ""
+	}, stdout: &out, stderr: &errOut}
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
+	defer cancel()
+	err := run(ctx, []string{"bench", "--inputs", "300", "--copies", "1", "--rate", "200", "--paced", "1s",
+		"--replicas", "1", "--patients", "0", "--stay-hours", "0", "--backlog", "0",
+		"--history-days", "1,2", "--history-patients", "10", "--history-inputs", "300", "--history-every", "10m", "--dir", t.TempDir()}, e)
+	if err != nil {
+		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
+	}
+	report := out.String()
+	t.Log("\n" + report)
+	var stored []float64
+	for _, days := range []string{"1", "2"} {
+		m := regexp.MustCompile(`(?m)^\s*` + days + `((?:\s+[0-9.]+){10})\s*$`).FindStringSubmatch(report)
+		if m == nil {
+			t.Fatalf("no history row for %s days", days)
+		}
+		var v []float64
+		for f := range strings.FieldsSeq(m[1]) {
+			x, _ := strconv.ParseFloat(f, 64)
+			v = append(v, x)
+		}
+		// inputs stored, build inputs/s, store MB, bytes/input, empty CPU+PG,
+		// history CPU+PG, history PG, inputs/s empty, inputs/s history, ratio
+		if v[0] < 1000 || v[1] <= 0 || v[2] <= 0 || v[3] <= 0 || v[4] <= 0 || v[5] <= 0 || v[7] <= 0 || v[8] <= 0 {
+			t.Errorf("%s days: implausible figures %v", days, v)
+		}
+		// The ratio column is history over empty, as printed (2 decimals).
+		if want := v[5] / v[4]; v[9] < want-0.02*want-0.01 || v[9] > want+0.02*want+0.01 {
+			t.Errorf("%s days: ratio %.2f, want history/empty %.2f", days, v[9], want)
+		}
+		stored = append(stored, v[0])
+	}
+	// Two simulated days of the same patients hold about twice the
+	// inputs of one.
+	if stored[1] < 1.8*stored[0] || stored[1] > 2.2*stored[0] {
+		t.Errorf("stored inputs after 1 and 2 days: %v, want about double", stored)
+	}
+	if !regexp.MustCompile(`trend: the store grew [0-9.]+x .*: [+-][0-9.]+ per doubling`).MatchString(report) {
+		t.Error("no trend line")
+	}
+	if !regexp.MustCompile(`after retention 300 x \(365 x f - 364 x r\) = [0-9.]+ GB a year \([0-9]+% kept\)`).MatchString(report) {
+		t.Error("no retention estimate for a site's year")
+	}
+	if !regexp.MustCompile(`per-input CPU \(service \+ PostgreSQL\) after 2 days of 10 patients / empty store: [0-9.]+ \(target at most 1.2 after 30 days of 200 patients\): not judged`).MatchString(report) {
+		t.Error("no targets line for the history store (not judged at a small size)")
+	}
+}
+
+// TestHistoryVerdict checks the history-store line just under and over the
+// target's 1.2 (issue 14) at the target's size, and that a smaller store is
+// not judged.
+func TestHistoryVerdict(t *testing.T) {
+	p := historyPoint{days: 30, patients: 200, empty: benchRow{cpuUS: 400, serverUS: 600}, history: benchRow{cpuUS: 500, serverUS: 700}}
+	rows := []benchRow{{name: "one", replicas: 1, perSec: 5000, ratio: 0.5}}
+	got := strings.Join(targetVerdicts(rows, 500, 2, []historyPoint{p}), "\n")
+	if !strings.Contains(got, "after 30 days of 200 patients / empty store: 1.20 (target at most 1.2 after 30 days of 200 patients): met") {
+		t.Errorf("1.20x at 30 days x 200 patients not judged met:\n%s", got)
+	}
+	p.history.serverUS = 710
+	got = strings.Join(targetVerdicts(rows, 500, 2, []historyPoint{p}), "\n")
+	if !strings.Contains(got, "empty store: 1.21 (target at most 1.2 after 30 days of 200 patients): MISSED, 1.0x over") {
+		t.Errorf("1.21x not judged missed:\n%s", got)
+	}
+	p.days = 7
+	if got := historyVerdict(p); !strings.Contains(got, "not judged (1.0x over the bound already at this size; run with --history-days 30 --history-patients 200") {
+		t.Errorf("a 7-day store judged as the target: %s", got)
+	}
+	p.history.serverUS = 600
+	if got := historyVerdict(p); !strings.Contains(got, "not judged (within the bound at this size;") {
+		t.Errorf("a 7-day store at 1.1x: %s", got)
+	}
+}
+
+// TestYearAfterRetention checks the retention estimate's arithmetic by
+// hand: 10 patients over 3 days in 3,000,000 bytes is 100,000 bytes a
+// bed-day; removing 1,000,000 bytes of the 2 old days is 50,000 a bed-day;
+// a 300-bed year keeps 300 x (365 x 100,000 - 364 x 50,000).
+func TestYearAfterRetention(t *testing.T) {
+	y := yearAfterRetention(3_000_000, 1_000_000, 3, 10)
+	if y.perBedDay != 100_000 || y.removedPerBedDay != 50_000 || y.before != 300*365*100_000 || y.after != 300*(365*100_000-364*50_000) {
+		t.Errorf("yearAfterRetention = %+v", y)
 	}
 }
