@@ -15,6 +15,8 @@ import (
 
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgxpool"
+
+	"github.com/ventderive/ventderive/consumer/rawcodec"
 )
 
 //go:embed *.sql
@@ -98,6 +100,11 @@ CREATE TABLE IF NOT EXISTS schema_version (
 	appliedSQL = `SELECT version, name, sha256 FROM schema_version ORDER BY version`
 	recordSQL  = `INSERT INTO schema_version (version, name, sha256) VALUES ($1, $2, $3)`
 	grantsSQL  = `SELECT ventderive_apply_grants()`
+
+	// storeDictionarySQL stores the binary's inbox dictionary (0015) under
+	// its ID; a dictionary already stored under that ID is left as it is.
+	storeDictionarySQL = `INSERT INTO raw_dictionary (id, dictionary) VALUES ($1, $2) ON CONFLICT (id) DO NOTHING`
+	dictionaryVersion  = 15
 )
 
 // ApplyConn is Apply on a single connection, for tools that hold one.
@@ -168,6 +175,11 @@ func ApplyConn(ctx context.Context, conn *pgx.Conn, log *slog.Logger) (version i
 	if current > 0 {
 		if _, err := conn.Exec(ctx, grantsSQL); err != nil {
 			return current, fmt.Errorf("apply grants: %w", err)
+		}
+	}
+	if current >= dictionaryVersion {
+		if _, err := conn.Exec(ctx, storeDictionarySQL, int64(rawcodec.InboxDictionaryID), rawcodec.InboxDictionary); err != nil {
+			return current, fmt.Errorf("store the inbox dictionary: %w", err)
 		}
 	}
 	return current, nil

@@ -112,7 +112,7 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 				refs = append(refs, p.ref)
 			}
 			keys[i], subjects[i], seqs[i], received[i] = m.InboxKey, m.Subject, int64(m.StreamSeq), m.Received.UTC()
-			nres[i], nfacts[i], ords[i], raws[i] = int32(len(m.Resources)), int32(len(m.Facts)), int32(i), m.Raw
+			nres[i], nfacts[i], ords[i], raws[i] = int32(len(m.Resources)), int32(len(m.Facts)), int32(i), storedRaw(m.Raw)
 		}
 		slices.Sort(refs)
 		refs = slices.Compact(refs)

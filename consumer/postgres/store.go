@@ -435,7 +435,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		b := &pgx.Batch{}
 		b.Queue(pointLookupsSQL)
 		b.Queue(claimInboxSQL, msg.InboxKey, msg.Subject, int64(msg.StreamSeq), msg.Received.UTC(), now,
-			len(msg.Resources), len(msg.Facts), msg.Raw)
+			len(msg.Resources), len(msg.Facts), storedRaw(msg.Raw))
 		for _, p := range order {
 			b.Queue(lockPatientSQL, p.ref)
 		}
