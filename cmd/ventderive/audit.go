@@ -64,6 +64,10 @@ questions (time basis: the blood gas's effective time, except deadletters):
                  distribution of the change, flipped interpretations and refusals that would
                  become values or the reverse, then each changed key. Writes and publishes
                  nothing.  [--patient] [--kind] [--site JSON]
+  payloads       decode every stored inbox payload (zstd with a dictionary the database holds, or
+                 plain from before migration 0015) and check that its SHA-256 is its inbox key;
+                 a payload that does not decode or match is named and the command exits non-zero.
+                 Needs a role that reads inbox.raw (the migrating role), not the reviewer role.
 flags common to all: --database-url URL (default $DATABASE_URL; normally the reviewer role)
   --format table|json|csv (default table)
 paging (all but show, published, settings and verify of one key; replay pages its changed keys): --limit N rows (default 1000, at most 10000) --offset N rows skipped;
@@ -95,6 +99,7 @@ var auditQuestions = []auditQuestion{
 	{"settings", nil},
 	{"verify", []string{"patient", "from", "to", "kind", "limit", "offset"}},
 	{"replay", []string{"patient", "from", "to", "kind", "algorithm", "site", "limit", "offset"}},
+	{"payloads", nil},
 }
 
 var (
@@ -316,6 +321,18 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		}
 		if sum.Mismatches > 0 {
 			return fmt.Errorf("audit verify: %d mismatch(es): a stored value or refusal does not follow from its stored basis", sum.Mismatches)
+		}
+		return nil
+	case "payloads":
+		pc, err := postgres.CheckPayloads(ctx, pool, 1000)
+		if err != nil {
+			return fmt.Errorf("audit payloads: %w (this question needs a role that reads inbox.raw)", err)
+		}
+		if err := out.payloads(pc); err != nil {
+			return err
+		}
+		if len(pc.Failed) > 0 {
+			return fmt.Errorf("audit payloads: %d stored payload(s) refused: not the bytes received", len(pc.Failed))
 		}
 		return nil
 	case "replay":
@@ -1170,4 +1187,32 @@ func (o auditOutput) replay(rep postgres.ReplayReport, site fhirmap.Site, base s
 	fmt.Fprintln(o.w)
 	fmt.Fprintln(o.w, "changed keys:")
 	return writePage(o, rep.Changes, replayChangeColumns)
+}
+
+// payloads writes what audit payloads found: counts, bytes stored against
+// bytes received, and each refused payload by inbox key.
+func (o auditOutput) payloads(pc postgres.PayloadCheck) error {
+	switch o.format {
+	case "json":
+		return o.json(pc)
+	case "csv":
+		w := csv.NewWriter(o.w)
+		w.Write([]string{"compressed", "plain", "stored_bytes", "payload_bytes", "refused"})
+		w.Write([]string{strconv.FormatInt(pc.Compressed, 10), strconv.FormatInt(pc.Plain, 10),
+			strconv.FormatInt(pc.StoredBytes, 10), strconv.FormatInt(pc.PayloadBytes, 10), strings.Join(pc.Failed, "; ")})
+		w.Flush()
+		return w.Error()
+	}
+	var b strings.Builder
+	n := pc.Compressed + pc.Plain
+	fmt.Fprintf(&b, "stored payloads that are the bytes received: %d (%d compressed, %d plain from before migration 0015)\n", n, pc.Compressed, pc.Plain)
+	if pc.StoredBytes > 0 {
+		fmt.Fprintf(&b, "  %d bytes stored for %d received (%.1f to 1)\n", pc.StoredBytes, pc.PayloadBytes, float64(pc.PayloadBytes)/float64(pc.StoredBytes))
+	}
+	fmt.Fprintf(&b, "refused: %d\n", len(pc.Failed))
+	for _, f := range pc.Failed {
+		fmt.Fprintf(&b, "  %s\n", f)
+	}
+	_, err := io.WriteString(o.w, b.String())
+	return err
 }

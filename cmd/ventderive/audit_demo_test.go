@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"fmt"
 	"net/url"
 	"os"
 	"regexp"
@@ -268,6 +269,17 @@ ORDER BY 1`)
 	}
 	if again := parse(retain("--apply")); again[1] != 0 {
 		t.Errorf("a second retain removed %v, want nothing", again)
+	}
+	// Every payload kept is the bytes received (migration 0015: zstd with
+	// the dictionary the database holds; the SHA-256 is the inbox key).
+	var pout, perr bytes.Buffer
+	pe := env{getenv: func(string) string { return "" }, stdout: &pout, stderr: &perr}
+	if err := run(ctx, []string{"audit", "payloads", "--database-url", demoURL}, pe); err != nil {
+		t.Fatalf("audit payloads: %v\n%s%s", err, pout.String(), perr.String())
+	}
+	wantLine := fmt.Sprintf("stored payloads that are the bytes received: %d (%d compressed, 0 plain", raws0-want[3], raws0-want[3])
+	if !strings.Contains(pout.String(), wantLine) || !strings.Contains(pout.String(), "refused: 0") {
+		t.Errorf("audit payloads printed\n%s\nwant %q and no refusal", pout.String(), wantLine)
 	}
 	t.Logf("retain removed %d readings (%d fact rows) of %d patients and %d payloads; %d cited inputs intact", want[0], want[1], want[2], want[3], len(before))
 }
