@@ -19,23 +19,9 @@ import (
 // table carries measured, plausible numbers. (The memory check starts this
 // binary as 'serve', which a test binary cannot be, so it is left out here.)
 func TestBenchSmall(t *testing.T) {
-	admin := pgtest.AdminURL(t)
-	var out, errOut bytes.Buffer
-	e := env{getenv: func(k string) string {
-		if k == "DATABASE_URL" {
-			return admin
-		}
-		return ""
-	}, stdout: &out, stderr: &errOut}
-	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute)
-	defer cancel()
-	err := run(ctx, []string{"bench", "--inputs", "400", "--copies", "1", "--rate", "200", "--paced", "2s",
+	report := benchReport(t, 3*time.Minute, "--inputs", "400", "--copies", "1", "--rate", "200", "--paced", "2s",
 		"--replicas", "1", "--patients", "0", "--stay-hours", "6", "--stay-inputs", "300",
-		"--history-hours", "6", "--history-copies", "1", "--backlog", "3000", "--dir", t.TempDir()}, e)
-	if err != nil {
-		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
-	}
-	report := out.String()
+		"--history-hours", "6", "--history-copies", "1", "--backlog", "3000", "--dir", t.TempDir())
 	t.Log("\n" + report)
 	for _, name := range []string{"floor", "pipeline, 1 replica(s)"} {
 		re := regexp.MustCompile(`(?m)^\s*` + regexp.QuoteMeta(name) + `((?:\s+[0-9.]+)+)\s*$`)
@@ -311,23 +297,9 @@ func TestTargetVerdicts(t *testing.T) {
 // PostgreSQL and checks its table, the trend line, the retention estimate
 // and the targets line.
 func TestBenchHistorySmall(t *testing.T) {
-	admin := pgtest.AdminURL(t)
-	var out, errOut bytes.Buffer
-	e := env{getenv: func(k string) string {
-		if k == "DATABASE_URL" {
-			return admin
-		}
-		return ""
-	}, stdout: &out, stderr: &errOut}
-	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
-	defer cancel()
-	err := run(ctx, []string{"bench", "--inputs", "300", "--copies", "1", "--rate", "200", "--paced", "1s",
+	report := benchReport(t, 5*time.Minute, "--inputs", "300", "--copies", "1", "--rate", "200", "--paced", "1s",
 		"--replicas", "1", "--patients", "0", "--stay-hours", "0", "--backlog", "0",
-		"--history-days", "1,2", "--history-patients", "10", "--history-inputs", "300", "--history-every", "10m", "--dir", t.TempDir()}, e)
-	if err != nil {
-		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
-	}
-	report := out.String()
+		"--history-days", "1,2", "--history-patients", "10", "--history-inputs", "300", "--history-every", "10m", "--dir", t.TempDir())
 	t.Log("\n" + report)
 	var stored []float64
 	for _, days := range []string{"1", "2"} {
@@ -401,4 +373,25 @@ func TestYearAfterRetention(t *testing.T) {
 	if y.perBedDay != 100_000 || y.removedPerBedDay != 50_000 || y.before != 300*365*100_000 || y.after != 300*(365*100_000-364*50_000) {
 		t.Errorf("yearAfterRetention = %+v", y)
 	}
+}
+
+// benchReport runs the bench command with args against a real PostgreSQL
+// (pgtest's admin URL as DATABASE_URL) within timeout and returns what it
+// printed; a failing run fails the test with its output.
+func benchReport(t *testing.T, timeout time.Duration, args ...string) string {
+	t.Helper()
+	admin := pgtest.AdminURL(t)
+	var out, errOut bytes.Buffer
+	e := env{getenv: func(k string) string {
+		if k == "DATABASE_URL" {
+			return admin
+		}
+		return ""
+	}, stdout: &out, stderr: &errOut}
+	ctx, cancel := context.WithTimeout(context.Background(), timeout)
+	defer cancel()
+	if err := run(ctx, append([]string{"bench"}, args...), e); err != nil {
+		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
+	}
+	return out.String()
 }
