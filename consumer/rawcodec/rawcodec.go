@@ -38,13 +38,16 @@ type Codec struct {
 
 // New builds a codec that writes with current and reads frames made with
 // current or any of older. Each dictionary must be in zstd dictionary format.
+// The encoder runs at zstd's fastest level: with the dictionary it halves the
+// default level's encode time and compressed the test scenario no worse (9.2
+// against 8.9 to 1; README, issue 14 "Narrow storage").
 func New(current []byte, older ...[]byte) (*Codec, error) {
 	id, err := DictID(current)
 	if err != nil {
 		return nil, err
 	}
 	enc, err := zstd.NewWriter(nil, zstd.WithEncoderDict(current), zstd.WithEncoderConcurrency(1),
-		zstd.WithEncoderCRC(true))
+		zstd.WithEncoderLevel(zstd.SpeedFastest), zstd.WithEncoderCRC(true))
 	if err != nil {
 		return nil, fmt.Errorf("rawcodec: encoder: %w", err)
 	}
