@@ -86,6 +86,9 @@ type benchFlags struct {
 	// freshAge is the replicas' consumer.Config FreshAge (negative: the
 	// fresh lane off, for comparison).
 	freshAge time.Duration
+	// ladder measures the cost ladder (bench_ladder.go) between the
+	// floor and the pipeline.
+	ladder bool
 }
 
 func runBench(ctx context.Context, args []string, e env) error {
@@ -113,6 +116,7 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.IntVar(&f.historyInputs, "history-inputs", 5000, "inputs of the workload measured on the --history-days store and on an empty store")
 	fs.DurationVar(&f.historyEvery, "history-every", time.Minute, "ventilator reading interval of the --history-days store and its workload (the simulator's 1 min to 10 min)")
 	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative, e.g. -1s: the lane off, for comparison)")
+	fs.BoolVar(&f.ladder, "ladder", true, "measure the cost ladder: the floor, + the service's strict decode, + its inbox and fact rows on readings that can affect no derivation, and the one-replica pipeline, each as a row (about 10 s at the defaults; --ladder=false: skip)")
 	fs.IntVar(&f.backlog, "backlog", 100000, "inputs in the stream before one replica starts, drained with a fresh blood gas published during the drain (0: skip)")
 	if done, err := parseFlags(fs, args); done {
 		return err
@@ -346,6 +350,7 @@ type benchRow struct {
 	allocs      float64
 	peakRSSMB   float64
 	outputs     int
+	facts       int // fact rows stored (pipeline runs)
 	ratio       float64
 	latencyNote string
 	storage     *storageReport // the store after the drain (pipeline runs)
@@ -363,6 +368,18 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 		return fmt.Errorf("floor: %w", err)
 	}
 	rows = append(rows, floor)
+	var ladder []ladderStep
+	if b.f.ladder {
+		decode, err := b.ladderDecode(ctx)
+		if err != nil {
+			return fmt.Errorf("ladder, decode step: %w", err)
+		}
+		cheap, err := b.ladderCheap(ctx)
+		if err != nil {
+			return fmt.Errorf("ladder, cheap step: %w", err)
+		}
+		ladder = []ladderStep{stepOf(floor, ladderFloor, "the floor"), decode, cheap}
+	}
 	var stopProf func()
 	if b.f.cpuprof != "" {
 		pf, err := os.Create(b.f.cpuprof)
@@ -390,6 +407,15 @@ func (b *bench) run(ctx context.Context, replicas []int) error {
 	for _, r := range rows {
 		if r.storage != nil {
 			b.reportStorage("the drain of "+r.name, *r.storage)
+		}
+	}
+	if b.f.ladder {
+		if i := slices.Index(replicas, 1); i >= 0 {
+			ladder = append(ladder, stepOf(rows[i+1], ladderFull, "the derivations"))
+		}
+		b.reportLadder(ladder, len(b.msgs))
+		if len(ladder) < 4 {
+			fmt.Fprintln(b.out, "  (no step 4: pass 1 in --replicas to measure the full pipeline with one replica)")
 		}
 	}
 	var hist []historyPoint
@@ -1003,6 +1029,13 @@ func (b *bench) floor(ctx context.Context) (benchRow, []string, error) {
 // acking its messages. It stops after want messages (default: all of the
 // run's inputs) and returns the rate.
 func (b *bench) floorConsume(ctx context.Context, durable string, pool *pgxpool.Pool, latency func(time.Duration), want ...int) (float64, error) {
+	return b.floorConsumeWork(ctx, durable, pool, latency, nil, want...)
+}
+
+// floorConsumeWork is floorConsume with work done on each message's
+// payload in its lane before the group's insert (nil: none), as the cost
+// ladder adds the service's decode to the floor.
+func (b *bench) floorConsumeWork(ctx context.Context, durable string, pool *pgxpool.Pool, latency func(time.Duration), work func([]byte), want ...int) (float64, error) {
 	cfg := consumer.DefaultConfig()
 	cfg.Durable = durable
 	if b.f.fetch > 0 {
@@ -1029,6 +1062,11 @@ func (b *bench) floorConsume(ctx context.Context, durable string, pool *pgxpool.
 		// pull ends, each message acked after its group's COMMIT.
 		var failed atomic.Value
 		n := streamGroups(batch.Messages(), b.f.workers, 64, 5*time.Millisecond, func(g []jetstream.Msg) {
+			if work != nil {
+				for _, m := range g {
+					work(m.Data())
+				}
+			}
 			if pool != nil {
 				rows := make([]floorRow, len(g))
 				for i, m := range g {
@@ -1195,34 +1233,11 @@ func stopReplicas(rs []*benchReplica) error {
 // acknowledgement by the output stream.
 func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	row := benchRow{name: fmt.Sprintf("pipeline, %d replica(s)", n), replicas: n}
-	url, pool, err := b.freshRun(ctx)
+	pool, err := b.pipelineDrain(ctx, b.msgs, n, &row)
 	if err != nil {
 		return row, err
 	}
 	defer pool.Close()
-	if err := b.publishAll(ctx, b.msgs); err != nil {
-		return row, err
-	}
-	runtime.GC()
-	from := b.takeUsage(true)
-	rs, err := b.startReplicas(ctx, url, n)
-	if err == nil {
-		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, 5*time.Minute, benchPayloads(b.msgs))
-	}
-	to := b.takeUsage(false)
-	if serr := stopReplicas(rs); err == nil {
-		err = serr
-	}
-	if err != nil {
-		return row, err
-	}
-	row.fill(from, to, len(b.msgs))
-	if err := b.checkAccounted(ctx, pool, b.msgs); err != nil {
-		return row, err
-	}
-	if err := pool.QueryRow(ctx, `SELECT count(*) FROM outbox`).Scan(&row.outputs); err != nil {
-		return row, err
-	}
 	st, err := storage(ctx, pool, b.msgs)
 	if err != nil {
 		return row, err
@@ -1236,7 +1251,7 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	}
 	defer ppool.Close()
 	paced := b.pacedMsgs()
-	rs, err = b.startReplicas(ctx, url, n)
+	rs, err := b.startReplicas(ctx, url, n)
 	if err == nil {
 		err = b.publishPaced(ctx, paced, b.f.rate)
 	}
@@ -1256,6 +1271,45 @@ func (b *bench) pipeline(ctx context.Context, n int) (benchRow, error) {
 	row.p50, row.p99, row.latencyN = percentile(lat, 0.5), percentile(lat, 0.99), len(lat)
 	row.latencyNote = fmt.Sprintf("%d of %d inputs produced derived Observations; latency from input publish to the last of them stored in the output stream (stream timestamps)", inputs, len(paced))
 	return row, nil
+}
+
+// pipelineDrain measures n replicas draining msgs, published beforehand,
+// into a fresh database: it fills row's inputs/s and CPU figures and its
+// outputs (outbox rows) and facts stored, checks that every input was accounted for, and
+// returns the database's pool, which the caller closes.
+func (b *bench) pipelineDrain(ctx context.Context, msgs []benchMsg, n int, row *benchRow) (*pgxpool.Pool, error) {
+	url, pool, err := b.freshRun(ctx)
+	if err != nil {
+		return nil, err
+	}
+	fail := func(err error) (*pgxpool.Pool, error) {
+		pool.Close()
+		return nil, err
+	}
+	if err := b.publishAll(ctx, msgs); err != nil {
+		return fail(err)
+	}
+	runtime.GC()
+	from := b.takeUsage(true)
+	rs, err := b.startReplicas(ctx, url, n)
+	if err == nil {
+		err = b.waitDrained(ctx, consumer.DefaultDurable, pool, 5*time.Minute, benchPayloads(msgs))
+	}
+	to := b.takeUsage(false)
+	if serr := stopReplicas(rs); err == nil {
+		err = serr
+	}
+	if err != nil {
+		return fail(err)
+	}
+	row.fill(from, to, len(msgs))
+	if err := b.checkAccounted(ctx, pool, msgs); err != nil {
+		return fail(err)
+	}
+	if err := pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM outbox), (SELECT count(*) FROM fact)`).Scan(&row.outputs, &row.facts); err != nil {
+		return fail(err)
+	}
+	return pool, nil
 }
 
 // outputLatency matches each derived Observation to the input that caused

@@ -75,6 +75,7 @@ func TestBenchSmall(t *testing.T) {
 		t.Error("no history-growth table with both stores and the ratio line")
 	}
 	checkBenchBacklog(t, report)
+	checkBenchLadder(t, report, 400)
 	if !regexp.MustCompile(`pipeline/floor with one replica: [0-9.]+ \(target at least 0\.5\): (met|MISSED)`).MatchString(report) ||
 		!regexp.MustCompile(`bytes per input recorded: [1-9][0-9]* \(target at most 1536\): (met|MISSED)`).MatchString(report) ||
 		!strings.Contains(report, "run with --rate 500 to judge it") {
@@ -299,8 +300,11 @@ func TestTargetVerdicts(t *testing.T) {
 func TestBenchHistorySmall(t *testing.T) {
 	report := benchReport(t, 5*time.Minute, "--inputs", "300", "--copies", "1", "--rate", "200", "--paced", "1s",
 		"--replicas", "1", "--patients", "0", "--stay-hours", "0", "--backlog", "0",
-		"--history-days", "1,2", "--history-patients", "10", "--history-inputs", "300", "--history-every", "10m", "--dir", t.TempDir())
+		"--history-days", "1,2", "--history-patients", "10", "--history-inputs", "300", "--history-every", "10m", "--ladder=false", "--dir", t.TempDir())
 	t.Log("\n" + report)
+	if strings.Contains(report, "Cost ladder") {
+		t.Error("--ladder=false printed a cost ladder")
+	}
 	var stored []float64
 	for _, days := range []string{"1", "2"} {
 		m := regexp.MustCompile(`(?m)^\s*` + days + `((?:\s+[0-9.]+){10})\s*$`).FindStringSubmatch(report)
