@@ -180,7 +180,7 @@ func (b *bench) reportLadder(steps []ladderStep, cheapOf int) {
 	}
 	tw.Flush()
 	fmt.Fprintln(b.out, "Service CPU is this process (service code and the embedded NATS server); added CPU is service plus PostgreSQL over the step before; added wall time is 1/inputs/s over the step before.")
-	for _, l := range ladderConclusion(steps, targetFloorRatio) {
+	for _, l := range ladderConclusion(steps, targetFloorRatio, runtime.NumCPU()) {
 		fmt.Fprintln(b.out, "  "+l)
 	}
 }
@@ -196,8 +196,12 @@ func (b *bench) reportLadder(steps []ladderStep, cheapOf int) {
 //   - each step's own added time on the floor alone, wall(floor) /
 //     (wall(floor) + added), an estimate of the best ratio were every other
 //     step free; for the lowest under target, how far its added time must
-//     fall to allow the target: to wall(floor) x (1/target - 1).
-func ladderConclusion(steps []ladderStep, target float64) []string {
+//     fall to allow the target: to wall(floor) x (1/target - 1);
+//   - with the server's CPU measured (a local PostgreSQL), the most inputs/s
+//     cores can sustain at each step's service + PostgreSQL CPU per input,
+//     cores x 1e6 / CPU, a bound no overlap can beat, and the first step
+//     whose bound is under target of the floor.
+func ladderConclusion(steps []ladderStep, target float64, cores int) []string {
 	if len(steps) < 2 || steps[0].perSec <= 0 {
 		return []string{"conclusion: no step beyond the floor measured"}
 	}
@@ -253,6 +257,26 @@ func ladderConclusion(steps []ladderStep, target float64) []string {
 		allowed := floor.wallUS() * (1/target - 1)
 		l += fmt.Sprintf("; step %q alone allows %.2f: even with every other step free, the %.1f target needs its added time cut from %.0f to %.0f us per input (%.1fx), or %s dropped",
 			steps[worst].name, r, target, added[worst], allowed, added[worst]/allowed, steps[worst].keeps)
+	}
+	out = append(out, l)
+	if cores < 1 || floor.serverUS <= 0 {
+		// Without the server's CPU (a remote PostgreSQL) there is no
+		// machine-wide bound to state.
+		return out
+	}
+	var caps []string
+	capOf := func(s ladderStep) float64 { return float64(cores) * 1e6 / (s.cpuUS + s.serverUS) }
+	first := -1
+	for k := 1; k < len(steps); k++ {
+		caps = append(caps, fmt.Sprintf("%.0f/s (%.2f)", capOf(steps[k]), capOf(steps[k])/floor.perSec))
+		if first < 0 && capOf(steps[k])/floor.perSec < target {
+			first = k
+		}
+	}
+	l = fmt.Sprintf("CPU bound: %d cores over the service + PostgreSQL CPU per input allow at most, whatever runs in parallel (ratio to this run's floor): %s", cores, strings.Join(caps, ", "))
+	if first > 0 {
+		l += fmt.Sprintf("; step %q needs %.0f us of CPU per input, so on this machine the %.1f target cannot be met without cutting the CPU of %s",
+			steps[first].name, steps[first].cpuUS+steps[first].serverUS, target, steps[first].keeps)
 	}
 	return append(out, l)
 }

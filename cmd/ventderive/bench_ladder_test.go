@@ -32,10 +32,25 @@ func TestLadderConclusion(t *testing.T) {
 			}
 		}
 	}
-	check(ladderConclusion(steps, 0.5),
+	check(ladderConclusion(steps, 0.5, 2),
 		`conclusion: step "full" costs most: +750 us of wall time per input, 83% of the 900 us from the floor to step 4 (+250 us service CPU, +300 us PostgreSQL CPU)`,
 		`best ratio to the floor with the work of steps 2..4 kept: 0.80, 0.40, 0.10; step "cheap" alone reaches 0.40, under the 0.5 target: every later step keeps its work, so the target cannot be met unless the cost of the rows falls (or it is dropped)`,
-		`each step's added time on the floor alone (every other step free) allows: 0.80, 0.44, 0.12; step "full" alone allows 0.12: even with every other step free, the 0.5 target needs its added time cut from 750 to 100 us per input (7.5x), or the derivations dropped`)
+		`each step's added time on the floor alone (every other step free) allows: 0.80, 0.44, 0.12; step "full" alone allows 0.12: even with every other step free, the 0.5 target needs its added time cut from 750 to 100 us per input (7.5x), or the derivations dropped`,
+		// 2 cores: 2e6 / (90 + 45) = 14,815/s (1.48 of the floor),
+		// 2e6 / 450 = 4,444/s (0.44), 2e6 / 1,000 = 2,000/s (0.20).
+		`CPU bound: 2 cores over the service + PostgreSQL CPU per input allow at most, whatever runs in parallel (ratio to this run's floor): 14815/s (1.48), 4444/s (0.44), 2000/s (0.20); step "cheap" needs 450 us of CPU per input, so on this machine the 0.5 target cannot be met without cutting the CPU of the rows`)
+	// 8 cores: 8e6 / 450 = 17,778/s (1.78), 8e6 / 1,000 = 8,000/s (0.80):
+	// no step is bound under the target.
+	if got := strings.Join(ladderConclusion(steps, 0.5, 8), "\n"); !strings.Contains(got, "(ratio to this run's floor): 59259/s (5.93), 17778/s (1.78), 8000/s (0.80)\n") &&
+		!strings.HasSuffix(got, "(ratio to this run's floor): 59259/s (5.93), 17778/s (1.78), 8000/s (0.80)") {
+		t.Errorf("8 cores: %s", got)
+	}
+	// A remote server (no PostgreSQL CPU measured): no CPU bound.
+	remote := slices.Clone(steps)
+	remote[0].serverUS = 0
+	if got := strings.Join(ladderConclusion(remote, 0.5, 2), "\n"); strings.Contains(got, "CPU bound") {
+		t.Errorf("a CPU bound without the server's CPU: %s", got)
+	}
 
 	// Decode 5,000/s and cheap path 6,000/s: walls 100, 200, 166.7,
 	// 1,000; the decode adds 100 us, the cheap step -33 us (noise can do
@@ -43,7 +58,7 @@ func TestLadderConclusion(t *testing.T) {
 	// (the decode's 0.50 is not under it); alone, 100/200 = 0.50,
 	// 100/66.7 = 1.50 and 100/933 = 0.11, the last 8.3x over its 100 us.
 	steps[1].perSec, steps[2].perSec = 5000, 6000
-	check(ladderConclusion(steps, 0.5),
+	check(ladderConclusion(steps, 0.5, 2),
 		`conclusion: step "full" costs most: +833 us of wall time per input, 93% of the 900 us`,
 		`kept: 0.50, 0.60, 0.10; step "full" alone reaches 0.10, under the 0.5 target: the steps before it reach the target, so the gap is in the derivations`,
 		`allows: 0.50, 1.50, 0.11; step "full" alone allows 0.11: even with every other step free, the 0.5 target needs its added time cut from 833 to 100 us per input (8.3x)`)
@@ -51,7 +66,7 @@ func TestLadderConclusion(t *testing.T) {
 	// 5,100, 5,080 and 5,000/s: walls 196.1, 196.9, 200; the decode adds
 	// most (96 of 100 us) and every ratio is at least 0.5.
 	steps[1].perSec, steps[2].perSec, steps[3].perSec = 5100, 5080, 5000
-	got := ladderConclusion(steps, 0.5)
+	got := ladderConclusion(steps, 0.5, 2)
 	check(got,
 		`conclusion: step "decode" costs most: +96 us of wall time per input, 96% of the 100 us`,
 		`kept: 0.51, 0.51, 0.50; every step reaches the 0.5 target`,
@@ -59,7 +74,7 @@ func TestLadderConclusion(t *testing.T) {
 	if strings.Contains(strings.Join(got, "\n"), "needs its added time cut") {
 		t.Errorf("every step within the target, yet a cut is asked for: %q", got)
 	}
-	if got := ladderConclusion(steps[:1], 0.5); len(got) != 1 || !strings.Contains(got[0], "no step beyond the floor") {
+	if got := ladderConclusion(steps[:1], 0.5, 2); len(got) != 1 || !strings.Contains(got[0], "no step beyond the floor") {
 		t.Errorf("a ladder of the floor alone: %q", got)
 	}
 }
