@@ -167,6 +167,23 @@ func checkBenchLadder(t *testing.T, report string, msgs int) {
 			first = names[k]
 		}
 	}
+	// The CPU bound, printed when the server's CPU was measured: cores x
+	// 1e6 over each step's printed service + PostgreSQL CPU (rounded to
+	// units, so within a few percent).
+	if cb := regexp.MustCompile(`CPU bound: ([0-9]+) cores .*?: ([0-9]+)/s \(([0-9.]+)\), ([0-9]+)/s \(([0-9.]+)\), ([0-9]+)/s \(([0-9.]+)\)`).FindStringSubmatch(section); cb != nil {
+		cores := mustFloat(cb[1])
+		for k := 1; k < 4; k++ {
+			want := cores * 1e6 / (rows[k].cpu + rows[k].pg)
+			if got := mustFloat(cb[2*k]); got < 0.97*want-1 || got > 1.03*want+1 {
+				t.Errorf("CPU bound of step %d: %g/s, want %g cores x 1e6 / %g us = %.0f/s", k+1, got, cores, rows[k].cpu+rows[k].pg, want)
+			}
+			if r := mustFloat(cb[2*k+1]); r < mustFloat(cb[2*k])/floor.perSec-0.01 || r > mustFloat(cb[2*k])/floor.perSec+0.01 {
+				t.Errorf("CPU bound ratio of step %d: %g, want %s/s over the floor's %g/s", k+1, r, cb[2*k], floor.perSec)
+			}
+		}
+	} else if floor.pg > 0 {
+		t.Error("PostgreSQL CPU measured but no CPU bound line")
+	}
 	// A ratio printed as 0.50 may be just under the target: not judged.
 	if !strings.Contains(b[0], "kept: 0.50") && !strings.Contains(b[0], ", 0.50") && b[5] != first {
 		t.Errorf("conclusion's first step under 0.5 is %q, the table's %q", b[5], first)
