@@ -1033,8 +1033,9 @@ func (b *bench) floorConsume(ctx context.Context, durable string, pool *pgxpool.
 }
 
 // floorConsumeWork is floorConsume with work done on each message's
-// payload in its lane before the group's insert (nil: none), as the cost
-// ladder adds the service's decode to the floor.
+// payload before it is dealt to its lane (nil: none), one message after
+// another as the pipeline decodes, as the cost ladder adds the service's
+// decode to the floor.
 func (b *bench) floorConsumeWork(ctx context.Context, durable string, pool *pgxpool.Pool, latency func(time.Duration), work func([]byte), want ...int) (float64, error) {
 	cfg := consumer.DefaultConfig()
 	cfg.Durable = durable
@@ -1061,12 +1062,22 @@ func (b *bench) floorConsumeWork(ctx context.Context, durable string, pool *pgxp
 		// committing a group GroupWait after its first message or when the
 		// pull ends, each message acked after its group's COMMIT.
 		var failed atomic.Value
-		n := streamGroups(batch.Messages(), b.f.workers, 64, 5*time.Millisecond, func(g []jetstream.Msg) {
-			if work != nil {
-				for _, m := range g {
+		msgs := batch.Messages()
+		if work != nil {
+			// Where the pipeline decodes: in the goroutine that deals a
+			// pull's messages to the lanes, one message after another
+			// (consumer.Pipeline's process), before its lane sees it.
+			in := make(chan jetstream.Msg)
+			go func() {
+				defer close(in)
+				for m := range batch.Messages() {
 					work(m.Data())
+					in <- m
 				}
-			}
+			}()
+			msgs = in
+		}
+		n := streamGroups(msgs, b.f.workers, 64, 5*time.Millisecond, func(g []jetstream.Msg) {
 			if pool != nil {
 				rows := make([]floorRow, len(g))
 				for i, m := range g {

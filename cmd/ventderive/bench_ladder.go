@@ -19,8 +19,9 @@ import (
 //  1. the floor (JetStream pull, one multi-row insert of the raw messages
 //     per group of up to 64, ack after COMMIT);
 //  2. the floor plus the service's strict decode and fact extraction
-//     (fhirmap.Decode, as the pipeline calls it) of every message, storing
-//     only the floor's row;
+//     (fhirmap.Decode, as the pipeline calls it and where: one message
+//     after another as a pull's messages are dealt to the lanes) of every
+//     message, storing only the floor's row;
 //  3. the service itself (consumer.Pipeline over postgres.Store) on the
 //     run's inputs that can affect no derivation: the inbox row with its
 //     zstd payload and the fact rows, through the group's cold path (no
@@ -64,8 +65,9 @@ func (b *bench) ladderCodes() *fhirmap.CodeTable {
 }
 
 // ladderDecode is step 2: the floor's drain of the run's messages with the
-// service's strict decode of each message in its lane before the group's
-// insert.
+// service's strict decode of each message where the pipeline decodes it:
+// in the goroutine that deals a pull's messages to the lanes, one after
+// another, before the message reaches its lane.
 func (b *bench) ladderDecode(ctx context.Context) (ladderStep, error) {
 	var step ladderStep
 	if err := b.resetStreams(ctx); err != nil {
