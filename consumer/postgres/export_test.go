@@ -7,3 +7,7 @@ var ConcatArgs = concatArgs
 
 // CachedLookups is the number of term and encounter ids the Store caches.
 func (s *Store) CachedLookups() (terms, encounters int) { return s.lookups.size() }
+
+// WithoutLookupCache makes the Store resolve every term and encounter in
+// SQL, for comparisons with the cache.
+func (s *Store) WithoutLookupCache() { s.lookups = nil }

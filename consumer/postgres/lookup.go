@@ -56,9 +56,13 @@ func newLookupCache() *lookupCache {
 }
 
 // ids returns the cached term and encounter ids of facts, 0 where none is
-// cached, and notes the values without one as wanted.
+// cached, and notes the values without one as wanted. A nil cache (tests
+// comparing with the SQL lookups alone) has none.
 func (c *lookupCache) ids(facts []fhirmap.Fact) (terms, encounters []int32) {
 	terms, encounters = make([]int32, len(facts)), make([]int32, len(facts))
+	if c == nil {
+		return terms, encounters
+	}
 	var missTerm []termKey
 	var missEnc []string
 	c.mu.RLock()
@@ -93,6 +97,9 @@ func (c *lookupCache) ids(facts []fhirmap.Fact) (terms, encounters []int32) {
 
 // size is the number of cached terms and encounters.
 func (c *lookupCache) size() (terms, encounters int) {
+	if c == nil {
+		return 0, 0
+	}
 	c.mu.RLock()
 	defer c.mu.RUnlock()
 	return len(c.terms), len(c.encounters)
@@ -118,6 +125,9 @@ JOIN fact_term t ON ` + termMatchSQL
 // committed, or rolled back) is wanted again when a fact next names it.
 func (s *Store) loadWanted(ctx context.Context) {
 	c := s.lookups
+	if c == nil {
+		return
+	}
 	c.mu.Lock()
 	terms, encs := c.wantTerms, c.wantEncounters
 	if len(terms)+len(encs) == 0 {
