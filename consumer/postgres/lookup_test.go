@@ -155,3 +155,79 @@ func TestLookupCacheSurvivesRollback(t *testing.T) {
 	}
 	checkFactsResolve(t, f, 2)
 }
+
+// TestLookupTermRaceWithOpenTransaction makes the race certain: another
+// transaction (a replica in the middle of its insert) has inserted the
+// same new term and not committed when the Store stores a reading with
+// it. The Store's insert must wait for it, then take that row's id when it
+// commits, or insert a row of its own when it rolls back (the other id
+// then names no row and must not be used or cached). Either way one term
+// row is left, a second reading stored with the cached id names the same
+// term, and every reading reads back with its term.
+func TestLookupTermRaceWithOpenTransaction(t *testing.T) {
+	t.Parallel()
+	for _, commit := range []bool{true, false} {
+		t.Run(fmt.Sprintf("other commits=%v", commit), func(t *testing.T) {
+			t.Parallel()
+			f := newFixture(t)
+			tx, err := f.pool.Begin(f.ctx)
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer tx.Rollback(f.ctx)
+			var otherID int32
+			if err := tx.QueryRow(f.ctx, `INSERT INTO fact_term (quantity, origin, detail, specimen, temp_corrected, unit,
+			    text, source_unit, code_system, code, code_display, status)
+			  VALUES ($1, $2, '', '', false, 'mL', '', 'mL', $3, 'race-1', '', $4) RETURNING id`,
+				string(fhirmap.QTidalVol), string(fhirmap.OriginMeasured), inventedCodes, string(fhirmap.StatusFinal)).Scan(&otherID); err != nil {
+				t.Fatal(err)
+			}
+			var p testPlan
+			done := make(chan error, 1)
+			go func() {
+				_, err := f.store.Ingest(f.ctx, coded("Patient/lg-icu-0790", "open-1-0", 1, 1), p.plan)
+				done <- err
+			}()
+			select {
+			case err := <-done:
+				t.Fatalf("Ingest returned (%v) while another transaction held the same new term", err)
+			case <-time.After(300 * time.Millisecond):
+			}
+			if commit {
+				err = tx.Commit(f.ctx)
+			} else {
+				err = tx.Rollback(f.ctx)
+			}
+			if err != nil {
+				t.Fatal(err)
+			}
+			if err := <-done; err != nil {
+				t.Fatalf("Ingest after the other transaction ended: %v", err)
+			}
+			termOf := func(key string) int32 {
+				var id int32
+				if err := f.pool.QueryRow(f.ctx, `SELECT term_id FROM fact_row WHERE key = $1`, key).Scan(&id); err != nil {
+					t.Fatal(err)
+				}
+				return id
+			}
+			first := termOf("Observation/open-1-0")
+			if commit != (first == otherID) {
+				t.Errorf("other transaction committed %v: the reading names term %d, the other's was %d", commit, first, otherID)
+			}
+			if nt, _ := f.store.CachedLookups(); nt != 1 {
+				t.Errorf("%d terms cached after the commit, want 1", nt)
+			}
+			if _, err := f.store.Ingest(f.ctx, coded("Patient/lg-icu-0790", "open-1-1", 1, 2), p.plan); err != nil {
+				t.Fatal(err)
+			}
+			if second := termOf("Observation/open-1-1"); second != first {
+				t.Errorf("the reading stored with the cached id names term %d, the first %d", second, first)
+			}
+			if n := f.count(t, "fact_term WHERE code_system = '"+inventedCodes+"'"); n != 1 {
+				t.Errorf("%d term rows, want 1", n)
+			}
+			checkFactsResolve(t, f, 2)
+		})
+	}
+}
