@@ -72,6 +72,7 @@ func (s *Store) IngestBatch(ctx context.Context, msgs []consumer.Message, plan c
 		return s.ingestBatchOnce(ctx, msgs, plan, out)
 	})
 	if err == nil {
+		s.loadWanted(ctx)
 		return out
 	}
 	if errors.Is(err, consumer.ErrTransient) || ctx.Err() != nil {

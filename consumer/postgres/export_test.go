@@ -4,3 +4,10 @@ package postgres
 func TranslateForTest(op string, err error) error { return translate(op, err, false) }
 
 var ConcatArgs = concatArgs
+
+// CachedLookups is the number of term and encounter ids the Store caches.
+func (s *Store) CachedLookups() (terms, encounters int) { return s.lookups.size() }
+
+// WithoutLookupCache makes the Store resolve every term and encounter in
+// SQL, for comparisons with the cache.
+func (s *Store) WithoutLookupCache() { s.lookups = nil }

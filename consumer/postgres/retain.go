@@ -81,11 +81,14 @@ CROSS JOIN LATERAL (
 
 const (
 	// retainSizeSQL counts what removing the keys $1 removes: fact rows
-	// and their bytes, and the payloads dropped with their bytes.
+	// and their bytes, and the payloads dropped with their bytes. A fact
+	// row names its message by inbox id, or by inbox key when it has no
+	// inbox row (migration 0016).
 	retainSizeSQL = `
 WITH gone AS (
-    SELECT encode(inbox_key, 'hex') AS inbox_key, count(*) AS n, sum(pg_column_size(fact_row.*)) AS bytes FROM fact_row
-    WHERE key = ANY($1) AND effective < $2 GROUP BY 1)
+    SELECT coalesce(i.inbox_key, encode(r.inbox_key, 'hex')) AS inbox_key, count(*) AS n, sum(pg_column_size(r.*)) AS bytes
+    FROM fact_row r LEFT JOIN inbox i ON i.id = r.inbox_id
+    WHERE r.key = ANY($1) AND r.effective < $2 GROUP BY 1)
 SELECT coalesce(sum(g.n), 0)::bigint, coalesce(sum(g.bytes), 0)::bigint,
        count(*) FILTER (WHERE g.n = i.facts AND i.raw IS NOT NULL)::bigint,
        coalesce(sum(pg_column_size(i.raw)) FILTER (WHERE g.n = i.facts AND i.raw IS NOT NULL), 0)::bigint
@@ -98,8 +101,10 @@ FROM gone g JOIN inbox i ON i.inbox_key = g.inbox_key`
 	// the cutoff (and the default one), so a patient's batch touches old
 	// partitions only and the partitions being written are not scanned.
 	retainApplySQL = `
-WITH gone AS (DELETE FROM fact_row WHERE key = ANY($1) AND effective < $2 RETURNING inbox_key),
-counted AS (SELECT encode(inbox_key, 'hex') AS inbox_key, count(*) AS n FROM gone GROUP BY 1)
+WITH gone AS (DELETE FROM fact_row WHERE key = ANY($1) AND effective < $2 RETURNING inbox_id, inbox_key),
+counted AS (
+    SELECT coalesce(i.inbox_key, encode(g.inbox_key, 'hex')) AS inbox_key, count(*) AS n
+    FROM gone g LEFT JOIN inbox i ON i.id = g.inbox_id GROUP BY 1)
 UPDATE inbox i SET raw = NULL FROM counted c
 WHERE i.inbox_key = c.inbox_key AND c.n = i.facts AND i.raw IS NOT NULL`
 )

@@ -24,6 +24,8 @@ type Store struct {
 	key  []byte
 	log  *slog.Logger
 	now  func() time.Time
+	// lookups caches committed fact_term and fact_encounter ids (lookup.go).
+	lookups *lookupCache
 }
 
 var _ consumer.Store = (*Store)(nil)
@@ -44,7 +46,7 @@ type Options struct {
 // New returns a Store over pool. The pool's role needs the rights
 // deploy/postgres/roles.sql gives ventderive_writer.
 func New(pool *pgxpool.Pool, opts Options) *Store {
-	s := &Store{pool: pool, key: opts.PatientKey, log: opts.Logger, now: opts.Now}
+	s := &Store{pool: pool, key: opts.PatientKey, log: opts.Logger, now: opts.Now, lookups: newLookupCache()}
 	if s.log == nil {
 		s.log = slog.New(slog.DiscardHandler)
 	}
@@ -120,25 +122,32 @@ ON CONFLICT (inbox_key) DO NOTHING`
 	// messages about the same patients cannot deadlock.
 	lockPatientSQL = `SELECT pg_advisory_xact_lock(hashtextextended('ventderive/patient/' || $1::text, 0))`
 
-	// insertFactsSQL stores facts into fact_row (migration 0014): each
-	// array holds one element per fact; $24 is the fact's inbox key and $25
-	// the time recorded. The encounter and term are looked up in
-	// their lookup tables; one this snapshot does not see is inserted, and
-	// ON CONFLICT DO UPDATE (a no-op update) returns its id even when a
-	// concurrent transaction committed it first.
+	// insertFactsSQL stores facts into fact_row (migrations 0014 and
+	// 0016): each array holds one element per fact; $24 is the fact's inbox
+	// key (hex) and $25 the time recorded. The encounter and term are
+	// looked up in their lookup tables; one this snapshot does not see is
+	// inserted, and ON CONFLICT DO UPDATE (a no-op update) returns its id
+	// even when a concurrent transaction committed it first. The message's
+	// inbox row, stored earlier in the same transaction, gives the fact's
+	// inbox_id; the recording time is stored only when it is not the inbox
+	// row's, the inbox key only when there is no inbox row, and the source
+	// value only when its bytes differ from the value's (the view fact
+	// restores all three). $26 and $27 are the term and encounter ids the
+	// Store has cached (lookup.go), 0 where it has none: only those are
+	// matched or inserted in SQL.
 	insertFactsSQL = `
 WITH u AS MATERIALIZED (
     SELECT * FROM unnest($1::text[], $2::bytea[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[],
         $8::text[], $9::text[], $10::text[], $11::text[], $12::boolean[], $13::float8[], $14::text[], $15::text[],
         $16::float8[], $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::timestamptz[],
-        $23::timestamptz[], $24::bytea[])
+        $23::timestamptz[], $24::text[], $26::int[], $27::int[])
     AS u(key, digest, resource_ref, version_id, last_updated, patient_ref, encounter,
         quantity, origin, detail, specimen, temp_corrected, value, unit, text, source_value, source_unit,
-        code_system, code, code_display, status, effective, issued, inbox_key)
+        code_system, code, code_display, status, effective, issued, inbox_key, term_id, encounter_id)
 ), ne AS (
     INSERT INTO fact_encounter (encounter)
     SELECT DISTINCT u.encounter FROM u
-    WHERE NOT EXISTS (SELECT 1 FROM fact_encounter e WHERE e.encounter = u.encounter)
+    WHERE u.encounter_id = 0 AND NOT EXISTS (SELECT 1 FROM fact_encounter e WHERE e.encounter = u.encounter)
     ON CONFLICT (encounter) DO UPDATE SET encounter = EXCLUDED.encounter
     RETURNING id, encounter
 ), nt AS (
@@ -146,21 +155,26 @@ WITH u AS MATERIALIZED (
         code_system, code, code_display, status)
     SELECT DISTINCT u.quantity, u.origin, u.detail, u.specimen, u.temp_corrected, u.unit, u.text, u.source_unit,
         u.code_system, u.code, u.code_display, u.status FROM u
-    WHERE NOT EXISTS (SELECT 1 FROM fact_term t WHERE ` + termMatchSQL + `)
+    WHERE u.term_id = 0 AND NOT EXISTS (SELECT 1 FROM fact_term t WHERE ` + termMatchSQL + `)
     ON CONFLICT ON CONSTRAINT fact_term_values DO UPDATE SET quantity = EXCLUDED.quantity
     RETURNING id, quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit,
         code_system, code, code_display, status
 )
-INSERT INTO fact_row (key, digest, resource_ref, version_id, last_updated, patient_ref, encounter_id, term_id,
-    quantity, value, source_value, effective, issued, inbox_key, recorded_at)
-SELECT u.key, u.digest, nullif(u.resource_ref, split_part(u.key, '#', 1)), u.version_id, u.last_updated,
-    u.patient_ref,
-    coalesce((SELECT e.id FROM fact_encounter e WHERE e.encounter = u.encounter),
-             (SELECT e.id FROM ne e WHERE e.encounter = u.encounter)),
-    coalesce((SELECT t.id FROM fact_term t WHERE ` + termMatchSQL + `),
-             (SELECT t.id FROM nt t WHERE ` + termMatchSQL + `)),
-    u.quantity, u.value, u.source_value, u.effective, u.issued, u.inbox_key, $25
-FROM u
+INSERT INTO fact_row (inbox_id, effective, value, source_value, last_updated, issued, recorded_at, encounter_id,
+    term_id, key, digest, patient_ref, quantity, version_id, resource_ref, inbox_key)
+SELECT i.id, u.effective, u.value,
+    CASE WHEN float8send(u.source_value) = float8send(u.value) THEN NULL ELSE u.source_value END,
+    u.last_updated, u.issued,
+    CASE WHEN i.recorded_at = $25::timestamptz THEN NULL ELSE $25::timestamptz END,
+    CASE WHEN u.encounter_id <> 0 THEN u.encounter_id
+         ELSE coalesce((SELECT e.id FROM fact_encounter e WHERE e.encounter = u.encounter),
+                       (SELECT e.id FROM ne e WHERE e.encounter = u.encounter)) END,
+    CASE WHEN u.term_id <> 0 THEN u.term_id
+         ELSE coalesce((SELECT t.id FROM fact_term t WHERE ` + termMatchSQL + `),
+                       (SELECT t.id FROM nt t WHERE ` + termMatchSQL + `)) END,
+    u.key, u.digest, u.patient_ref, u.quantity, u.version_id, nullif(u.resource_ref, split_part(u.key, '#', 1)),
+    CASE WHEN i.id IS NULL THEN decode(u.inbox_key, 'hex') END
+FROM u LEFT JOIN inbox i ON i.inbox_key = u.inbox_key
 ON CONFLICT (key, digest, effective) DO NOTHING`
 
 	// termMatchSQL matches a fact_term row t to a fact u.
@@ -382,6 +396,9 @@ func (s *Store) Ingest(ctx context.Context, msg consumer.Message, plan consumer.
 		res, err = s.ingestOnce(ctx, msg, plan)
 		return err
 	})
+	if err == nil {
+		s.loadWanted(ctx)
+	}
 	return res, err
 }
 
@@ -706,31 +723,31 @@ func messagePatients(msg consumer.Message) []string {
 // factArgs are the arguments of insertFactsSQL for one message: one array
 // per column, the inbox key included (one element per fact, so that the
 // arrays of several messages concatenate into one statement: concatArgs),
-// then the recording time.
+// then the recording time, then the cached term and encounter ids.
 func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
 	n := len(msg.Facts)
 	var (
 		key, res, ver, pat, enc, qty, org, det, spc = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
-		dig, inbox                                  = make([][]byte, n), make([][]byte, n)
+		dig, inbox                                  = make([][]byte, n), mk(n)
 		unit, text, sunit, csys, code, cdisp, st    = mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
 		lastUpd, eff, iss                           = make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n), make([]pgtype.Timestamptz, n)
 		tc                                          = make([]bool, n)
 		val, sval                                   = make([]float64, n), make([]float64, n)
 	)
-	ik, _ := hex.DecodeString(msg.InboxKey)
 	for i, f := range msg.Facts {
 		key[i], res[i], ver[i], pat[i], enc[i] = f.Key, f.Resource, f.VersionID, f.Patient, f.Encounter
 		// The decoder makes every digest a hex SHA-256; one that is not
 		// decodes short and fact_row's length CHECK refuses it.
 		dig[i], _ = hex.DecodeString(f.Digest)
-		inbox[i] = ik
+		inbox[i] = msg.InboxKey
 		qty[i], org[i], det[i], spc[i], tc[i] = string(f.Quantity), string(f.Origin), f.Detail, string(f.Specimen), f.TempCorrected
 		val[i], unit[i], text[i], sval[i], sunit[i] = f.Value, f.Unit, f.Text, f.SourceValue, f.SourceUnit
 		csys[i], code[i], cdisp[i], st[i] = f.Code.System, f.Code.Code, f.Code.Display, string(f.Status)
 		lastUpd[i], eff[i], iss[i] = optTime(f.LastUpdated), pgtype.Timestamptz{Time: f.Effective.UTC(), Valid: true}, optTime(f.Issued)
 	}
+	termIDs, encIDs := s.lookups.ids(msg.Facts)
 	return []any{key, dig, res, ver, lastUpd, pat, enc, qty, org, det, spc, tc, val, unit, text, sval, sunit,
-		csys, code, cdisp, st, eff, iss, inbox, now}
+		csys, code, cdisp, st, eff, iss, inbox, now, termIDs, encIDs}
 }
 
 func mk(n int) []string { return make([]string, n) }

@@ -1,0 +1,210 @@
+package postgres
+
+import (
+	"context"
+	"sync"
+
+	"github.com/ventderive/ventderive/fhirmap"
+)
+
+// lookupCache holds the ids of fact_term and fact_encounter rows
+// (migration 0014) that the Store has read back committed, so that the
+// fact insert can take a known term's and encounter's id as given instead
+// of matching the term's twelve columns in SQL for every fact.
+//
+// An id enters the cache only from a read of committed rows, outside any
+// ingest transaction (load, after a commit): an id a transaction inserted
+// and then rolled back is never seen, so never cached. A value without an
+// id goes to the insert as 0 and is resolved (or inserted) in SQL as
+// before, racing replicas included (ON CONFLICT DO UPDATE returns the row a
+// concurrent transaction committed first); it is noted as wanted and
+// looked up once that transaction has committed. Lookup rows are never
+// deleted (retention removes fact rows only), so a cached id stays valid.
+type lookupCache struct {
+	mu         sync.RWMutex
+	terms      map[termKey]int32
+	encounters map[string]int32
+	// Values seen without an id since the last load, at most maxWanted.
+	wantTerms      map[termKey]bool
+	wantEncounters map[string]bool
+}
+
+// termKey is the value of a fact_term row: the columns of its unique
+// constraint fact_term_values.
+type termKey struct {
+	quantity, origin, detail, specimen string
+	tempCorrected                      bool
+	unit, text, sourceUnit             string
+	system, code, display, status      string
+}
+
+func termOf(f fhirmap.Fact) termKey {
+	return termKey{string(f.Quantity), string(f.Origin), f.Detail, string(f.Specimen), f.TempCorrected, f.Unit, f.Text,
+		f.SourceUnit, f.Code.System, f.Code.Code, f.Code.Display, string(f.Status)}
+}
+
+const (
+	// maxCached bounds each map (a site has a few dozen terms and one
+	// encounter per admission); past it, new values are resolved in SQL.
+	maxCached = 100_000
+	maxWanted = 256
+)
+
+func newLookupCache() *lookupCache {
+	return &lookupCache{terms: map[termKey]int32{}, encounters: map[string]int32{},
+		wantTerms: map[termKey]bool{}, wantEncounters: map[string]bool{}}
+}
+
+// ids returns the cached term and encounter ids of facts, 0 where none is
+// cached, and notes the values without one as wanted. A nil cache (tests
+// comparing with the SQL lookups alone) has none.
+func (c *lookupCache) ids(facts []fhirmap.Fact) (terms, encounters []int32) {
+	terms, encounters = make([]int32, len(facts)), make([]int32, len(facts))
+	if c == nil {
+		return terms, encounters
+	}
+	var missTerm []termKey
+	var missEnc []string
+	c.mu.RLock()
+	for i, f := range facts {
+		k := termOf(f)
+		terms[i] = c.terms[k]
+		if terms[i] == 0 {
+			missTerm = append(missTerm, k)
+		}
+		encounters[i] = c.encounters[f.Encounter]
+		if encounters[i] == 0 {
+			missEnc = append(missEnc, f.Encounter)
+		}
+	}
+	c.mu.RUnlock()
+	if len(missTerm)+len(missEnc) > 0 {
+		c.mu.Lock()
+		for _, k := range missTerm {
+			if len(c.wantTerms) < maxWanted {
+				c.wantTerms[k] = true
+			}
+		}
+		for _, e := range missEnc {
+			if len(c.wantEncounters) < maxWanted {
+				c.wantEncounters[e] = true
+			}
+		}
+		c.mu.Unlock()
+	}
+	return terms, encounters
+}
+
+// size is the number of cached terms and encounters.
+func (c *lookupCache) size() (terms, encounters int) {
+	if c == nil {
+		return 0, 0
+	}
+	c.mu.RLock()
+	defer c.mu.RUnlock()
+	return len(c.terms), len(c.encounters)
+}
+
+const (
+	loadTermsSQL = `
+SELECT t.id, t.quantity, t.origin, t.detail, t.specimen, t.temp_corrected, t.unit, t.text, t.source_unit,
+    t.code_system, t.code, t.code_display, t.status
+FROM unnest($1::text[], $2::text[], $3::text[], $4::text[], $5::boolean[], $6::text[], $7::text[], $8::text[],
+    $9::text[], $10::text[], $11::text[], $12::text[])
+    AS u(quantity, origin, detail, specimen, temp_corrected, unit, text, source_unit, code_system, code, code_display, status)
+JOIN fact_term t ON ` + termMatchSQL
+
+	loadEncountersSQL = `SELECT id, encounter FROM fact_encounter WHERE encounter = ANY($1::text[])`
+)
+
+// loadWanted looks the wanted values up among the committed rows (each
+// query runs on its own on the pool, outside any transaction) and caches
+// the ids found. Ingest and IngestBatch call it after they return, so a
+// failure here costs only the cache: it is logged and the values are
+// resolved in SQL meanwhile. A value not found yet (its inserting transaction has not
+// committed, or rolled back) is wanted again when a fact next names it.
+func (s *Store) loadWanted(ctx context.Context) {
+	c := s.lookups
+	if c == nil {
+		return
+	}
+	c.mu.Lock()
+	terms, encs := c.wantTerms, c.wantEncounters
+	if len(terms)+len(encs) == 0 {
+		c.mu.Unlock()
+		return
+	}
+	c.wantTerms, c.wantEncounters = map[termKey]bool{}, map[string]bool{}
+	c.mu.Unlock()
+
+	foundTerms := map[termKey]int32{}
+	if len(terms) > 0 {
+		n := len(terms)
+		q, o, d, sp, u, tx, su, sy, co, di, st := mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+		tc := make([]bool, n)
+		i := 0
+		for k := range terms {
+			q[i], o[i], d[i], sp[i], tc[i], u[i], tx[i], su[i] = k.quantity, k.origin, k.detail, k.specimen, k.tempCorrected, k.unit, k.text, k.sourceUnit
+			sy[i], co[i], di[i], st[i] = k.system, k.code, k.display, k.status
+			i++
+		}
+		rows, err := s.pool.Query(ctx, loadTermsSQL, q, o, d, sp, tc, u, tx, su, sy, co, di, st)
+		if err != nil {
+			s.log.Debug("load fact terms", "error", err)
+			return
+		}
+		for rows.Next() {
+			var id int32
+			var k termKey
+			if err := rows.Scan(&id, &k.quantity, &k.origin, &k.detail, &k.specimen, &k.tempCorrected, &k.unit, &k.text,
+				&k.sourceUnit, &k.system, &k.code, &k.display, &k.status); err != nil {
+				rows.Close()
+				s.log.Debug("load fact terms", "error", err)
+				return
+			}
+			foundTerms[k] = id
+		}
+		if rows.Err() != nil {
+			s.log.Debug("load fact terms", "error", rows.Err())
+			return
+		}
+	}
+	foundEncs := map[string]int32{}
+	if len(encs) > 0 {
+		list := make([]string, 0, len(encs))
+		for e := range encs {
+			list = append(list, e)
+		}
+		rows, err := s.pool.Query(ctx, loadEncountersSQL, list)
+		if err != nil {
+			s.log.Debug("load fact encounters", "error", err)
+			return
+		}
+		for rows.Next() {
+			var id int32
+			var e string
+			if err := rows.Scan(&id, &e); err != nil {
+				rows.Close()
+				s.log.Debug("load fact encounters", "error", err)
+				return
+			}
+			foundEncs[e] = id
+		}
+		if rows.Err() != nil {
+			s.log.Debug("load fact encounters", "error", rows.Err())
+			return
+		}
+	}
+	c.mu.Lock()
+	for k, id := range foundTerms {
+		if len(c.terms) < maxCached {
+			c.terms[k] = id
+		}
+	}
+	for e, id := range foundEncs {
+		if len(c.encounters) < maxCached {
+			c.encounters[e] = id
+		}
+	}
+	c.mu.Unlock()
+}
