@@ -200,76 +200,91 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 		}
 		coldStored := -1
 
-		// Round trips 2..: message i's input and snapshot queries travel
-		// with the writes of the previous fresh message, so every message
-		// sees what the ones before it stored and planned. Cold messages
-		// were stored above; they change nothing these see.
-		prev, prevQ := -1, queued{}
-		for i := 0; i <= n; i++ {
-			if i < n && (!fresh[i] || cold[i]) {
+		// Round trips 2..: each hot message's facts are stored and its
+		// snapshots loaded, in message order, so every message sees the
+		// facts the ones before it stored; its plan's writes are collected
+		// (groupWrites) and the heads among them laid over the stored
+		// heads of later snapshots. Cold messages were stored above; they
+		// change nothing these see. The cold facts travel with the first
+		// round trip.
+		w := newGroupWrites(s, now)
+		sendCold := func(b *pgx.Batch) bool {
+			if coldArgs == nil || coldStored >= 0 {
+				return false
+			}
+			b.Queue(insertFactsSQL, coldArgs...)
+			return true
+		}
+		readCold := func(br pgx.BatchResults) error {
+			tag, err := br.Exec()
+			if err != nil {
+				return fmt.Errorf("insert facts: %w", err)
+			}
+			coldStored = int(tag.RowsAffected())
+			return nil
+		}
+		for i := range n {
+			if !fresh[i] || cold[i] {
 				continue
 			}
 			b := &pgx.Batch{}
-			coldNow := coldArgs != nil && coldStored < 0
-			if coldNow {
-				b.Queue(insertFactsSQL, coldArgs...)
-			}
-			if prev >= 0 {
-				q, err := s.queueChanges(b, msgs[prev], orders[prev], now, &res[prev])
-				if err != nil {
-					return err
-				}
-				prevQ = q
-			}
-			if i < n {
-				s.queueInput(b, msgs[i], orders[i], now)
-			}
+			coldNow := sendCold(b)
+			s.queueInput(b, msgs[i], orders[i], now, w)
 			if b.Len() > 0 {
 				br := tx.SendBatch(ctx, b)
 				if coldNow {
-					tag, err := br.Exec()
-					if err != nil {
-						br.Close()
-						return fmt.Errorf("insert facts: %w", err)
-					}
-					coldStored = int(tag.RowsAffected())
-				}
-				if prev >= 0 {
-					if err := s.readChanges(br, prevQ, &res[prev]); err != nil {
+					if err := readCold(br); err != nil {
 						br.Close()
 						return err
 					}
 				}
-				var others []string
-				if i < n {
-					var err error
-					if others, err = readInput(br, msgs[i], orders[i], &res[i]); err != nil {
-						br.Close()
-						return err
-					}
+				others, err := readInput(br, msgs[i], orders[i], &res[i])
+				if err != nil {
+					br.Close()
+					return err
 				}
 				if err := br.Close(); err != nil {
 					return fmt.Errorf("store group: %w", err)
 				}
-				if i < n {
-					if err := s.loadSnapshots(ctx, tx, msgs[i], orders[i]); err != nil {
-						return err
-					}
+				if err := s.loadSnapshots(ctx, tx, msgs[i], orders[i], w); err != nil {
+					return err
 				}
 				if len(others) > 0 {
-					moved, err := s.loadMoved(ctx, tx, msgs[i], others)
+					moved, err := s.loadMoved(ctx, tx, msgs[i], others, w)
 					if err != nil {
 						return err
 					}
 					orders[i] = append(orders[i], moved...)
 				}
 			}
-			if i < n {
-				if err := planPatients(orders[i], plan); err != nil {
+			if err := planPatients(orders[i], plan); err != nil {
+				return err
+			}
+			if err := w.add(i, msgs[i], orders[i], &res[i]); err != nil {
+				return err
+			}
+		}
+
+		// The last round trip: every collected write, one statement per
+		// table (and per repeated key: groupWrites).
+		b = &pgx.Batch{}
+		coldNow := sendCold(b)
+		q := w.queue(b)
+		if b.Len() > 0 {
+			br := tx.SendBatch(ctx, b)
+			if coldNow {
+				if err := readCold(br); err != nil {
+					br.Close()
 					return err
 				}
 			}
-			prev = i
+			if err := w.read(br, q, res); err != nil {
+				br.Close()
+				return err
+			}
+			if err := br.Close(); err != nil {
+				return fmt.Errorf("store group: %w", err)
+			}
 		}
 		return s.countCold(ctx, tx, msgs, fresh, cold, coldStored, coldFacts, coldKeys, coldInbox, res)
 	})

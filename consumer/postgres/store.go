@@ -439,7 +439,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		for _, p := range order {
 			b.Queue(lockPatientSQL, p.ref)
 		}
-		s.queueInput(b, msg, order, now)
+		s.queueInput(b, msg, order, now, nil)
 		br := tx.SendBatch(ctx, b)
 		defer br.Close()
 		if _, err := br.Exec(); err != nil {
@@ -464,11 +464,11 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
 		}
-		if err := s.loadSnapshots(ctx, tx, msg, order); err != nil {
+		if err := s.loadSnapshots(ctx, tx, msg, order, nil); err != nil {
 			return err
 		}
 		if len(others) > 0 {
-			moved, err := s.loadMoved(ctx, tx, msg, others)
+			moved, err := s.loadMoved(ctx, tx, msg, others, nil)
 			if err != nil {
 				return err
 			}
@@ -519,7 +519,7 @@ func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
 // and load, per patient, what the new facts affect. The resources are kept
 // in the message's bytes, which the inbox row holds (migration 0011); no
 // row per resource is written.
-func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time) {
+func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time, pend *groupWrites) {
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
 		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
@@ -528,7 +528,7 @@ func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientP
 			p.eager = eager
 		}
 		if eager {
-			s.queueSnapshots(b, msg, order)
+			s.queueSnapshots(b, msg, order, pend)
 		} else {
 			s.queueAffected(b, msg, order)
 		}
@@ -576,14 +576,14 @@ func snapshotArgs(msg consumer.Message, p *patientPlan) []any {
 // which); a message that affects none costs no further statement. The
 // statements run in the same transaction after the message's inserts, so
 // they see the same rows as when queued with them.
-func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan) error {
+func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan, pend *groupWrites) error {
 	b := &pgx.Batch{}
 	var need []*patientPlan
 	for _, p := range order {
 		if len(p.affected) > 0 && !p.eager {
 			args := snapshotArgs(msg, p)
 			b.Queue(snapshotFactsSQL, args...)
-			b.Queue(snapshotHeadsSQL, args...)
+			pend.queueHeads(b, p.ref, args)
 			need = append(need, p)
 		}
 	}
@@ -617,14 +617,14 @@ func factKeys(msg consumer.Message) []string {
 // (rare: a corrected subject). They are locked after the message's own
 // patients, out of sorted order; a deadlock this could cause is detected by
 // PostgreSQL and the transaction is retried (retryInPlace).
-func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, others []string) ([]*patientPlan, error) {
+func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, others []string, pend *groupWrites) ([]*patientPlan, error) {
 	plans := make([]*patientPlan, len(others))
 	for i, ref := range others {
 		plans[i] = &patientPlan{ref: ref}
 	}
 	b := &pgx.Batch{}
 	b.Queue(lockPatientsSQL, others)
-	s.queueSnapshots(b, msg, plans)
+	s.queueSnapshots(b, msg, plans, pend)
 	br := tx.SendBatch(ctx, b)
 	defer br.Close()
 	if _, err := br.Exec(); err != nil {
@@ -745,12 +745,12 @@ func optTime(t time.Time) pgtype.Timestamptz {
 
 // queueSnapshots queues, per patient, the affected blood gases, the
 // snapshot facts and the heads (three statements sharing affectedCTE).
-func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
+func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan, pend *groupWrites) {
 	for _, p := range order {
 		args := snapshotArgs(msg, p)
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
-		b.Queue(snapshotHeadsSQL, args...)
+		pend.queueHeads(b, p.ref, args)
 	}
 }
 
