@@ -195,11 +195,20 @@ func newGroupWrites(s *Store, now time.Time) *groupWrites {
 
 // queueHeads queues the heads statement of one patient's snapshot: with
 // the group's pending heads of the patient laid over the stored ones, when
-// there are any. w may be nil (Ingest).
-func (w *groupWrites) queueHeads(b *pgx.Batch, patient string, args []any) {
+// there are any. w may be nil (Ingest). known: args carry the affected
+// blood gases (knownAffectedCTE).
+func (w *groupWrites) queueHeads(b *pgx.Batch, patient string, args []any, known bool) {
 	if w == nil || len(w.byPatient[patient]) == 0 {
-		b.Queue(snapshotHeadsSQL, args...)
+		if known {
+			b.Queue(snapshotHeadsKnownSQL, args...)
+		} else {
+			b.Queue(snapshotHeadsSQL, args...)
+		}
 		return
+	}
+	sql := snapshotHeadsPendingSQL
+	if known {
+		sql = snapshotHeadsPendingKnownSQL
 	}
 	ps := w.byPatient[patient]
 	n := len(ps)
@@ -214,7 +223,7 @@ func (w *groupWrites) queueHeads(b *pgx.Batch, patient string, args []any) {
 			value[i] = pgtype.Float8{Float64: p.value, Valid: true}
 		}
 	}
-	b.Queue(snapshotHeadsPendingSQL, append(args[:len(args):len(args)], key, bg, kind, version, digest, refused, status, value)...)
+	b.Queue(sql, append(args[:len(args):len(args)], key, bg, kind, version, digest, refused, status, value)...)
 }
 
 // head returns the pending head of key, making it with the given parts.

@@ -8,6 +8,7 @@ import (
 	"fmt"
 	"log/slog"
 	"slices"
+	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -373,6 +374,25 @@ ORDER BY u.ord
 ON CONFLICT (msg_id) DO NOTHING`
 )
 
+// knownAffectedCTE stands in for affectedCTE in the snapshot statements
+// of loadSnapshots, which run after the patient's affectedSQL in the same
+// transaction with no write in between: $8 (the inbox key, which only
+// affectedCTE reads) then carries the affected blood gases affectedSQL
+// returned, the same set, and the cand/changed/affected lookups of fact
+// are not run again. typed is never read; it names the parameters only
+// affectedCTE used, so that PostgreSQL still knows their types.
+const knownAffectedCTE = `
+WITH affected AS (SELECT unnest($8::text[]) AS key),
+typed AS (SELECT $1::text, $2::text[], $3::bigint, $4::bigint, $5::bigint, $6::text[], $7::text, $9::bigint,
+    $10::bigint, $11::text)`
+
+// The snapshot statements with knownAffectedCTE.
+var (
+	snapshotFactsKnownSQL        = knownAffectedCTE + strings.TrimPrefix(snapshotFactsSQL, affectedCTE)
+	snapshotHeadsKnownSQL        = knownAffectedCTE + strings.TrimPrefix(snapshotHeadsSQL, affectedCTE)
+	snapshotHeadsPendingKnownSQL = knownAffectedCTE + strings.TrimPrefix(snapshotHeadsPendingSQL, affectedCTE)
+)
+
 // Ingest implements consumer.Store. Serialization failures and deadlocks
 // are retried in place (up to three attempts, calling plan again); other
 // transient failures are returned wrapped with consumer.ErrTransient.
@@ -581,9 +601,13 @@ func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Messa
 	var need []*patientPlan
 	for _, p := range order {
 		if len(p.affected) > 0 && !p.eager {
+			// The affected blood gases are known (readAffected, in this
+			// transaction with no write since): the statements take them
+			// instead of working them out again.
 			args := snapshotArgs(msg, p)
-			b.Queue(snapshotFactsSQL, args...)
-			pend.queueHeads(b, p.ref, args)
+			args[7] = p.affected
+			b.Queue(snapshotFactsKnownSQL, args...)
+			pend.queueHeads(b, p.ref, args, true)
 			need = append(need, p)
 		}
 	}
@@ -750,7 +774,7 @@ func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*pati
 		args := snapshotArgs(msg, p)
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
-		pend.queueHeads(b, p.ref, args)
+		pend.queueHeads(b, p.ref, args, false)
 	}
 }
 
