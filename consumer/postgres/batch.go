@@ -48,8 +48,11 @@ RETURNING inbox_key`
 // message (coldMessages: it can affect no blood gas) are stored in one
 // insert, ahead of the others; they change nothing the others read, so
 // only fact ids differ from the sequential order. The hot messages take
-// one round trip each: the writes of message i travel with the inserts
-// and snapshot queries of message i+1.
+// one or two round trips each, in order (facts, affected blood gases,
+// snapshots, plan); what their plans write is collected (groupWrites) and
+// sent in one last round trip, one statement per table, with the pending
+// heads laid over the stored ones in the later messages' snapshots, so
+// that every plan sees what the sequential order would have shown it.
 //
 // Failure modes: serialization failures and deadlocks retry the group in
 // place (three attempts, as Ingest); another transient failure, including a
