@@ -154,14 +154,23 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			return fmt.Errorf("claim inbox: %w", err)
 		}
 		cold := make([]bool, n)
+		moved := map[string]bool{}
 		if setBased {
 			rows, err := br.Query()
 			if err != nil {
 				br.Close()
 				return fmt.Errorf("hot patients: %w", err)
 			}
-			hot, err := pgx.CollectRows(rows, pgx.RowTo[string])
-			if err != nil {
+			var hot []string
+			var ref string
+			var mv bool
+			if _, err := pgx.ForEachRow(rows, []any{&ref, &mv}, func() error {
+				hot = append(hot, ref)
+				if mv {
+					moved[ref] = true
+				}
+				return nil
+			}); err != nil {
 				br.Close()
 				return fmt.Errorf("hot patients: %w", err)
 			}
@@ -226,45 +235,38 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			coldStored = int(tag.RowsAffected())
 			return nil
 		}
+		// The hot messages in waves (hotWaves): a wave's facts in one insert
+		// and its lookups in the same round trip, its snapshots in one more.
+		// Without hotPatientsSQL (windows differ) every message is a wave.
+		var hotIdx []int
 		for i := range n {
-			if !fresh[i] || cold[i] {
-				continue
+			if fresh[i] && !cold[i] {
+				hotIdx = append(hotIdx, i)
 			}
-			b := &pgx.Batch{}
-			coldNow := sendCold(b)
-			s.queueInput(b, msgs[i], orders[i], now, w)
-			if b.Len() > 0 {
-				br := tx.SendBatch(ctx, b)
-				if coldNow {
-					if err := readCold(br); err != nil {
-						br.Close()
-						return err
-					}
-				}
-				others, err := readInput(br, msgs[i], orders[i], &res[i])
-				if err != nil {
-					br.Close()
+		}
+		var waves [][]int
+		if setBased {
+			waves = hotWaves(msgs, hotIdx, moved)
+		} else {
+			for _, i := range hotIdx {
+				waves = append(waves, []int{i})
+			}
+		}
+		for _, wave := range waves {
+			if len(wave) == 1 {
+				if err := s.ingestHotOne(ctx, tx, msgs[wave[0]], &orders[wave[0]], now, w, sendCold, readCold, &res[wave[0]]); err != nil {
 					return err
 				}
-				if err := br.Close(); err != nil {
-					return fmt.Errorf("store group: %w", err)
-				}
-				if err := s.loadSnapshots(ctx, tx, msgs[i], orders[i], w); err != nil {
+			} else if err := s.ingestWave(ctx, tx, msgs, orders, wave, now, w, sendCold, readCold, res); err != nil {
+				return err
+			}
+			for _, i := range wave {
+				if err := planPatients(orders[i], plan); err != nil {
 					return err
 				}
-				if len(others) > 0 {
-					moved, err := s.loadMoved(ctx, tx, msgs[i], others, w)
-					if err != nil {
-						return err
-					}
-					orders[i] = append(orders[i], moved...)
+				if err := w.add(i, msgs[i], orders[i], &res[i]); err != nil {
+					return err
 				}
-			}
-			if err := planPatients(orders[i], plan); err != nil {
-				return err
-			}
-			if err := w.add(i, msgs[i], orders[i], &res[i]); err != nil {
-				return err
 			}
 		}
 
@@ -332,4 +334,134 @@ func (s *Store) countCold(ctx context.Context, tx pgx.Tx, msgs []consumer.Messag
 		}
 	}
 	return nil
+}
+
+// ingestHotOne stores one hot message's facts and loads its snapshots, as
+// Ingest does (the cold facts of the group travel with it when not yet
+// stored).
+func (s *Store) ingestHotOne(ctx context.Context, tx pgx.Tx, msg consumer.Message, order *[]*patientPlan, now time.Time, w *groupWrites,
+	sendCold func(*pgx.Batch) bool, readCold func(pgx.BatchResults) error, res *consumer.IngestResult) error {
+	b := &pgx.Batch{}
+	coldNow := sendCold(b)
+	s.queueInput(b, msg, *order, now, w)
+	if b.Len() == 0 {
+		return nil
+	}
+	br := tx.SendBatch(ctx, b)
+	if coldNow {
+		if err := readCold(br); err != nil {
+			br.Close()
+			return err
+		}
+	}
+	others, err := readInput(br, msg, *order, res)
+	if err != nil {
+		br.Close()
+		return err
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("store group: %w", err)
+	}
+	if err := s.loadSnapshots(ctx, tx, msg, *order, w); err != nil {
+		return err
+	}
+	if len(others) > 0 {
+		moved, err := s.loadMoved(ctx, tx, msg, others, w)
+		if err != nil {
+			return err
+		}
+		*order = append(*order, moved...)
+	}
+	return nil
+}
+
+// ingestWave stores the facts of a wave of hot messages (hotWaves) in one
+// insert, with every message's lookups in the same round trip, and loads
+// their snapshots in one more.
+func (s *Store) ingestWave(ctx context.Context, tx pgx.Tx, msgs []consumer.Message, orders [][]*patientPlan, wave []int, now time.Time,
+	w *groupWrites, sendCold func(*pgx.Batch) bool, readCold func(pgx.BatchResults) error, res []consumer.IngestResult) error {
+	b := &pgx.Batch{}
+	coldNow := sendCold(b)
+	var lists [][]any
+	var given int
+	var keys, inbox []string
+	for _, i := range wave {
+		if m := msgs[i]; len(m.Facts) > 0 {
+			lists = append(lists, s.factArgs(m, now))
+			given += len(m.Facts)
+			keys, inbox = append(keys, factKeys(m)...), append(inbox, m.InboxKey)
+		}
+	}
+	args, err := concatArgs(lists)
+	if err != nil {
+		return err
+	}
+	if args != nil {
+		b.Queue(insertFactsSQL, args...)
+	}
+	for _, i := range wave {
+		s.queueLookups(b, msgs[i], orders[i], w)
+	}
+	if b.Len() == 0 {
+		return nil
+	}
+	br := tx.SendBatch(ctx, b)
+	if coldNow {
+		if err := readCold(br); err != nil {
+			br.Close()
+			return err
+		}
+	}
+	stored := 0
+	if args != nil {
+		tag, err := br.Exec()
+		if err != nil {
+			br.Close()
+			return fmt.Errorf("insert facts: %w", err)
+		}
+		stored = int(tag.RowsAffected())
+	}
+	for _, i := range wave {
+		others, err := readLookups(br, msgs[i], orders[i])
+		if err != nil {
+			br.Close()
+			return err
+		}
+		if len(others) > 0 {
+			// hotWaves keeps a message of a moved fact out of waves.
+			br.Close()
+			return errors.New("group ingest: a message of a wave moves a fact")
+		}
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("store group: %w", err)
+	}
+	// The facts each message stored: all of them when the insert stored
+	// as many rows as it was given, else as counted.
+	counts := map[string]int{}
+	if stored != given {
+		rows, err := tx.Query(ctx, countFactsSQL, keys, inbox)
+		if err != nil {
+			return fmt.Errorf("count facts: %w", err)
+		}
+		var k string
+		var c int
+		if _, err := pgx.ForEachRow(rows, []any{&k, &c}, func() error { counts[k] = c; return nil }); err != nil {
+			return fmt.Errorf("count facts: %w", err)
+		}
+	}
+	for _, i := range wave {
+		if m := msgs[i]; len(m.Facts) > 0 {
+			if stored == given {
+				res[i].Facts = len(m.Facts)
+			} else {
+				res[i].Facts = counts[m.InboxKey]
+			}
+		}
+	}
+	wm, wo := make([]consumer.Message, len(wave)), make([][]*patientPlan, len(wave))
+	for j, i := range wave {
+		wm[j], wo[j] = msgs[i], orders[i]
+	}
+	return s.loadSnapshotsOf(ctx, tx, wm, wo, w)
 }

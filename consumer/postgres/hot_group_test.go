@@ -106,11 +106,13 @@ func provenanceDump(t *testing.T, f *fixture) []string {
 // value refused after being derived in the group), a second gas in the window of the
 // first patient's readings, a cold patient and a repeat inside the group.
 // And the group must have taken the set-based path: fewer derivation
-// statements than derivations, one head statement.
+// statements than derivations, one head statement, and fewer fact inserts
+// than messages (a wave of two: a second patient's reading in its stored
+// gas's window beside the first).
 func TestIngestBatchHotMessagesEqualSequentialIngest(t *testing.T) {
 	t.Parallel()
-	p3, p4 := "Patient/lg-icu-0003", "Patient/lg-icu-0004" // invented
-	stored := message("fhir.input.lab", 1, abg(p1, "abg-h1", t0, 45))
+	p3, p4, p5 := "Patient/lg-icu-0003", "Patient/lg-icu-0004", "Patient/lg-icu-0005" // invented
+	stored := message("fhir.input.lab", 1, abg(p1, "abg-h1", t0, 45), abg(p5, "abg-h5", t0, 47))
 	moved := obs{id: "ve-b", version: "2", patient: p3, q: fhirmap.QMinuteVol, at: t0.Add(-2 * time.Minute), value: 8,
 		unit: "L/min", status: fhirmap.StatusFinal} // a corrected subject: ve-b now names p3
 	withdrawn := abg(p2, "abg-h2", t0, 50)
@@ -118,6 +120,7 @@ func TestIngestBatchHotMessagesEqualSequentialIngest(t *testing.T) {
 	m0 := message("fhir.input.device", 2, vent(p1, "ve-a", fhirmap.QMinuteVol, t0.Add(-5*time.Minute), 10, "L/min"))
 	msgs := []consumer.Message{
 		m0,
+		message("fhir.input.device", 10, vent(p5, "ve-e", fhirmap.QMinuteVol, t0.Add(-4*time.Minute), 11, "L/min")), // a wave with m0
 		message("fhir.input.lab", 3, abg(p2, "abg-h2", t0, 50)),
 		message("fhir.input.device", 4, vent(p2, "ve-b", fhirmap.QMinuteVol, t0.Add(-2*time.Minute), 8, "L/min")),
 		message("fhir.input.device", 5, vent(p1, "ve-c", fhirmap.QMinuteVol, t0.Add(-time.Minute), 12, "L/min")),
@@ -141,7 +144,7 @@ func TestIngestBatchHotMessagesEqualSequentialIngest(t *testing.T) {
 		want = append(want, consumer.BatchResult{IngestResult: r, Err: err})
 	}
 
-	counter := &statementCounter{markers: []string{"INSERT INTO derivation (", "INSERT INTO head (", "INSERT INTO outbox ("}, n: map[string]int{}}
+	counter := &statementCounter{markers: []string{"INSERT INTO derivation (", "INSERT INTO head (", "INSERT INTO outbox (", "INSERT INTO fact_row ("}, n: map[string]int{}}
 	cfg, err := pgxpool.ParseConfig(grp.url)
 	if err != nil {
 		t.Fatal(err)
@@ -154,8 +157,11 @@ func TestIngestBatchHotMessagesEqualSequentialIngest(t *testing.T) {
 	defer pool.Close()
 	got := postgres.New(pool, postgres.Options{PatientKey: testKey, Now: clock()}).IngestBatch(grp.ctx, msgs, gp.plan)
 
-	derivations := 0
+	derivations, withFacts := 0, 0
 	for i := range msgs {
+		if want[i].Facts > 0 {
+			withFacts++
+		}
 		if errClass(got[i].Err) != errClass(want[i].Err) || !reflect.DeepEqual(got[i].IngestResult, want[i].IngestResult) {
 			t.Errorf("message %d: %+v %v, sequential Ingest %+v %v", i, got[i].IngestResult, got[i].Err, want[i].IngestResult, want[i].Err)
 		}
@@ -201,5 +207,10 @@ func TestIngestBatchHotMessagesEqualSequentialIngest(t *testing.T) {
 	}
 	if h, o := counter.n["INSERT INTO head ("], counter.n["INSERT INTO outbox ("]; h != 1 || o != 1 {
 		t.Errorf("%d head and %d outbox statements: want one each", h, o)
+	}
+	// The first two messages (disjoint patients and keys) are one wave
+	// (hotWaves): one fact insert for both.
+	if n := counter.n["INSERT INTO fact_row ("]; n >= withFacts {
+		t.Errorf("%d fact inserts for %d messages with facts: want fewer", n, withFacts)
 	}
 }

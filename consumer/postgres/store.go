@@ -542,6 +542,15 @@ func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
 func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time, pend *groupWrites) {
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
+		s.queueLookups(b, msg, order, pend)
+	}
+}
+
+// queueLookups queues what queueInput queues after the fact insert: the
+// other patients of the message's keys and, per patient, the affected blood
+// gases (and the snapshot, when eager).
+func (s *Store) queueLookups(b *pgx.Batch, msg consumer.Message, order []*patientPlan, pend *groupWrites) {
+	if len(msg.Facts) > 0 {
 		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
 		eager := surelyAffects(msg)
 		for _, p := range order {
@@ -597,18 +606,26 @@ func snapshotArgs(msg consumer.Message, p *patientPlan) []any {
 // statements run in the same transaction after the message's inserts, so
 // they see the same rows as when queued with them.
 func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan, pend *groupWrites) error {
+	return s.loadSnapshotsOf(ctx, tx, []consumer.Message{msg}, [][]*patientPlan{order}, pend)
+}
+
+// loadSnapshotsOf is loadSnapshots for several messages (a wave of a
+// group: hotWaves) in one round trip.
+func (s *Store) loadSnapshotsOf(ctx context.Context, tx pgx.Tx, msgs []consumer.Message, orders [][]*patientPlan, pend *groupWrites) error {
 	b := &pgx.Batch{}
 	var need []*patientPlan
-	for _, p := range order {
-		if len(p.affected) > 0 && !p.eager {
-			// The affected blood gases are known (readAffected, in this
-			// transaction with no write since): the statements take them
-			// instead of working them out again.
-			args := snapshotArgs(msg, p)
-			args[7] = p.affected
-			b.Queue(snapshotFactsKnownSQL, args...)
-			pend.queueHeads(b, p.ref, args, true)
-			need = append(need, p)
+	for i, msg := range msgs {
+		for _, p := range orders[i] {
+			if len(p.affected) > 0 && !p.eager {
+				// The affected blood gases are known (readAffected, in this
+				// transaction with no write since): the statements take them
+				// instead of working them out again.
+				args := snapshotArgs(msg, p)
+				args[7] = p.affected
+				b.Queue(snapshotFactsKnownSQL, args...)
+				pend.queueHeads(b, p.ref, args, true)
+				need = append(need, p)
+			}
 		}
 	}
 	if len(need) == 0 {
@@ -672,6 +689,13 @@ func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, 
 			return nil, fmt.Errorf("insert facts: %w", err)
 		}
 		res.Facts = int(tag.RowsAffected())
+	}
+	return readLookups(br, msg, order)
+}
+
+// readLookups reads the results of what queueLookups queued.
+func readLookups(br pgx.BatchResults, msg consumer.Message, order []*patientPlan) (others []string, err error) {
+	if len(msg.Facts) > 0 {
 		rows, err := br.Query()
 		if err != nil {
 			return nil, fmt.Errorf("other patients: %w", err)
