@@ -48,8 +48,11 @@ RETURNING inbox_key`
 // message (coldMessages: it can affect no blood gas) are stored in one
 // insert, ahead of the others; they change nothing the others read, so
 // only fact ids differ from the sequential order. The hot messages take
-// one round trip each: the writes of message i travel with the inserts
-// and snapshot queries of message i+1.
+// one or two round trips each, in order (facts, affected blood gases,
+// snapshots, plan); what their plans write is collected (groupWrites) and
+// sent in one last round trip, one statement per table, with the pending
+// heads laid over the stored ones in the later messages' snapshots, so
+// that every plan sees what the sequential order would have shown it.
 //
 // Failure modes: serialization failures and deadlocks retry the group in
 // place (three attempts, as Ingest); another transient failure, including a
@@ -152,14 +155,23 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 			return fmt.Errorf("claim inbox: %w", err)
 		}
 		cold := make([]bool, n)
+		moved := map[string]bool{}
 		if setBased {
 			rows, err := br.Query()
 			if err != nil {
 				br.Close()
 				return fmt.Errorf("hot patients: %w", err)
 			}
-			hot, err := pgx.CollectRows(rows, pgx.RowTo[string])
-			if err != nil {
+			var hot []string
+			var ref string
+			var mv bool
+			if _, err := pgx.ForEachRow(rows, []any{&ref, &mv}, func() error {
+				hot = append(hot, ref)
+				if mv {
+					moved[ref] = true
+				}
+				return nil
+			}); err != nil {
 				br.Close()
 				return fmt.Errorf("hot patients: %w", err)
 			}
@@ -201,76 +213,84 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 		}
 		coldStored := -1
 
-		// Round trips 2..: message i's input and snapshot queries travel
-		// with the writes of the previous fresh message, so every message
-		// sees what the ones before it stored and planned. Cold messages
-		// were stored above; they change nothing these see.
-		prev, prevQ := -1, queued{}
-		for i := 0; i <= n; i++ {
-			if i < n && (!fresh[i] || cold[i]) {
-				continue
+		// Round trips 2..: each hot message's facts are stored and its
+		// snapshots loaded, in message order, so every message sees the
+		// facts the ones before it stored; its plan's writes are collected
+		// (groupWrites) and the heads among them laid over the stored
+		// heads of later snapshots. Cold messages were stored above; they
+		// change nothing these see. The cold facts travel with the first
+		// round trip.
+		w := newGroupWrites(s, now)
+		sendCold := func(b *pgx.Batch) bool {
+			if coldArgs == nil || coldStored >= 0 {
+				return false
 			}
-			b := &pgx.Batch{}
-			coldNow := coldArgs != nil && coldStored < 0
-			if coldNow {
-				b.Queue(insertFactsSQL, coldArgs...)
+			b.Queue(insertFactsSQL, coldArgs...)
+			return true
+		}
+		readCold := func(br pgx.BatchResults) error {
+			tag, err := br.Exec()
+			if err != nil {
+				return fmt.Errorf("insert facts: %w", err)
 			}
-			if prev >= 0 {
-				q, err := s.queueChanges(b, msgs[prev], orders[prev], now, &res[prev])
-				if err != nil {
+			coldStored = int(tag.RowsAffected())
+			return nil
+		}
+		// The hot messages in waves (hotWaves): a wave's facts in one insert
+		// and its lookups in the same round trip, its snapshots in one more.
+		// Without hotPatientsSQL (windows differ) every message is a wave.
+		var hotIdx []int
+		for i := range n {
+			if fresh[i] && !cold[i] {
+				hotIdx = append(hotIdx, i)
+			}
+		}
+		var waves [][]int
+		if setBased {
+			waves = hotWaves(msgs, hotIdx, moved)
+		} else {
+			for _, i := range hotIdx {
+				waves = append(waves, []int{i})
+			}
+		}
+		for _, wave := range waves {
+			if len(wave) == 1 {
+				if err := s.ingestHotOne(ctx, tx, msgs[wave[0]], &orders[wave[0]], now, w, sendCold, readCold, &res[wave[0]]); err != nil {
 					return err
 				}
-				prevQ = q
+			} else if err := s.ingestWave(ctx, tx, msgs, orders, wave, now, w, sendCold, readCold, res); err != nil {
+				return err
 			}
-			if i < n {
-				s.queueInput(b, msgs[i], orders[i], now)
-			}
-			if b.Len() > 0 {
-				br := tx.SendBatch(ctx, b)
-				if coldNow {
-					tag, err := br.Exec()
-					if err != nil {
-						br.Close()
-						return fmt.Errorf("insert facts: %w", err)
-					}
-					coldStored = int(tag.RowsAffected())
-				}
-				if prev >= 0 {
-					if err := s.readChanges(br, prevQ, &res[prev]); err != nil {
-						br.Close()
-						return err
-					}
-				}
-				var others []string
-				if i < n {
-					var err error
-					if others, err = readInput(br, msgs[i], orders[i], &res[i]); err != nil {
-						br.Close()
-						return err
-					}
-				}
-				if err := br.Close(); err != nil {
-					return fmt.Errorf("store group: %w", err)
-				}
-				if i < n {
-					if err := s.loadSnapshots(ctx, tx, msgs[i], orders[i]); err != nil {
-						return err
-					}
-				}
-				if len(others) > 0 {
-					moved, err := s.loadMoved(ctx, tx, msgs[i], others)
-					if err != nil {
-						return err
-					}
-					orders[i] = append(orders[i], moved...)
-				}
-			}
-			if i < n {
+			for _, i := range wave {
 				if err := planPatients(orders[i], plan); err != nil {
 					return err
 				}
+				if err := w.add(i, msgs[i], orders[i], &res[i]); err != nil {
+					return err
+				}
 			}
-			prev = i
+		}
+
+		// The last round trip: every collected write, one statement per
+		// table (and per repeated key: groupWrites).
+		b = &pgx.Batch{}
+		coldNow := sendCold(b)
+		q := w.queue(b)
+		if b.Len() > 0 {
+			br := tx.SendBatch(ctx, b)
+			if coldNow {
+				if err := readCold(br); err != nil {
+					br.Close()
+					return err
+				}
+			}
+			if err := w.read(br, q, res); err != nil {
+				br.Close()
+				return err
+			}
+			if err := br.Close(); err != nil {
+				return fmt.Errorf("store group: %w", err)
+			}
 		}
 		return s.countCold(ctx, tx, msgs, fresh, cold, coldStored, coldFacts, coldKeys, coldInbox, res)
 	})
@@ -315,4 +335,134 @@ func (s *Store) countCold(ctx context.Context, tx pgx.Tx, msgs []consumer.Messag
 		}
 	}
 	return nil
+}
+
+// ingestHotOne stores one hot message's facts and loads its snapshots, as
+// Ingest does (the cold facts of the group travel with it when not yet
+// stored).
+func (s *Store) ingestHotOne(ctx context.Context, tx pgx.Tx, msg consumer.Message, order *[]*patientPlan, now time.Time, w *groupWrites,
+	sendCold func(*pgx.Batch) bool, readCold func(pgx.BatchResults) error, res *consumer.IngestResult) error {
+	b := &pgx.Batch{}
+	coldNow := sendCold(b)
+	s.queueInput(b, msg, *order, now, w)
+	if b.Len() == 0 {
+		return nil
+	}
+	br := tx.SendBatch(ctx, b)
+	if coldNow {
+		if err := readCold(br); err != nil {
+			br.Close()
+			return err
+		}
+	}
+	others, err := readInput(br, msg, *order, res)
+	if err != nil {
+		br.Close()
+		return err
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("store group: %w", err)
+	}
+	if err := s.loadSnapshots(ctx, tx, msg, *order, w); err != nil {
+		return err
+	}
+	if len(others) > 0 {
+		moved, err := s.loadMoved(ctx, tx, msg, others, w)
+		if err != nil {
+			return err
+		}
+		*order = append(*order, moved...)
+	}
+	return nil
+}
+
+// ingestWave stores the facts of a wave of hot messages (hotWaves) in one
+// insert, with every message's lookups in the same round trip, and loads
+// their snapshots in one more.
+func (s *Store) ingestWave(ctx context.Context, tx pgx.Tx, msgs []consumer.Message, orders [][]*patientPlan, wave []int, now time.Time,
+	w *groupWrites, sendCold func(*pgx.Batch) bool, readCold func(pgx.BatchResults) error, res []consumer.IngestResult) error {
+	b := &pgx.Batch{}
+	coldNow := sendCold(b)
+	var lists [][]any
+	var given int
+	var keys, inbox []string
+	for _, i := range wave {
+		if m := msgs[i]; len(m.Facts) > 0 {
+			lists = append(lists, s.factArgs(m, now))
+			given += len(m.Facts)
+			keys, inbox = append(keys, factKeys(m)...), append(inbox, m.InboxKey)
+		}
+	}
+	args, err := concatArgs(lists)
+	if err != nil {
+		return err
+	}
+	if args != nil {
+		b.Queue(insertFactsSQL, args...)
+	}
+	for _, i := range wave {
+		s.queueLookups(b, msgs[i], orders[i], w)
+	}
+	if b.Len() == 0 {
+		return nil
+	}
+	br := tx.SendBatch(ctx, b)
+	if coldNow {
+		if err := readCold(br); err != nil {
+			br.Close()
+			return err
+		}
+	}
+	stored := 0
+	if args != nil {
+		tag, err := br.Exec()
+		if err != nil {
+			br.Close()
+			return fmt.Errorf("insert facts: %w", err)
+		}
+		stored = int(tag.RowsAffected())
+	}
+	for _, i := range wave {
+		others, err := readLookups(br, msgs[i], orders[i])
+		if err != nil {
+			br.Close()
+			return err
+		}
+		if len(others) > 0 {
+			// hotWaves keeps a message of a moved fact out of waves.
+			br.Close()
+			return errors.New("group ingest: a message of a wave moves a fact")
+		}
+	}
+	if err := br.Close(); err != nil {
+		return fmt.Errorf("store group: %w", err)
+	}
+	// The facts each message stored: all of them when the insert stored
+	// as many rows as it was given, else as counted.
+	counts := map[string]int{}
+	if stored != given {
+		rows, err := tx.Query(ctx, countFactsSQL, keys, inbox)
+		if err != nil {
+			return fmt.Errorf("count facts: %w", err)
+		}
+		var k string
+		var c int
+		if _, err := pgx.ForEachRow(rows, []any{&k, &c}, func() error { counts[k] = c; return nil }); err != nil {
+			return fmt.Errorf("count facts: %w", err)
+		}
+	}
+	for _, i := range wave {
+		if m := msgs[i]; len(m.Facts) > 0 {
+			if stored == given {
+				res[i].Facts = len(m.Facts)
+			} else {
+				res[i].Facts = counts[m.InboxKey]
+			}
+		}
+	}
+	wm, wo := make([]consumer.Message, len(wave)), make([][]*patientPlan, len(wave))
+	for j, i := range wave {
+		wm[j], wo[j] = msgs[i], orders[i]
+	}
+	return s.loadSnapshotsOf(ctx, tx, wm, wo, w)
 }

@@ -19,7 +19,8 @@ import (
 // for a temperature, as affectedCTE), or when a key of the group is stored
 // under another patient (a moved fact: both patients are hot). Every other
 // patient's facts affect no blood gas, now or later in the group, and are
-// stored in one insert for the whole group.
+// stored in one insert for the whole group. The second column is true for
+// the patients of a moved fact (see hotWaves).
 //
 // $1..$4 the group's facts (patient, quantity, effective, key), $5 window
 // before and $6 after, $7 and $8 the same for body temperatures
@@ -35,10 +36,10 @@ WITH n AS MATERIALIZED (
     SELECT patient_ref, quantity, effective FROM n
     UNION SELECT patient_ref, quantity, effective FROM s
 )
-SELECT s.patient_ref FROM s JOIN n ON n.key = s.key WHERE s.patient_ref <> n.patient_ref
-UNION SELECT n.patient_ref FROM s JOIN n ON n.key = s.key WHERE s.patient_ref <> n.patient_ref
-UNION SELECT patient_ref FROM pts WHERE quantity = $10::text OR quantity = ANY($11::text[])
-UNION SELECT p.patient_ref FROM pts p CROSS JOIN LATERAL (
+SELECT s.patient_ref, true FROM s JOIN n ON n.key = s.key WHERE s.patient_ref <> n.patient_ref
+UNION SELECT n.patient_ref, true FROM s JOIN n ON n.key = s.key WHERE s.patient_ref <> n.patient_ref
+UNION SELECT patient_ref, false FROM pts WHERE quantity = $10::text OR quantity = ANY($11::text[])
+UNION SELECT p.patient_ref, false FROM pts p CROSS JOIN LATERAL (
     SELECT 1 FROM fact_row b
     WHERE b.patient_ref = p.patient_ref AND b.quantity = $10::text
       AND b.effective BETWEEN p.effective - CASE WHEN p.quantity = $9::text THEN $8::bigint ELSE $6::bigint END * interval '1 microsecond'
@@ -161,4 +162,60 @@ func concatArgs(lists [][]any) ([]any, error) {
 		}
 	}
 	return out, nil
+}
+
+// hotWaves splits the hot messages of a group (indexes into msgs, in
+// order) into waves of consecutive messages with pairwise disjoint
+// patients and fact keys: within a wave, each message's facts, affected
+// blood gases, snapshot and heads concern only its own patients and keys
+// (every lookup of affectedCTE and the snapshot statements is by the
+// message's patient or keys), so storing the facts of the whole wave before
+// reading any of them changes nothing any message of the wave reads, and
+// the wave takes one fact insert and one round trip for all of them. Fact
+// ids keep the message order (the insert takes the wave's facts in order).
+// A message with a patient of a moved fact (a key stored, or named earlier
+// in the group, under another patient: moved) is a wave of its own: it
+// reads the other patient's snapshot too (loadMoved).
+func hotWaves(msgs []consumer.Message, hot []int, moved map[string]bool) [][]int {
+	keyPatient := map[string]string{}
+	for _, m := range msgs {
+		for _, f := range m.Facts {
+			if p, ok := keyPatient[f.Key]; ok && p != f.Patient {
+				moved[p], moved[f.Patient] = true, true
+			}
+			keyPatient[f.Key] = f.Patient
+		}
+	}
+	solo := func(i int) bool {
+		return slices.ContainsFunc(messagePatients(msgs[i]), func(p string) bool { return moved[p] })
+	}
+	var waves [][]int
+	for start := 0; start < len(hot); {
+		end := start + 1
+		if !solo(hot[start]) {
+			seen := map[string]bool{}
+			add := func(i int) {
+				for _, p := range messagePatients(msgs[i]) {
+					seen["p "+p] = true
+				}
+				for _, f := range msgs[i].Facts {
+					seen["k "+f.Key] = true
+				}
+			}
+			add(hot[start])
+			for end < len(hot) && !solo(hot[end]) {
+				i := hot[end]
+				clash := slices.ContainsFunc(messagePatients(msgs[i]), func(p string) bool { return seen["p "+p] }) ||
+					slices.ContainsFunc(msgs[i].Facts, func(f fhirmap.Fact) bool { return seen["k "+f.Key] })
+				if clash {
+					break
+				}
+				add(i)
+				end++
+			}
+		}
+		waves = append(waves, hot[start:end])
+		start = end
+	}
+	return waves
 }

@@ -8,6 +8,7 @@ import (
 	"fmt"
 	"log/slog"
 	"slices"
+	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -387,6 +388,25 @@ ORDER BY u.ord
 ON CONFLICT (msg_id) DO NOTHING`
 )
 
+// knownAffectedCTE stands in for affectedCTE in the snapshot statements
+// of loadSnapshots, which run after the patient's affectedSQL in the same
+// transaction with no write in between: $8 (the inbox key, which only
+// affectedCTE reads) then carries the affected blood gases affectedSQL
+// returned, the same set, and the cand/changed/affected lookups of fact
+// are not run again. typed is never read; it names the parameters only
+// affectedCTE used, so that PostgreSQL still knows their types.
+const knownAffectedCTE = `
+WITH affected AS (SELECT unnest($8::text[]) AS key),
+typed AS (SELECT $1::text, $2::text[], $3::bigint, $4::bigint, $5::bigint, $6::text[], $7::text, $9::bigint,
+    $10::bigint, $11::text)`
+
+// The snapshot statements with knownAffectedCTE.
+var (
+	snapshotFactsKnownSQL        = knownAffectedCTE + strings.TrimPrefix(snapshotFactsSQL, affectedCTE)
+	snapshotHeadsKnownSQL        = knownAffectedCTE + strings.TrimPrefix(snapshotHeadsSQL, affectedCTE)
+	snapshotHeadsPendingKnownSQL = knownAffectedCTE + strings.TrimPrefix(snapshotHeadsPendingSQL, affectedCTE)
+)
+
 // Ingest implements consumer.Store. Serialization failures and deadlocks
 // are retried in place (up to three attempts, calling plan again); other
 // transient failures are returned wrapped with consumer.ErrTransient.
@@ -456,7 +476,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		for _, p := range order {
 			b.Queue(lockPatientSQL, p.ref)
 		}
-		s.queueInput(b, msg, order, now)
+		s.queueInput(b, msg, order, now, nil)
 		br := tx.SendBatch(ctx, b)
 		defer br.Close()
 		if _, err := br.Exec(); err != nil {
@@ -481,11 +501,11 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
 		}
-		if err := s.loadSnapshots(ctx, tx, msg, order); err != nil {
+		if err := s.loadSnapshots(ctx, tx, msg, order, nil); err != nil {
 			return err
 		}
 		if len(others) > 0 {
-			moved, err := s.loadMoved(ctx, tx, msg, others)
+			moved, err := s.loadMoved(ctx, tx, msg, others, nil)
 			if err != nil {
 				return err
 			}
@@ -536,16 +556,25 @@ func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
 // and load, per patient, what the new facts affect. The resources are kept
 // in the message's bytes, which the inbox row holds (migration 0011); no
 // row per resource is written.
-func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time) {
+func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time, pend *groupWrites) {
 	if len(msg.Facts) > 0 {
 		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
+		s.queueLookups(b, msg, order, pend)
+	}
+}
+
+// queueLookups queues what queueInput queues after the fact insert: the
+// other patients of the message's keys and, per patient, the affected blood
+// gases (and the snapshot, when eager).
+func (s *Store) queueLookups(b *pgx.Batch, msg consumer.Message, order []*patientPlan, pend *groupWrites) {
+	if len(msg.Facts) > 0 {
 		b.Queue(otherPatientsSQL, factKeys(msg), messagePatients(msg))
 		eager := surelyAffects(msg)
 		for _, p := range order {
 			p.eager = eager
 		}
 		if eager {
-			s.queueSnapshots(b, msg, order)
+			s.queueSnapshots(b, msg, order, pend)
 		} else {
 			s.queueAffected(b, msg, order)
 		}
@@ -593,15 +622,27 @@ func snapshotArgs(msg consumer.Message, p *patientPlan) []any {
 // which); a message that affects none costs no further statement. The
 // statements run in the same transaction after the message's inserts, so
 // they see the same rows as when queued with them.
-func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan) error {
+func (s *Store) loadSnapshots(ctx context.Context, tx pgx.Tx, msg consumer.Message, order []*patientPlan, pend *groupWrites) error {
+	return s.loadSnapshotsOf(ctx, tx, []consumer.Message{msg}, [][]*patientPlan{order}, pend)
+}
+
+// loadSnapshotsOf is loadSnapshots for several messages (a wave of a
+// group: hotWaves) in one round trip.
+func (s *Store) loadSnapshotsOf(ctx context.Context, tx pgx.Tx, msgs []consumer.Message, orders [][]*patientPlan, pend *groupWrites) error {
 	b := &pgx.Batch{}
 	var need []*patientPlan
-	for _, p := range order {
-		if len(p.affected) > 0 && !p.eager {
-			args := snapshotArgs(msg, p)
-			b.Queue(snapshotFactsSQL, args...)
-			b.Queue(snapshotHeadsSQL, args...)
-			need = append(need, p)
+	for i, msg := range msgs {
+		for _, p := range orders[i] {
+			if len(p.affected) > 0 && !p.eager {
+				// The affected blood gases are known (readAffected, in this
+				// transaction with no write since): the statements take them
+				// instead of working them out again.
+				args := snapshotArgs(msg, p)
+				args[7] = p.affected
+				b.Queue(snapshotFactsKnownSQL, args...)
+				pend.queueHeads(b, p.ref, args, true)
+				need = append(need, p)
+			}
 		}
 	}
 	if len(need) == 0 {
@@ -634,14 +675,14 @@ func factKeys(msg consumer.Message) []string {
 // (rare: a corrected subject). They are locked after the message's own
 // patients, out of sorted order; a deadlock this could cause is detected by
 // PostgreSQL and the transaction is retried (retryInPlace).
-func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, others []string) ([]*patientPlan, error) {
+func (s *Store) loadMoved(ctx context.Context, tx pgx.Tx, msg consumer.Message, others []string, pend *groupWrites) ([]*patientPlan, error) {
 	plans := make([]*patientPlan, len(others))
 	for i, ref := range others {
 		plans[i] = &patientPlan{ref: ref}
 	}
 	b := &pgx.Batch{}
 	b.Queue(lockPatientsSQL, others)
-	s.queueSnapshots(b, msg, plans)
+	s.queueSnapshots(b, msg, plans, pend)
 	br := tx.SendBatch(ctx, b)
 	defer br.Close()
 	if _, err := br.Exec(); err != nil {
@@ -665,6 +706,13 @@ func readInput(br pgx.BatchResults, msg consumer.Message, order []*patientPlan, 
 			return nil, fmt.Errorf("insert facts: %w", err)
 		}
 		res.Facts = int(tag.RowsAffected())
+	}
+	return readLookups(br, msg, order)
+}
+
+// readLookups reads the results of what queueLookups queued.
+func readLookups(br pgx.BatchResults, msg consumer.Message, order []*patientPlan) (others []string, err error) {
+	if len(msg.Facts) > 0 {
 		rows, err := br.Query()
 		if err != nil {
 			return nil, fmt.Errorf("other patients: %w", err)
@@ -762,12 +810,12 @@ func optTime(t time.Time) pgtype.Timestamptz {
 
 // queueSnapshots queues, per patient, the affected blood gases, the
 // snapshot facts and the heads (three statements sharing affectedCTE).
-func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan) {
+func (s *Store) queueSnapshots(b *pgx.Batch, msg consumer.Message, order []*patientPlan, pend *groupWrites) {
 	for _, p := range order {
 		args := snapshotArgs(msg, p)
 		b.Queue(affectedSQL, args...)
 		b.Queue(snapshotFactsSQL, args...)
-		b.Queue(snapshotHeadsSQL, args...)
+		pend.queueHeads(b, p.ref, args, false)
 	}
 }
 
