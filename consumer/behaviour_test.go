@@ -8,7 +8,9 @@ import (
 	"math"
 	"net/http"
 	"net/http/httptest"
+	"slices"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -317,4 +319,39 @@ func TestBloodGasMovedToAnotherPatient(t *testing.T) {
 		t.Error("patient 1 has no dead-space fraction from the moved blood gas")
 	}
 	h.reconcile(append(msgs, msg))
+}
+
+// The pipeline decodes a pull's messages in several decoders at once, but
+// a lane must still see one patient's messages in stream order (a blood
+// gas dealt ahead of the readings published before it would be derived
+// from part of them and amended at once). The first message's decode is
+// held back; every message of the one patient (one lane) must still reach
+// the store in stream order.
+func TestDecodersKeepStreamOrder(t *testing.T) {
+	h := newHarness(t)
+	var mu sync.Mutex
+	var seen []uint64
+	h.startReplica(&consumer.Hooks{
+		BeforeDecode: func(seq uint64) {
+			if seq == 1 {
+				time.Sleep(100 * time.Millisecond)
+			}
+		},
+		BeforeIngest: func(seq uint64) {
+			mu.Lock()
+			seen = append(seen, seq)
+			mu.Unlock()
+		},
+	})
+	msgs := generate(genOpts{patients: 1, gases: 1})
+	h.publish(msgs)
+	h.waitSettled(30 * time.Second)
+	mu.Lock()
+	defer mu.Unlock()
+	if len(seen) < len(msgs) {
+		t.Fatalf("%d messages reached the store, want at least %d", len(seen), len(msgs))
+	}
+	if !slices.IsSorted(seen[:len(msgs)]) {
+		t.Errorf("one patient's messages reached the store out of stream order: %v", seen)
+	}
 }

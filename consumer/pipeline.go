@@ -82,6 +82,7 @@ type Hooks struct {
 	AfterCommit  func(streamSeq uint64) error // after the store committed, before the ack
 	AfterPublish func(seq int64) error        // after the output PubAck, before the outbox row is marked
 	BeforeIngest func(streamSeq uint64)       // e.g. to slow a handler down
+	BeforeDecode func(streamSeq uint64)       // e.g. to slow one message's decode down
 	DuringPlan   func(patient string)         // inside the ingest transaction, under the patient lock
 }
 
@@ -319,25 +320,45 @@ func (p *Pipeline) process(ctx context.Context, msgs <-chan jetstream.Msg) {
 	// locks, and let each lane commit its messages in groups. A lone
 	// decoder took about 180 us a message of the bench's scenario, so a
 	// pull of 64 spent 11 ms decoding before its last message reached a
-	// lane (more than a group's wait). Decoders may deal two messages of
-	// one patient in either order; the stored state does not depend on the
-	// order of a patient's inputs (the order-independence tests).
+	// lane (more than a group's wait). The dealer takes the decoded
+	// messages in the order they arrived, so that a lane sees a patient's
+	// messages in the order of the stream, as with one decoder: the stored
+	// state would not depend on it, but a blood gas dealt before the
+	// readings published ahead of it would be derived twice.
 	lanes := make([]chan *inflight, p.workers)
 	var wg sync.WaitGroup
 	for i := range lanes {
 		lanes[i] = make(chan *inflight, p.groupMax)
 		wg.Go(func() { p.lane(ctx, bs, lanes[i]) })
 	}
+	type decodeJob struct {
+		msg jetstream.Msg
+		out chan *inflight
+	}
+	jobs := make(chan decodeJob, p.workers)
+	order := make(chan chan *inflight, p.groupMax)
 	var decoders sync.WaitGroup
 	for range p.workers {
 		decoders.Go(func() {
-			for msg := range msgs {
-				if it := p.receive(msg, true); it != nil {
-					lanes[laneOf(it, len(lanes))] <- it
-				}
+			for j := range jobs {
+				j.out <- p.receive(j.msg, true)
 			}
 		})
 	}
+	decoders.Go(func() {
+		for out := range order {
+			if it := <-out; it != nil {
+				lanes[laneOf(it, len(lanes))] <- it
+			}
+		}
+	})
+	for msg := range msgs {
+		out := make(chan *inflight, 1)
+		order <- out
+		jobs <- decodeJob{msg: msg, out: out}
+	}
+	close(jobs)
+	close(order)
 	decoders.Wait()
 	for _, l := range lanes {
 		close(l)
@@ -500,6 +521,9 @@ func (p *Pipeline) receive(msg jetstream.Msg, main bool) *inflight {
 		if meta.NumDelivered > 1 {
 			p.metrics.Redeliveries.Inc()
 		}
+	}
+	if p.hooks != nil && p.hooks.BeforeDecode != nil {
+		p.hooks.BeforeDecode(meta.Sequence.Stream)
 	}
 	it := &inflight{msg: msg, meta: meta, start: start}
 	// Work that may outlast AckWait tells the server it is alive.
