@@ -1064,16 +1064,38 @@ func (b *bench) floorConsumeWork(ctx context.Context, durable string, pool *pgxp
 		var failed atomic.Value
 		msgs := batch.Messages()
 		if work != nil {
-			// Where the pipeline decodes: in the goroutine that deals a
-			// pull's messages to the lanes, one message after another
-			// (consumer.Pipeline's process), before its lane sees it.
+			// Where the pipeline decodes (consumer.Pipeline's process):
+			// workers decoders at once, their messages dealt to the lanes
+			// in arrival order, before a lane sees its message.
+			type job struct {
+				m   jetstream.Msg
+				out chan jetstream.Msg
+			}
 			in := make(chan jetstream.Msg)
+			jobs := make(chan job, b.f.workers)
+			order := make(chan chan jetstream.Msg, 64)
+			for range b.f.workers {
+				go func() {
+					for j := range jobs {
+						work(j.m.Data())
+						j.out <- j.m
+					}
+				}()
+			}
 			go func() {
 				defer close(in)
-				for m := range batch.Messages() {
-					work(m.Data())
-					in <- m
+				for out := range order {
+					in <- <-out
 				}
+			}()
+			go func() {
+				for m := range batch.Messages() {
+					out := make(chan jetstream.Msg, 1)
+					order <- out
+					jobs <- job{m: m, out: out}
+				}
+				close(jobs)
+				close(order)
 			}()
 			msgs = in
 		}

@@ -66,8 +66,8 @@ func (b *bench) ladderCodes() *fhirmap.CodeTable {
 
 // ladderDecode is step 2: the floor's drain of the run's messages with the
 // service's strict decode of each message where the pipeline decodes it:
-// in the goroutine that deals a pull's messages to the lanes, one after
-// another, before the message reaches its lane.
+// in as many decoders as lanes, each message dealt to its lane in arrival
+// order once decoded.
 func (b *bench) ladderDecode(ctx context.Context) (ladderStep, error) {
 	var step ladderStep
 	if err := b.resetStreams(ctx); err != nil {
