@@ -63,6 +63,7 @@ RETURNING inbox_key`
 // that only the faulty one fails. A group of one is an Ingest.
 func (s *Store) IngestBatch(ctx context.Context, msgs []consumer.Message, plan consumer.PlanFunc) []consumer.BatchResult {
 	out := make([]consumer.BatchResult, len(msgs))
+	s.seedLookups(ctx, msgs)
 	if len(msgs) == 1 {
 		out[0].IngestResult, out[0].Err = s.Ingest(ctx, msgs[0], plan)
 		return out

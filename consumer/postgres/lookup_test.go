@@ -231,3 +231,69 @@ func TestLookupTermRaceWithOpenTransaction(t *testing.T) {
 		})
 	}
 }
+
+// TestSeededTermDoesNotWaitForAnotherGroup: the new terms and encounters of
+// a group are committed before the group's transaction (seedLookups), so a
+// second group naming the same new term does not wait on the unique index
+// for the first group to commit. Group A (a reading with a new term, then
+// a blood gas near it) is held inside its transaction by the gas's plan,
+// after the reading's facts are inserted; group B (readings
+// of another patient with the same term and encounter) must be stored
+// meanwhile, and both read back with their term once A is released.
+// Without the seeding, B's fact insert waits for A's COMMIT.
+func TestSeededTermDoesNotWaitForAnotherGroup(t *testing.T) {
+	t.Parallel()
+	f := newFixture(t)
+	entered, release := make(chan struct{}), make(chan struct{})
+	var p testPlan
+	var once sync.Once
+	held := func(s consumer.Snapshot) (consumer.Changes, error) {
+		once.Do(func() {
+			close(entered)
+			<-release
+		})
+		return p.plan(s)
+	}
+	readingA := coded(p1, "seed-3-a", 3, 2)
+	gasA := message("fhir.input.lab", 1, abg(p1, "seed-gas", readingA.Facts[0].Effective.Add(time.Minute), 44))
+	doneA := make(chan []consumer.BatchResult, 1)
+	go func() { doneA <- f.store.IngestBatch(f.ctx, []consumer.Message{readingA, gasA}, held) }()
+	select {
+	case <-entered:
+	case <-time.After(30 * time.Second):
+		close(release)
+		t.Fatal("group A never planned its blood gas")
+	}
+	// Another replica, so that B cannot take the id from A's cache.
+	pool2, err := pgxpool.New(f.ctx, f.url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(pool2.Close)
+	other := postgres.New(pool2, postgres.Options{PatientKey: testKey, Now: clock()})
+	doneB := make(chan []consumer.BatchResult, 1)
+	go func() {
+		doneB <- other.IngestBatch(f.ctx, []consumer.Message{coded(p2, "seed-3-b", 3, 3), coded(p2, "seed-3-c", 3, 4)}, p.plan)
+	}()
+	select {
+	case res := <-doneB:
+		for _, r := range res {
+			if r.Err != nil {
+				t.Errorf("group B: %v", r.Err)
+			}
+		}
+	case <-time.After(5 * time.Second):
+		t.Error("group B waited for group A's transaction: the new term was not committed before it")
+	}
+	close(release)
+	for _, r := range <-doneA {
+		if r.Err != nil {
+			t.Errorf("group A: %v", r.Err)
+		}
+	}
+	select {
+	case <-doneB:
+	default:
+	}
+	checkFactsResolve(t, f, 3)
+}
