@@ -143,16 +143,7 @@ func (s *Store) loadWanted(ctx context.Context) {
 
 	foundTerms := map[termKey]int32{}
 	if len(terms) > 0 {
-		n := len(terms)
-		q, o, d, sp, u, tx, su, sy, co, di, st := mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
-		tc := make([]bool, n)
-		i := 0
-		for k := range terms {
-			q[i], o[i], d[i], sp[i], tc[i], u[i], tx[i], su[i] = k.quantity, k.origin, k.detail, k.specimen, k.tempCorrected, k.unit, k.text, k.sourceUnit
-			sy[i], co[i], di[i], st[i] = k.system, k.code, k.display, k.status
-			i++
-		}
-		rows, err := s.pool.Query(ctx, loadTermsSQL, q, o, d, sp, tc, u, tx, su, sy, co, di, st)
+		rows, err := s.pool.Query(ctx, loadTermsSQL, termArgs(slices.Collect(maps.Keys(terms)))...)
 		if err != nil {
 			s.log.Debug("load fact terms", "error", err)
 			return
@@ -274,14 +265,7 @@ func (s *Store) seedLookups(ctx context.Context, msgs []consumer.Message) {
 				cmp.Compare(a.text, b.text), cmp.Compare(a.sourceUnit, b.sourceUnit), cmp.Compare(a.system, b.system),
 				cmp.Compare(a.code, b.code), cmp.Compare(a.display, b.display), cmp.Compare(a.status, b.status))
 		})
-		n := len(keys)
-		q, o, d, sp, u, tx, su, sy, co, di, st := mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
-		tc := make([]bool, n)
-		for i, k := range keys {
-			q[i], o[i], d[i], sp[i], tc[i], u[i], tx[i], su[i] = k.quantity, k.origin, k.detail, k.specimen, k.tempCorrected, k.unit, k.text, k.sourceUnit
-			sy[i], co[i], di[i], st[i] = k.system, k.code, k.display, k.status
-		}
-		if _, err := s.pool.Exec(ctx, seedTermsSQL, q, o, d, sp, tc, u, tx, su, sy, co, di, st); err != nil {
+		if _, err := s.pool.Exec(ctx, seedTermsSQL, termArgs(keys)...); err != nil {
 			s.log.Debug("seed fact terms", "error", err)
 			return
 		}
@@ -305,4 +289,17 @@ func boolCmp(a, b bool) int {
 		return -1
 	}
 	return 1
+}
+
+// termArgs are the twelve column arrays of keys, in the order of the
+// fact_term_values constraint (loadTermsSQL and seedTermsSQL).
+func termArgs(keys []termKey) []any {
+	n := len(keys)
+	q, o, d, sp, u, tx, su, sy, co, di, st := mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n), mk(n)
+	tc := make([]bool, n)
+	for i, k := range keys {
+		q[i], o[i], d[i], sp[i], tc[i], u[i], tx[i], su[i] = k.quantity, k.origin, k.detail, k.specimen, k.tempCorrected, k.unit, k.text, k.sourceUnit
+		sy[i], co[i], di[i], st[i] = k.system, k.code, k.display, k.status
+	}
+	return []any{q, o, d, sp, tc, u, tx, su, sy, co, di, st}
 }
