@@ -307,35 +307,50 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 	return nil
 }
 
-// countCold fills in the facts each cold message stored: all of them when
-// the group's insert stored as many rows as it was given, else as counted.
+// countCold fills in the facts each cold message stored.
 func (s *Store) countCold(ctx context.Context, tx pgx.Tx, msgs []consumer.Message, fresh, cold []bool, stored, given int,
 	keys, inbox []string, res []consumer.IngestResult) error {
 	if stored < 0 {
 		return nil
 	}
-	counts := map[string]int{}
-	if stored != given {
-		rows, err := tx.Query(ctx, countFactsSQL, keys, inbox)
-		if err != nil {
-			return fmt.Errorf("count facts: %w", err)
-		}
-		var k string
-		var c int
-		if _, err := pgx.ForEachRow(rows, []any{&k, &c}, func() error { counts[k] = c; return nil }); err != nil {
-			return fmt.Errorf("count facts: %w", err)
-		}
+	counts, err := storedCounts(ctx, tx, stored, given, keys, inbox)
+	if err != nil {
+		return err
 	}
 	for i, m := range msgs {
 		if fresh[i] && cold[i] && len(m.Facts) > 0 {
-			if stored == given {
-				res[i].Facts = len(m.Facts)
-			} else {
-				res[i].Facts = counts[m.InboxKey]
-			}
+			res[i].Facts = factsStored(m, counts)
 		}
 	}
 	return nil
+}
+
+// storedCounts counts the facts each message of a multi-message insert
+// stored (countFactsSQL), by inbox key; nil when the insert stored as many
+// rows as it was given, so each message stored all of its facts.
+func storedCounts(ctx context.Context, tx pgx.Tx, stored, given int, keys, inbox []string) (map[string]int, error) {
+	if stored == given {
+		return nil, nil
+	}
+	counts := map[string]int{}
+	rows, err := tx.Query(ctx, countFactsSQL, keys, inbox)
+	if err != nil {
+		return nil, fmt.Errorf("count facts: %w", err)
+	}
+	var k string
+	var c int
+	if _, err := pgx.ForEachRow(rows, []any{&k, &c}, func() error { counts[k] = c; return nil }); err != nil {
+		return nil, fmt.Errorf("count facts: %w", err)
+	}
+	return counts, nil
+}
+
+// factsStored is how many of m's facts its group's insert stored.
+func factsStored(m consumer.Message, counts map[string]int) int {
+	if counts == nil {
+		return len(m.Facts)
+	}
+	return counts[m.InboxKey]
 }
 
 // ingestHotOne stores one hot message's facts and loads its snapshots, as
@@ -438,27 +453,13 @@ func (s *Store) ingestWave(ctx context.Context, tx pgx.Tx, msgs []consumer.Messa
 	if err := br.Close(); err != nil {
 		return fmt.Errorf("store group: %w", err)
 	}
-	// The facts each message stored: all of them when the insert stored
-	// as many rows as it was given, else as counted.
-	counts := map[string]int{}
-	if stored != given {
-		rows, err := tx.Query(ctx, countFactsSQL, keys, inbox)
-		if err != nil {
-			return fmt.Errorf("count facts: %w", err)
-		}
-		var k string
-		var c int
-		if _, err := pgx.ForEachRow(rows, []any{&k, &c}, func() error { counts[k] = c; return nil }); err != nil {
-			return fmt.Errorf("count facts: %w", err)
-		}
+	counts, err := storedCounts(ctx, tx, stored, given, keys, inbox)
+	if err != nil {
+		return err
 	}
 	for _, i := range wave {
 		if m := msgs[i]; len(m.Facts) > 0 {
-			if stored == given {
-				res[i].Facts = len(m.Facts)
-			} else {
-				res[i].Facts = counts[m.InboxKey]
-			}
+			res[i].Facts = factsStored(m, counts)
 		}
 	}
 	wm, wo := make([]consumer.Message, len(wave)), make([][]*patientPlan, len(wave))

@@ -445,20 +445,8 @@ func (w *groupWrites) derivationArgs(rows [][]any, lin []lineage) []any {
 // read reads what queue queued and counts the outbox rows stored per
 // message into res.
 func (w *groupWrites) read(br pgx.BatchResults, q groupQueued, res []consumer.IngestResult) error {
-	for range q.settings {
-		if _, err := br.Exec(); err != nil {
-			return fmt.Errorf("insert settings snapshot: %w", err)
-		}
-	}
-	for range q.ders {
-		if _, err := br.Exec(); err != nil {
-			return fmt.Errorf("insert derivation: %w", err)
-		}
-	}
-	for range q.refs {
-		if _, err := br.Exec(); err != nil {
-			return fmt.Errorf("insert refusal: %w", err)
-		}
+	if err := readInserts(br, q.settings, q.ders, q.refs); err != nil {
+		return err
 	}
 	if q.heads > 0 {
 		if _, err := br.Exec(); err != nil {

@@ -1044,22 +1044,27 @@ func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patien
 	return q, nil
 }
 
+// readInserts reads the results of the settings snapshot, derivation and
+// refusal inserts queued, in that order: settings, derivations and
+// refusals statements of each.
+func readInserts(br pgx.BatchResults, settings, derivations, refusals int) error {
+	for _, step := range []struct {
+		n    int
+		what string
+	}{{settings, "insert settings snapshot"}, {derivations, "insert derivation"}, {refusals, "insert refusal"}} {
+		for range step.n {
+			if _, err := br.Exec(); err != nil {
+				return fmt.Errorf("%s: %w", step.what, err)
+			}
+		}
+	}
+	return nil
+}
+
 // readChanges reads the results of what queueChanges queued.
 func (s *Store) readChanges(br pgx.BatchResults, q queued, res *consumer.IngestResult) error {
-	for range q.settings {
-		if _, err := br.Exec(); err != nil {
-			return fmt.Errorf("insert settings snapshot: %w", err)
-		}
-	}
-	for range q.derivations {
-		if _, err := br.Exec(); err != nil {
-			return fmt.Errorf("insert derivation: %w", err)
-		}
-	}
-	for range q.refusals {
-		if _, err := br.Exec(); err != nil {
-			return fmt.Errorf("insert refusal: %w", err)
-		}
+	if err := readInserts(br, q.settings, q.derivations, q.refusals); err != nil {
+		return err
 	}
 	if q.outbox > 0 {
 		tag, err := br.Exec()
