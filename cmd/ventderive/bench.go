@@ -89,6 +89,10 @@ type benchFlags struct {
 	// ladder measures the cost ladder (bench_ladder.go) between the
 	// floor and the pipeline.
 	ladder bool
+	// keep leaves the run's databases on the server, for study, instead
+	// of dropping them at the end (needs DATABASE_URL: a throwaway
+	// cluster goes with the run).
+	keep bool
 }
 
 func runBench(ctx context.Context, args []string, e env) error {
@@ -118,8 +122,13 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative, e.g. -1s: the lane off, for comparison)")
 	fs.BoolVar(&f.ladder, "ladder", true, "measure the cost ladder: the floor, + the service's strict decode, + its inbox and fact rows on readings that can affect no derivation, and the one-replica pipeline, each as a row (about 10 s at the defaults; --ladder=false: skip)")
 	fs.IntVar(&f.backlog, "backlog", 100000, "inputs in the stream before one replica starts, drained with a fresh blood gas published during the drain (0: skip)")
+	fs.BoolVar(&f.keep, "keep", false, "keep the run's databases on the DATABASE_URL server and list them at the end, instead of dropping them (for a study of the stored rows; needs DATABASE_URL)")
 	if done, err := parseFlags(fs, args); done {
 		return err
+	}
+	if f.keep && e.getenv("DATABASE_URL") == "" {
+		fmt.Fprintln(e.stderr, "bench: --keep needs DATABASE_URL (a throwaway cluster is removed with the run)")
+		return errUsage
 	}
 	replicas, err := parseCounts(f.replicas)
 	if err == nil && *historyDays != "" {
@@ -227,6 +236,10 @@ func newBench(ctx context.Context, f benchFlags, e env) (_ *bench, err error) {
 func (b *bench) close() {
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
+	if b.f.keep && len(b.dbs) > 0 {
+		fmt.Fprintf(b.out, "\nKept databases (--keep; drop them when done): %s\n", strings.Join(b.dbs, " "))
+		b.dbs = nil
+	}
 	if len(b.dbs) > 0 {
 		if c, err := pgx.Connect(ctx, b.admin); err == nil {
 			for _, name := range b.dbs {

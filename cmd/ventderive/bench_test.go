@@ -9,6 +9,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/jackc/pgx/v5"
+
 	"github.com/ventderive/ventderive/cmd/ventderive/internal/scenario"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
 	"github.com/ventderive/ventderive/fhirmap"
@@ -398,4 +400,47 @@ func benchReport(t *testing.T, timeout time.Duration, args ...string) string {
 		t.Fatalf("bench: %v\n%s\n%s", err, out.String(), errOut.String())
 	}
 	return out.String()
+}
+
+// TestBenchKeepDatabases checks --keep: the run's databases stay on the
+// server and are listed, and without it they are dropped; and that --keep
+// without DATABASE_URL is a usage error (a throwaway cluster would take
+// them with it).
+func TestBenchKeepDatabases(t *testing.T) {
+	admin := pgtest.AdminURL(t)
+	ctx := context.Background()
+	exists := func(name string) bool {
+		c, err := pgx.Connect(ctx, admin)
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer c.Close(ctx)
+		var ok bool
+		if err := c.QueryRow(ctx, "SELECT EXISTS (SELECT 1 FROM pg_database WHERE datname = $1)", name).Scan(&ok); err != nil {
+			t.Fatal(err)
+		}
+		return ok
+	}
+	for _, keep := range []bool{true, false} {
+		var out bytes.Buffer
+		b := &bench{f: benchFlags{keep: keep}, admin: admin, out: &out}
+		name, _, err := createDatabase(ctx, admin, "ventderive_keep_test_")
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Cleanup(func() { dropDatabase(admin, name) })
+		b.dbs = []string{name}
+		b.close()
+		if got := exists(name); got != keep {
+			t.Errorf("keep %v: database %s exists after close: %v", keep, name, got)
+		}
+		if listed := strings.Contains(out.String(), "Kept databases (--keep; drop them when done): "+name); listed != keep {
+			t.Errorf("keep %v: listed %v in %q", keep, listed, out.String())
+		}
+	}
+	var stderr bytes.Buffer
+	err := runBench(ctx, []string{"--keep"}, env{getenv: func(string) string { return "" }, stdout: &bytes.Buffer{}, stderr: &stderr})
+	if err != errUsage || !strings.Contains(stderr.String(), "--keep needs DATABASE_URL") {
+		t.Errorf("--keep without DATABASE_URL: %v, %q", err, stderr.String())
+	}
 }
