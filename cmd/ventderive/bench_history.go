@@ -428,15 +428,39 @@ func (b *bench) reportYear(ctx context.Context, pool *pgxpool.Pool, p historyPoi
 		return err
 	}
 	y := yearAfterRetention(p.st.total, rep.Bytes, p.days, p.patients)
+	idx := factIndexShare(p.st, rep.Facts)
+	yi := yearAfterRetention(p.st.total, rep.Bytes+idx, p.days, p.patients)
 	fmt.Fprintf(b.out, "\nA site's year after retention, from the %d-day store: retain's dry run (horizon %s, as of the end of the history) would remove\n"+
 		"%d readings (%d fact rows) and %d payloads: R = %d bytes (pg_column_size of rows and payloads; their index entries not counted, so\n"+
 		"the estimate errs high). Store S = %d bytes (%.0f bytes/input), so a bed-day is f = S/(P*D) = %.0f bytes before retention and an old\n"+
 		"bed-day loses r = R/(P*(D-1)) = %.0f bytes. A site of %d ventilated beds (a reading a minute, blood gases at the simulator's rate):\n"+
-		"  before retention %d x %d x f = %.1f GB a year; after retention %d x (%d x f - %d x r) = %.1f GB a year (%.0f%% kept)%s\n",
+		"  before retention %d x %d x f = %.1f GB a year; after retention %d x (%d x f - %d x r) = %.1f GB a year (%.0f%% kept)\n",
 		p.days, postgres.MinRetainHorizon, rep.Keys, rep.Facts, rep.Messages, rep.Bytes, p.st.total, p.st.perInput(p.st.total),
 		y.perBedDay, y.removedPerBedDay, siteBeds, siteBeds, siteDaysPerYear, y.before/1e9, siteBeds, siteDaysPerYear, siteDaysPerYear-1, y.after/1e9,
-		100*y.after/max(y.before, 1), everyNote(b.f.historyEvery))
+		100*y.after/max(y.before, 1))
+	fmt.Fprintf(b.out, "  with the removed rows' share of fact_row's indexes, I = %d fact rows x %.0f index bytes a row = %d bytes (given back only by\n"+
+		"  REINDEX or VACUUM FULL: retain keeps the cited readings among the old ones): after retention %d x (%d x f - %d x (R+I)/(P*(D-1)))\n"+
+		"  = %.1f GB a year (%.0f%% kept)%s\n",
+		rep.Facts, factIndexBytesPerRow(p.st), idx, siteBeds, siteDaysPerYear, siteDaysPerYear-1, yi.after/1e9, 100*yi.after/max(yi.before, 1),
+		everyNote(b.f.historyEvery))
 	return nil
+}
+
+// factIndexBytesPerRow is fact_row's index bytes per row in a storage
+// report (0 without fact rows).
+func factIndexBytesPerRow(st storageReport) float64 {
+	for _, t := range st.tables {
+		if t.name == "fact_row" && t.rows > 0 {
+			return float64(t.index) / float64(t.rows)
+		}
+	}
+	return 0
+}
+
+// factIndexShare estimates the bytes of fact_row's indexes that facts
+// removed rows hold: each at the store's average index bytes per row.
+func factIndexShare(st storageReport, facts int64) int64 {
+	return int64(float64(facts)*factIndexBytesPerRow(st) + 0.5)
 }
 
 // everyNote flags a store whose reading interval is not the site's.

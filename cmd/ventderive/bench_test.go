@@ -340,6 +340,10 @@ func TestBenchHistorySmall(t *testing.T) {
 	if !regexp.MustCompile(`after retention 300 x \(365 x f - 364 x r\) = [0-9.]+ GB a year \([0-9]+% kept\)`).MatchString(report) {
 		t.Error("no retention estimate for a site's year")
 	}
+	if !regexp.MustCompile(`with the removed rows' share of fact_row's indexes, I = [0-9]+ fact rows x [1-9][0-9]* index bytes a row = [1-9][0-9]* bytes`).MatchString(report) ||
+		!regexp.MustCompile(`after retention 300 x \(365 x f - 364 x \(R\+I\)/\(P\*\(D-1\)\)\)\n  = [0-9.]+ GB a year \([0-9]+% kept\)`).MatchString(report) {
+		t.Error("no retention estimate with the removed rows' index entries")
+	}
 	if !regexp.MustCompile(`per-input CPU \(service \+ PostgreSQL\) after 2 days of 10 patients / empty store: [0-9.]+ \(target at most 1.2 after 30 days of 200 patients\): not judged`).MatchString(report) {
 		t.Error("no targets line for the history store (not judged at a small size)")
 	}
@@ -378,6 +382,22 @@ func TestYearAfterRetention(t *testing.T) {
 	y := yearAfterRetention(3_000_000, 1_000_000, 3, 10)
 	if y.perBedDay != 100_000 || y.removedPerBedDay != 50_000 || y.before != 300*365*100_000 || y.after != 300*(365*100_000-364*50_000) {
 		t.Errorf("yearAfterRetention = %+v", y)
+	}
+}
+
+// TestFactIndexShare checks the removed rows' share of fact_row's indexes
+// by hand: 1,000 rows with 300,000 index bytes are 300 bytes a row, so 250
+// removed rows hold 75,000; a store without fact_row gives 0.
+func TestFactIndexShare(t *testing.T) {
+	st := storageReport{tables: []tableSize{{name: "inbox", rows: 10, index: 9_999}, {name: "fact_row", rows: 1_000, index: 300_000}}}
+	if got := factIndexBytesPerRow(st); got != 300 {
+		t.Errorf("factIndexBytesPerRow = %v, want 300", got)
+	}
+	if got := factIndexShare(st, 250); got != 75_000 {
+		t.Errorf("factIndexShare(250) = %d, want 75,000", got)
+	}
+	if got := factIndexShare(storageReport{tables: st.tables[:1]}, 250); got != 0 {
+		t.Errorf("factIndexShare without fact_row = %d, want 0", got)
 	}
 }
 
