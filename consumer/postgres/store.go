@@ -110,9 +110,17 @@ const (
 	// 830 ms per message measured, against 1.5 ms without, and point
 	// lookups gain nothing from compiled expressions. The JIT setting is
 	// read at execution, so it also covers plans cached before it was set.
-	// All three settings end with the transaction.
+	//
+	// And it rules out parallel plans. On the bench's drained store (42,888
+	// facts) the generic plan of snapshotFactsSQL gathered its key lookups
+	// from parallel workers: 31-78 ms an execution on the loaded two-CPU
+	// machine, against 6-17 ms without (EXPLAIN ANALYZE EXECUTE, three runs
+	// each), as starting workers costs more than the few index pages a
+	// lookup reads. The setting is read when a plan is made (the
+	// statements' plans are made in these transactions: WarmConn).
+	// All four settings end with the transaction.
 	pointLookupsSQL = `SELECT set_config('enable_seqscan', 'off', true), set_config('plan_cache_mode', 'force_generic_plan', true),
-    set_config('jit', 'off', true)`
+    set_config('jit', 'off', true), set_config('max_parallel_workers_per_gather', '0', true)`
 
 	claimInboxSQL = `
 INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
