@@ -42,6 +42,9 @@ type Pipeline struct {
 	// latest (sooner when the fetched batch ends).
 	groupMax  int
 	groupWait time.Duration
+	// gasFirst: a blood gas ends its group and goes ahead in its lane
+	// (lane; Options.PlainGroups turns it off).
+	gasFirst bool
 
 	relayKick chan struct{}
 
@@ -106,10 +109,15 @@ type Options struct {
 	GroupMax int
 	// GroupWait is how long a group waits for more messages after its first
 	// one before it is committed; default 5 ms. A group is also committed
-	// when the fetched batch ends or GroupMax is reached.
+	// when the fetched batch ends or GroupMax is reached, and as soon as a
+	// blood gas joins it (see PlainGroups).
 	GroupWait time.Duration
-	Now       func() time.Time
-	Hooks     *Hooks
+	// PlainGroups turns off the lanes' priority for blood gases (lane): a
+	// gas then waits out its group's GroupWait and its place in the lane
+	// like any message. For comparison only.
+	PlainGroups bool
+	Now         func() time.Time
+	Hooks       *Hooks
 }
 
 // New builds a pipeline. It does not touch the network.
@@ -161,6 +169,7 @@ func New(nc *nats.Conn, store Store, o Options) (*Pipeline, error) {
 		workers:   o.Workers,
 		groupMax:  o.GroupMax,
 		groupWait: o.GroupWait,
+		gasFirst:  !o.PlainGroups,
 		relayKick: make(chan struct{}, 1),
 		hooks:     o.Hooks,
 	}, nil
@@ -262,16 +271,40 @@ func (p *Pipeline) currentConsumer() jetstream.Consumer {
 }
 
 // fetchLoop pulls small batches (Fetch, not Consume, so a replica never
-// holds a large prefetched buffer that another replica could have taken)
-// and settles every message of a batch before pulling the next.
+// holds a large prefetched buffer that another replica could have taken).
+// Without group commit it settles every message of a batch before pulling
+// the next. With group commit the lanes outlive the batches: a
+// batch is pulled as soon as the last one's messages are dealt to the
+// lanes and the one before that is settled, so a replica holds at most two
+// batches. Settling each batch before the next was pulled left
+// the input waiting on the server while the slowest lane committed its last
+// group: in the paced bench, a blood gas published then was received
+// 50-100 ms late.
 func (p *Pipeline) fetchLoop(ctx context.Context) {
 	failures := 0
+	// A message in hand is finished even when shutdown begins: drain, do
+	// not abandon.
+	work := context.WithoutCancel(ctx)
+	ls := p.startLanes(work)
+	var settling *sync.WaitGroup
+	defer func() {
+		if settling != nil {
+			settling.Wait()
+		}
+		ls.close()
+	}()
 	for ctx.Err() == nil {
 		batch, err := p.currentConsumer().Fetch(p.cfg.Fetch, jetstream.FetchMaxWait(time.Second))
 		if err == nil {
-			// A message in hand is finished even when shutdown begins:
-			// drain, do not abandon.
-			p.process(context.WithoutCancel(ctx), batch.Messages())
+			if ls == nil {
+				p.process(work, batch.Messages())
+			} else {
+				dealt := ls.deal(batch.Messages())
+				if settling != nil {
+					settling.Wait()
+				}
+				settling = dealt
+			}
 			err = batch.Error()
 		}
 		switch {
@@ -297,40 +330,73 @@ func (p *Pipeline) fetchLoop(ctx context.Context) {
 	}
 }
 
-// process handles the messages of one fetched batch and returns when every
-// one of them is settled (or abandoned by a simulated crash).
+// process handles the messages of one fetched batch, one at a time in up
+// to p.workers goroutines (no group commit), and returns when every one
+// of them is settled (or abandoned by a simulated crash).
 func (p *Pipeline) process(ctx context.Context, msgs <-chan jetstream.Msg) {
+	sem := make(chan struct{}, p.workers)
+	var wg sync.WaitGroup
+	for msg := range msgs {
+		sem <- struct{}{}
+		wg.Go(func() {
+			defer func() { <-sem }()
+			p.handle(ctx, msg)
+		})
+	}
+	wg.Wait()
+}
+
+// lanes are the group-commit lanes of a replica (startLanes).
+type lanes struct {
+	p  *Pipeline
+	in []chan *inflight
+	wg sync.WaitGroup
+}
+
+// startLanes starts p.workers lanes when the store commits groups, nil
+// otherwise. Messages are dealt to a lane by patient so that concurrent
+// transactions of this replica rarely wait for each other's patient
+// locks, and each lane commits its messages in groups (lane).
+func (p *Pipeline) startLanes(ctx context.Context) *lanes {
 	bs, grouped := p.store.(BatchStore)
 	if !grouped || p.groupMax <= 1 {
-		sem := make(chan struct{}, p.workers)
-		var wg sync.WaitGroup
-		for msg := range msgs {
-			sem <- struct{}{}
-			wg.Go(func() {
-				defer func() { <-sem }()
-				p.handle(ctx, msg)
-			})
-		}
-		wg.Wait()
+		return nil
+	}
+	l := &lanes{p: p}
+	for range p.workers {
+		in := make(chan *inflight, p.groupMax)
+		l.in = append(l.in, in)
+		l.wg.Go(func() { p.lane(ctx, bs, in) })
+	}
+	return l
+}
+
+// close ends the lanes once they have committed what they hold.
+func (l *lanes) close() {
+	if l == nil {
 		return
 	}
-	// Group commit: decode the pull's messages in p.workers decoders at
-	// once, deal each message to a lane by patient so that concurrent
-	// transactions of this replica rarely wait for each other's patient
-	// locks, and let each lane commit its messages in groups. A lone
-	// decoder took about 180 us a message of the bench's scenario, so a
-	// pull of 64 spent 11 ms decoding before its last message reached a
-	// lane (more than a group's wait). The dealer takes the decoded
-	// messages in the order they arrived, so that a lane sees a patient's
-	// messages in the order of the stream, as with one decoder: the stored
-	// state would not depend on it, but a blood gas dealt before the
-	// readings published ahead of it would be derived twice.
-	lanes := make([]chan *inflight, p.workers)
-	var wg sync.WaitGroup
-	for i := range lanes {
-		lanes[i] = make(chan *inflight, p.groupMax)
-		wg.Go(func() { p.lane(ctx, bs, lanes[i]) })
+	for _, in := range l.in {
+		close(in)
 	}
+	l.wg.Wait()
+}
+
+// deal decodes the messages of one fetched batch in p.workers decoders at
+// once and deals them to the lanes in the order they arrived, behind what
+// the lanes hold of the batch before. It returns when every message is
+// dealt; the WaitGroup it returns is done when every
+// one is settled (or abandoned by a simulated crash). A lone decoder took
+// about 180 us a message of the bench's scenario, so a pull of 64 spent
+// 11 ms decoding before its last message reached a lane (more than a
+// group's wait). The dealer takes the decoded messages in the order they
+// arrived, so that a lane sees a patient's messages in the order of the
+// stream, as with one decoder: the stored state would not depend on it,
+// but a blood gas dealt before the readings published ahead of it would be
+// derived twice.
+func (l *lanes) deal(msgs <-chan jetstream.Msg) *sync.WaitGroup {
+	p := l.p
+	settled := &sync.WaitGroup{}
 	type decodeJob struct {
 		msg jetstream.Msg
 		out chan *inflight
@@ -348,7 +414,11 @@ func (p *Pipeline) process(ctx context.Context, msgs <-chan jetstream.Msg) {
 	decoders.Go(func() {
 		for out := range order {
 			if it := <-out; it != nil {
-				lanes[laneOf(it, len(lanes))] <- it
+				settled.Add(1)
+				var once sync.Once
+				stop := it.stop
+				it.stop = func() { once.Do(func() { stop(); settled.Done() }) }
+				l.in[laneOf(it, len(l.in))] <- it
 			}
 		}
 	})
@@ -360,10 +430,7 @@ func (p *Pipeline) process(ctx context.Context, msgs <-chan jetstream.Msg) {
 	close(jobs)
 	close(order)
 	decoders.Wait()
-	for _, l := range lanes {
-		close(l)
-	}
-	wg.Wait()
+	return settled
 }
 
 // laneOf picks a message's lane from its first patient (FNV-1a), or from
@@ -386,8 +453,23 @@ func laneOf(it *inflight, n int) int {
 // lane commits the messages it receives in groups of up to groupMax, each
 // group groupWait after its first message at the latest, one group at a
 // time. Poison messages are settled on their own in arrival order.
+//
+// A message that carries a blood gas (a PaCO2 fact: the input whose
+// derived values are waited for) ends its group: the group is committed as
+// soon as the gas joins it, without waiting out groupWait for more
+// messages, and the messages behind it go to the next group. And messages
+// that arrived while a group was committing are taken in arrival order
+// except that such a gas goes ahead of those that name none of its
+// patients and none of its fact keys (gasFirst): a lane holds several
+// patients, and a gas of one waited behind the hot messages of another
+// (in the paced bench, the four other panel members of the gas before it,
+// each with a snapshot of its own: 180-250 ms a group). One patient's
+// messages keep their stream order; messages of different patients are in
+// no order to keep (lanes already record them concurrently), and a group
+// is recorded as its messages would be one by one in the group's order.
 func (p *Pipeline) lane(ctx context.Context, bs BatchStore, in <-chan *inflight) {
-	var group []*inflight
+	var group, queue []*inflight
+	closed := false
 	timer := time.NewTimer(p.groupWait)
 	timer.Stop()
 	defer timer.Stop()
@@ -398,29 +480,114 @@ func (p *Pipeline) lane(ctx context.Context, bs BatchStore, in <-chan *inflight)
 			group = nil
 		}
 	}
+	// add puts it in the group; true when it committed the group.
+	add := func(it *inflight) bool {
+		if it.reason != "" {
+			p.poison(ctx, it.msg, it.m, it.reason, it.detail, it.log)
+			it.stop()
+			return false
+		}
+		group = append(group, it)
+		if len(group) == 1 {
+			timer.Reset(p.groupWait)
+		}
+		if len(group) >= p.groupMax || (p.gasFirst && carriesGas(it.m)) {
+			flush()
+			return true
+		}
+		return false
+	}
 	for {
-		select {
-		case it, ok := <-in:
-			if !ok {
+		if len(queue) == 0 {
+			if closed {
 				flush()
 				return
 			}
-			if it.reason != "" {
-				p.poison(ctx, it.msg, it.m, it.reason, it.detail, it.log)
-				it.stop()
+			select {
+			case it, ok := <-in:
+				if !ok {
+					closed = true
+					continue
+				}
+				queue = append(queue, it)
+			case <-timer.C:
+				flush()
 				continue
 			}
-			group = append(group, it)
-			if len(group) == 1 {
-				timer.Reset(p.groupWait)
+		}
+		// Take what else is waiting (what arrived during a commit).
+		for !closed {
+			select {
+			case it, ok := <-in:
+				if !ok {
+					closed = true
+					continue
+				}
+				queue = append(queue, it)
+				continue
+			default:
 			}
-			if len(group) >= p.groupMax {
-				flush()
+			break
+		}
+		if p.gasFirst {
+			gasFirst(queue)
+		}
+		for len(queue) > 0 {
+			it := queue[0]
+			queue = queue[1:]
+			if add(it) {
+				break // a commit: look again at what arrived meanwhile
 			}
-		case <-timer.C:
-			flush()
 		}
 	}
+}
+
+// carriesGas reports a message with a blood gas (PaCO2) fact.
+func carriesGas(m Message) bool {
+	return slices.ContainsFunc(m.Facts, func(f fhirmap.Fact) bool { return f.Quantity == fhirmap.QPCO2 })
+}
+
+// gasFirst reorders q in place: every message that carries a blood gas
+// and names no patient and no fact key of a message before it that stays
+// behind moves ahead of those, the moved ones in their order; the others
+// keep theirs. A poison message names nothing (it did not decode).
+func gasFirst(q []*inflight) {
+	if !slices.ContainsFunc(q, func(it *inflight) bool { return carriesGas(it.m) }) {
+		return
+	}
+	var first, rest []*inflight
+	behind := map[string]bool{}
+	for _, it := range q {
+		if carriesGas(it.m) && !namesAny(it.m, behind) {
+			first = append(first, it)
+			continue
+		}
+		rest = append(rest, it)
+		for _, pt := range patientsOf(it.m) {
+			behind["p "+pt] = true
+		}
+		for _, f := range it.m.Facts {
+			behind["k "+f.Key] = true
+		}
+	}
+	copy(q, first)
+	copy(q[len(first):], rest)
+}
+
+// namesAny reports whether m names a patient or fact key in set (as
+// gasFirst keys them).
+func namesAny(m Message, set map[string]bool) bool {
+	for _, pt := range patientsOf(m) {
+		if set["p "+pt] {
+			return true
+		}
+	}
+	for _, f := range m.Facts {
+		if set["k "+f.Key] {
+			return true
+		}
+	}
+	return false
 }
 
 // commitGroup records a group in one transaction and settles each message

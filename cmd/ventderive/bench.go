@@ -1236,6 +1236,7 @@ func (b *bench) startReplicas(ctx context.Context, url string, n int) ([]*benchR
 		if err != nil {
 			return rs, err
 		}
+		postgres.WarmPool(pcfg) // as serve
 		pool, err := pgxpool.NewWithConfig(ctx, pcfg)
 		if err != nil {
 			return rs, err

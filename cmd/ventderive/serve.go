@@ -286,7 +286,14 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	}
 
 	// Start order: database, NATS, pipeline, HTTP. Stop in reverse.
-	pool, err := pgxpool.New(ctx, c.databaseURL)
+	pcfg, err := pgxpool.ParseConfig(c.databaseURL)
+	if err != nil {
+		return fmt.Errorf("database: %w", err)
+	}
+	// Each connection plans the ingest statements when it opens, not on
+	// the path of the first message that uses it (postgres.WarmPool).
+	postgres.WarmPool(pcfg)
+	pool, err := pgxpool.NewWithConfig(ctx, pcfg)
 	if err != nil {
 		return fmt.Errorf("database: %w", err)
 	}

@@ -11,3 +11,10 @@ func (s *Store) CachedLookups() (terms, encounters int) { return s.lookups.size(
 // WithoutLookupCache makes the Store resolve every term and encounter in
 // SQL, for comparisons with the cache.
 func (s *Store) WithoutLookupCache() { s.lookups = nil }
+
+// WarmStatements are the statements WarmConn prepares and plans.
+var WarmStatements = warmStatements
+
+// SnapshotFactsKnownSQL is the snapshot statement of a hot reading
+// (loadSnapshots).
+var SnapshotFactsKnownSQL = snapshotFactsKnownSQL

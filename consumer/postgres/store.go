@@ -110,9 +110,17 @@ const (
 	// 830 ms per message measured, against 1.5 ms without, and point
 	// lookups gain nothing from compiled expressions. The JIT setting is
 	// read at execution, so it also covers plans cached before it was set.
-	// All three settings end with the transaction.
+	//
+	// And it rules out parallel plans. On the bench's drained store (42,888
+	// facts) the generic plan of snapshotFactsSQL gathered its key lookups
+	// from parallel workers: 31-78 ms an execution on the loaded two-CPU
+	// machine, against 6-17 ms without (EXPLAIN ANALYZE EXECUTE, three runs
+	// each), as starting workers costs more than the few index pages a
+	// lookup reads. The setting is read when a plan is made (the
+	// statements' plans are made in these transactions: WarmConn).
+	// All four settings end with the transaction.
 	pointLookupsSQL = `SELECT set_config('enable_seqscan', 'off', true), set_config('plan_cache_mode', 'force_generic_plan', true),
-    set_config('jit', 'off', true)`
+    set_config('jit', 'off', true), set_config('max_parallel_workers_per_gather', '0', true)`
 
 	claimInboxSQL = `
 INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
@@ -219,6 +227,20 @@ ON CONFLICT (key, digest, effective) DO NOTHING`
 	// serves. Without that split a generic plan took the smaller index for
 	// lookups by quantity and filtered the window's every quantity.
 	//
+	// Only the first lookup (cand: it needs each version's inbox key) and
+	// the snapshot's last (found: the columns handed to the plan) read the
+	// view fact; every other lookup reads fact_row itself, as it needs no
+	// column of the lookup tables or of inbox: each reference to the view
+	// joined fact_term and fact_encounter again for every row it read (two
+	// index lookups a row) and made the generic plan dearer to make. The
+	// rows are the same: every fact row names a term and an encounter row
+	// (the writer resolves or inserts them), and lookup rows are never
+	// deleted. On the bench's drained store (42,888 facts) snapshotFactsSQL
+	// went from 6.8-7.4 ms to 4.6 ms (fastest of 31 executions each) and a
+	// connection's WarmConn from 60-108 ms to 43-51 ms;
+	// BenchmarkIngestGroupReadings gas=stored: PostgreSQL CPU 3,255-3,682
+	// -> 2,510-2,531 us a message (paired runs).
+	//
 	// Body temperatures ($11, the body-temp quantity) are paired in a window
 	// of their own ($9 before, $10 after a blood gas): a new one reopens the
 	// blood gases of that window, and the snapshot adds them by a lateral
@@ -235,14 +257,14 @@ WITH cand AS MATERIALIZED (
 ), affected AS (
     SELECT key FROM changed WHERE quantity = $7::text
     UNION
-    SELECT b.key FROM fact b
+    SELECT b.key FROM fact_row b
     WHERE b.patient_ref = $1 AND b.quantity = $7::text
       AND EXISTS (SELECT 1 FROM changed WHERE quantity = ANY($6::text[]))
-      AND b.effective >= (SELECT max(effective) FROM fact WHERE patient_ref = $1 AND quantity = $7::text)
+      AND b.effective >= (SELECT max(effective) FROM fact_row WHERE patient_ref = $1 AND quantity = $7::text)
                          - $5::bigint * interval '1 microsecond'
     UNION
     SELECT b.key FROM changed c CROSS JOIN LATERAL (
-        SELECT b.key FROM fact b
+        SELECT b.key FROM fact_row b
         WHERE b.patient_ref = $1 AND b.quantity = $7::text
           AND b.effective BETWEEN c.effective - CASE WHEN c.quantity = $11::text THEN $10::bigint ELSE $4::bigint END * interval '1 microsecond'
                               AND c.effective + CASE WHEN c.quantity = $11::text THEN $9::bigint ELSE $3::bigint END * interval '1 microsecond'
@@ -264,7 +286,7 @@ SELECT DISTINCT key FROM affected ORDER BY key`
 
 	snapshotFactsSQL = affectedCTE + `,
 gas AS MATERIALIZED (
-    SELECT b.effective, b.patient_ref FROM fact b WHERE b.key = ANY(ARRAY(SELECT key FROM affected))
+    SELECT b.effective, b.patient_ref FROM fact_row b WHERE b.key = ANY(ARRAY(SELECT key FROM affected))
 ), win AS (
     SELECT g.effective - $3::bigint * interval '1 microsecond' AS lo,
            g.effective + $4::bigint * interval '1 microsecond' AS hi
@@ -272,21 +294,21 @@ gas AS MATERIALIZED (
 ), keys AS (
     SELECT key FROM affected
     UNION SELECT l.key FROM unnest($6::text[]) AS q(quantity) CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE f.patient_ref = $1 AND f.quantity = q.quantity
+        SELECT f.key FROM fact_row f WHERE f.patient_ref = $1 AND f.quantity = q.quantity
         OFFSET 0) l
     UNION SELECT w.key FROM win CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE (f.patient_ref || '') = $1 AND f.effective BETWEEN win.lo AND win.hi
+        SELECT f.key FROM fact_row f WHERE (f.patient_ref || '') = $1 AND f.effective BETWEEN win.lo AND win.hi
         OFFSET 0) w
     UNION SELECT n.key FROM win CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE (f.patient_ref || '') = $1 AND f.effective < win.lo
+        SELECT f.key FROM fact_row f WHERE (f.patient_ref || '') = $1 AND f.effective < win.lo
           AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
         ORDER BY f.effective DESC LIMIT ` + nearestOutside + `) n
     UNION SELECT n.key FROM win CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE (f.patient_ref || '') = $1 AND f.effective > win.hi
+        SELECT f.key FROM fact_row f WHERE (f.patient_ref || '') = $1 AND f.effective > win.hi
           AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
         ORDER BY f.effective LIMIT ` + nearestOutside + `) n
     UNION SELECT t.key FROM gas g CROSS JOIN LATERAL (
-        SELECT f.key FROM fact f WHERE f.patient_ref = $1 AND f.quantity = $11::text
+        SELECT f.key FROM fact_row f WHERE f.patient_ref = $1 AND f.quantity = $11::text
           AND f.effective BETWEEN g.effective - $9::bigint * interval '1 microsecond'
                               AND g.effective + $10::bigint * interval '1 microsecond'
         OFFSET 0) t
