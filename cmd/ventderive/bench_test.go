@@ -464,3 +464,47 @@ func TestBenchKeepDatabases(t *testing.T) {
 		t.Errorf("--keep without DATABASE_URL: %v, %q", err, stderr.String())
 	}
 }
+
+// reapingProcs is a postmaster (pid 1, 500 ticks of its own and reaped
+// children) with two live backends (pids 2 and 3, 100 and 40 ticks), and
+// backend 2 exits and is reaped once, at the moment its ticks are first
+// read: from then on its 100 ticks are the postmaster's.
+type reapingProcs struct{ reaped bool }
+
+func (p *reapingProcs) pids() []int { return []int{1, 2, 3, 9} }
+func (p *reapingProcs) parent(pid int) int {
+	if pid == 9 {
+		return 7 // not the server's
+	}
+	return 1
+}
+func (p *reapingProcs) ticks(pid int, _ bool) int64 {
+	switch pid {
+	case 1:
+		if p.reaped {
+			return 600
+		}
+		return 500
+	case 2:
+		if !p.reaped {
+			p.reaped = true // gone before its stat is read
+		}
+		return 0
+	case 3:
+		return 40
+	default:
+		return 1000
+	}
+}
+
+// TestServerTicksKeepsAReapedChild checks that a backend reaped while the
+// server's CPU is read is counted once: the server's ticks are conserved
+// (500 + 100 + 40), where reading the postmaster only before its children
+// gave 540 and made a run's PostgreSQL CPU per input negative. The
+// accounting (a reaped child's ticks join its parent's cutime and cstime)
+// is proc(5)'s, common practice on Linux.
+func TestServerTicksKeepsAReapedChild(t *testing.T) {
+	if got := serverTicks(1, &reapingProcs{}); got != 640 {
+		t.Errorf("serverTicks = %d, want 640 (500 of the postmaster, 100 reaped, 40 live)", got)
+	}
+}

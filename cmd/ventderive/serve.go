@@ -310,6 +310,12 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 			return fmt.Errorf("migrate: %w", err)
 		}
 		log.Info("database migrated", "version", v)
+		// The pool's connections opened, and tried their warm-up
+		// (postgres.WarmPool), before the migrations: open them again on
+		// the migrated schema.
+		if err := postgres.Rewarm(ctx, pool); err != nil {
+			return fmt.Errorf("database: %w", err)
+		}
 	}
 	if err := postgres.EnsurePartitions(ctx, pool, time.Now()); err != nil {
 		return fmt.Errorf("database: %w", err)

@@ -98,3 +98,27 @@ func WarmPool(cfg *pgxpool.Config) {
 	}
 	cfg.MinConns = max(cfg.MinConns, cfg.MaxConns)
 }
+
+// Rewarm closes a WarmPool pool's connections and opens them again, each
+// with its warm-up, before it returns: for a pool whose connections
+// opened, and tried their warm-up, before the schema existed (serve
+// --migrate on a new database). Without it they would plan the ingest
+// statements on the first messages, until the pool renews them.
+func Rewarm(ctx context.Context, pool *pgxpool.Pool) error {
+	pool.Reset()
+	n := int(pool.Config().MaxConns)
+	conns := make([]*pgxpool.Conn, 0, n)
+	defer func() {
+		for _, c := range conns {
+			c.Release()
+		}
+	}()
+	for range n {
+		c, err := pool.Acquire(ctx)
+		if err != nil {
+			return fmt.Errorf("rewarm pool: %w", err)
+		}
+		conns = append(conns, c)
+	}
+	return nil
+}

@@ -1,6 +1,7 @@
 package postgres_test
 
 import (
+	"context"
 	"fmt"
 	"strings"
 	"testing"
@@ -11,7 +12,9 @@ import (
 
 	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/consumer/postgres"
+	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
 	"github.com/ventderive/ventderive/fhirmap"
+	"github.com/ventderive/ventderive/migrations"
 )
 
 // genericPlans reads pg_prepared_statements of the pool's one connection:
@@ -161,5 +164,45 @@ func BenchmarkIngestFirstGroup(b *testing.B) {
 			}
 			b.ReportMetric(float64(pgTicks)*1e4/float64(n*patients), "pg-cpu-us/msg")
 		})
+	}
+}
+
+// A WarmPool pool opened on a database without the schema (serve --migrate
+// on a new database) has warmed nothing; after the migrations, Rewarm
+// gives it connections that hold the generic plan of every ingest
+// statement.
+func TestRewarmAfterMigrations(t *testing.T) {
+	u := pgtest.NewEmptyDatabase(t)
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	cfg, err := pgxpool.ParseConfig(u)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg.MaxConns = 1
+	postgres.WarmPool(cfg)
+	pool, err := pgxpool.NewWithConfig(ctx, cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer pool.Close()
+	f := &fixture{ctx: ctx, url: u, pool: pool}
+	before := genericPlans(t, f, pool)
+	for _, sql := range postgres.WarmStatements {
+		if before[sql] != 0 {
+			t.Fatalf("a connection opened before the schema planned %.60q", sql)
+		}
+	}
+	if _, err := migrations.Apply(ctx, pool, nil); err != nil {
+		t.Fatal(err)
+	}
+	if err := postgres.Rewarm(ctx, pool); err != nil {
+		t.Fatal(err)
+	}
+	plans := genericPlans(t, f, pool)
+	for _, sql := range postgres.WarmStatements {
+		if plans[sql] < 1 {
+			t.Errorf("after Rewarm no generic plan of %.80q", strings.TrimSpace(sql))
+		}
 	}
 }
