@@ -497,6 +497,14 @@ func (p *Pipeline) lane(ctx context.Context, bs BatchStore, in <-chan *inflight)
 		}
 		return false
 	}
+	// take queues a received message, or notes that the lane is closed.
+	take := func(it *inflight, ok bool) {
+		if !ok {
+			closed = true
+			return
+		}
+		queue = append(queue, it)
+	}
 	for {
 		if len(queue) == 0 {
 			if closed {
@@ -505,11 +513,7 @@ func (p *Pipeline) lane(ctx context.Context, bs BatchStore, in <-chan *inflight)
 			}
 			select {
 			case it, ok := <-in:
-				if !ok {
-					closed = true
-					continue
-				}
-				queue = append(queue, it)
+				take(it, ok)
 			case <-timer.C:
 				flush()
 				continue
@@ -519,11 +523,7 @@ func (p *Pipeline) lane(ctx context.Context, bs BatchStore, in <-chan *inflight)
 		for !closed {
 			select {
 			case it, ok := <-in:
-				if !ok {
-					closed = true
-					continue
-				}
-				queue = append(queue, it)
+				take(it, ok)
 				continue
 			default:
 			}
