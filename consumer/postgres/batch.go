@@ -278,12 +278,9 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 		coldNow := sendCold(b)
 		q := w.queue(b)
 		if b.Len() > 0 {
-			br := tx.SendBatch(ctx, b)
-			if coldNow {
-				if err := readCold(br); err != nil {
-					br.Close()
-					return err
-				}
+			br, err := sendBatch(ctx, tx, b, coldNow, readCold)
+			if err != nil {
+				return err
 			}
 			if err := w.read(br, q, res); err != nil {
 				br.Close()
@@ -364,12 +361,9 @@ func (s *Store) ingestHotOne(ctx context.Context, tx pgx.Tx, msg consumer.Messag
 	if b.Len() == 0 {
 		return nil
 	}
-	br := tx.SendBatch(ctx, b)
-	if coldNow {
-		if err := readCold(br); err != nil {
-			br.Close()
-			return err
-		}
+	br, err := sendBatch(ctx, tx, b, coldNow, readCold)
+	if err != nil {
+		return err
 	}
 	others, err := readInput(br, msg, *order, res)
 	if err != nil {
@@ -422,12 +416,9 @@ func (s *Store) ingestWave(ctx context.Context, tx pgx.Tx, msgs []consumer.Messa
 	if b.Len() == 0 {
 		return nil
 	}
-	br := tx.SendBatch(ctx, b)
-	if coldNow {
-		if err := readCold(br); err != nil {
-			br.Close()
-			return err
-		}
+	br, err := sendBatch(ctx, tx, b, coldNow, readCold)
+	if err != nil {
+		return err
 	}
 	stored := 0
 	if args != nil {
@@ -467,4 +458,18 @@ func (s *Store) ingestWave(ctx context.Context, tx pgx.Tx, msgs []consumer.Messa
 		wm[j], wo[j] = msgs[i], orders[i]
 	}
 	return s.loadSnapshotsOf(ctx, tx, wm, wo, w)
+}
+
+// sendBatch sends b and, when the group's cold facts travel in it
+// (coldNow: sendCold queued them first), reads their results, so that the
+// caller reads its own statements' results next.
+func sendBatch(ctx context.Context, tx pgx.Tx, b *pgx.Batch, coldNow bool, readCold func(pgx.BatchResults) error) (pgx.BatchResults, error) {
+	br := tx.SendBatch(ctx, b)
+	if coldNow {
+		if err := readCold(br); err != nil {
+			br.Close()
+			return nil, err
+		}
+	}
+	return br, nil
 }

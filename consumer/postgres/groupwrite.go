@@ -10,7 +10,6 @@ import (
 	"github.com/jackc/pgx/v5/pgtype"
 
 	"github.com/ventderive/ventderive/consumer"
-	"github.com/ventderive/ventderive/fhirmap"
 )
 
 // The writes of a group's hot messages (IngestBatch) are collected while
@@ -262,14 +261,7 @@ func (w *groupWrites) add(i int, msg consumer.Message, order []*patientPlan, res
 			h := w.head(d.Key, d.Kind, d.Patient, d.BloodGas)
 			h.derived, h.version, h.status, h.value = true, int32(p.changes.Versions[j]), string(d.Status), d.Result.Value
 			h.refused, h.digest = false, d.Digest
-			res.Derivations++
-			if d.Status == fhirmap.StatusEnteredInError {
-				res.Retractions++
-			}
-			if res.DerivedKinds == nil {
-				res.DerivedKinds = map[string]int{}
-			}
-			res.DerivedKinds[d.Kind]++
+			countDerivation(res, d)
 		}
 		for _, r := range p.changes.Refusals {
 			w.refs = append(w.refs, []any{r.Key, r.Kind, r.Patient, s.hash(r.Patient), r.BloodGas, r.Effective.UTC(),

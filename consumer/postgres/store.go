@@ -1030,14 +1030,7 @@ func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patien
 			}
 			b.Queue(insertDerivationSQL, args...)
 			q.derivations++
-			res.Derivations++
-			if d.Status == fhirmap.StatusEnteredInError {
-				res.Retractions++
-			}
-			if res.DerivedKinds == nil {
-				res.DerivedKinds = map[string]int{}
-			}
-			res.DerivedKinds[d.Kind]++
+			countDerivation(res, d)
 		}
 		for _, r := range p.changes.Refusals {
 			l := lineageOf(r.Considered)
@@ -1108,4 +1101,17 @@ func orEmpty(m map[string]string) map[string]string {
 		return map[string]string{}
 	}
 	return m
+}
+
+// countDerivation counts a stored derivation version in res: one more
+// derivation, of its kind, and a retraction when it withdraws a value.
+func countDerivation(res *consumer.IngestResult, d fhirmap.Derivation) {
+	res.Derivations++
+	if d.Status == fhirmap.StatusEnteredInError {
+		res.Retractions++
+	}
+	if res.DerivedKinds == nil {
+		res.DerivedKinds = map[string]int{}
+	}
+	res.DerivedKinds[d.Kind]++
 }
