@@ -339,10 +339,16 @@ func TestReviewConsole(t *testing.T) {
 			t.Fatal(err)
 		}
 		_, body := get(t, c, ts.URL+"/values?key="+url.QueryEscape(key))
-		// The heading names the snapshot of each version.
-		if want := `version ` + strconv.Itoa(version) + `: snapshot <a class="mono" href="/settings?digest=` + digest + `">` + digest[:12] + `</a>: apparatus dead space ` +
-			strconv.FormatFloat(ml, 'f', -1, 64) + ` mL`; !strings.Contains(body, want) {
-			t.Errorf("the page's heading lacks %q", want)
+		// The heading names the snapshot of each version. The versions and
+		// refusals made under one snapshot share its line ("version 1,
+		// version 2: snapshot ..."), and how many the key has depends on
+		// the order its inputs were recorded in, so the version is found in
+		// its snapshot's list, not at a fixed place in it.
+		who := `(?:(?:version|refusal) [0-9]+, )*`
+		want := `<li>` + who + `version ` + strconv.Itoa(version) + `(?:, (?:version|refusal) [0-9]+)*: snapshot <a class="mono" href="/settings\?digest=` +
+			digest + `">` + digest[:12] + `</a>: apparatus dead space ` + regexp.QuoteMeta(strconv.FormatFloat(ml, 'f', -1, 64)) + ` mL`
+		if !regexp.MustCompile(want).MatchString(body) {
+			t.Errorf("the page's heading does not list version %d under snapshot %s with apparatus dead space %g mL (pattern %s)", version, digest[:12], ml, want)
 		}
 		i := strings.Index(body, `id="version-`+strconv.Itoa(version)+`"`)
 		if i < 0 {
