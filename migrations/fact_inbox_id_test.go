@@ -237,7 +237,7 @@ func TestFactInboxIDMigratesStoredRows(t *testing.T) {
 	  SELECT (SELECT id FROM inbox WHERE inbox_key = $1), '2026-03-01T11:43:00Z', 400, e.id, t.id, 'Observation/vt4',
 	    decode(repeat('6', 64), 'hex'), 'Patient/p1', 'tidal-volume', ''
 	  FROM fact_encounter e, fact_term t WHERE e.encounter = '' AND t.quantity = 'tidal-volume'
-	  ON CONFLICT (key, digest, effective) DO NOTHING`
+	  ON CONFLICT (hashtextextended(key, 0), digest, effective) DO NOTHING` // the unique index since 0017
 	for i, want := range []int64{1, 0} {
 		tag, err := conn.Exec(ctx, newSQL, keyB)
 		if err != nil {

@@ -290,6 +290,11 @@ func (s *Store) ingestBatchOnce(ctx context.Context, msgs []consumer.Message, pl
 				return fmt.Errorf("store group: %w", err)
 			}
 		}
+		if coldStored >= 0 {
+			if err := guardSkipped(ctx, tx, coldStored, coldArgs); err != nil {
+				return err
+			}
+		}
 		return s.countCold(ctx, tx, msgs, fresh, cold, coldStored, coldFacts, coldKeys, coldInbox, res)
 	})
 	if err != nil {
@@ -357,7 +362,7 @@ func (s *Store) ingestHotOne(ctx context.Context, tx pgx.Tx, msg consumer.Messag
 	sendCold func(*pgx.Batch) bool, readCold func(pgx.BatchResults) error, res *consumer.IngestResult) error {
 	b := &pgx.Batch{}
 	coldNow := sendCold(b)
-	s.queueInput(b, msg, *order, now, w)
+	factArgs := s.queueInput(b, msg, *order, now, w)
 	if b.Len() == 0 {
 		return nil
 	}
@@ -372,6 +377,9 @@ func (s *Store) ingestHotOne(ctx context.Context, tx pgx.Tx, msg consumer.Messag
 	}
 	if err := br.Close(); err != nil {
 		return fmt.Errorf("store group: %w", err)
+	}
+	if err := guardSkipped(ctx, tx, res.Facts, factArgs); err != nil {
+		return err
 	}
 	if err := s.loadSnapshots(ctx, tx, msg, *order, w); err != nil {
 		return err
@@ -443,6 +451,9 @@ func (s *Store) ingestWave(ctx context.Context, tx pgx.Tx, msgs []consumer.Messa
 	}
 	if err := br.Close(); err != nil {
 		return fmt.Errorf("store group: %w", err)
+	}
+	if err := guardSkipped(ctx, tx, stored, args); err != nil {
+		return err
 	}
 	counts, err := storedCounts(ctx, tx, stored, given, keys, inbox)
 	if err != nil {

@@ -26,12 +26,17 @@ import (
 // before and $6 after, $7 and $8 the same for body temperatures
 // (microseconds), $9 the body-temperature quantity, $10 the blood-gas
 // quantity, $11 the patient-level quantities. Each window is a lateral
-// index lookup on (patient_ref, quantity, effective) with LIMIT 1.
+// index lookup on (patient_ref, quantity, effective) with LIMIT 1 (a
+// partial index since migration 0017: the lookup repeats its quantities,
+// indexedQuantitiesSQL); the stored versions of the group's keys are
+// found by the unique index's key hash.
 const hotPatientsSQL = `
 WITH n AS MATERIALIZED (
     SELECT * FROM unnest($1::text[], $2::text[], $3::timestamptz[], $4::text[]) AS n(patient_ref, quantity, effective, key)
 ), s AS MATERIALIZED (
-    SELECT f.patient_ref, f.quantity, f.effective, f.key FROM fact_row f WHERE f.key = ANY($4::text[])
+    SELECT f.patient_ref, f.quantity, f.effective, f.key FROM fact_row f
+    WHERE hashtextextended(f.key, 0) = ANY(ARRAY(SELECT hashtextextended(k, 0) FROM unnest($4::text[]) AS k))
+      AND f.key = ANY($4::text[])
 ), pts AS (
     SELECT patient_ref, quantity, effective FROM n
     UNION SELECT patient_ref, quantity, effective FROM s
@@ -41,7 +46,7 @@ UNION SELECT n.patient_ref, true FROM s JOIN n ON n.key = s.key WHERE s.patient_
 UNION SELECT patient_ref, false FROM pts WHERE quantity = $10::text OR quantity = ANY($11::text[])
 UNION SELECT p.patient_ref, false FROM pts p CROSS JOIN LATERAL (
     SELECT 1 FROM fact_row b
-    WHERE b.patient_ref = p.patient_ref AND b.quantity = $10::text
+    WHERE b.patient_ref = p.patient_ref AND b.quantity = $10::text AND b.quantity IN (` + indexedQuantitiesSQL + `)
       AND b.effective BETWEEN p.effective - CASE WHEN p.quantity = $9::text THEN $8::bigint ELSE $6::bigint END * interval '1 microsecond'
                           AND p.effective + CASE WHEN p.quantity = $9::text THEN $7::bigint ELSE $5::bigint END * interval '1 microsecond'
     LIMIT 1) b`
@@ -49,7 +54,9 @@ UNION SELECT p.patient_ref, false FROM pts p CROSS JOIN LATERAL (
 // countFactsSQL counts the facts each message of a group stored, when the
 // group's insert stored fewer than it was given (a fact already stored).
 const countFactsSQL = `
-SELECT inbox_key, count(*) FROM fact WHERE key = ANY($1::text[]) AND inbox_key = ANY($2::text[]) GROUP BY 1`
+SELECT inbox_key, count(*) FROM fact
+WHERE hashtextextended(key, 0) = ANY(ARRAY(SELECT hashtextextended(k, 0) FROM unnest($1::text[]) AS k))
+  AND key = ANY($1::text[]) AND inbox_key = ANY($2::text[]) GROUP BY 1`
 
 // sameWindows reports whether every message of the group pairs in the same
 // windows; hotPatientsSQL takes one set for the group.

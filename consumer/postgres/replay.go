@@ -84,11 +84,14 @@ WHERE quantity = 'pco2' AND effective >= $2 AND effective < $3 AND ($1 = '' OR p
 ORDER BY patient_ref, key`
 
 // replayFactsSQL loads a patient's facts around the period (every
-// version: fhirmap.Current picks) and the patient-level ones of any time.
+// version: fhirmap.Current picks) and the patient-level ones of any time:
+// the period through fact_row_patient_ref_effective, the patient-level
+// facts through the partial (patient_ref, quantity, effective) index of
+// migration 0017, whose quantities include these four.
 const replayFactsSQL = `
 SELECT ` + factColumns + ` FROM review_fact
-WHERE patient_ref = $1
-  AND ((effective >= $2 AND effective <= $3) OR quantity IN ('sex', 'birth-date', 'body-height', 'body-weight'))
+WHERE ((patient_ref || '') = $1 AND effective >= $2 AND effective <= $3)
+   OR (patient_ref = $1 AND quantity IN ('sex', 'birth-date', 'body-height', 'body-weight'))
 ORDER BY id`
 
 const replayHeadsSQL = `

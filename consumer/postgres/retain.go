@@ -45,12 +45,15 @@ type RetainReport struct {
 // does not change). The cited keys are one hashed set (NOT IN over NOT
 // NULL columns): as NOT EXISTS, the planner estimated one candidate and
 // scanned derivation_input once per reading (3.1 s a patient on the demo
-// store, against tens of milliseconds).
+// store, against tens of milliseconds). The patient is written as the
+// expression of fact_row_patient_ref_effective: since migration 0017
+// (patient_ref, quantity, effective) holds no ventilator quantity, and the
+// patient's old readings are read through that expression index.
 const retainCandidatesSQL = `
 SELECT DISTINCT f.key FROM fact f
-WHERE f.patient_ref = $1 AND f.effective < $2
+WHERE (f.patient_ref || '') = $1 AND f.effective < $2
   AND f.quantity IN (` + ventilatorQuantitiesSQL + `)
-  AND NOT EXISTS (SELECT 1 FROM fact g WHERE g.key = f.key
+  AND NOT EXISTS (SELECT 1 FROM fact g WHERE hashtextextended(g.key, 0) = hashtextextended(f.key, 0) AND g.key = f.key
       AND (g.patient_ref <> $1 OR g.effective >= $2 OR g.quantity NOT IN (` + ventilatorQuantitiesSQL + `)))
   AND f.key NOT IN (SELECT fact_key FROM derivation_input UNION ALL SELECT fact_key FROM refusal_input)
   AND f.key NOT IN (` + retainNearestSQL + `)`
@@ -88,7 +91,8 @@ const (
 WITH gone AS (
     SELECT coalesce(i.inbox_key, encode(r.inbox_key, 'hex')) AS inbox_key, count(*) AS n, sum(pg_column_size(r.*)) AS bytes
     FROM fact_row r LEFT JOIN inbox i ON i.id = r.inbox_id
-    WHERE r.key = ANY($1) AND r.effective < $2 GROUP BY 1)
+    WHERE hashtextextended(r.key, 0) = ANY(ARRAY(SELECT hashtextextended(k, 0) FROM unnest($1::text[]) AS k))
+      AND r.key = ANY($1::text[]) AND r.effective < $2 GROUP BY 1)
 SELECT coalesce(sum(g.n), 0)::bigint, coalesce(sum(g.bytes), 0)::bigint,
        count(*) FILTER (WHERE g.n = i.facts AND i.raw IS NOT NULL)::bigint,
        coalesce(sum(pg_column_size(i.raw)) FILTER (WHERE g.n = i.facts AND i.raw IS NOT NULL), 0)::bigint
@@ -101,7 +105,10 @@ FROM gone g JOIN inbox i ON i.inbox_key = g.inbox_key`
 	// the cutoff (and the default one), so a patient's batch touches old
 	// partitions only and the partitions being written are not scanned.
 	retainApplySQL = `
-WITH gone AS (DELETE FROM fact_row WHERE key = ANY($1) AND effective < $2 RETURNING inbox_id, inbox_key),
+WITH gone AS (
+    DELETE FROM fact_row WHERE hashtextextended(key, 0) = ANY(ARRAY(SELECT hashtextextended(k, 0) FROM unnest($1::text[]) AS k))
+        AND key = ANY($1::text[]) AND effective < $2
+    RETURNING inbox_id, inbox_key),
 counted AS (
     SELECT coalesce(i.inbox_key, encode(g.inbox_key, 'hex')) AS inbox_key, count(*) AS n
     FROM gone g LEFT JOIN inbox i ON i.id = g.inbox_id GROUP BY 1)

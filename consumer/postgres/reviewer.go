@@ -284,7 +284,10 @@ LIMIT 2`
 FROM review_derivation WHERE key = $1 ORDER BY version`
 
 	// inputColumns read an input with the fact's text and value as sent
-	// (review_fact; (key, digest) is unique).
+	// (review_fact; (key, digest) is unique). Each input's fact is one
+	// probe of the unique index by the key's hash (migration 0017), in a
+	// lateral subquery the planner may not flatten: as a join it hashed
+	// every fact of the store (no statistics on the partitioned table).
 	inputColumns = `i.ordinal, i.role, i.fact_key, i.fact_digest, i.resource_ref, i.version_id, i.quantity,
        i.origin, i.detail, i.specimen, i.value, i.unit, f.text, f.source_value, f.source_unit, i.status,
        i.effective, i.time_offset, i.fallback`
@@ -292,7 +295,10 @@ FROM review_derivation WHERE key = $1 ORDER BY version`
 	showInputsSQL = `
 SELECT i.derivation_id, ` + inputColumns + `
 FROM review_derivation_input i
-JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+CROSS JOIN LATERAL (
+    SELECT * FROM review_fact f
+    WHERE hashtextextended(f.key, 0) = hashtextextended(i.fact_key, 0) AND f.key = i.fact_key AND f.digest = i.fact_digest
+    OFFSET 0) f
 WHERE i.derivation_id IN (SELECT id FROM review_derivation WHERE key = $1)
 ORDER BY i.derivation_id, i.ordinal`
 
@@ -309,7 +315,10 @@ FROM review_refusal WHERE key = $1 ORDER BY id`
 	showConsideredSQL = `
 SELECT i.refusal_id, ` + inputColumns + `
 FROM review_refusal_input i
-JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+CROSS JOIN LATERAL (
+    SELECT * FROM review_fact f
+    WHERE hashtextextended(f.key, 0) = hashtextextended(i.fact_key, 0) AND f.key = i.fact_key AND f.digest = i.fact_digest
+    OFFSET 0) f
 WHERE i.refusal_id IN (SELECT id FROM review_refusal WHERE key = $1)
 ORDER BY i.refusal_id, i.ordinal`
 )
@@ -852,7 +861,10 @@ ORDER BY p.effective, p.patient_ref, p.blood_gas_key, p.kind, p.id`
 const refusedInputsSQL = `
 SELECT i.refusal_id, ` + inputColumns + `
 FROM review_refusal_input i
-JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+CROSS JOIN LATERAL (
+    SELECT * FROM review_fact f
+    WHERE hashtextextended(f.key, 0) = hashtextextended(i.fact_key, 0) AND f.key = i.fact_key AND f.digest = i.fact_digest
+    OFFSET 0) f
 WHERE i.refusal_id = ANY($1::bigint[])
 ORDER BY i.refusal_id, i.ordinal`
 

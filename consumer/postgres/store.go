@@ -184,7 +184,7 @@ SELECT i.id, u.effective, u.value,
     u.key, u.digest, u.patient_ref, u.quantity, u.version_id, nullif(u.resource_ref, split_part(u.key, '#', 1)),
     CASE WHEN i.id IS NULL THEN decode(u.inbox_key, 'hex') END
 FROM u LEFT JOIN inbox i ON i.inbox_key = u.inbox_key
-ON CONFLICT (key, digest, effective) DO NOTHING`
+ON CONFLICT (hashtextextended(key, 0), digest, effective) DO NOTHING`
 
 	// termMatchSQL matches a fact_term row t to a fact u.
 	termMatchSQL = `t.quantity = u.quantity AND t.origin = u.origin AND t.detail = u.detail
@@ -249,7 +249,8 @@ ON CONFLICT (key, digest, effective) DO NOTHING`
 	affectedCTE = `
 WITH cand AS MATERIALIZED (
     SELECT f.quantity, f.effective, f.key, f.patient_ref, f.inbox_key FROM fact f
-    WHERE f.key = ANY($2::text[])
+    WHERE hashtextextended(f.key, 0) = ANY(ARRAY(SELECT hashtextextended(k, 0) FROM unnest($2::text[]) AS k))
+      AND f.key = ANY($2::text[])
 ), changed AS (
     SELECT c.quantity, c.effective, c.key FROM cand c
     WHERE c.patient_ref = $1
@@ -258,14 +259,15 @@ WITH cand AS MATERIALIZED (
     SELECT key FROM changed WHERE quantity = $7::text
     UNION
     SELECT b.key FROM fact_row b
-    WHERE b.patient_ref = $1 AND b.quantity = $7::text
+    WHERE b.patient_ref = $1 AND b.quantity = $7::text AND b.quantity IN (` + indexedQuantitiesSQL + `)
       AND EXISTS (SELECT 1 FROM changed WHERE quantity = ANY($6::text[]))
-      AND b.effective >= (SELECT max(effective) FROM fact_row WHERE patient_ref = $1 AND quantity = $7::text)
+      AND b.effective >= (SELECT max(effective) FROM fact_row WHERE patient_ref = $1 AND quantity = $7::text
+                              AND quantity IN (` + indexedQuantitiesSQL + `))
                          - $5::bigint * interval '1 microsecond'
     UNION
     SELECT b.key FROM changed c CROSS JOIN LATERAL (
         SELECT b.key FROM fact_row b
-        WHERE b.patient_ref = $1 AND b.quantity = $7::text
+        WHERE b.patient_ref = $1 AND b.quantity = $7::text AND b.quantity IN (` + indexedQuantitiesSQL + `)
           AND b.effective BETWEEN c.effective - CASE WHEN c.quantity = $11::text THEN $10::bigint ELSE $4::bigint END * interval '1 microsecond'
                               AND c.effective + CASE WHEN c.quantity = $11::text THEN $9::bigint ELSE $3::bigint END * interval '1 microsecond'
         OFFSET 0) b
@@ -278,7 +280,8 @@ WITH cand AS MATERIALIZED (
 	// must be recomputed (or withdrawn) too.
 	otherPatientsSQL = `
 SELECT DISTINCT patient_ref FROM fact
-WHERE key = ANY($1::text[]) AND patient_ref <> ALL($2::text[])
+WHERE hashtextextended(key, 0) = ANY(ARRAY(SELECT hashtextextended(k, 0) FROM unnest($1::text[]) AS k))
+  AND key = ANY($1::text[]) AND patient_ref <> ALL($2::text[])
 ORDER BY 1`
 
 	affectedSQL = affectedCTE + `
@@ -286,7 +289,8 @@ SELECT DISTINCT key FROM affected ORDER BY key`
 
 	snapshotFactsSQL = affectedCTE + `,
 gas AS MATERIALIZED (
-    SELECT b.effective, b.patient_ref FROM fact_row b WHERE b.key = ANY(ARRAY(SELECT key FROM affected))
+    SELECT b.effective, b.patient_ref FROM fact_row b WHERE hashtextextended(b.key, 0) = ANY(ARRAY(SELECT hashtextextended(key, 0) FROM affected))
+      AND b.key = ANY(ARRAY(SELECT key FROM affected))
 ), win AS (
     SELECT g.effective - $3::bigint * interval '1 microsecond' AS lo,
            g.effective + $4::bigint * interval '1 microsecond' AS hi
@@ -295,6 +299,7 @@ gas AS MATERIALIZED (
     SELECT key FROM affected
     UNION SELECT l.key FROM unnest($6::text[]) AS q(quantity) CROSS JOIN LATERAL (
         SELECT f.key FROM fact_row f WHERE f.patient_ref = $1 AND f.quantity = q.quantity
+          AND f.quantity IN (` + indexedQuantitiesSQL + `)
         OFFSET 0) l
     UNION SELECT w.key FROM win CROSS JOIN LATERAL (
         SELECT f.key FROM fact_row f WHERE (f.patient_ref || '') = $1 AND f.effective BETWEEN win.lo AND win.hi
@@ -309,13 +314,14 @@ gas AS MATERIALIZED (
         ORDER BY f.effective LIMIT ` + nearestOutside + `) n
     UNION SELECT t.key FROM gas g CROSS JOIN LATERAL (
         SELECT f.key FROM fact_row f WHERE f.patient_ref = $1 AND f.quantity = $11::text
-          AND f.effective BETWEEN g.effective - $9::bigint * interval '1 microsecond'
+          AND f.quantity IN (` + indexedQuantitiesSQL + `) AND f.effective BETWEEN g.effective - $9::bigint * interval '1 microsecond'
                               AND g.effective + $10::bigint * interval '1 microsecond'
         OFFSET 0) t
     WHERE g.patient_ref = $1
 ), found AS MATERIALIZED (
     SELECT id, ` + factColumns + `
-    FROM fact WHERE key = ANY(ARRAY(SELECT key FROM keys)) AND EXISTS (SELECT 1 FROM affected)
+    FROM fact WHERE hashtextextended(key, 0) = ANY(ARRAY(SELECT hashtextextended(key, 0) FROM keys))
+      AND key = ANY(ARRAY(SELECT key FROM keys)) AND EXISTS (SELECT 1 FROM affected)
 )
 SELECT ` + factColumns + `
 FROM found WHERE patient_ref = $1 OR key = ANY($2::text[])
@@ -333,6 +339,36 @@ ORDER BY id`
 	ventilatorQuantitiesSQL = `'minute-volume', 'tidal-volume', 'resp-rate', 'petco2', 'vco2', 'peco2',
               'peep', 'plateau', 'mean-airway', 'fetco2'`
 	nearestOutside = `8`
+
+	// indexedQuantitiesSQL lists the quantities that
+	// fact_row_patient_ref_quantity_effective holds (migration 0017: a
+	// partial index): the blood gas, the body temperature and the
+	// patient-level quantities (patientLevel), the only ones looked up by
+	// patient and quantity. Every such lookup repeats this literal list
+	// beside its "quantity = $n", so that a generic plan, which cannot know
+	// $n, may still use the partial index; a test keeps the list in step
+	// with the Go lists and the index's predicate. Lookups of other
+	// quantities go through ((patient_ref || ''), effective).
+	indexedQuantitiesSQL = `'pco2', 'body-temp', 'sex', 'birth-date', 'body-height', 'body-weight',
+              'target-paco2', 'apparatus-dead-space', 'airway'`
+
+	// factsMissingSQL is the collision guard of the unique index on
+	// (hashtextextended(key, 0), digest, effective) (migration 0017). It runs
+	// after an insertFactsSQL that stored fewer rows than it was given
+	// (later statements see the insert's rows and every committed row) and
+	// counts the given facts ($1 keys, $2 digests, $3 effective times) that
+	// have no stored row with the same key, digest and effective time. A
+	// fact the insert skipped is a stored version of itself, unless its key
+	// shares its 64-bit hash, digest and effective time with another key's
+	// row: then ON CONFLICT DO NOTHING dropped it, and the writer refuses
+	// the message (ErrFactKeyCollision) instead of acknowledging a fact it
+	// did not store.
+	factsMissingSQL = `
+SELECT count(*) FROM unnest($1::text[], $2::bytea[], $3::timestamptz[]) AS u(key, digest, effective)
+WHERE NOT EXISTS (
+    SELECT 1 FROM fact_row r
+    WHERE hashtextextended(r.key, 0) = hashtextextended(u.key, 0) AND r.key = u.key
+      AND r.digest = u.digest AND r.effective = u.effective)`
 
 	// The heads of each affected blood gas by both index columns (a
 	// lateral lookup per blood gas, as above): filtering the patient's
@@ -498,7 +534,7 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		for _, p := range order {
 			b.Queue(lockPatientSQL, p.ref)
 		}
-		s.queueInput(b, msg, order, now, nil)
+		factArgs := s.queueInput(b, msg, order, now, nil)
 		br := tx.SendBatch(ctx, b)
 		defer br.Close()
 		if _, err := br.Exec(); err != nil {
@@ -522,6 +558,9 @@ func (s *Store) ingestOnce(ctx context.Context, msg consumer.Message, plan consu
 		}
 		if err := br.Close(); err != nil {
 			return fmt.Errorf("store input: %w", err)
+		}
+		if err := guardSkipped(ctx, tx, res.Facts, factArgs); err != nil {
+			return err
 		}
 		if err := s.loadSnapshots(ctx, tx, msg, order, nil); err != nil {
 			return err
@@ -577,12 +616,44 @@ func patientPlans(s *Store, msg consumer.Message) []*patientPlan {
 // queueInput queues the statements that store a claimed message's facts
 // and load, per patient, what the new facts affect. The resources are kept
 // in the message's bytes, which the inbox row holds (migration 0011); no
-// row per resource is written.
-func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time, pend *groupWrites) {
-	if len(msg.Facts) > 0 {
-		b.Queue(insertFactsSQL, s.factArgs(msg, now)...)
-		s.queueLookups(b, msg, order, pend)
+// row per resource is written. It returns the fact insert's arguments
+// (nil without facts), for guardSkipped.
+func (s *Store) queueInput(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time, pend *groupWrites) []any {
+	if len(msg.Facts) == 0 {
+		return nil
 	}
+	args := s.factArgs(msg, now)
+	b.Queue(insertFactsSQL, args...)
+	s.queueLookups(b, msg, order, pend)
+	return args
+}
+
+// ErrFactKeyCollision refuses a message one of whose facts the insert
+// neither stored nor found stored under its own key: its key shares the
+// 64-bit hash of fact_row's unique index with another key's row of the
+// same digest and effective time (factsMissingSQL). The message is not
+// acknowledged as stored; it becomes a dead letter.
+var ErrFactKeyCollision = errors.New("fact key hash collision: a fact was not stored and no stored row has its key, digest and effective time")
+
+// guardSkipped checks, after an insertFactsSQL with arguments args that
+// stored stored rows, that every fact it skipped is stored under its own
+// key (factsMissingSQL). An insert that stored every fact needs no check.
+func guardSkipped(ctx context.Context, tx pgx.Tx, stored int, args []any) error {
+	if args == nil {
+		return nil
+	}
+	keys := args[0].([]string)
+	if stored >= len(keys) {
+		return nil
+	}
+	var missing int
+	if err := tx.QueryRow(ctx, factsMissingSQL, keys, args[1], args[21]).Scan(&missing); err != nil {
+		return fmt.Errorf("check skipped facts: %w", err)
+	}
+	if missing > 0 {
+		return fmt.Errorf("insert facts: %d of %d facts: %w", missing, len(keys), ErrFactKeyCollision)
+	}
+	return nil
 }
 
 // queueLookups queues what queueInput queues after the fact insert: the

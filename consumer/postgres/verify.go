@@ -74,7 +74,10 @@ type Verdict struct {
 const verifyInputsSQL = `
 SELECT i.derivation_id, i.role, i.time_offset, i.fallback, ` + reviewFactColumns + `
 FROM review_derivation_input i
-JOIN review_fact f ON f.key = i.fact_key AND f.digest = i.fact_digest
+CROSS JOIN LATERAL (
+    SELECT * FROM review_fact f
+    WHERE hashtextextended(f.key, 0) = hashtextextended(i.fact_key, 0) AND f.key = i.fact_key AND f.digest = i.fact_digest
+    OFFSET 0) f
 WHERE i.derivation_id = ANY($1::bigint[])
 ORDER BY i.derivation_id, i.ordinal`
 

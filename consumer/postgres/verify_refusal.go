@@ -26,40 +26,46 @@ const StatusRefused = "refused"
 // readings nearest before and after the window ($6), and of the body
 // temperatures in their own window ($8, $9; $10 the quantity), as the service's
 // snapshot loads them (store.go, snapshotFactsSQL). fhirmap.Current then
-// picks the versions in force, as the planner does.
+// picks the versions in force, as the planner does. Since migration 0017
+// (patient_ref, quantity, effective) holds only indexedQuantitiesSQL: the
+// window and the nearest readings are read through
+// fact_row_patient_ref_effective, the patient-level facts and body
+// temperatures by patient and quantity with the literal list repeated,
+// and the facts by key through the unique index's key hash.
 const refusalFactsSQL = `
 WITH bound AS MATERIALIZED (
     SELECT coalesce(
-        (SELECT max(x.id) FROM review_fact x WHERE x.patient_ref = $1 AND x.inbox_key =
+        (SELECT max(x.id) FROM review_fact x WHERE (x.patient_ref || '') = $1 AND x.inbox_key =
             (SELECT r.inbox_key FROM review_refusal r WHERE r.id = $11)),
-        (SELECT max(y.id) FROM review_fact y WHERE y.patient_ref = $1 AND y.recorded_at < $2)) AS id
+        (SELECT max(y.id) FROM review_fact y WHERE (y.patient_ref || '') = $1 AND y.recorded_at < $2)) AS id
 ), cand AS (
-    SELECT f.key FROM unnest($7::text[]) AS q(quantity) CROSS JOIN LATERAL (
+    SELECT f.key FROM review_fact f
+    WHERE (f.patient_ref || '') = $1 AND f.effective BETWEEN $3 AND $4 AND f.quantity = ANY($7::text[])
+      AND f.id <= (SELECT id FROM bound)
+    UNION ALL
+    SELECT f.key FROM unnest($5::text[]) AS q(quantity) CROSS JOIN LATERAL (
         SELECT f.key FROM review_fact f
-        WHERE f.patient_ref = $1 AND f.quantity = q.quantity AND f.id <= (SELECT id FROM bound)
-          AND (f.effective BETWEEN $3 AND $4 OR q.quantity = ANY($5::text[]))
+        WHERE f.patient_ref = $1 AND f.quantity = q.quantity AND f.quantity IN (` + indexedQuantitiesSQL + `)
+          AND f.id <= (SELECT id FROM bound)
         OFFSET 0) f
     UNION ALL
-    (SELECT b.key FROM (
-        SELECT f.key, f.effective FROM unnest($6::text[]) AS q(quantity) CROSS JOIN LATERAL (
-            SELECT f.key, f.effective FROM review_fact f
-            WHERE f.patient_ref = $1 AND f.quantity = q.quantity AND f.id <= (SELECT id FROM bound) AND f.effective < $3
-            ORDER BY f.effective DESC LIMIT 8) f) b
-     ORDER BY b.effective DESC LIMIT 8)
+    (SELECT f.key FROM review_fact f
+     WHERE (f.patient_ref || '') = $1 AND f.effective < $3 AND f.quantity = ANY($6::text[])
+       AND f.id <= (SELECT id FROM bound)
+     ORDER BY f.effective DESC LIMIT 8)
     UNION ALL
-    (SELECT a.key FROM (
-        SELECT f.key, f.effective FROM unnest($6::text[]) AS q(quantity) CROSS JOIN LATERAL (
-            SELECT f.key, f.effective FROM review_fact f
-            WHERE f.patient_ref = $1 AND f.quantity = q.quantity AND f.id <= (SELECT id FROM bound) AND f.effective > $4
-            ORDER BY f.effective LIMIT 8) f) a
-     ORDER BY a.effective LIMIT 8)
+    (SELECT f.key FROM review_fact f
+     WHERE (f.patient_ref || '') = $1 AND f.effective > $4 AND f.quantity = ANY($6::text[])
+       AND f.id <= (SELECT id FROM bound)
+     ORDER BY f.effective LIMIT 8)
     UNION ALL
     SELECT f.key FROM review_fact f
-    WHERE f.patient_ref = $1 AND f.quantity = $10::text AND f.id <= (SELECT id FROM bound)
-      AND f.effective BETWEEN $8 AND $9
+    WHERE f.patient_ref = $1 AND f.quantity = $10::text AND f.quantity IN (` + indexedQuantitiesSQL + `)
+      AND f.id <= (SELECT id FROM bound) AND f.effective BETWEEN $8 AND $9
 )
 SELECT ` + factColumns + ` FROM review_fact
-WHERE key = ANY(ARRAY(SELECT DISTINCT key FROM cand)) AND patient_ref = $1 AND id <= (SELECT id FROM bound)
+WHERE hashtextextended(key, 0) = ANY(ARRAY(SELECT DISTINCT hashtextextended(key, 0) FROM cand))
+  AND key = ANY(ARRAY(SELECT DISTINCT key FROM cand)) AND patient_ref = $1 AND id <= (SELECT id FROM bound)
 ORDER BY id`
 
 // allQuantities are the quantities a fact can have (fhirmap's Q* codes).

@@ -225,16 +225,21 @@ ORDER BY d.blood_gas_key, (d.kind = 'paco2-measured-minus-predicted') DESC, d.ki
 // every reading of the period (216,000 for 30 days of minute data, several
 // hundred milliseconds of sorting on this machine), a sample costs one index
 // probe per bucket. The page says so; the value pages list the exact
-// readings each value used.
+// readings each value used. The ventilator quantities are not in the
+// partial (patient_ref, quantity, effective) index (migration 0017): a
+// bucket's probe reads the patient's readings of every quantity from the
+// bucket's start, through fact_row_patient_ref_effective, to the first
+// of this quantity.
 const timelineVentSQL = `
 SELECT q.quantity, r.unit, b.t, r.value, r.effective
 FROM unnest($5::text[]) q(quantity)
 CROSS JOIN generate_series($2::timestamptz, $3::timestamptz - $4::interval, $4::interval) b(t)
 CROSS JOIN LATERAL (
     SELECT f.unit, f.value, f.effective FROM review_fact f
-    WHERE f.patient_ref = $1 AND f.quantity = q.quantity AND f.effective >= b.t AND f.effective < b.t + $4::interval
+    WHERE (f.patient_ref || '') = $1 AND f.quantity = q.quantity AND f.effective >= b.t AND f.effective < b.t + $4::interval
       AND f.status IN ('final', 'amended', 'corrected', 'preliminary')
-      AND NOT EXISTS (SELECT 1 FROM review_fact g WHERE g.key = f.key AND g.id > f.id)
+      AND NOT EXISTS (SELECT 1 FROM review_fact g WHERE hashtextextended(g.key, 0) = hashtextextended(f.key, 0)
+                      AND g.key = f.key AND g.id > f.id)
     ORDER BY f.effective, f.id DESC
     LIMIT 1) r
 ORDER BY 1, 3`
