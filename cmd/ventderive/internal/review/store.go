@@ -230,6 +230,17 @@ ORDER BY d.blood_gas_key, (d.kind = 'paco2-measured-minus-predicted') DESC, d.ki
 // bucket's probe reads the patient's readings of every quantity from the
 // bucket's start, through fact_row_patient_ref_effective, to the first
 // of this quantity.
+//
+// The statement's estimated cost is above jit_above_cost (one lateral
+// lookup per bucket and quantity, each estimated over the window of every
+// quantity), and PostgreSQL then compiled it: 1.4-2.6 s with JIT on the
+// bench's 30-day stay (BenchmarkTimeline30Days' data), 73-142 ms without
+// (2 shared cores; the same statement on the full (patient_ref, quantity,
+// effective) index before 0017: 198-310 ms with JIT, 55-111 ms without;
+// the page went from 0.44-0.52 s to 1.79-1.89 s with 0017 alone, and is
+// 0.21-0.33 s with JIT off, main 0.26-0.29 s). The timeline's batch turns JIT
+// off for its implicit transaction (noJITSQL): every statement of it is a
+// handful of index lookups.
 const timelineVentSQL = `
 SELECT q.quantity, r.unit, b.t, r.value, r.effective
 FROM unnest($5::text[]) q(quantity)
@@ -243,6 +254,10 @@ CROSS JOIN LATERAL (
     ORDER BY f.effective, f.id DESC
     LIMIT 1) r
 ORDER BY 1, 3`
+
+// noJITSQL turns JIT compilation off until the end of the transaction
+// (the batch's implicit one).
+const noJITSQL = `SELECT set_config('jit', 'off', true)`
 
 const timelineStaysSQL = `
 SELECT DISTINCT encounter FROM review_derivation
@@ -286,6 +301,7 @@ func (s *Store) Timeline(ctx context.Context, patient string, from, to time.Time
 	span := tl.To.Sub(tl.From)
 	tl.Bucket = max(time.Minute, (span / ventBuckets).Truncate(time.Minute))
 	b := &pgx.Batch{}
+	b.Queue(noJITSQL)
 	b.Queue(timelinePointsSQL, patient, tl.From, tl.To)
 	b.Queue(timelineRefusalsSQL, patient, tl.From, tl.To)
 	b.Queue(timelineMeasuredSQL, patient, tl.From, tl.To)
@@ -293,6 +309,9 @@ func (s *Store) Timeline(ctx context.Context, patient string, from, to time.Time
 	b.Queue(timelineStaysSQL, patient, tl.From, tl.To)
 	br := s.pool.SendBatch(ctx, b)
 	defer br.Close()
+	if _, err := br.Exec(); err != nil {
+		return tl, false, fmt.Errorf("timeline settings: %w", err)
+	}
 	rows, err := br.Query()
 	if err != nil {
 		return tl, false, fmt.Errorf("timeline values: %w", err)
