@@ -143,7 +143,9 @@ ON CONFLICT (inbox_key) DO NOTHING`
 	// value only when its bytes differ from the value's (the view fact
 	// restores all three). $26 and $27 are the term and encounter ids the
 	// Store has cached (lookup.go), 0 where it has none: only those are
-	// matched or inserted in SQL.
+	// matched or inserted in SQL. ON CONFLICT names the unique index of
+	// migration 0017, (hashtextextended(key, 0), digest, effective); a fact
+	// it skipped is checked afterwards (guardSkipped).
 	insertFactsSQL = `
 WITH u AS MATERIALIZED (
     SELECT * FROM unnest($1::text[], $2::bytea[], $3::text[], $4::text[], $5::timestamptz[], $6::text[], $7::text[],
@@ -201,7 +203,8 @@ ON CONFLICT (hashtextextended(key, 0), digest, effective) DO NOTHING`
 	// key), whatever patient the new version names: a fact moved to another
 	// patient (a corrected subject) changes its old patient too.
 	//
-	// Facts are looked up by key (the unique index on key, digest) and only
+	// Facts are looked up by key (the unique index, by the key's hash since
+	// migration 0017, with key = ... as the recheck) and only
 	// then filtered by patient, in MATERIALIZED steps the planner cannot
 	// reorder: a plan that found them through the patient's index and
 	// filtered by key read the patient's whole history for every message,
@@ -224,8 +227,10 @@ ON CONFLICT (hashtextextended(key, 0), digest, effective) DO NOTHING`
 	// (f.patient_ref || ''), the expression of fact_patient_ref_effective
 	// (migration 0012); a lookup by patient and quantity writes plain
 	// f.patient_ref, which only fact_patient_ref_quantity_effective
-	// serves. Without that split a generic plan took the smaller index for
-	// lookups by quantity and filtered the window's every quantity.
+	// serves (since migration 0017 a partial index over
+	// indexedQuantitiesSQL, which each such lookup repeats). Without that
+	// split a generic plan took the smaller index for lookups by quantity
+	// and filtered the window's every quantity.
 	//
 	// Only the first lookup (cand: it needs each version's inbox key) and
 	// the snapshot's last (found: the columns handed to the plan) read the
