@@ -85,7 +85,7 @@ func TestRoles(t *testing.T) {
 	}
 	for _, stmt := range []string{
 		"DELETE FROM fact_row", "DELETE FROM fact_term", "DELETE FROM outbox", "DELETE FROM derivation", "DELETE FROM inbox",
-		"UPDATE derivation SET value = 0", "UPDATE outbox SET payload = ''", "UPDATE fact_row SET value = 0", "UPDATE fact_term SET unit = ''",
+		"UPDATE derivation SET value = 0", "UPDATE outbox SET stored_payload = ''", "UPDATE fact_row SET value = 0", "UPDATE fact_term SET unit = ''",
 		"TRUNCATE refusal", "DROP TABLE dead_letter", "SELECT * FROM review_derivation",
 		// Migration 0005: raw payloads are written, never read back.
 		"SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM input_resource",
@@ -109,7 +109,7 @@ func TestRoles(t *testing.T) {
 	// Migration 0005: the writer cannot queue an outbox row for a NATS
 	// system subject, a wildcard or an empty token; a plain subject passes
 	// (the control, rolled back).
-	const outboxRow = `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
+	const outboxRow = `INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at)
 		VALUES ($1, 'roles-test/' || $1, '{}', '\x00', (SELECT inbox_key FROM inbox LIMIT 1), now())`
 	for _, c := range []struct {
 		subject string

@@ -4,6 +4,7 @@ import (
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
+	"errors"
 	"fmt"
 	"strconv"
 	"time"
@@ -12,6 +13,7 @@ import (
 	"github.com/jackc/pgx/v5/pgtype"
 
 	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/rawcodec"
 	"github.com/ventderive/ventderive/fhirmap"
 )
 
@@ -99,8 +101,12 @@ WHERE e.id = $1 AND s.status <> 'entered-in-error'
   AND NOT EXISTS (SELECT 1 FROM review_derivation n WHERE n.key = s.key AND n.created_at <= e.created_at AND n.id > s.id)
   AND NOT EXISTS (SELECT 1 FROM review_refusal r WHERE r.key = s.key AND r.created_at > s.created_at AND r.created_at <= e.created_at)`
 
+// verifyObservationSQL reads the digest of each published Observation and,
+// for one stored compressed (0018), its frame, which verifyVersions
+// decodes and checks against the digest: the re-encoded bytes are compared
+// with the bytes kept, not only with the digest written beside them.
 const verifyObservationSQL = `
-SELECT derivation_id, payload_digest FROM review_published
+SELECT derivation_id, seq, payload_digest, payload_zstd FROM review_published
 WHERE derivation_id = ANY($1::bigint[]) AND resource_type = 'Observation'`
 
 // Verify re-derives every stored derivation version the filter selects
@@ -203,19 +209,31 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 		return nil, err
 	}
 	type obsDigest struct {
-		id     int64
-		digest string
+		id, seq int64
+		digest  string
+		stored  []byte
 	}
 	obs, err := queryRows(ctx, r.pool, verifyObservationSQL, func(row pgx.CollectableRow) (obsDigest, error) {
 		var o obsDigest
-		return o, row.Scan(&o.id, &o.digest)
+		return o, row.Scan(&o.id, &o.seq, &o.digest, &o.stored)
 	}, ids)
 	if err != nil {
 		return nil, fmt.Errorf("read published digests: %w", err)
 	}
 	published := map[int64]string{}
+	damaged := map[int64]string{}
 	for _, o := range obs {
 		published[o.id] = o.digest
+		if o.stored == nil {
+			continue
+		}
+		m := PublishedMessage{Seq: o.seq, Digest: o.digest, stored: o.stored}
+		if err := r.decodeMessage(ctx, &m); err != nil {
+			if !errors.Is(err, rawcodec.ErrCorrupt) && !errors.Is(err, ErrOutputMismatch) {
+				return nil, fmt.Errorf("read published Observations: %w", err)
+			}
+			damaged[o.id] = err.Error()
+		}
 	}
 	settings := map[string]*consumer.Settings{}
 	out := make([]Verdict, 0, len(versions))
@@ -225,6 +243,12 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 			Published: v.Published, PublishedValue: v.Value, Unit: v.Unit, DisplayUnit: v.DisplayUnit,
 			Interpretation: v.Interpretation.Code, Digest: v.Digest, ObservationDigest: published[v.ID],
 			Findings: []string{}, Recorded: v.Recorded}
+		if why, ok := damaged[v.ID]; ok {
+			x.Findings = append(x.Findings, "observation: the stored published bytes are damaged: "+why)
+		}
+		if v.RecordError != "" {
+			x.Findings = append(x.Findings, "record: "+v.RecordError)
+		}
 		switch {
 		case v.Status == string(fhirmap.StatusEnteredInError):
 			x.Outcome, x.Why = OutcomeRetraction, "entered in error: published without a value, nothing to reproduce"
@@ -270,6 +294,9 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 				}
 			}
 			rederive(&x, v, inputs[v.ID], others, s.Site)
+		}
+		if len(x.Findings) > 0 {
+			x.Outcome = OutcomeMismatch // damaged stored bytes, whatever else holds
 		}
 		out = append(out, x)
 	}
