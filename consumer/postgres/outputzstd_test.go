@@ -350,3 +350,73 @@ func keys[V any](m map[string]V) []string {
 	}
 	return out
 }
+
+// A frame made with a dictionary this binary does not embed (a newer
+// replica's retrained one) is decoded with the dictionary migrate of that
+// replica stored: by the relay through raw_dictionary, by the reviewer
+// through review_dictionary.
+func TestFrameOfAStoredDictionaryDecodes(t *testing.T) {
+	t.Parallel()
+	f, want := outputStore(t)
+	var samples [][]byte
+	for _, p := range want {
+		samples = append(samples, p)
+	}
+	for len(samples) < 8 {
+		samples = append(samples, samples...)
+	}
+	const newer = 0x6f75_7402
+	d, err := rawcodec.Train(samples, newer, 4<<10)
+	if err != nil {
+		t.Fatal(err)
+	}
+	c, err := rawcodec.New(d)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var seq int64
+	var msgID string
+	if err := f.pool.QueryRow(f.ctx, `SELECT seq, msg_id FROM outbox ORDER BY seq LIMIT 1`).Scan(&seq, &msgID); err != nil {
+		t.Fatal(err)
+	}
+	frame := c.Encode(want[msgID])
+	if _, err := rawcodec.Outbox().Decode(frame); !errors.Is(err, rawcodec.ErrCorrupt) {
+		t.Fatalf("the embedded codecs decode a frame of dictionary %#x: %v", newer, err)
+	}
+	if _, err := f.pool.Exec(f.ctx, `INSERT INTO raw_dictionary (id, kind, dictionary) VALUES ($1, 'outbox', $2)`, int64(newer), d); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := f.pool.Exec(f.ctx, `UPDATE outbox SET stored_payload = $2 WHERE seq = $1`, seq, frame); err != nil {
+		t.Fatal(err)
+	}
+
+	h, err := postgres.NewReviewer(f.pool).Show(f.ctx, strings.TrimSuffix(strings.TrimPrefix(strings.TrimPrefix(msgID, "Observation/"), "Provenance/"), "/_history/1"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	shown := false
+	for _, v := range h.Versions {
+		for _, m := range v.Messages {
+			if m.Seq == seq {
+				shown = bytes.Equal(m.Payload, want[msgID]) && m.Digest == hexSHA(want[msgID])
+			}
+		}
+	}
+	if !shown {
+		t.Errorf("Show did not return the exact bytes of the row stored with dictionary %#x", newer)
+	}
+	var got []byte
+	if _, err := f.store.RelayOutbox(f.ctx, 100, func(_ context.Context, ms []consumer.OutboxMessage) ([]int64, error) {
+		for _, m := range ms {
+			if m.Seq == seq {
+				got = m.Payload
+			}
+		}
+		return seqs(ms), nil
+	}); err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(got, want[msgID]) {
+		t.Errorf("relay published %d bytes for the row of dictionary %#x, want the planner's %d", len(got), newer, len(want[msgID]))
+	}
+}

@@ -97,6 +97,12 @@ func TestRoles(t *testing.T) {
 		_, err := writer.Exec(ctx, stmt)
 		wantDenied(t, "writer "+stmt, err)
 	}
+	// Migration 0018: the relay reads the stored dictionaries (a frame made
+	// by a newer replica's dictionary).
+	var dicts int
+	if err := writer.QueryRow(ctx, "SELECT count(*) FROM raw_dictionary WHERE kind IN ('outbox', 'record')").Scan(&dicts); err != nil || dicts != 2 {
+		t.Errorf("writer reads raw_dictionary: %d outbox and record dictionaries, %v; want 2", dicts, err)
+	}
 	// What the writer still reads of those tables: every column but raw.
 	var refs int
 	if err := writer.QueryRow(ctx, "SELECT count(reference) FROM input_resource").Scan(&refs); err != nil {
@@ -140,7 +146,7 @@ func TestRoles(t *testing.T) {
 
 	reviewer := poolAs(t, ctx, u, "ventderive_reviewer")
 	for _, view := range []string{"review_derivation", "review_derivation_input", "review_refusal", "review_refusal_input",
-		"review_head", "review_fact", "review_dead_letter", "review_outbox", "review_settings"} {
+		"review_head", "review_fact", "review_dead_letter", "review_outbox", "review_settings", "review_dictionary"} {
 		var n int
 		if err := reviewer.QueryRow(ctx, "SELECT count(*) FROM "+view).Scan(&n); err != nil || n == 0 {
 			t.Errorf("reviewer reads %s: %d rows, %v; want rows", view, n, err)
@@ -154,6 +160,9 @@ func TestRoles(t *testing.T) {
 		"SELECT * FROM fact", "SELECT * FROM fact_row", "SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM derivation",
 		"SELECT * FROM outbox", "SELECT * FROM head", "SELECT * FROM site_settings", "INSERT INTO inbox VALUES ('x', 's', 0, now(), now(), 0, 0)",
 		"CREATE TABLE reviewer_notes (x int)",
+		// Migration 0018: the reviewer reads the outbox and record
+		// dictionaries through review_dictionary, never the inbox one.
+		"SELECT * FROM raw_dictionary",
 	} {
 		_, err := reviewer.Exec(ctx, stmt)
 		wantDenied(t, "reviewer "+stmt, err)
