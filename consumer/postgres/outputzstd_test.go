@@ -215,8 +215,9 @@ func TestCompressedOutputsReadBackExactly(t *testing.T) {
 
 // A damaged compressed value is never published and never shown as
 // published: audit verify reports the version a mismatch naming what is
-// damaged, the relay leaves the row unpublished and says why, and Show
-// refuses. The undamaged versions still reproduce.
+// damaged (an Observation, a record, a Provenance), the relay leaves the
+// row unpublished and says why, and Show refuses. The refusals, which name
+// none of it, verify as before.
 func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 	t.Parallel()
 	f, _ := outputStore(t)
@@ -230,7 +231,7 @@ func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 		if v.Status != postgres.StatusRefused && v.Outcome != postgres.OutcomeReproduced {
 			t.Errorf("%s before any damage: %s %v %s", v.Key, v.Outcome, v.Findings, v.Why)
 		}
-		if v.Outcome == postgres.OutcomeReproduced {
+		if v.Status != postgres.StatusRefused && v.Outcome == postgres.OutcomeReproduced {
 			reproduced++
 		}
 	}
@@ -257,23 +258,41 @@ func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 		t.Fatal(err)
 	}
 
+	// And the second one's Provenance (audit verify checks every message
+	// published for a version).
+	if _, err := f.pool.Exec(f.ctx, `
+		UPDATE outbox o SET stored_payload = overlay(o.stored_payload PLACING '\xffff'::bytea FROM length(o.stored_payload) / 2 FOR 2)
+		FROM derivation d WHERE o.msg_id = 'Provenance/' || d.observation_id || '/_history/' || d.version AND d.key = $1`, recKey); err != nil {
+		t.Fatal(err)
+	}
+
 	after, err := r.Verify(f.ctx, postgres.Filter{})
 	if err != nil {
 		t.Fatal(err)
 	}
+	refusedBefore := map[string]string{}
+	for _, v := range before.Rows {
+		if v.Status == postgres.StatusRefused {
+			refusedBefore[v.Key] = v.Outcome
+		}
+	}
 	for _, v := range after.Rows {
 		if v.Status == postgres.StatusRefused {
+			if v.Outcome != refusedBefore[v.Key] {
+				t.Errorf("refusal %s: %s after the damage, %s before", v.Key, v.Outcome, refusedBefore[v.Key])
+			}
 			continue
 		}
 		found := strings.Join(v.Findings, "; ")
 		switch v.Key {
 		case obsKey:
-			if v.Outcome != postgres.OutcomeMismatch || !strings.Contains(found, "observation: the stored published bytes are damaged") {
+			if v.Outcome != postgres.OutcomeMismatch || !strings.Contains(found, "published: the stored published bytes are damaged: Observation: outbox") {
 				t.Errorf("damaged Observation %s: %s, %q", v.Key, v.Outcome, found)
 			}
 		case recKey:
-			if v.Outcome != postgres.OutcomeMismatch || !strings.Contains(found, "record: stored record does not decode") {
-				t.Errorf("damaged record %s: %s, %q", v.Key, v.Outcome, found)
+			if v.Outcome != postgres.OutcomeMismatch || !strings.Contains(found, "record: stored record does not decode") ||
+				!strings.Contains(found, "damaged: Provenance: outbox") {
+				t.Errorf("damaged record and Provenance %s: %s, %q", v.Key, v.Outcome, found)
 			}
 		default:
 			if v.Outcome != postgres.OutcomeReproduced {

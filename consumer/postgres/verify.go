@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -101,13 +102,14 @@ WHERE e.id = $1 AND s.status <> 'entered-in-error'
   AND NOT EXISTS (SELECT 1 FROM review_derivation n WHERE n.key = s.key AND n.created_at <= e.created_at AND n.id > s.id)
   AND NOT EXISTS (SELECT 1 FROM review_refusal r WHERE r.key = s.key AND r.created_at > s.created_at AND r.created_at <= e.created_at)`
 
-// verifyObservationSQL reads the digest of each published Observation and,
-// for one stored compressed (0018), its frame, which verifyVersions
-// decodes and checks against the digest: the re-encoded bytes are compared
-// with the bytes kept, not only with the digest written beside them.
+// verifyObservationSQL reads the digest of each published message and, for
+// one stored compressed (0018), its frame, which verifyVersions decodes and
+// checks against the digest (the Observation's and the Provenance's): the
+// re-encoded Observation is compared with the bytes kept, not only with
+// the digest written beside them.
 const verifyObservationSQL = `
-SELECT derivation_id, seq, payload_digest, payload_zstd FROM review_published
-WHERE derivation_id = ANY($1::bigint[]) AND resource_type = 'Observation'`
+SELECT derivation_id, resource_type, seq, payload_digest, payload_zstd FROM review_published
+WHERE derivation_id = ANY($1::bigint[])`
 
 // Verify re-derives every stored derivation version the filter selects
 // (List's order and paging) from its stored inputs and its settings
@@ -209,13 +211,14 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 		return nil, err
 	}
 	type obsDigest struct {
-		id, seq int64
-		digest  string
-		stored  []byte
+		id, seq      int64
+		resourceType string
+		digest       string
+		stored       []byte
 	}
 	obs, err := queryRows(ctx, r.pool, verifyObservationSQL, func(row pgx.CollectableRow) (obsDigest, error) {
 		var o obsDigest
-		return o, row.Scan(&o.id, &o.seq, &o.digest, &o.stored)
+		return o, row.Scan(&o.id, &o.resourceType, &o.seq, &o.digest, &o.stored)
 	}, ids)
 	if err != nil {
 		return nil, fmt.Errorf("read published digests: %w", err)
@@ -223,16 +226,18 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 	published := map[int64]string{}
 	damaged := map[int64]string{}
 	for _, o := range obs {
-		published[o.id] = o.digest
+		if o.resourceType == "Observation" {
+			published[o.id] = o.digest
+		}
 		if o.stored == nil {
 			continue
 		}
 		m := PublishedMessage{Seq: o.seq, Digest: o.digest, stored: o.stored}
 		if err := r.decodeMessage(ctx, &m); err != nil {
 			if !errors.Is(err, rawcodec.ErrCorrupt) && !errors.Is(err, ErrOutputMismatch) {
-				return nil, fmt.Errorf("read published Observations: %w", err)
+				return nil, fmt.Errorf("read published messages: %w", err)
 			}
-			damaged[o.id] = err.Error()
+			damaged[o.id] = strings.TrimSpace(damaged[o.id] + " " + o.resourceType + ": " + err.Error())
 		}
 	}
 	settings := map[string]*consumer.Settings{}
@@ -244,7 +249,7 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 			Interpretation: v.Interpretation.Code, Digest: v.Digest, ObservationDigest: published[v.ID],
 			Findings: []string{}, Recorded: v.Recorded}
 		if why, ok := damaged[v.ID]; ok {
-			x.Findings = append(x.Findings, "observation: the stored published bytes are damaged: "+why)
+			x.Findings = append(x.Findings, "published: the stored published bytes are damaged: "+why)
 		}
 		if v.RecordError != "" {
 			x.Findings = append(x.Findings, "record: "+v.RecordError)
