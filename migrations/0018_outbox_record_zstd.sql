@@ -18,9 +18,10 @@
 --    of the exact bytes, written with the row by the service, which
 --    computes them from the bytes it compresses. PostgreSQL cannot
 --    decompress zstd, so this is where the views take a compressed row's
---    digest and size from; `audit verify` decodes every published
---    Observation it checks and refuses one whose decoded bytes are not that
---    digest (the frame's own checksum catches a damaged value first).
+--    digest and size from; `audit verify` decodes every message published
+--    for a version it checks (Observation and Provenance) and reports one
+--    whose decoded bytes are not that digest (the frame's own checksum
+--    catches a damaged value first).
 -- 3. derivation.record_zstd: the record (fhirmap.Record as JSON) as a zstd
 --    frame, for rows written from now on; record (jsonb) stays for the rows
 --    written before and is NULL beside a compressed one.
