@@ -415,7 +415,7 @@ func TestRelayNeverPublishesForeignRows(t *testing.T) {
 	h.publish(msgs)
 	h.waitSettled(60 * time.Second)
 	ctx := context.Background()
-	if _, err := h.pool.Exec(ctx, `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
+	if _, err := h.pool.Exec(ctx, `INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at)
 		SELECT 'ventderive.elsewhere', 'Foreign/1', '{}', '', inbox_key, now() FROM inbox LIMIT 1`); err != nil {
 		t.Fatal(err)
 	}

@@ -8,6 +8,7 @@ import (
 	"os"
 	"path/filepath"
 	"slices"
+	"strings"
 	"testing"
 
 	"github.com/jackc/pgx/v5"
@@ -192,8 +193,12 @@ func TestFactInboxIDMigratesStoredRows(t *testing.T) {
 	if err := conn.QueryRow(ctx, viewsSQL).Scan(&viewsAfter); err != nil {
 		t.Fatal(err)
 	}
-	if viewsAfter != viewsBefore {
-		t.Errorf("views: before %q, after %q", viewsBefore, viewsAfter)
+	// Every view is still there (a later migration may add one: 0018's
+	// review_dictionary).
+	for _, v := range strings.Fields(viewsBefore) {
+		if !slices.Contains(strings.Fields(viewsAfter), v) {
+			t.Errorf("view %s gone: before %q, after %q", v, viewsBefore, viewsAfter)
+		}
 	}
 
 	// The layout of 0016: the 8-byte columns first, the inbox by id.

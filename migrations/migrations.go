@@ -105,6 +105,13 @@ CREATE TABLE IF NOT EXISTS schema_version (
 	// its ID; a dictionary already stored under that ID is left as it is.
 	storeDictionarySQL = `INSERT INTO raw_dictionary (id, dictionary) VALUES ($1, $2) ON CONFLICT (id) DO NOTHING`
 	dictionaryVersion  = 15
+	// storeDictionariesSQL stores every embedded dictionary (0018: inbox,
+	// outbox and derivation records) with its kind, likewise.
+	storeDictionariesSQL = `
+INSERT INTO raw_dictionary (id, kind, dictionary)
+SELECT * FROM unnest($1::bigint[], $2::text[], $3::bytea[])
+ON CONFLICT (id) DO NOTHING`
+	dictionariesVersion = 18
 )
 
 // ApplyConn is Apply on a single connection, for tools that hold one.
@@ -177,7 +184,18 @@ func ApplyConn(ctx context.Context, conn *pgx.Conn, log *slog.Logger) (version i
 			return current, fmt.Errorf("apply grants: %w", err)
 		}
 	}
-	if current >= dictionaryVersion {
+	switch {
+	case current >= dictionariesVersion:
+		var ids []int64
+		var kinds []string
+		var data [][]byte
+		for _, d := range rawcodec.Embedded() {
+			ids, kinds, data = append(ids, int64(d.ID)), append(kinds, d.Kind), append(data, d.Data)
+		}
+		if _, err := conn.Exec(ctx, storeDictionariesSQL, ids, kinds, data); err != nil {
+			return current, fmt.Errorf("store the dictionaries: %w", err)
+		}
+	case current >= dictionaryVersion:
 		if _, err := conn.Exec(ctx, storeDictionarySQL, int64(rawcodec.InboxDictionaryID), rawcodec.InboxDictionary); err != nil {
 			return current, fmt.Errorf("store the inbox dictionary: %w", err)
 		}

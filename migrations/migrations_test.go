@@ -204,7 +204,7 @@ func TestChecksRefuseBadRows(t *testing.T) {
 		{"refusal of another patient's key", `INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail, digest, inbox_key, created_at)
 		  VALUES ('Patient/p2|Observation/a|vdvt', 'vdvt', 'Patient/p1', $1, 'Observation/a', now(), 'venous-specimen', '', $2, $3, now())`,
 			[]any{hash, dig, key}, "refusal_key_parts"},
-		{"outbox subject with space", `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at) VALUES ('a b', 'm1', '{}', '', $1, now())`,
+		{"outbox subject with space", `INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at) VALUES ('a b', 'm1', '{}', '', $1, now())`,
 			[]any{key}, "outbox_subject_check"},
 		{"resource digest not of its bytes", `INSERT INTO input_resource (reference, resource_type, version_id, patient_ref, patient_hash, digest, raw, inbox_key, received, recorded_at)
 		  VALUES ('Observation/a', 'Observation', '', 'Patient/p1', $1, $2, '\x7b7d', $3, now(), now())`,

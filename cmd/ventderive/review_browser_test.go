@@ -24,6 +24,7 @@ import (
 	"github.com/chromedp/chromedp"
 
 	"github.com/ventderive/ventderive/cmd/ventderive/internal/review"
+	"github.com/ventderive/ventderive/consumer/rawcodec"
 )
 
 var updateScreens = flag.Bool("update-screens", false, "copy the browser test's screenshots to internal/review/testdata/screens")
@@ -192,12 +193,32 @@ func reviewBrowserTest(t *testing.T, ctx context.Context, cs consoleStore, base,
 	var version int
 	var published *string
 	var basis, unit string
-	if err := cs.adminPool.QueryRow(ctx, `SELECT d.version, d.basis, d.unit,
-			convert_from(o.payload, 'UTF8')::jsonb #>> '{valueQuantity,value}'
+	var stored []byte
+	if err := cs.adminPool.QueryRow(ctx, `SELECT d.version, d.basis, d.unit, o.stored_payload
 		FROM head h JOIN derivation d ON d.id = h.derivation_id
 		JOIN outbox o ON o.msg_id = 'Observation/' || d.observation_id || '/_history/' || d.version
-		WHERE d.observation_id::text = $1 OR h.key = $1`, key).Scan(&version, &basis, &unit, &published); err != nil {
+		WHERE d.observation_id::text = $1 OR h.key = $1`, key).Scan(&version, &basis, &unit, &stored); err != nil {
 		t.Fatal(err)
+	}
+	// Stored compressed since migration 0018 (the embedded outbox
+	// dictionary decodes it); the published value is in valueQuantity.
+	if raw, err := rawcodec.Outbox().Decode(stored); err != nil {
+		t.Fatal(err)
+	} else {
+		var obs struct {
+			ValueQuantity *struct {
+				Value json.Number `json:"value"`
+			} `json:"valueQuantity"`
+		}
+		d := json.NewDecoder(bytes.NewReader(raw))
+		d.UseNumber()
+		if err := d.Decode(&obs); err != nil {
+			t.Fatal(err)
+		}
+		if obs.ValueQuantity != nil {
+			v := obs.ValueQuantity.Value.String()
+			published = &v
+		}
 	}
 	shownValue := text(`#value-` + strconv.Itoa(version))
 	shownBasis := text(`#basis-` + strconv.Itoa(version))

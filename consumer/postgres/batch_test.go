@@ -69,7 +69,7 @@ func dump(t *testing.T, f *fixture) storeDump {
 		Derivations: q(`SELECT key, version, value, status, digest, inbox_key, supersedes_id IS NULL FROM derivation ORDER BY id`),
 		Refusals:    q(`SELECT key, reason, digest, inbox_key FROM refusal ORDER BY id`),
 		Heads:       q(`SELECT key, version, refused, digest, status, value FROM head ORDER BY key`),
-		Outbox:      q(`SELECT subject, msg_id, headers::text, payload, inbox_key FROM outbox ORDER BY seq`),
+		Outbox:      q(`SELECT subject, msg_id, headers::text, stored_payload, payload_sha256, payload_size, inbox_key FROM outbox ORDER BY seq`),
 		Lineage:     q(`SELECT d.key, d.version, i.ordinal, i.role, i.fact_key, i.time_offset FROM derivation_input i JOIN derivation d ON d.id = i.derivation_id ORDER BY d.id, i.ordinal`),
 	}
 }

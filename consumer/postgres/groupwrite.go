@@ -39,7 +39,7 @@ WITH u AS MATERIALIZED (
     SELECT * FROM unnest($1::text[], $2::int[], $3::text[], $4::text[], $5::text[], $6::text[], $7::text[], $8::text[],
         $9::timestamptz[], $10::float8[], $11::text[], $12::text[], $13::text[], $14::text[], $15::text[], $16::text[],
         $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::text[], $23::text[], $24::text[],
-        $25::text[], $26::text[], $27::text[])
+        $25::text[], $26::bytea[], $27::text[])
     WITH ORDINALITY AS u(key, version, observation_id, kind, patient_ref, patient_hash, encounter, blood_gas_key,
         effective, value, unit, method, method_version, constants, assumptions, basis, interp_code, interp_text,
         interp_source, flags, status, retracted, algorithm, digest, inbox_key, record, settings_digest, ord)
@@ -47,13 +47,13 @@ WITH u AS MATERIALIZED (
     INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
         blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
         interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest,
-        supersedes_id, inbox_key, created_at, record, settings_digest)
+        supersedes_id, inbox_key, created_at, record_zstd, settings_digest)
     SELECT u.key, u.version, u.observation_id::uuid, u.kind, u.patient_ref, u.patient_hash, u.encounter,
         u.blood_gas_key, u.effective, u.value, u.unit, u.method, u.method_version, u.constants::jsonb,
         u.assumptions::jsonb, u.basis, u.interp_code, u.interp_text, u.interp_source, u.flags::jsonb, u.status,
         u.retracted, u.algorithm, u.digest,
         (SELECT p.id FROM derivation p WHERE p.key = u.key AND p.version = u.version - 1),
-        u.inbox_key, $28, u.record::jsonb, nullif(u.settings_digest, '')
+        u.inbox_key, $28, u.record, nullif(u.settings_digest, '')
     FROM u ORDER BY u.ord
     RETURNING id, key, version
 )
@@ -118,10 +118,10 @@ ON CONFLICT (key) DO UPDATE SET
 	// it returns the inbox key of every row it stored, to count them per
 	// message.
 	insertOutboxRowsSQL = `
-INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
-SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, u.inbox_key, $6
-FROM unnest($1::text[], $2::text[], $3::text[], $4::bytea[], $5::text[]) WITH ORDINALITY
-     AS u(subject, msg_id, headers, payload, inbox_key, ord)
+INSERT INTO outbox (subject, msg_id, headers, stored_payload, payload_sha256, payload_size, inbox_key, created_at)
+SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, u.sum, u.size, u.inbox_key, $6
+FROM unnest($1::text[], $2::text[], $3::text[], $4::bytea[], $5::text[], $7::bytea[], $8::int[]) WITH ORDINALITY
+     AS u(subject, msg_id, headers, payload, inbox_key, sum, size, ord)
 ORDER BY u.ord
 ON CONFLICT (msg_id) DO NOTHING
 RETURNING inbox_key`
@@ -182,7 +182,8 @@ type groupWrites struct {
 	byPatient map[string][]*pendingHead
 
 	outSubj, outID, outHdr, outInbox []string
-	outPayload                       [][]byte
+	outPayload, outSum               [][]byte // stored payloads and their exact bytes' SHA-256
+	outSize                          []int32
 	outMsg                           map[string][]int // inbox key -> message indexes (one, barring duplicates)
 	outWant                          map[int]int
 }
@@ -281,7 +282,9 @@ func (w *groupWrites) add(i int, msg consumer.Message, order []*patientPlan, res
 				return fmt.Errorf("encode outbox headers: %w", err)
 			}
 			w.outSubj, w.outID, w.outHdr = append(w.outSubj, o.Subject), append(w.outID, o.MsgID), append(w.outHdr, string(hdr))
-			w.outPayload, w.outInbox = append(w.outPayload, o.Payload), append(w.outInbox, msg.InboxKey)
+			stored, sum, size := storedOutbox(o.Payload)
+			w.outPayload, w.outInbox = append(w.outPayload, stored), append(w.outInbox, msg.InboxKey)
+			w.outSum, w.outSize = append(w.outSum, sum), append(w.outSize, size)
 			wanted++
 		}
 	}
@@ -332,6 +335,12 @@ func columns(rows [][]any, width int) []any {
 			a := make([]time.Time, n)
 			for i, r := range rows {
 				a[i] = r[c].(time.Time)
+			}
+			cols[c] = a
+		case []byte:
+			a := make([][]byte, n)
+			for i, r := range rows {
+				a[i] = r[c].([]byte)
 			}
 			cols[c] = a
 		case *string:
@@ -411,7 +420,7 @@ func (w *groupWrites) queue(b *pgx.Batch) groupQueued {
 		q.heads++
 	}
 	if len(w.outSubj) > 0 {
-		b.Queue(insertOutboxRowsSQL, w.outSubj, w.outID, w.outHdr, w.outPayload, w.outInbox, w.now)
+		b.Queue(insertOutboxRowsSQL, w.outSubj, w.outID, w.outHdr, w.outPayload, w.outInbox, w.now, w.outSum, w.outSize)
 		q.outbox = len(w.outSubj)
 	}
 	return q

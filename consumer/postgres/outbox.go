@@ -1,14 +1,18 @@
 package postgres
 
 import (
+	"cmp"
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"slices"
+	"strings"
 
 	"github.com/jackc/pgx/v5"
 
 	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/rawcodec"
 )
 
 const deadLetterSQL = `
@@ -35,7 +39,7 @@ func orNil(b []byte) []byte {
 
 const (
 	claimOutboxSQL = `
-SELECT seq, subject, msg_id, headers::text, payload
+SELECT seq, subject, msg_id, headers::text, stored_payload, payload_sha256
 FROM outbox
 WHERE published_at IS NULL AND seq > $2
 ORDER BY seq
@@ -71,15 +75,18 @@ func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, pub
 		if err != nil {
 			return fmt.Errorf("claim outbox: %w", err)
 		}
+		var sums [][]byte
 		msgs, err := pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.OutboxMessage, error) {
 			var m consumer.OutboxMessage
 			var headers string
-			if err := row.Scan(&m.Seq, &m.Subject, &m.MsgID, &headers, &m.Payload); err != nil {
+			var sum []byte
+			if err := row.Scan(&m.Seq, &m.Subject, &m.MsgID, &headers, &m.Payload, &sum); err != nil {
 				return m, err
 			}
 			if err := json.Unmarshal([]byte(headers), &m.Header); err != nil {
 				return m, fmt.Errorf("outbox headers of seq %d: %w", m.Seq, err)
 			}
+			sums = append(sums, sum)
 			return m, nil
 		})
 		if err != nil {
@@ -89,11 +96,43 @@ func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, pub
 			return nil
 		}
 		res.Claimed, res.Last = len(msgs), msgs[len(msgs)-1].Seq
-		published, err := publish(ctx, msgs)
-		pubErr = err
+		// The exact bytes recorded, whether stored compressed (0018) or
+		// plain. A row that does not decode to the SHA-256 stored with it
+		// is never published: it stays unpublished with the later versions
+		// of its derivation in this page (as a failed publish leaves them),
+		// the pass reports it, and the rest are published.
+		ready := msgs[:0:0]
+		var decodeErr error
+		failed := map[string]bool{}
+		for i, m := range msgs {
+			chain := m.MsgID
+			if j := strings.LastIndex(chain, "/_history/"); j >= 0 {
+				chain = chain[:j]
+			}
+			p, err := decodePublished(ctx, tx, writerDictionariesSQL, m.Seq, m.Payload, sums[i])
+			switch {
+			case err != nil && !errors.Is(err, rawcodec.ErrCorrupt) && !errors.Is(err, ErrOutputMismatch):
+				return fmt.Errorf("claim outbox: %w", err)
+			case err != nil:
+				decodeErr = cmp.Or(decodeErr, err)
+				failed[chain] = true
+				continue
+			case failed[chain]:
+				continue
+			}
+			m.Payload = p
+			ready = append(ready, m)
+		}
+		var published []int64
+		if len(ready) > 0 {
+			published, pubErr = publish(ctx, ready)
+		}
+		if decodeErr != nil {
+			pubErr = errors.Join(fmt.Errorf("not published: %w", decodeErr), pubErr)
+		}
 		var seqs []int64
 		for _, seq := range published {
-			if slices.ContainsFunc(msgs, func(m consumer.OutboxMessage) bool { return m.Seq == seq }) {
+			if slices.ContainsFunc(ready, func(m consumer.OutboxMessage) bool { return m.Seq == seq }) {
 				seqs = append(seqs, seq)
 			}
 		}

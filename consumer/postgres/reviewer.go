@@ -2,6 +2,7 @@ package postgres
 
 import (
 	"context"
+	"encoding/hex"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -14,6 +15,7 @@ import (
 	"github.com/jackc/pgx/v5/pgtype"
 	"github.com/jackc/pgx/v5/pgxpool"
 
+	"github.com/ventderive/ventderive/consumer/rawcodec"
 	"github.com/ventderive/ventderive/fhirmap"
 	"github.com/ventderive/ventderive/physio"
 )
@@ -162,6 +164,12 @@ type Version struct {
 	// the Observation's notes write them); nil for a retraction and for a
 	// version recorded before the store kept it.
 	Record *fhirmap.Record `json:"record,omitempty"`
+	// RecordError says why a stored record could not be read (a
+	// compressed one that does not decode); Record is then nil.
+	RecordError string `json:"recordError,omitempty"`
+	// recordStored is a compressed record as stored (0018), until
+	// decodeRecords reads it.
+	recordStored []byte
 	// Settings is the digest of the site-settings snapshot the version was
 	// made under (Reviewer.Settings reads it); "" for a retraction made by
 	// an older build and for versions recorded before the store kept it.
@@ -186,6 +194,7 @@ type PublishedMessage struct {
 	SizeBytes    int               `json:"sizeBytes"`
 	Recorded     time.Time         `json:"recorded"`
 	PublishedAt  *time.Time        `json:"publishedAt,omitempty"` // nil until the relay had a PubAck
+	stored       []byte            // the zstd frame of a compressed row, until decodeMessage reads it
 }
 
 // Input is one fact a derivation used or a refusal considered.
@@ -273,7 +282,7 @@ const (
     effective, value, unit, method, method_version, constants::text, assumptions::text, basis,
     interp_code, interp_text, interp_source, flags::text, status, retracted, algorithm, digest,
     coalesce(supersedes_version, 0), coalesce(superseded_by_version, 0), coalesce(is_current, false), created_at,
-    record::text, coalesce(settings_digest, '')`
+    record::text, coalesce(settings_digest, ''), record_zstd`
 
 	showKeySQL = `
 SELECT key FROM review_derivation WHERE key = $1 OR observation_id::text = $2
@@ -304,7 +313,7 @@ ORDER BY i.derivation_id, i.ordinal`
 
 	showPublishedSQL = `
 SELECT derivation_id, resource_type, seq, subject, msg_id, headers::text, payload, payload_digest, size_bytes,
-       created_at, published_at
+       created_at, published_at, payload_zstd
 FROM review_published WHERE key = $1 ORDER BY version, resource_type`
 
 	showRefusalsSQL = `
@@ -394,7 +403,67 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	if h.Refusals == nil {
 		h.Refusals = []Refusal{}
 	}
-	return h, br.Close()
+	if err := br.Close(); err != nil {
+		return History{}, err
+	}
+	if err := r.decodeRecords(ctx, h.Versions); err != nil {
+		return History{}, err
+	}
+	for i := range h.Versions {
+		for j := range h.Versions[i].Messages {
+			if err := r.decodeMessage(ctx, &h.Versions[i].Messages[j]); err != nil {
+				return History{}, fmt.Errorf("read published messages: %w", err)
+			}
+		}
+	}
+	return h, nil
+}
+
+// decodeRecords reads the compressed records of vs (0018) with the
+// dictionaries the reviewer may read (review_dictionary, when a frame
+// names one this binary does not embed). A record that does not decode is
+// reported in its version's RecordError, not returned.
+func (r *Reviewer) decodeRecords(ctx context.Context, vs []Version) error {
+	for i := range vs {
+		v := &vs[i]
+		if v.recordStored == nil {
+			continue
+		}
+		b, err := decodeOutput(ctx, r.pool, reviewerDictionariesSQL, v.recordStored)
+		v.recordStored = nil
+		if err != nil && !errors.Is(err, rawcodec.ErrCorrupt) {
+			return fmt.Errorf("derivation %d record: %w", v.ID, err)
+		}
+		if err == nil {
+			v.Record = &fhirmap.Record{}
+			if err = json.Unmarshal(b, v.Record); err != nil {
+				v.Record = nil
+			}
+		}
+		if err != nil {
+			v.RecordError = fmt.Sprintf("stored record does not decode: %v", err)
+		}
+	}
+	return nil
+}
+
+// decodeMessage gives a message stored compressed (0018) its exact bytes,
+// checked against the digest stored with them: bytes that do not match
+// are refused, never shown as published.
+func (r *Reviewer) decodeMessage(ctx context.Context, m *PublishedMessage) error {
+	if m.stored == nil {
+		return nil
+	}
+	sum, err := hex.DecodeString(m.Digest)
+	if err != nil {
+		return fmt.Errorf("outbox %d: stored digest %q: %w", m.Seq, m.Digest, err)
+	}
+	b, err := decodePublished(ctx, r.pool, reviewerDictionariesSQL, m.Seq, m.stored, sum)
+	if err != nil {
+		return err
+	}
+	m.Payload, m.PayloadText, m.stored = b, string(b), nil
+	return nil
 }
 
 func collectPublished(br pgx.BatchResults) (map[int64][]PublishedMessage, error) {
@@ -407,8 +476,9 @@ func collectPublished(br pgx.BatchResults) (map[int64][]PublishedMessage, error)
 	var m PublishedMessage
 	var headers string
 	var published *time.Time
+	var stored []byte
 	_, err = pgx.ForEachRow(rows, []any{&owner, &m.ResourceType, &m.Seq, &m.Subject, &m.MsgID, &headers, &m.Payload,
-		&m.Digest, &m.SizeBytes, &m.Recorded, &published}, func() error {
+		&m.Digest, &m.SizeBytes, &m.Recorded, &published, &stored}, func() error {
 		x := m
 		x.Headers = nil
 		if err := json.Unmarshal([]byte(headers), &x.Headers); err != nil {
@@ -416,6 +486,9 @@ func collectPublished(br pgx.BatchResults) (map[int64][]PublishedMessage, error)
 		}
 		x.Payload = append([]byte(nil), m.Payload...)
 		x.PayloadText = string(x.Payload)
+		if stored != nil {
+			x.stored = append([]byte(nil), stored...)
+		}
 		x.Recorded = x.Recorded.UTC()
 		if published != nil {
 			t := published.UTC()
@@ -508,7 +581,8 @@ func scanVersion(row pgx.CollectableRow) (Version, error) {
 	err := row.Scan(&v.ID, &v.Key, &v.Version, &v.ObservationID, &v.Kind, &v.Patient, &v.Encounter, &v.BloodGas,
 		&v.Effective, &value, &v.Unit, &v.Method, &v.MethodVersion, &consts, &assumptions, &v.Basis,
 		&v.Interpretation.Code, &v.Interpretation.Text, &v.Interpretation.Source, &flags, &v.Status, &v.Retracted,
-		&v.Algorithm, &v.Digest, &v.Supersedes, &v.SupersededBy, &v.Current, &v.Recorded, &record, &v.Settings)
+		&v.Algorithm, &v.Digest, &v.Supersedes, &v.SupersededBy, &v.Current, &v.Recorded, &record, &v.Settings,
+		&v.recordStored)
 	if err != nil {
 		return v, err
 	}
@@ -564,6 +638,9 @@ ORDER BY effective, key, version` + pageSQL
 // version), without their inputs.
 func (r *Reviewer) List(ctx context.Context, f Filter) (Page[Version], error) {
 	out, err := queryPage(ctx, r.pool, listSQL, scanVersion, f)
+	if err == nil {
+		err = r.decodeRecords(ctx, out.Rows)
+	}
 	if err != nil {
 		return out, fmt.Errorf("list derivations: %w", err)
 	}

@@ -85,7 +85,7 @@ func TestRoles(t *testing.T) {
 	}
 	for _, stmt := range []string{
 		"DELETE FROM fact_row", "DELETE FROM fact_term", "DELETE FROM outbox", "DELETE FROM derivation", "DELETE FROM inbox",
-		"UPDATE derivation SET value = 0", "UPDATE outbox SET payload = ''", "UPDATE fact_row SET value = 0", "UPDATE fact_term SET unit = ''",
+		"UPDATE derivation SET value = 0", "UPDATE outbox SET stored_payload = ''", "UPDATE fact_row SET value = 0", "UPDATE fact_term SET unit = ''",
 		"TRUNCATE refusal", "DROP TABLE dead_letter", "SELECT * FROM review_derivation",
 		// Migration 0005: raw payloads are written, never read back.
 		"SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM input_resource",
@@ -96,6 +96,12 @@ func TestRoles(t *testing.T) {
 	} {
 		_, err := writer.Exec(ctx, stmt)
 		wantDenied(t, "writer "+stmt, err)
+	}
+	// Migration 0018: the relay reads the stored dictionaries (a frame made
+	// by a newer replica's dictionary).
+	var dicts int
+	if err := writer.QueryRow(ctx, "SELECT count(*) FROM raw_dictionary WHERE kind IN ('outbox', 'record')").Scan(&dicts); err != nil || dicts != 2 {
+		t.Errorf("writer reads raw_dictionary: %d outbox and record dictionaries, %v; want 2", dicts, err)
 	}
 	// What the writer still reads of those tables: every column but raw.
 	var refs int
@@ -109,7 +115,7 @@ func TestRoles(t *testing.T) {
 	// Migration 0005: the writer cannot queue an outbox row for a NATS
 	// system subject, a wildcard or an empty token; a plain subject passes
 	// (the control, rolled back).
-	const outboxRow = `INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
+	const outboxRow = `INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at)
 		VALUES ($1, 'roles-test/' || $1, '{}', '\x00', (SELECT inbox_key FROM inbox LIMIT 1), now())`
 	for _, c := range []struct {
 		subject string
@@ -140,7 +146,7 @@ func TestRoles(t *testing.T) {
 
 	reviewer := poolAs(t, ctx, u, "ventderive_reviewer")
 	for _, view := range []string{"review_derivation", "review_derivation_input", "review_refusal", "review_refusal_input",
-		"review_head", "review_fact", "review_dead_letter", "review_outbox", "review_settings"} {
+		"review_head", "review_fact", "review_dead_letter", "review_outbox", "review_settings", "review_dictionary"} {
 		var n int
 		if err := reviewer.QueryRow(ctx, "SELECT count(*) FROM "+view).Scan(&n); err != nil || n == 0 {
 			t.Errorf("reviewer reads %s: %d rows, %v; want rows", view, n, err)
@@ -154,6 +160,9 @@ func TestRoles(t *testing.T) {
 		"SELECT * FROM fact", "SELECT * FROM fact_row", "SELECT raw FROM input_resource", "SELECT raw FROM dead_letter", "SELECT * FROM derivation",
 		"SELECT * FROM outbox", "SELECT * FROM head", "SELECT * FROM site_settings", "INSERT INTO inbox VALUES ('x', 's', 0, now(), now(), 0, 0)",
 		"CREATE TABLE reviewer_notes (x int)",
+		// Migration 0018: the reviewer reads the outbox and record
+		// dictionaries through review_dictionary, never the inbox one.
+		"SELECT * FROM raw_dictionary",
 	} {
 		_, err := reviewer.Exec(ctx, stmt)
 		wantDenied(t, "reviewer "+stmt, err)

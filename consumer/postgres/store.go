@@ -397,10 +397,10 @@ WITH d AS (
     INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
         blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
         interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest,
-        supersedes_id, inbox_key, created_at, record, settings_digest)
+        supersedes_id, inbox_key, created_at, record_zstd, settings_digest)
     VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20,
         $21, $22, $23, $24, (SELECT id FROM derivation WHERE key = $1 AND version = $2 - 1), $25, $26,
-        $33::jsonb, nullif($34, ''))
+        $33::bytea, nullif($34, ''))
     RETURNING id
 ), i AS (
     INSERT INTO derivation_input (derivation_id, ordinal, role, fact_key, fact_digest, resource_ref, time_offset, fallback)
@@ -443,10 +443,13 @@ SELECT $1, $2, s.snapshot::jsonb ->> 'algorithm', s.snapshot::jsonb ->> 'aliasDi
 FROM (SELECT $2::text AS snapshot) s
 ON CONFLICT (digest) DO NOTHING`
 
+	// insertOutboxSQL stores each payload compressed ($4, storedOutbox)
+	// with the SHA-256 and length of its exact bytes ($7, $8).
 	insertOutboxSQL = `
-INSERT INTO outbox (subject, msg_id, headers, payload, inbox_key, created_at)
-SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, $5, $6
-FROM unnest($1::text[], $2::text[], $3::text[], $4::bytea[]) WITH ORDINALITY AS u(subject, msg_id, headers, payload, ord)
+INSERT INTO outbox (subject, msg_id, headers, stored_payload, payload_sha256, payload_size, inbox_key, created_at)
+SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, u.sum, u.size, $5, $6
+FROM unnest($1::text[], $2::text[], $3::text[], $4::bytea[], $7::bytea[], $8::int[])
+     WITH ORDINALITY AS u(subject, msg_id, headers, payload, sum, size, ord)
 ORDER BY u.ord
 ON CONFLICT (msg_id) DO NOTHING`
 )
@@ -1060,21 +1063,13 @@ func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, 
 			return nil, fmt.Errorf("encode record: %w", err)
 		}
 	}
+	record = storedRecord(record) // compressed (0018); nil stays NULL
 	l := lineageOf(d.Inputs)
 	return []any{d.Key, version, d.ID, d.Kind, d.Patient, s.hash(d.Patient), d.Encounter, d.BloodGas,
 		d.Effective.UTC(), r.Value, r.Unit, r.Method, r.MethodVersion, string(cj), string(aj), r.Basis(),
 		r.Interpretation.Code, r.Interpretation.Text, r.Interpretation.Source, string(fj), string(d.Status),
 		d.Retracted, d.Algorithm, d.Digest, inbox, now,
-		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback, optJSON(record), settings}, nil
-}
-
-// optJSON stores no bytes as NULL.
-func optJSON(b []byte) *string {
-	if b == nil {
-		return nil
-	}
-	s := string(b)
-	return &s
+		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback, record, settings}, nil
 }
 
 // queued counts what queueChanges queued, for readChanges.
@@ -1088,7 +1083,8 @@ type queued struct {
 func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patientPlan, now time.Time, res *consumer.IngestResult) (queued, error) {
 	var q queued
 	var subj, ids, hdrs []string
-	var payloads [][]byte
+	var payloads, sums [][]byte
+	var sizes []int32
 	seen := map[string]bool{}
 	for _, p := range order {
 		if st := p.changes.Settings; st.Digest != "" && !seen[st.Digest] {
@@ -1125,11 +1121,13 @@ func (s *Store) queueChanges(b *pgx.Batch, msg consumer.Message, order []*patien
 			if err != nil {
 				return q, fmt.Errorf("encode outbox headers: %w", err)
 			}
-			subj, ids, hdrs, payloads = append(subj, o.Subject), append(ids, o.MsgID), append(hdrs, string(h)), append(payloads, o.Payload)
+			stored, sum, size := storedOutbox(o.Payload)
+			subj, ids, hdrs, payloads = append(subj, o.Subject), append(ids, o.MsgID), append(hdrs, string(h)), append(payloads, stored)
+			sums, sizes = append(sums, sum), append(sizes, size)
 		}
 	}
 	if len(subj) > 0 {
-		b.Queue(insertOutboxSQL, subj, ids, hdrs, payloads, msg.InboxKey, now)
+		b.Queue(insertOutboxSQL, subj, ids, hdrs, payloads, msg.InboxKey, now, sums, sizes)
 		q.outbox = len(subj)
 	}
 	return q, nil

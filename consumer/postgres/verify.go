@@ -4,14 +4,17 @@ import (
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
+	"errors"
 	"fmt"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgtype"
 
 	"github.com/ventderive/ventderive/consumer"
+	"github.com/ventderive/ventderive/consumer/rawcodec"
 	"github.com/ventderive/ventderive/fhirmap"
 )
 
@@ -102,9 +105,14 @@ WHERE e.id = $1 AND s.status <> 'entered-in-error'
   AND NOT EXISTS (SELECT 1 FROM review_derivation n WHERE n.key = s.key AND n.created_at <= e.created_at AND n.id > s.id)
   AND NOT EXISTS (SELECT 1 FROM review_refusal r WHERE r.key = s.key AND r.created_at > s.created_at AND r.created_at <= e.created_at)`
 
+// verifyObservationSQL reads the digest of each published message and, for
+// one stored compressed (0018), its frame, which verifyVersions decodes and
+// checks against the digest (the Observation's and the Provenance's): the
+// re-encoded Observation is compared with the bytes kept, not only with
+// the digest written beside them.
 const verifyObservationSQL = `
-SELECT derivation_id, payload_digest FROM review_published
-WHERE derivation_id = ANY($1::bigint[]) AND resource_type = 'Observation'`
+SELECT derivation_id, resource_type, seq, payload_digest, payload_zstd FROM review_published
+WHERE derivation_id = ANY($1::bigint[])`
 
 // Verify re-derives every stored derivation version the filter selects
 // (List's order and paging) from its stored inputs and its settings
@@ -206,19 +214,34 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 		return nil, err
 	}
 	type obsDigest struct {
-		id     int64
-		digest string
+		id, seq      int64
+		resourceType string
+		digest       string
+		stored       []byte
 	}
 	obs, err := queryRows(ctx, r.pool, verifyObservationSQL, func(row pgx.CollectableRow) (obsDigest, error) {
 		var o obsDigest
-		return o, row.Scan(&o.id, &o.digest)
+		return o, row.Scan(&o.id, &o.resourceType, &o.seq, &o.digest, &o.stored)
 	}, ids)
 	if err != nil {
 		return nil, fmt.Errorf("read published digests: %w", err)
 	}
 	published := map[int64]string{}
+	damaged := map[int64]string{}
 	for _, o := range obs {
-		published[o.id] = o.digest
+		if o.resourceType == "Observation" {
+			published[o.id] = o.digest
+		}
+		if o.stored == nil {
+			continue
+		}
+		m := PublishedMessage{Seq: o.seq, Digest: o.digest, stored: o.stored}
+		if err := r.decodeMessage(ctx, &m); err != nil {
+			if !errors.Is(err, rawcodec.ErrCorrupt) && !errors.Is(err, ErrOutputMismatch) {
+				return nil, fmt.Errorf("read published messages: %w", err)
+			}
+			damaged[o.id] = strings.TrimSpace(damaged[o.id] + " " + o.resourceType + ": " + err.Error())
+		}
 	}
 	settings := map[string]*consumer.Settings{}
 	out := make([]Verdict, 0, len(versions))
@@ -228,6 +251,12 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 			Published: v.Published, PublishedValue: v.Value, Unit: v.Unit, DisplayUnit: v.DisplayUnit,
 			Interpretation: v.Interpretation.Code, Digest: v.Digest, ObservationDigest: published[v.ID],
 			Findings: []string{}, Recorded: v.Recorded}
+		if why, ok := damaged[v.ID]; ok {
+			x.Findings = append(x.Findings, "published: the stored published bytes are damaged: "+why)
+		}
+		if v.RecordError != "" {
+			x.Findings = append(x.Findings, "record: "+v.RecordError)
+		}
 		switch {
 		case v.Status == string(fhirmap.StatusEnteredInError):
 			x.Outcome, x.Why = OutcomeRetraction, "entered in error: published without a value, nothing to reproduce"
@@ -273,6 +302,9 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 				}
 			}
 			rederive(&x, v, inputs[v.ID], others, s.Site)
+		}
+		if len(x.Findings) > 0 {
+			x.Outcome = OutcomeMismatch // damaged stored bytes, whatever else holds
 		}
 		out = append(out, x)
 	}

@@ -1,0 +1,114 @@
+package postgres
+
+import (
+	"context"
+	"crypto/sha256"
+	"errors"
+	"fmt"
+	"slices"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/ventderive/ventderive/consumer/rawcodec"
+)
+
+// Outbox payloads and derivation records as the store keeps them
+// (migration 0018): zstd frames made with the embedded outbox and record
+// dictionaries. Rows written before stay plain; every reader goes through
+// decodeOutput, which returns a plain value as it is.
+
+// storedOutbox is the stored form of an outbox payload with the SHA-256 and
+// length of the exact bytes, which outbox.payload_sha256 and payload_size
+// keep beside the frame (PostgreSQL cannot decompress it).
+func storedOutbox(payload []byte) (stored, sum []byte, size int32) {
+	s := sha256.Sum256(payload)
+	return rawcodec.Outbox().Encode(payload), s[:], int32(len(payload))
+}
+
+// storedRecord is the stored form of a derivation record (nil: none).
+func storedRecord(record []byte) []byte {
+	if record == nil {
+		return nil
+	}
+	return rawcodec.Record().Encode(record)
+}
+
+// ErrOutputMismatch: a stored outbox payload whose decoded bytes are not
+// the SHA-256 stored with it.
+var ErrOutputMismatch = errors.New("stored outbox payload is not the bytes recorded for it")
+
+// querier is what decodeOutput reads raw_dictionary through (a pool or a
+// transaction).
+type querier interface {
+	Query(ctx context.Context, sql string, args ...any) (pgx.Rows, error)
+}
+
+// decodeOutput returns the exact bytes of a stored outbox payload or
+// record: a plain value as it is, a frame decoded with the embedded
+// dictionaries or, when it names one this binary does not embed (a newer
+// replica's), with the dictionaries in the database (dictSQL: the rows id,
+// dictionary of raw_dictionary or review_dictionary). A frame that does not
+// decode is an error wrapping rawcodec.ErrCorrupt.
+func decodeOutput(ctx context.Context, q querier, dictSQL string, stored []byte) ([]byte, error) {
+	if !rawcodec.IsCompressed(stored) {
+		return stored, nil
+	}
+	id := rawcodec.FrameDictID(stored)
+	if id == 0 || slices.ContainsFunc(rawcodec.Embedded(), func(d rawcodec.Dictionary) bool { return d.ID == id }) {
+		return rawcodec.Outbox().Decode(stored)
+	}
+	c, err := storedCodec(ctx, q, dictSQL)
+	if err != nil {
+		return nil, err
+	}
+	return c.Decode(stored)
+}
+
+const (
+	writerDictionariesSQL   = `SELECT id, dictionary FROM raw_dictionary WHERE kind IN ('outbox', 'record') ORDER BY id DESC`
+	reviewerDictionariesSQL = `SELECT id, dictionary FROM review_dictionary ORDER BY id DESC`
+)
+
+// storedCodec decodes with every dictionary dictSQL returns.
+func storedCodec(ctx context.Context, q querier, dictSQL string) (*rawcodec.Codec, error) {
+	rows, err := q.Query(ctx, dictSQL)
+	if err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	type dict struct {
+		ID         int64
+		Dictionary []byte
+	}
+	ds, err := pgx.CollectRows(rows, pgx.RowToStructByPos[dict])
+	if err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	if len(ds) == 0 {
+		return nil, errors.New("read dictionaries: none stored (run ventderive migrate)")
+	}
+	var all [][]byte
+	for _, d := range ds {
+		if id, err := rawcodec.DictID(d.Dictionary); err != nil || int64(id) != d.ID {
+			return nil, fmt.Errorf("dictionary row %d does not hold the dictionary of that ID", d.ID)
+		}
+		all = append(all, d.Dictionary)
+	}
+	return rawcodec.New(all[0], all[1:]...)
+}
+
+// decodePublished returns the exact bytes of a stored outbox payload and
+// checks them against the SHA-256 stored with a compressed one (sum; nil
+// for a plain row, whose bytes are their own record).
+func decodePublished(ctx context.Context, q querier, dictSQL string, seq int64, stored, sum []byte) ([]byte, error) {
+	b, err := decodeOutput(ctx, q, dictSQL, stored)
+	if err != nil {
+		return nil, fmt.Errorf("outbox %d: %w", seq, err)
+	}
+	if rawcodec.IsCompressed(stored) {
+		got := sha256.Sum256(b)
+		if len(sum) != len(got) || !slices.Equal(sum, got[:]) {
+			return nil, fmt.Errorf("outbox %d: %w: decoded bytes SHA-256 %x, stored %x", seq, ErrOutputMismatch, got, sum)
+		}
+	}
+	return b, nil
+}
