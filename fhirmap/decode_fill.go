@@ -18,6 +18,7 @@ package fhirmap
 // before. FuzzFillSameAsTwoPass and TestFillEveryField check this.
 
 import (
+	"encoding/binary"
 	"encoding/json"
 	"reflect"
 	"strconv"
@@ -31,7 +32,10 @@ type fillInfo struct {
 	ptr   bool         // the field is a pointer (not for arrays: their elements are values)
 	elem  reflect.Type // the type of one value: the field's type without pointer and slice
 	slice reflect.Type // arrays: the slice type
+	str   bool         // a *string (taken from the filler's slab)
 }
+
+var stringType = reflect.TypeFor[string]()
 
 func newFillInfo(f *jsonField, t reflect.Type, index []int) fillInfo {
 	fi := fillInfo{index: index}
@@ -50,6 +54,7 @@ func newFillInfo(f *jsonField, t reflect.Type, index []int) fillInfo {
 		}
 	}
 	fi.elem = t
+	fi.str = fi.ptr && t == stringType
 	switch f.kind {
 	case jkString, jkNumber:
 		fi.ok = t.Kind() == reflect.String
@@ -99,6 +104,21 @@ type filler struct {
 	data  []byte
 	pos   int
 	depth int // objects and arrays open at pos, as walker.depth
+
+	// strs holds the strings *string fields point to, a few allocated at
+	// once instead of one each (the structs filled live only while their
+	// message is decoded).
+	strs []string
+}
+
+// newString returns a pointer to a new empty string.
+func (f *filler) newString() *string {
+	if len(f.strs) == 0 {
+		f.strs = make([]string, 16)
+	}
+	p := &f.strs[0]
+	f.strs = f.strs[1:]
+	return p
 }
 
 // fillStrict decodes data, a JSON object, into v, a pointer to a zero value
@@ -202,7 +222,14 @@ func (f *filler) value(jf *jsonField, fv reflect.Value) bool {
 		if c == 'n' || c == '[' {
 			return false
 		}
-		if jf.fill.ptr {
+		if jf.fill.str {
+			if f.peek() != '"' {
+				return false
+			}
+			p := f.newString()
+			fv.Set(reflect.ValueOf(p))
+			fv = reflect.ValueOf(p).Elem()
+		} else if jf.fill.ptr {
 			p := reflect.New(jf.fill.elem)
 			fv.Set(p)
 			fv = p.Elem()
@@ -350,7 +377,18 @@ func (f *filler) str() (int, bool) {
 	plain := true
 	d := f.data
 	for i := f.pos + 1; i < len(d); {
+		// Eight plain bytes at a time, then one by one.
+		for i+8 <= len(d) && !specialIn(binary.LittleEndian.Uint64(d[i:])) {
+			i += 8
+		}
+		if i >= len(d) {
+			break
+		}
 		c := d[i]
+		if plainByte[c] {
+			i++
+			continue
+		}
 		switch {
 		case c == '"':
 			f.pos = i + 1
@@ -385,6 +423,27 @@ func (f *filler) str() (int, bool) {
 		i++
 	}
 	return -1, false
+}
+
+// plainByte holds the bytes that stand for themselves in a JSON string:
+// printable ASCII but '"' and '\\'.
+var plainByte = func() (t [256]bool) {
+	for c := 0x20; c < 0x80; c++ {
+		t[c] = c != '"' && c != '\\'
+	}
+	return t
+}()
+
+// specialIn reports whether any of the eight bytes of w is not plain: below
+// 0x20, 0x80 or above, '"' or '\\' (the exact zero-byte test of "Bit
+// Twiddling Hacks", S. E. Anderson: (x - 0x01..) & ^x & 0x80.. is non-zero
+// exactly when some byte of x is zero).
+func specialIn(w uint64) bool {
+	const ones, highs = 0x0101010101010101, 0x8080808080808080
+	zero := func(x uint64) uint64 { return (x - ones) & ^x & highs }
+	// A byte below 0x20 (of one under 0x80): x - 0x20 borrows into its high bit.
+	below := (w - 0x20*ones) & ^w & highs
+	return below|w&highs|zero(w^('"'*ones))|zero(w^('\\'*ones)) != 0
 }
 
 func isDigit(c byte) bool { return '0' <= c && c <= '9' }

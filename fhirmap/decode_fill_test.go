@@ -478,3 +478,30 @@ func TestDecodeSameAsTwoPassEdges(t *testing.T) {
 		}
 	}
 }
+
+// TestSpecialIn: the eight-byte test against the byte table, for every
+// byte value at every position of words otherwise plain or random.
+func TestSpecialIn(t *testing.T) {
+	ref := func(w uint64) bool {
+		for k := range 8 {
+			if !plainByte[byte(w>>(8*k))] {
+				return true
+			}
+		}
+		return false
+	}
+	x := uint64(0x9e3779b97f4a7c15)
+	for c := range 256 {
+		for k := range 8 {
+			for _, base := range []uint64{0x6161616161616161, 0x2020202020202020, 0x7f7f7f7f7f7f7f7f, x} {
+				w := base&^(0xff<<(8*k)) | uint64(c)<<(8*k)
+				if specialIn(w) != ref(w) {
+					t.Fatalf("specialIn(%#x) = %v", w, specialIn(w))
+				}
+			}
+			x ^= x << 13
+			x ^= x >> 7
+			x ^= x << 17
+		}
+	}
+}

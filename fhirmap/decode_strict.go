@@ -52,7 +52,7 @@ type jsonField struct {
 	enum   reflect.Type // jkEnum: the element type
 	choice string       // the choice element name (e.g. "value"), or ""
 
-	mu     sync.RWMutex     // guards codes
+	mu     sync.RWMutex     // guards codes and values
 	codes  map[string]bool  // jkEnum: quoted codes known to be valid
 	values map[string]int64 // jkEnum: quoted valid codes and the value each stands for (codeValue)
 
