@@ -8,6 +8,7 @@ import (
 	"errors"
 	"fmt"
 	"reflect"
+	"slices"
 	"strconv"
 	"strings"
 	"unicode/utf8"
@@ -143,7 +144,7 @@ func Decode(raw []byte, codes *CodeTable) (Decoded, error) {
 	if err := d.message(raw); err != nil {
 		return Decoded{}, err
 	}
-	return d.out, nil
+	return d.result(), nil
 }
 
 // DecodeFile reads a file: one JSON resource, or NDJSON (one resource per
@@ -187,13 +188,25 @@ func DecodeFile(name string, raw []byte, codes *CodeTable) (Decoded, error) {
 	if lines == 0 {
 		return Decoded{}, fmt.Errorf("decode file %s: %w", name, &DecodeError{Entry: -1, Reason: "empty", Detail: "the file holds no resource"})
 	}
-	return d.out, nil
+	return d.result(), nil
 }
 
 // decoder accumulates the result of one message or file.
 type decoder struct {
 	codes *CodeTable
 	out   Decoded
+}
+
+// result is d.out with Facts and Resources nil when empty, as append leaves
+// them when nothing was added (bundle makes room ahead).
+func (d *decoder) result() Decoded {
+	if len(d.out.Facts) == 0 {
+		d.out.Facts = nil
+	}
+	if len(d.out.Resources) == 0 {
+		d.out.Resources = nil
+	}
+	return d.out
 }
 
 func refuse(entry int, field, reason, detail string) *DecodeError {
@@ -489,6 +502,22 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 		}
 	}
 	r.obs = obs
+
+	// Room for the facts and resources the entries can give, so that the
+	// results are not copied as they grow (result drops it when unused).
+	nf, nr := 0, 0
+	for i := range b.Entry {
+		switch {
+		case obs[i] != nil:
+			nf, nr = nf+1+len(obs[i].o.Component), nr+1
+		case patients[i] != nil:
+			nf, nr = nf+2, nr+1
+		case goals[i] != nil:
+			nf, nr = nf+1, nr+1
+		}
+	}
+	d.out.Facts = slices.Grow(d.out.Facts, nf)
+	d.out.Resources = slices.Grow(d.out.Resources, nr)
 
 	// Panels in the Bundle pass their specimen to their members.
 	for _, e := range obs {

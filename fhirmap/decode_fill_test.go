@@ -505,3 +505,16 @@ func TestSpecialIn(t *testing.T) {
 		}
 	}
 }
+
+// TestDecodeNilWhenNothing: a Bundle that yields no fact leaves Facts and
+// Resources nil, as before the decoder made room for them ahead.
+func TestDecodeNilWhenNothing(t *testing.T) {
+	unknown := bytes.Replace(edgeObs(`46.2`, ""), []byte(`"2019-8"`), []byte(`"0000-0"`), 1)
+	d, err := Decode(edgeBundle(`{"resource":`+string(unknown)+`}`), nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if d.Facts != nil || d.Resources != nil || len(d.Ignored) != 1 {
+		t.Fatalf("got facts %#v, resources %#v, ignored %v", d.Facts, d.Resources, d.Ignored)
+	}
+}
