@@ -22,6 +22,10 @@ package fhirmap
 // any input: it never reads out of bounds and always advances or stops.
 // When it refuses, the caller first checks the syntax, so that malformed
 // JSON is always reported as such.
+//
+// Most resources never reach this pass: the one-pass decoder
+// (decode_fill.go) reads them, on the same schema, and leaves to this pass
+// and encoding/json only what it cannot show they would accept alike.
 
 import (
 	"encoding/json"
