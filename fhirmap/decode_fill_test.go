@@ -54,6 +54,11 @@ func sameAsTwoPass(t testing.TB, raw []byte) int {
 	if !reflect.DeepEqual(got, want) {
 		t.Fatalf("result differs:\none pass:  %+v\ntwo passes: %+v\ninput: %q", got, want, clip(raw))
 	}
+	for _, key := range []string{"resourceType", "id"} {
+		if got, want := peekTopString(raw, key), peekTopStringRef(raw, key); got != want {
+			t.Fatalf("peekTopString(%q) = %q, before %q: %q", key, got, want, clip(raw))
+		}
+	}
 	accepted := 0
 	for _, fs := range fillSchemas {
 		one := newOf(fs.schema)
@@ -70,6 +75,49 @@ func sameAsTwoPass(t testing.TB, raw []byte) int {
 		}
 	}
 	return accepted
+}
+
+// peekTopStringRef is peekTopString as it was before it read plain strings
+// itself: every string value through json.Unmarshal.
+func peekTopStringRef(data []byte, key string) string {
+	w := walker{data: data}
+	w.ws()
+	if w.peek() != '{' {
+		return ""
+	}
+	w.pos++
+	for {
+		w.ws()
+		switch w.peek() {
+		case 0, '}':
+			return ""
+		case ',':
+			w.pos++
+			w.ws()
+		}
+		k, ok := w.key()
+		if !ok {
+			return ""
+		}
+		w.ws()
+		if w.peek() != ':' {
+			return ""
+		}
+		w.pos++
+		w.ws()
+		if string(k) == key && w.peek() == '"' {
+			start := w.pos
+			end, _, ok := w.skipString()
+			var s string
+			if !ok || json.Unmarshal(data[start:end], &s) != nil {
+				return ""
+			}
+			return s
+		}
+		if !w.skipValue() {
+			return ""
+		}
+	}
 }
 
 func sameError(a, b error) bool {
