@@ -8,6 +8,8 @@ import (
 	"errors"
 	"fmt"
 	"reflect"
+	"slices"
+	"strconv"
 	"strings"
 	"unicode/utf8"
 
@@ -142,7 +144,7 @@ func Decode(raw []byte, codes *CodeTable) (Decoded, error) {
 	if err := d.message(raw); err != nil {
 		return Decoded{}, err
 	}
-	return d.out, nil
+	return d.result(), nil
 }
 
 // DecodeFile reads a file: one JSON resource, or NDJSON (one resource per
@@ -186,13 +188,25 @@ func DecodeFile(name string, raw []byte, codes *CodeTable) (Decoded, error) {
 	if lines == 0 {
 		return Decoded{}, fmt.Errorf("decode file %s: %w", name, &DecodeError{Entry: -1, Reason: "empty", Detail: "the file holds no resource"})
 	}
-	return d.out, nil
+	return d.result(), nil
 }
 
 // decoder accumulates the result of one message or file.
 type decoder struct {
 	codes *CodeTable
 	out   Decoded
+}
+
+// result is d.out with Facts and Resources nil when empty, as append leaves
+// them when nothing was added (bundle makes room ahead).
+func (d *decoder) result() Decoded {
+	if len(d.out.Facts) == 0 {
+		d.out.Facts = nil
+	}
+	if len(d.out.Resources) == 0 {
+		d.out.Resources = nil
+	}
+	return d.out
 }
 
 func refuse(entry int, field, reason, detail string) *DecodeError {
@@ -252,8 +266,23 @@ func syntaxDetail(raw []byte) string {
 	return "invalid JSON"
 }
 
-// strictUnmarshal checks raw against s and then fills v.
+// strictUnmarshal checks raw against s and then fills v, a pointer to a
+// zero value of s's struct type: in one pass (fillStrict) when it can, else,
+// and for every refusal, with strictUnmarshalTwoPass.
 func strictUnmarshal(raw []byte, s *jsonSchema, root string, entry int, v any) *DecodeError {
+	if onePass && fillStrict(raw, s, v) {
+		return nil
+	}
+	reflect.ValueOf(v).Elem().SetZero()
+	return strictUnmarshalTwoPass(raw, s, root, entry, v)
+}
+
+// onePass is false only in tests that compare with the two-pass path.
+var onePass = true
+
+// strictUnmarshalTwoPass checks raw against s (checkStrict), then fills v
+// with encoding/json; it gives every refusal of a resource's JSON.
+func strictUnmarshalTwoPass(raw []byte, s *jsonSchema, root string, entry int, v any) *DecodeError {
 	if de := checkStrict(raw, s, root); de != nil {
 		// Too deep is said as such even where encoding/json would call it a
 		// syntax error (it stops at 10,000 levels).
@@ -388,7 +417,7 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 
 	r := resolver{byURL: map[string]int{}, versions: map[string][]int{}, byRef: map[string]int{}, types: make([]string, len(b.Entry)), ids: make([]string, len(b.Entry))}
 	for i, en := range b.Entry {
-		root := fmt.Sprintf("Bundle.entry[%d]", i)
+		root := entryPath(i)
 		if len(en.Resource) == 0 {
 			if btype == "message" && i == 0 {
 				return refuse(i, root+".resource", "wrong-resource-type", "a message Bundle starts with a MessageHeader")
@@ -443,37 +472,52 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 	goals := make([]*goalJSON, len(b.Entry))
 	r.specimens = map[int]*specimenJSON{}
 	for i, en := range b.Entry {
-		root := fmt.Sprintf("Bundle.entry[%d].resource", i)
 		switch r.types[i] {
 		case "":
 			continue // a request without a resource, already recorded
 		case "Observation":
-			e := &obsEntry{entry: i, root: root, raw: en.Resource, fullURL: deref(en.FullUrl)}
-			if err := strictUnmarshal(en.Resource, obsSchema, root, i, &e.o); err != nil {
+			e := &obsEntry{entry: i, root: entryPath(i) + ".resource", raw: en.Resource, fullURL: deref(en.FullUrl)}
+			if err := strictUnmarshal(en.Resource, obsSchema, e.root, i, &e.o); err != nil {
 				return err
 			}
 			obs[i] = e
 		case "Patient":
-			p, err := decodePatient(en.Resource, i, root)
+			p, err := decodePatient(en.Resource, i, entryPath(i)+".resource")
 			if err != nil {
 				return err
 			}
 			patients[i] = p
 		case "Goal":
-			g, err := decodeGoal(en.Resource, i, root)
+			g, err := decodeGoal(en.Resource, i, entryPath(i)+".resource")
 			if err != nil {
 				return err
 			}
 			goals[i] = g
 		case "Specimen":
 			var s specimenJSON
-			if err := strictUnmarshal(en.Resource, specimenSchema, root, i, &s); err != nil {
+			if err := strictUnmarshal(en.Resource, specimenSchema, entryPath(i)+".resource", i, &s); err != nil {
 				return err
 			}
 			r.specimens[i] = &s
 		}
 	}
 	r.obs = obs
+
+	// Room for the facts and resources the entries can give, so that the
+	// results are not copied as they grow (result drops it when unused).
+	nf, nr := 0, 0
+	for i := range b.Entry {
+		switch {
+		case obs[i] != nil:
+			nf, nr = nf+1+len(obs[i].o.Component), nr+1
+		case patients[i] != nil:
+			nf, nr = nf+2, nr+1
+		case goals[i] != nil:
+			nf, nr = nf+1, nr+1
+		}
+	}
+	d.out.Facts = slices.Grow(d.out.Facts, nf)
+	d.out.Resources = slices.Grow(d.out.Resources, nr)
 
 	// Panels in the Bundle pass their specimen to their members.
 	for _, e := range obs {
@@ -502,18 +546,17 @@ func (d *decoder) bundle(raw []byte) *DecodeError {
 	}
 
 	for i, en := range b.Entry {
-		root := fmt.Sprintf("Bundle.entry[%d].resource", i)
 		switch {
 		case obs[i] != nil:
 			if err := d.observationFacts(obs[i], &r); err != nil {
 				return err
 			}
 		case patients[i] != nil:
-			if err := d.patientFacts(patients[i], en.Resource, i, root); err != nil {
+			if err := d.patientFacts(patients[i], en.Resource, i, entryPath(i)+".resource"); err != nil {
 				return err
 			}
 		case goals[i] != nil:
-			if err := d.goalFacts(goals[i], en.Resource, i, root, deref(en.FullUrl), &r); err != nil {
+			if err := d.goalFacts(goals[i], en.Resource, i, entryPath(i)+".resource", deref(en.FullUrl), &r); err != nil {
 				return err
 			}
 		case r.types[i] == "MessageHeader":
@@ -603,8 +646,11 @@ func (r *resolver) name(i int, fullURL string) string {
 	case fullURL != "":
 		return fullURL
 	}
-	return fmt.Sprintf("Bundle.entry[%d]", i)
+	return entryPath(i)
 }
+
+// entryPath is "Bundle.entry[<i>]".
+func entryPath(i int) string { return "Bundle.entry[" + strconv.Itoa(i) + "]" }
 
 // patient resolves a subject reference to "Patient/<id>".
 func (r *resolver) patient(ref string) (string, string) {

@@ -22,6 +22,10 @@ package fhirmap
 // any input: it never reads out of bounds and always advances or stops.
 // When it refuses, the caller first checks the syntax, so that malformed
 // JSON is always reported as such.
+//
+// Most resources never reach this pass: the one-pass decoder
+// (decode_fill.go) reads them, on the same schema, and leaves to this pass
+// and encoding/json only what it cannot show they would accept alike.
 
 import (
 	"encoding/json"
@@ -52,8 +56,11 @@ type jsonField struct {
 	enum   reflect.Type // jkEnum: the element type
 	choice string       // the choice element name (e.g. "value"), or ""
 
-	mu    sync.RWMutex    // guards codes
-	codes map[string]bool // jkEnum: quoted codes known to be valid
+	mu     sync.RWMutex     // guards codes and values
+	codes  map[string]bool  // jkEnum: quoted codes known to be valid
+	values map[string]int64 // jkEnum: quoted valid codes and the value each stands for (codeValue)
+
+	fill fillInfo // where and how the one-pass decoder (decode_fill.go) stores the value
 }
 
 // validCode reports whether quoted is a valid JSON code for the enum type
@@ -106,23 +113,29 @@ func buildSchema(t reflect.Type) *jsonSchema {
 	}
 	s := &jsonSchema{typ: t, fields: map[string]*jsonField{}}
 	schemaCache[t] = s // before recursing: FHIR types are recursive
-	addFields(s, t)
+	addFields(s, t, nil)
 	markChoices(s)
 	return s
 }
 
 // addFields adds the JSON fields of struct t; a field of the outer struct
 // shadows a promoted field of the same name, as in encoding/json.
-func addFields(s *jsonSchema, t reflect.Type) {
-	var embedded []reflect.Type
+func addFields(s *jsonSchema, t reflect.Type, index []int) {
+	type embed struct {
+		t     reflect.Type
+		index []int
+		ptr   bool
+	}
+	var embedded []embed
 	for i := 0; i < t.NumField(); i++ {
 		sf := t.Field(i)
 		if sf.Anonymous {
 			et := sf.Type
-			if et.Kind() == reflect.Pointer {
+			ptr := et.Kind() == reflect.Pointer
+			if ptr {
 				et = et.Elem()
 			}
-			embedded = append(embedded, et)
+			embedded = append(embedded, embed{t: et, index: append(append([]int(nil), index...), i), ptr: ptr})
 			continue
 		}
 		if !sf.IsExported() {
@@ -135,12 +148,17 @@ func addFields(s *jsonSchema, t reflect.Type) {
 		if name == "" {
 			name = sf.Name
 		}
-		s.fields[name] = newJSONField(name, sf.Type)
+		f := newJSONField(name, sf.Type)
+		f.fill = newFillInfo(f, sf.Type, append(append([]int(nil), index...), i))
+		s.fields[name] = f
 	}
 	for _, et := range embedded {
 		inner := &jsonSchema{fields: map[string]*jsonField{}}
-		addFields(inner, et)
+		addFields(inner, et.t, et.index)
 		for name, f := range inner.fields {
+			if et.ptr {
+				f.fill.ok = false // a pointer to an embedded struct: left to encoding/json
+			}
 			if _, shadowed := s.fields[name]; !shadowed {
 				s.fields[name] = f
 			}
@@ -645,6 +663,10 @@ func peekTopString(data []byte, key string) string {
 		w.ws()
 		if string(k) == key && w.peek() == '"' {
 			start := w.pos
+			f := filler{data: data, pos: start}
+			if end, plain := f.str(); end >= 0 && plain {
+				return string(data[start+1 : end-1]) // what json.Unmarshal gives for a plain string
+			}
 			end, _, ok := w.skipString()
 			var s string
 			if !ok || json.Unmarshal(data[start:end], &s) != nil {
