@@ -105,8 +105,8 @@ CREATE TABLE IF NOT EXISTS schema_version (
 	// its ID; a dictionary already stored under that ID is left as it is.
 	storeDictionarySQL = `INSERT INTO raw_dictionary (id, dictionary) VALUES ($1, $2) ON CONFLICT (id) DO NOTHING`
 	dictionaryVersion  = 15
-	// storeDictionariesSQL stores every embedded dictionary (0018: inbox,
-	// outbox and derivation records) with its kind, likewise.
+	// storeDictionariesSQL stores every embedded dictionary (0018: inbox and
+	// outbox) with its kind, likewise.
 	storeDictionariesSQL = `
 INSERT INTO raw_dictionary (id, kind, dictionary)
 SELECT * FROM unnest($1::bigint[], $2::text[], $3::bytea[])

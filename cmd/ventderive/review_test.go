@@ -37,7 +37,6 @@ import (
 	"github.com/ventderive/ventderive/cmd/ventderive/internal/review"
 	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
 	"github.com/ventderive/ventderive/consumer/rawcodec"
-	"github.com/ventderive/ventderive/fhirmap"
 )
 
 // consoleStore is a store filled by the real pipeline (the demo, 6 h of
@@ -340,7 +339,7 @@ func TestReviewConsole(t *testing.T) {
 			       (s.snapshot::jsonb -> 'site' -> 'Window' ->> 'Before')::bigint,
 			       (s.snapshot::jsonb -> 'site' -> 'Window' ->> 'After')::bigint
 			FROM derivation d JOIN site_settings s ON s.digest = d.settings_digest
-			WHERE d.patient_ref = $1 AND d.kind = 'paco2-predicted' AND (d.record IS NOT NULL OR d.record_zstd IS NOT NULL) ORDER BY d.id LIMIT 1`, patient).
+			WHERE d.patient_ref = $1 AND d.kind = 'paco2-predicted' AND d.record IS NOT NULL ORDER BY d.id LIMIT 1`, patient).
 			Scan(&key, &version, &digest, &alias, &algorithm, &ml, &target, &before, &after)
 		if err != nil {
 			t.Fatal(err)
@@ -381,24 +380,14 @@ func TestReviewConsole(t *testing.T) {
 		if alias == "" && !strings.Contains(section, "none (no code alias file)") || alias != "" && !strings.Contains(section, "SHA-256 "+alias) {
 			t.Errorf("version %d's section does not name the alias file %q", version, alias)
 		}
-		// The steps as stored: since migration 0018 the record is a zstd
-		// frame (review_derivation_step expands only the plain records of
-		// older rows), decoded here with the embedded record dictionary.
-		var frame []byte
-		if err := cs.adminPool.QueryRow(ctx, `SELECT record_zstd FROM derivation WHERE key = $1 AND version = $2`, key, version).Scan(&frame); err != nil {
-			t.Fatal(err)
-		}
-		recJSON, err := rawcodec.Record().Decode(frame)
+		rows, err := cs.adminPool.Query(ctx, `SELECT s.basis FROM review_derivation_step s JOIN derivation d ON d.id = s.derivation_id
+			WHERE d.key = $1 AND d.version = $2 ORDER BY s.ordinal`, key, version)
 		if err != nil {
 			t.Fatal(err)
 		}
-		var rec fhirmap.Record
-		if err := json.Unmarshal(recJSON, &rec); err != nil {
+		steps, err := pgx.CollectRows(rows, pgx.RowTo[string])
+		if err != nil {
 			t.Fatal(err)
-		}
-		var steps []string
-		for _, st := range rec.Steps {
-			steps = append(steps, st.Basis)
 		}
 		if len(steps) == 0 {
 			t.Fatal("the predicted PaCO2 kept no step")

@@ -39,7 +39,7 @@ WITH u AS MATERIALIZED (
     SELECT * FROM unnest($1::text[], $2::int[], $3::text[], $4::text[], $5::text[], $6::text[], $7::text[], $8::text[],
         $9::timestamptz[], $10::float8[], $11::text[], $12::text[], $13::text[], $14::text[], $15::text[], $16::text[],
         $17::text[], $18::text[], $19::text[], $20::text[], $21::text[], $22::text[], $23::text[], $24::text[],
-        $25::text[], $26::bytea[], $27::text[])
+        $25::text[], $26::text[], $27::text[])
     WITH ORDINALITY AS u(key, version, observation_id, kind, patient_ref, patient_hash, encounter, blood_gas_key,
         effective, value, unit, method, method_version, constants, assumptions, basis, interp_code, interp_text,
         interp_source, flags, status, retracted, algorithm, digest, inbox_key, record, settings_digest, ord)
@@ -47,13 +47,13 @@ WITH u AS MATERIALIZED (
     INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
         blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
         interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest,
-        supersedes_id, inbox_key, created_at, record_zstd, settings_digest)
+        supersedes_id, inbox_key, created_at, record, settings_digest)
     SELECT u.key, u.version, u.observation_id::uuid, u.kind, u.patient_ref, u.patient_hash, u.encounter,
         u.blood_gas_key, u.effective, u.value, u.unit, u.method, u.method_version, u.constants::jsonb,
         u.assumptions::jsonb, u.basis, u.interp_code, u.interp_text, u.interp_source, u.flags::jsonb, u.status,
         u.retracted, u.algorithm, u.digest,
         (SELECT p.id FROM derivation p WHERE p.key = u.key AND p.version = u.version - 1),
-        u.inbox_key, $28, u.record, nullif(u.settings_digest, '')
+        u.inbox_key, $28, u.record::jsonb, nullif(u.settings_digest, '')
     FROM u ORDER BY u.ord
     RETURNING id, key, version
 )
@@ -335,12 +335,6 @@ func columns(rows [][]any, width int) []any {
 			a := make([]time.Time, n)
 			for i, r := range rows {
 				a[i] = r[c].(time.Time)
-			}
-			cols[c] = a
-		case []byte:
-			a := make([][]byte, n)
-			for i, r := range rows {
-				a[i] = r[c].([]byte)
 			}
 			cols[c] = a
 		case *string:

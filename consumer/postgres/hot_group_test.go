@@ -62,7 +62,7 @@ func provenanceDump(t *testing.T, f *fixture) []string {
 		 FROM head h LEFT JOIN derivation d ON d.id = h.derivation_id LEFT JOIN refusal r ON r.id = h.refusal_id ORDER BY h.key`,
 		`SELECT d.key, d.version, d.observation_id, d.kind, d.patient_ref, d.patient_hash, d.blood_gas_key, d.effective, d.unit,
 		        d.method, d.constants::text, d.assumptions::text, d.basis, d.flags::text, d.retracted, d.algorithm,
-		        d.record::text, d.record_zstd, d.settings_digest, p.key, p.version
+		        d.record::text, d.settings_digest, p.key, p.version
 		 FROM derivation d LEFT JOIN derivation p ON p.id = d.supersedes_id ORDER BY d.id`,
 		`SELECT r.key, r.kind, r.patient_ref, r.patient_hash, r.blood_gas_key, r.effective, r.detail, r.settings_digest
 		 FROM refusal r ORDER BY r.id`,

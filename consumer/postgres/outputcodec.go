@@ -12,10 +12,11 @@ import (
 	"github.com/ventderive/ventderive/consumer/rawcodec"
 )
 
-// Outbox payloads and derivation records as the store keeps them
-// (migration 0018): zstd frames made with the embedded outbox and record
-// dictionaries. Rows written before stay plain; every reader goes through
-// decodeOutput, which returns a plain value as it is.
+// Outbox payloads as the store keeps them (migration 0018): zstd frames
+// made with the embedded outbox dictionary. Rows written before stay plain;
+// every reader goes through decodeOutput, which returns a plain value as it
+// is. Derivation records are not compressed: derivation.record stays jsonb,
+// which the reviewer's review_derivation_step view expands in SQL.
 
 // storedOutbox is the stored form of an outbox payload with the SHA-256 and
 // length of the exact bytes, which outbox.payload_sha256 and payload_size
@@ -23,14 +24,6 @@ import (
 func storedOutbox(payload []byte) (stored, sum []byte, size int32) {
 	s := sha256.Sum256(payload)
 	return rawcodec.Outbox().Encode(payload), s[:], int32(len(payload))
-}
-
-// storedRecord is the stored form of a derivation record (nil: none).
-func storedRecord(record []byte) []byte {
-	if record == nil {
-		return nil
-	}
-	return rawcodec.Record().Encode(record)
 }
 
 // ErrOutputMismatch: a stored outbox payload whose decoded bytes are not
@@ -43,12 +36,12 @@ type querier interface {
 	Query(ctx context.Context, sql string, args ...any) (pgx.Rows, error)
 }
 
-// decodeOutput returns the exact bytes of a stored outbox payload or
-// record: a plain value as it is, a frame decoded with the embedded
-// dictionaries or, when it names one this binary does not embed (a newer
-// replica's), with the dictionaries in the database (dictSQL: the rows id,
-// dictionary of raw_dictionary or review_dictionary). A frame that does not
-// decode is an error wrapping rawcodec.ErrCorrupt.
+// decodeOutput returns the exact bytes of a stored outbox payload: a plain
+// value as it is, a frame decoded with the embedded dictionaries or, when
+// it names one this binary does not embed (a newer replica's), with the
+// dictionaries in the database (dictSQL: the rows id, dictionary of
+// raw_dictionary or review_dictionary). A frame that does not decode is an
+// error wrapping rawcodec.ErrCorrupt.
 func decodeOutput(ctx context.Context, q querier, dictSQL string, stored []byte) ([]byte, error) {
 	if !rawcodec.IsCompressed(stored) {
 		return stored, nil
@@ -65,7 +58,7 @@ func decodeOutput(ctx context.Context, q querier, dictSQL string, stored []byte)
 }
 
 const (
-	writerDictionariesSQL   = `SELECT id, dictionary FROM raw_dictionary WHERE kind IN ('outbox', 'record') ORDER BY id DESC`
+	writerDictionariesSQL   = `SELECT id, dictionary FROM raw_dictionary WHERE kind = 'outbox' ORDER BY id DESC`
 	reviewerDictionariesSQL = `SELECT id, dictionary FROM review_dictionary ORDER BY id DESC`
 )
 

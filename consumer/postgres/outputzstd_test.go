@@ -5,7 +5,6 @@ import (
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
-	"encoding/json"
 	"errors"
 	"strings"
 	"sync"
@@ -60,9 +59,9 @@ func hexSHA(b []byte) string {
 	return hex.EncodeToString(s[:])
 }
 
-// Migration 0018: every outbox payload and record the service writes is a
-// zstd frame of its dictionary with the exact bytes' SHA-256 and size
-// beside it; a row written before (plain) reads as it is. The relay
+// Migration 0018: every outbox payload the service writes is a zstd frame
+// of the outbox dictionary with the exact bytes' SHA-256 and size beside
+// it; a row written before (plain) reads as it is. The relay
 // publishes, and the reviewer reads, the exact bytes the planner made, for
 // compressed and plain rows alike, with the same digest in the review view.
 func TestCompressedOutputsReadBackExactly(t *testing.T) {
@@ -107,23 +106,11 @@ func TestCompressedOutputsReadBackExactly(t *testing.T) {
 		}
 	}
 
-	// A mixed store: the first row and one record back as a binary before
-	// 0018 wrote them (plain bytes, no digest; jsonb record).
+	// A mixed store: the first row back as a binary before 0018 wrote it
+	// (plain bytes, no digest).
 	plain := all[0]
 	if _, err := f.pool.Exec(f.ctx, `UPDATE outbox SET stored_payload = $2, payload_sha256 = NULL, payload_size = NULL WHERE seq = $1`,
 		plain.seq, want[plain.msgID]); err != nil {
-		t.Fatal(err)
-	}
-	var recID int64
-	var recFrame []byte
-	if err := f.pool.QueryRow(f.ctx, `SELECT id, record_zstd FROM derivation WHERE record_zstd IS NOT NULL ORDER BY id LIMIT 1`).Scan(&recID, &recFrame); err != nil {
-		t.Fatal(err)
-	}
-	recJSON, err := rawcodec.Record().Decode(recFrame)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := f.pool.Exec(f.ctx, `UPDATE derivation SET record = $2::jsonb, record_zstd = NULL WHERE id = $1`, recID, string(recJSON)); err != nil {
 		t.Fatal(err)
 	}
 
@@ -165,7 +152,7 @@ func TestCompressedOutputsReadBackExactly(t *testing.T) {
 	}
 
 	// The reviewer (console, audit show and published) reads the same
-	// bytes, digests and records.
+	// bytes and digests, and the records as they are stored (jsonb).
 	r := postgres.NewReviewer(f.pool)
 	versions, err := r.List(f.ctx, postgres.Filter{})
 	if err != nil {
@@ -178,8 +165,8 @@ func TestCompressedOutputsReadBackExactly(t *testing.T) {
 			t.Fatal(err)
 		}
 		for _, hv := range h.Versions {
-			if hv.Record == nil || hv.RecordError != "" {
-				t.Errorf("%s v%d: record %v (%s)", hv.Key, hv.Version, hv.Record, hv.RecordError)
+			if hv.Record == nil {
+				t.Errorf("%s v%d: no record", hv.Key, hv.Version)
 			} else {
 				records++
 			}
@@ -195,27 +182,11 @@ func TestCompressedOutputsReadBackExactly(t *testing.T) {
 	if seen < len(all) || records == 0 {
 		t.Errorf("the reviewer showed %d messages of %d, %d records", seen, len(all), records)
 	}
-
-	// The plain record reads as the compressed one did.
-	var fromPlain, fromFrame *fhirmap.Record
-	for _, v := range versions.Rows {
-		if v.ID == recID {
-			fromPlain = v.Record
-		}
-	}
-	var rec fhirmap.Record
-	if err := json.Unmarshal(recJSON, &rec); err != nil {
-		t.Fatal(err)
-	}
-	fromFrame = &rec
-	if fromPlain == nil || fromPlain.Worked != fromFrame.Worked || fromPlain.Formula != fromFrame.Formula || len(fromPlain.Steps) != len(fromFrame.Steps) {
-		t.Errorf("record of derivation %d read from jsonb %+v, from the frame %+v", recID, fromPlain, fromFrame)
-	}
 }
 
 // A damaged compressed value is never published and never shown as
 // published: audit verify reports the version a mismatch naming what is
-// damaged (an Observation, a record, a Provenance), the relay leaves the
+// damaged (an Observation, a Provenance), the relay leaves the
 // row unpublished and says why, and Show refuses. The refusals, which name
 // none of it, verify as before.
 func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
@@ -239,8 +210,8 @@ func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 		t.Fatalf("%d versions reproduced from compressed rows, want at least 2", reproduced)
 	}
 
-	// One Observation's frame and another version's record, a byte each.
-	var obsKey, recKey string
+	// One version's Observation frame, a byte.
+	var obsKey, provKey string
 	var obsSeq int64
 	if err := f.pool.QueryRow(f.ctx, `
 		SELECT o.seq, d.key FROM outbox o JOIN derivation d ON o.msg_id = 'Observation/' || d.observation_id || '/_history/' || d.version
@@ -252,18 +223,15 @@ func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 		FROM length(stored_payload) / 2 + 1 FOR 1) WHERE seq = $1`, obsSeq); err != nil {
 		t.Fatal(err)
 	}
-	if err := f.pool.QueryRow(f.ctx, `UPDATE derivation SET record_zstd = overlay(record_zstd PLACING '\xffff'::bytea
-		FROM length(record_zstd) / 2 FOR 2) WHERE id = (SELECT min(id) FROM derivation WHERE key <> $1 AND record_zstd IS NOT NULL)
-		RETURNING key`, obsKey).Scan(&recKey); err != nil {
+	// And another version's Provenance (audit verify checks every message
+	// published for a version).
+	if err := f.pool.QueryRow(f.ctx, `SELECT min(key) FROM derivation WHERE key <> $1`, obsKey).Scan(&provKey); err != nil {
 		t.Fatal(err)
 	}
-
-	// And the second one's Provenance (audit verify checks every message
-	// published for a version).
-	if _, err := f.pool.Exec(f.ctx, `
+	if tag, err := f.pool.Exec(f.ctx, `
 		UPDATE outbox o SET stored_payload = overlay(o.stored_payload PLACING '\xffff'::bytea FROM length(o.stored_payload) / 2 FOR 2)
-		FROM derivation d WHERE o.msg_id = 'Provenance/' || d.observation_id || '/_history/' || d.version AND d.key = $1`, recKey); err != nil {
-		t.Fatal(err)
+		FROM derivation d WHERE o.msg_id = 'Provenance/' || d.observation_id || '/_history/' || d.version AND d.key = $1`, provKey); err != nil || tag.RowsAffected() == 0 {
+		t.Fatalf("damage the Provenance of %s: %v rows, %v", provKey, tag.RowsAffected(), err)
 	}
 
 	after, err := r.Verify(f.ctx, postgres.Filter{})
@@ -289,10 +257,9 @@ func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 			if v.Outcome != postgres.OutcomeMismatch || !strings.Contains(found, "published: the stored published bytes are damaged: Observation: outbox") {
 				t.Errorf("damaged Observation %s: %s, %q", v.Key, v.Outcome, found)
 			}
-		case recKey:
-			if v.Outcome != postgres.OutcomeMismatch || !strings.Contains(found, "record: stored record does not decode") ||
-				!strings.Contains(found, "damaged: Provenance: outbox") {
-				t.Errorf("damaged record and Provenance %s: %s, %q", v.Key, v.Outcome, found)
+		case provKey:
+			if v.Outcome != postgres.OutcomeMismatch || !strings.Contains(found, "damaged: Provenance: outbox") {
+				t.Errorf("damaged Provenance %s: %s, %q", v.Key, v.Outcome, found)
 			}
 		default:
 			if v.Outcome != postgres.OutcomeReproduced {
@@ -328,8 +295,9 @@ func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 	}
 }
 
-// review_dictionary gives the reviewer the outbox and record dictionaries
-// migrate stored, never the inbox one (made of input payloads).
+// review_dictionary gives the reviewer the outbox dictionary migrate
+// stored, never the inbox one (made of input payloads); raw_dictionary
+// holds no other kind (derivation records are not compressed).
 func TestReviewDictionaryView(t *testing.T) {
 	t.Parallel()
 	f := newFixture(t)
@@ -353,8 +321,19 @@ func TestReviewDictionaryView(t *testing.T) {
 	if err := rows.Err(); err != nil {
 		t.Fatal(err)
 	}
-	if len(got) != 2 || !bytes.Equal(got["outbox"], rawcodec.OutboxDictionary) || !bytes.Equal(got["record"], rawcodec.RecordDictionary) {
-		t.Errorf("review_dictionary kinds %v, want exactly the embedded outbox and record dictionaries", keys(got))
+	if len(got) != 1 || !bytes.Equal(got["outbox"], rawcodec.OutboxDictionary) {
+		t.Errorf("review_dictionary kinds %v, want exactly the embedded outbox dictionary", keys(got))
+	}
+	var kinds []string
+	if err := f.pool.QueryRow(f.ctx, `SELECT array_agg(DISTINCT kind ORDER BY kind) FROM raw_dictionary`).Scan(&kinds); err != nil {
+		t.Fatal(err)
+	}
+	if len(kinds) != 2 || kinds[0] != "inbox" || kinds[1] != "outbox" {
+		t.Errorf("raw_dictionary kinds %v, want inbox and outbox", kinds)
+	}
+	if _, err := f.pool.Exec(f.ctx, `INSERT INTO raw_dictionary (id, kind, dictionary) VALUES (1, 'record', '\x37a430ec00')`); err == nil ||
+		!strings.Contains(err.Error(), "raw_dictionary_kind_check") {
+		t.Errorf("a 'record' dictionary: %v, want refused by raw_dictionary's kind CHECK (inbox and outbox only)", err)
 	}
 	var inbox int
 	if err := f.pool.QueryRow(f.ctx, `SELECT count(*) FROM raw_dictionary WHERE kind = 'inbox' AND id = $1`, int64(rawcodec.InboxDictionaryID)).Scan(&inbox); err != nil || inbox != 1 {

@@ -15,7 +15,6 @@ import (
 	"github.com/jackc/pgx/v5/pgtype"
 	"github.com/jackc/pgx/v5/pgxpool"
 
-	"github.com/ventderive/ventderive/consumer/rawcodec"
 	"github.com/ventderive/ventderive/fhirmap"
 	"github.com/ventderive/ventderive/physio"
 )
@@ -164,12 +163,6 @@ type Version struct {
 	// the Observation's notes write them); nil for a retraction and for a
 	// version recorded before the store kept it.
 	Record *fhirmap.Record `json:"record,omitempty"`
-	// RecordError says why a stored record could not be read (a
-	// compressed one that does not decode); Record is then nil.
-	RecordError string `json:"recordError,omitempty"`
-	// recordStored is a compressed record as stored (0018), until
-	// decodeRecords reads it.
-	recordStored []byte
 	// Settings is the digest of the site-settings snapshot the version was
 	// made under (Reviewer.Settings reads it); "" for a retraction made by
 	// an older build and for versions recorded before the store kept it.
@@ -282,7 +275,7 @@ const (
     effective, value, unit, method, method_version, constants::text, assumptions::text, basis,
     interp_code, interp_text, interp_source, flags::text, status, retracted, algorithm, digest,
     coalesce(supersedes_version, 0), coalesce(superseded_by_version, 0), coalesce(is_current, false), created_at,
-    record::text, coalesce(settings_digest, ''), record_zstd`
+    record::text, coalesce(settings_digest, '')`
 
 	showKeySQL = `
 SELECT key FROM review_derivation WHERE key = $1 OR observation_id::text = $2
@@ -406,9 +399,6 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 	if err := br.Close(); err != nil {
 		return History{}, err
 	}
-	if err := r.decodeRecords(ctx, h.Versions); err != nil {
-		return History{}, err
-	}
 	for i := range h.Versions {
 		for j := range h.Versions[i].Messages {
 			if err := r.decodeMessage(ctx, &h.Versions[i].Messages[j]); err != nil {
@@ -417,34 +407,6 @@ func (r *Reviewer) Show(ctx context.Context, idOrKey string) (History, error) {
 		}
 	}
 	return h, nil
-}
-
-// decodeRecords reads the compressed records of vs (0018) with the
-// dictionaries the reviewer may read (review_dictionary, when a frame
-// names one this binary does not embed). A record that does not decode is
-// reported in its version's RecordError, not returned.
-func (r *Reviewer) decodeRecords(ctx context.Context, vs []Version) error {
-	for i := range vs {
-		v := &vs[i]
-		if v.recordStored == nil {
-			continue
-		}
-		b, err := decodeOutput(ctx, r.pool, reviewerDictionariesSQL, v.recordStored)
-		v.recordStored = nil
-		if err != nil && !errors.Is(err, rawcodec.ErrCorrupt) {
-			return fmt.Errorf("derivation %d record: %w", v.ID, err)
-		}
-		if err == nil {
-			v.Record = &fhirmap.Record{}
-			if err = json.Unmarshal(b, v.Record); err != nil {
-				v.Record = nil
-			}
-		}
-		if err != nil {
-			v.RecordError = fmt.Sprintf("stored record does not decode: %v", err)
-		}
-	}
-	return nil
 }
 
 // decodeMessage gives a message stored compressed (0018) its exact bytes,
@@ -581,8 +543,7 @@ func scanVersion(row pgx.CollectableRow) (Version, error) {
 	err := row.Scan(&v.ID, &v.Key, &v.Version, &v.ObservationID, &v.Kind, &v.Patient, &v.Encounter, &v.BloodGas,
 		&v.Effective, &value, &v.Unit, &v.Method, &v.MethodVersion, &consts, &assumptions, &v.Basis,
 		&v.Interpretation.Code, &v.Interpretation.Text, &v.Interpretation.Source, &flags, &v.Status, &v.Retracted,
-		&v.Algorithm, &v.Digest, &v.Supersedes, &v.SupersededBy, &v.Current, &v.Recorded, &record, &v.Settings,
-		&v.recordStored)
+		&v.Algorithm, &v.Digest, &v.Supersedes, &v.SupersededBy, &v.Current, &v.Recorded, &record, &v.Settings)
 	if err != nil {
 		return v, err
 	}
@@ -638,9 +599,6 @@ ORDER BY effective, key, version` + pageSQL
 // version), without their inputs.
 func (r *Reviewer) List(ctx context.Context, f Filter) (Page[Version], error) {
 	out, err := queryPage(ctx, r.pool, listSQL, scanVersion, f)
-	if err == nil {
-		err = r.decodeRecords(ctx, out.Rows)
-	}
 	if err != nil {
 		return out, fmt.Errorf("list derivations: %w", err)
 	}

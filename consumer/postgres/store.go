@@ -397,10 +397,10 @@ WITH d AS (
     INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
         blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
         interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest,
-        supersedes_id, inbox_key, created_at, record_zstd, settings_digest)
+        supersedes_id, inbox_key, created_at, record, settings_digest)
     VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20,
         $21, $22, $23, $24, (SELECT id FROM derivation WHERE key = $1 AND version = $2 - 1), $25, $26,
-        $33::bytea, nullif($34, ''))
+        $33::jsonb, nullif($34, ''))
     RETURNING id
 ), i AS (
     INSERT INTO derivation_input (derivation_id, ordinal, role, fact_key, fact_digest, resource_ref, time_offset, fallback)
@@ -1063,13 +1063,21 @@ func (s *Store) derivationArgs(d fhirmap.Derivation, version int, inbox string, 
 			return nil, fmt.Errorf("encode record: %w", err)
 		}
 	}
-	record = storedRecord(record) // compressed (0018); nil stays NULL
 	l := lineageOf(d.Inputs)
 	return []any{d.Key, version, d.ID, d.Kind, d.Patient, s.hash(d.Patient), d.Encounter, d.BloodGas,
 		d.Effective.UTC(), r.Value, r.Unit, r.Method, r.MethodVersion, string(cj), string(aj), r.Basis(),
 		r.Interpretation.Code, r.Interpretation.Text, r.Interpretation.Source, string(fj), string(d.Status),
 		d.Retracted, d.Algorithm, d.Digest, inbox, now,
-		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback, record, settings}, nil
+		l.role, l.key, l.digest, l.resource, l.offsetUS, l.fallback, optJSON(record), settings}, nil
+}
+
+// optJSON stores no bytes as NULL.
+func optJSON(b []byte) *string {
+	if b == nil {
+		return nil
+	}
+	s := string(b)
+	return &s
 }
 
 // queued counts what queueChanges queued, for readChanges.

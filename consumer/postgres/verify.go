@@ -254,9 +254,6 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 		if why, ok := damaged[v.ID]; ok {
 			x.Findings = append(x.Findings, "published: the stored published bytes are damaged: "+why)
 		}
-		if v.RecordError != "" {
-			x.Findings = append(x.Findings, "record: "+v.RecordError)
-		}
 		switch {
 		case v.Status == string(fhirmap.StatusEnteredInError):
 			x.Outcome, x.Why = OutcomeRetraction, "entered in error: published without a value, nothing to reproduce"

@@ -1,12 +1,11 @@
--- 0018: outbox payloads and derivation records compressed with zstd and a
--- trained dictionary each, as inbox payloads are since 0015.
+-- 0018: outbox payloads compressed with zstd and a trained dictionary, as
+-- inbox payloads are since 0015.
 --
 -- 1. raw_dictionary.kind says what a dictionary was trained on: 'inbox'
---    (every row before this migration), 'outbox' (the published
---    Observations and Provenance) or 'record' (derivation records).
---    Migrate stores the binary's three embedded dictionaries
---    (consumer/rawcodec/*.dict) under their zstd dictionary IDs. The
---    default keeps an older binary's inbox insert working.
+--    (every row before this migration) or 'outbox' (the published
+--    Observations and Provenance). Migrate stores the binary's two embedded
+--    dictionaries (consumer/rawcodec/*.dict) under their zstd dictionary
+--    IDs. The default keeps an older binary's inbox insert working.
 -- 2. outbox.payload is renamed stored_payload: for rows written from now on
 --    a zstd frame (magic 28 b5 2f fd, the dictionary ID and a content
 --    checksum in its header) of the exact bytes to publish; rows written
@@ -22,30 +21,31 @@
 --    for a version it checks (Observation and Provenance) and reports one
 --    whose decoded bytes are not that digest (the frame's own checksum
 --    catches a damaged value first).
--- 3. derivation.record_zstd: the record (fhirmap.Record as JSON) as a zstd
---    frame, for rows written from now on; record (jsonb) stays for the rows
---    written before and is NULL beside a compressed one.
--- 4. Views. review_published.payload keeps its meaning, the exact bytes
+-- 3. Views. review_published.payload keeps its meaning, the exact bytes
 --    published: it is NULL for a compressed row, whose frame is in the new
 --    last column payload_zstd; payload_digest and size_bytes are of the
 --    exact bytes for every row (stored for a compressed row, computed for
---    a plain one). review_outbox.size_bytes likewise. review_derivation gains
---    record_zstd at the end; review_derivation_step can expand only plain
---    records (the reviewer console and `audit show` decode the others).
---    review_dictionary shows the reviewer the outbox and record dictionaries
---    (never the inbox one: it is made of input payloads, which the reviewer
---    role does not read), so that a reviewer holding only the database can
---    decode the published bytes and the records.
--- 5. Grants: the writer may read raw_dictionary (the relay decodes a frame
+--    a plain one). review_outbox.size_bytes likewise. review_dictionary
+--    shows the reviewer the outbox dictionary (never the inbox one: it is
+--    made of input payloads, which the reviewer role does not read), so
+--    that a reviewer holding only the database can decode the published
+--    bytes.
+-- 4. Grants: the writer may read raw_dictionary (the relay decodes a frame
 --    whose dictionary this binary does not embed: one a newer replica wrote
---    with) and writes the two new outbox columns and the new derivation
---    column with the INSERT it already has.
+--    with) and writes the two new outbox columns with the INSERT it already
+--    has.
 --
--- A compressed payload (about 280 bytes) and record (about 160) are below
--- the TOAST threshold: PostgreSQL neither compresses nor moves them.
+-- derivation.record is left as it is, plain jsonb: the reviewer's view
+-- review_derivation_step (0006) expands record -> 'steps' in SQL, which
+-- PostgreSQL could not do with a zstd frame (the view would return no
+-- steps for every new derivation), and compressing it saved only about 65
+-- of 168 bytes per input.
+--
+-- A compressed payload (about 280 bytes) is below the TOAST threshold:
+-- PostgreSQL neither compresses nor moves it.
 
 ALTER TABLE raw_dictionary
-    ADD COLUMN kind text NOT NULL DEFAULT 'inbox' CHECK (kind IN ('inbox', 'outbox', 'record'));
+    ADD COLUMN kind text NOT NULL DEFAULT 'inbox' CHECK (kind IN ('inbox', 'outbox'));
 
 ALTER TABLE outbox RENAME COLUMN payload TO stored_payload;
 ALTER TABLE outbox
@@ -54,11 +54,6 @@ ALTER TABLE outbox
     ADD CONSTRAINT outbox_compressed_described CHECK (
         substr(stored_payload, 1, 4) <> '\x28b52ffd'::bytea
         OR (octet_length(payload_sha256) = 32 AND payload_size >= 0));
-
-ALTER TABLE derivation
-    ADD COLUMN record_zstd bytea,
-    ADD CONSTRAINT derivation_record_zstd CHECK (
-        record_zstd IS NULL OR (record IS NULL AND substr(record_zstd, 1, 4) = '\x28b52ffd'::bytea));
 
 CREATE OR REPLACE VIEW review_published AS
 SELECT d.id AS derivation_id, d.key, d.version, t.resource_type, o.seq, o.subject, o.msg_id,
@@ -81,23 +76,8 @@ SELECT seq, subject, msg_id, headers,
        inbox_key, created_at, published_at
 FROM outbox;
 
-CREATE OR REPLACE VIEW review_derivation AS
-SELECT d.id, d.key, d.version, d.observation_id, d.kind, d.patient_ref, d.encounter,
-       d.blood_gas_key, d.effective, d.value, d.unit, d.method, d.method_version,
-       d.constants, d.assumptions, d.basis, d.interp_code, d.interp_text, d.interp_source,
-       d.flags, d.status, d.retracted, d.algorithm, d.digest,
-       p.version AS supersedes_version, p.value AS supersedes_value, p.status AS supersedes_status,
-       (SELECT n.version FROM derivation n WHERE n.supersedes_id = d.id) AS superseded_by_version,
-       (h.derivation_id = d.id AND NOT h.refused) AS is_current,
-       d.inbox_key, d.created_at,
-       d.record, d.settings_digest,
-       d.record_zstd
-FROM derivation d
-LEFT JOIN derivation p ON p.id = d.supersedes_id
-LEFT JOIN head h ON h.key = d.key;
-
 CREATE VIEW review_dictionary AS
-SELECT id, kind, dictionary, created_at FROM raw_dictionary WHERE kind IN ('outbox', 'record');
+SELECT id, kind, dictionary, created_at FROM raw_dictionary WHERE kind = 'outbox';
 
 -- The grants function of 0016 with SELECT on raw_dictionary for the
 -- writer. Reviewer views are still found by name (review_dictionary too).
