@@ -15,7 +15,7 @@ package fhirmap
 // an escaped key, or a field of a Go type it does not store) it gives up,
 // and strictUnmarshal runs the two-pass path from a zero value, so every
 // refusal, its reason, field and detail, comes from the same code as
-// before. FuzzFillSameAsTwoPass and TestFillEveryField check this.
+// before. FuzzDecodeSameAsTwoPass and TestFillEveryField check this.
 
 import (
 	"encoding/binary"

@@ -24,8 +24,11 @@
 --    a unique expression index on the partitioned table (the partition
 --    key, effective, is a plain column of it), so no stored hash column is
 --    needed. It is exact: the digest is the SHA-256 of the resource's
---    bytes, so only facts of one resource (one key) can share a digest,
---    and the effective time is decoded from those bytes. Two different
+--    bytes, so only facts of one resource can share a digest, and the
+--    effective time is decoded from those bytes; facts of one resource
+--    under different keys (an Observation's components, a Patient's
+--    facts) share both, and for them the 64-bit hash alone tells the keys
+--    apart in the index. Two different
 --    keys whose hashes collide would need the same digest and effective
 --    time to conflict, and then ON CONFLICT DO NOTHING would drop the
 --    second silently: the writer checks, whenever its insert stored fewer
@@ -52,6 +55,12 @@
 --    one derivation (measured on a bench store, 150-190 ms, and so did
 --    the join on key before this migration).
 -- Rows are not touched: every fact, id and version stays as it is.
+--
+-- Lock: dropping the constraint takes an ACCESS EXCLUSIVE lock on
+-- fact_row and its partitions, held by this migration's transaction for
+-- the whole build of both indexes (not CONCURRENTLY: a migration runs in
+-- one transaction). On a large store the service is stopped while it runs
+-- (README, Operations, "Upgrades and migrations").
 
 ALTER TABLE fact_row DROP CONSTRAINT fact_row_key_digest_effective;
 CREATE UNIQUE INDEX fact_row_key_hash_digest_effective ON fact_row (hashtextextended(key, 0), digest, effective);

@@ -53,7 +53,8 @@ ALTER TABLE outbox
     ADD COLUMN payload_size integer,
     ADD CONSTRAINT outbox_compressed_described CHECK (
         substr(stored_payload, 1, 4) <> '\x28b52ffd'::bytea
-        OR (octet_length(payload_sha256) = 32 AND payload_size >= 0));
+        OR (payload_sha256 IS NOT NULL AND payload_size IS NOT NULL
+            AND octet_length(payload_sha256) = 32 AND payload_size >= 0));
 
 CREATE OR REPLACE VIEW review_published AS
 SELECT d.id AS derivation_id, d.key, d.version, t.resource_type, o.seq, o.subject, o.msg_id,

@@ -418,3 +418,41 @@ func TestFrameOfAStoredDictionaryDecodes(t *testing.T) {
 		t.Errorf("relay published %d bytes for the row of dictionary %#x, want the planner's %d", len(got), newer, len(want[msgID]))
 	}
 }
+
+// A zstd frame in outbox.stored_payload must carry the SHA-256 and size of
+// the exact bytes (outbox_compressed_described, migration 0018): a NULL in
+// either would pass a CHECK written as a plain AND, leave review_published
+// without a digest and the row unpublishable. A plain row needs neither.
+func TestOutboxFrameNeedsDigestAndSize(t *testing.T) {
+	t.Parallel()
+	f := newFixture(t)
+	in := message("fhir.input.vent", 1, vent("Patient/lg-icu-0091", "ck-mv", fhirmap.QMinuteVol, t0, 7.5, "L/min"))
+	if _, err := f.store.Ingest(f.ctx, in, (&testPlan{}).plan); err != nil {
+		t.Fatal(err)
+	}
+	frame := rawcodec.Outbox().Encode([]byte(`{"resourceType":"Observation"}`))
+	sum := bytes.Repeat([]byte{7}, 32)
+	size := 30
+	for _, c := range []struct {
+		name    string
+		payload []byte
+		sum     []byte
+		size    *int
+		ok      bool
+	}{
+		{"frame without digest", frame, nil, &size, false},
+		{"frame without size", frame, sum, nil, false},
+		{"frame with a short digest", frame, sum[:31], &size, false},
+		{"frame with digest and size", frame, sum, &size, true},
+		{"plain row without either", []byte(`{}`), nil, nil, true},
+	} {
+		_, err := f.pool.Exec(f.ctx, `INSERT INTO outbox (subject, msg_id, headers, stored_payload, payload_sha256, payload_size, inbox_key, created_at)
+VALUES ('vd.test', $1, '{}'::jsonb, $2, $3, $4, $5, now())`, "check-"+c.name, c.payload, c.sum, c.size, in.InboxKey)
+		switch {
+		case c.ok && err != nil:
+			t.Errorf("%s: refused: %v", c.name, err)
+		case !c.ok && (err == nil || !strings.Contains(err.Error(), "outbox_compressed_described")):
+			t.Errorf("%s: stored (err %v), want outbox_compressed_described to refuse it", c.name, err)
+		}
+	}
+}

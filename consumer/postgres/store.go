@@ -226,7 +226,7 @@ ON CONFLICT (hashtextextended(key, 0), digest, effective) DO NOTHING`
 	// nearest readings outside it) writes the patient as
 	// (f.patient_ref || ''), the expression of fact_patient_ref_effective
 	// (migration 0012); a lookup by patient and quantity writes plain
-	// f.patient_ref, which only fact_patient_ref_quantity_effective
+	// f.patient_ref, which only fact_row_patient_ref_quantity_effective
 	// serves (since migration 0017 a partial index over
 	// indexedQuantitiesSQL, which each such lookup repeats). Without that
 	// split a generic plan took the smaller index for lookups by quantity

@@ -300,8 +300,14 @@ func (r *Reviewer) verifyVersions(ctx context.Context, versions []Version) ([]Ve
 			}
 			rederive(&x, v, inputs[v.ID], others, s.Site)
 		}
-		if len(x.Findings) > 0 {
-			x.Outcome = OutcomeMismatch // damaged stored bytes, whatever else holds
+		if len(x.Findings) > 0 && x.Outcome != OutcomeMismatch {
+			// Damaged stored bytes make a mismatch whatever else holds; Why
+			// keeps what the version would be otherwise, so the verdict
+			// does not read as a retraction or as not verifiable alone.
+			if x.Why != "" {
+				x.Why = "the stored published bytes are damaged (see findings); otherwise: " + x.Why
+			}
+			x.Outcome = OutcomeMismatch
 		}
 		out = append(out, x)
 	}
