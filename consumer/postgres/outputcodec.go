@@ -62,7 +62,8 @@ const (
 	reviewerDictionariesSQL = `SELECT id, dictionary FROM review_dictionary ORDER BY id DESC`
 )
 
-// storedCodec decodes with every dictionary dictSQL returns.
+// storedCodec decodes with every dictionary dictSQL returns (id,
+// dictionary rows), each checked to hold the dictionary of its ID.
 func storedCodec(ctx context.Context, q querier, dictSQL string) (*rawcodec.Codec, error) {
 	rows, err := q.Query(ctx, dictSQL)
 	if err != nil {
@@ -77,12 +78,12 @@ func storedCodec(ctx context.Context, q querier, dictSQL string) (*rawcodec.Code
 		return nil, fmt.Errorf("read dictionaries: %w", err)
 	}
 	if len(ds) == 0 {
-		return nil, errors.New("read dictionaries: none stored (run ventderive migrate)")
+		return nil, errors.New("read dictionaries: none stored in raw_dictionary (run ventderive migrate)")
 	}
 	var all [][]byte
 	for _, d := range ds {
 		if id, err := rawcodec.DictID(d.Dictionary); err != nil || int64(id) != d.ID {
-			return nil, fmt.Errorf("dictionary row %d does not hold the dictionary of that ID", d.ID)
+			return nil, fmt.Errorf("raw_dictionary row %d does not hold the dictionary of that ID", d.ID)
 		}
 		all = append(all, d.Dictionary)
 	}

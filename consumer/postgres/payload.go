@@ -7,7 +7,6 @@ import (
 	"errors"
 	"fmt"
 
-	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/pgxpool"
 
 	"github.com/ventderive/ventderive/consumer/rawcodec"
@@ -34,29 +33,7 @@ WHERE raw IS NOT NULL AND inbox_key > $1 ORDER BY inbox_key LIMIT $2`
 // database holds (raw_dictionary), so that a reader needs only the
 // database, not the binary that wrote the payloads.
 func PayloadCodec(ctx context.Context, pool *pgxpool.Pool) (*rawcodec.Codec, error) {
-	rows, err := pool.Query(ctx, dictionariesSQL)
-	if err != nil {
-		return nil, fmt.Errorf("read dictionaries: %w", err)
-	}
-	type dict struct {
-		ID         int64
-		Dictionary []byte
-	}
-	ds, err := pgx.CollectRows(rows, pgx.RowToStructByPos[dict])
-	if err != nil {
-		return nil, fmt.Errorf("read dictionaries: %w", err)
-	}
-	if len(ds) == 0 {
-		return nil, errors.New("read dictionaries: raw_dictionary is empty (run ventderive migrate)")
-	}
-	var all [][]byte
-	for _, d := range ds {
-		if id, err := rawcodec.DictID(d.Dictionary); err != nil || int64(id) != d.ID {
-			return nil, fmt.Errorf("raw_dictionary row %d does not hold the dictionary of that ID", d.ID)
-		}
-		all = append(all, d.Dictionary)
-	}
-	return rawcodec.New(all[0], all[1:]...)
+	return storedCodec(ctx, pool, dictionariesSQL)
 }
 
 // DecodePayload is the one way to read a stored inbox payload: it decodes
