@@ -650,12 +650,12 @@ func guardSkipped(ctx context.Context, tx pgx.Tx, stored int, args []any) error 
 	if args == nil {
 		return nil
 	}
-	keys := args[0].([]string)
+	keys := args[factArgKey].([]string)
 	if stored >= len(keys) {
 		return nil
 	}
 	var missing int
-	if err := tx.QueryRow(ctx, factsMissingSQL, keys, args[1], args[21]).Scan(&missing); err != nil {
+	if err := tx.QueryRow(ctx, factsMissingSQL, keys, args[factArgDigest], args[factArgEffective]).Scan(&missing); err != nil {
 		return fmt.Errorf("check skipped facts: %w", err)
 	}
 	if missing > 0 {
@@ -898,6 +898,13 @@ func (s *Store) factArgs(msg consumer.Message, now time.Time) []any {
 	return []any{key, dig, res, ver, lastUpd, pat, enc, qty, org, det, spc, tc, val, unit, text, sval, sunit,
 		csys, code, cdisp, st, eff, iss, inbox, now, termIDs, encIDs}
 }
+
+// Positions in factArgs' arguments that guardSkipped reads back.
+const (
+	factArgKey       = 0
+	factArgDigest    = 1
+	factArgEffective = 21
+)
 
 func mk(n int) []string { return make([]string, n) }
 
