@@ -8,6 +8,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"os"
 	"runtime"
 	"slices"
 	"sync"
@@ -372,6 +373,12 @@ func (b *bench) historyDays(ctx context.Context) ([]historyPoint, error) {
 			return points, err
 		}
 		points = append(points, p)
+		// A 30-day store takes hours to build: each size is reported on
+		// stderr as soon as it is measured, so that a run stopped early
+		// still shows the sizes it reached (the table on stdout follows
+		// at the end).
+		fmt.Fprintf(os.Stderr, "history: %d days, %d inputs stored, built at %.0f inputs/s, %.0f bytes/input, CPU+PG us/input empty %.0f, history %.0f, ratio %.2f\n",
+			p.days, p.stored, p.buildPerSec, p.st.perInput(p.st.total), p.empty.cpuUS+p.empty.serverUS, p.history.cpuUS+p.history.serverUS, p.ratio())
 	}
 	b.reportHistory(points, float64(buildN)/buildTime.Seconds())
 	last := points[len(points)-1]
