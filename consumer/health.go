@@ -24,7 +24,9 @@ import (
 //   - intake: input is pending and no message was settled for StallAfter
 //     (a full in-flight limit, a store that refuses every write);
 //   - relay: the outbox relay has failed for longer than FailingAfter
-//     (with its last error: a denied subject, no acknowledgement);
+//     (with its last error: a denied subject, no acknowledgement, stored
+//     dictionaries that cannot be read); damaged rows are not a failure
+//     (Degraded);
 //   - dead-letter: recording or copying dead letters has failed for longer
 //     than FailingAfter.
 func (p *Pipeline) Ready(ctx context.Context) map[string]string {
