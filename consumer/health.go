@@ -24,7 +24,9 @@ import (
 //   - intake: input is pending and no message was settled for StallAfter
 //     (a full in-flight limit, a store that refuses every write);
 //   - relay: the outbox relay has failed for longer than FailingAfter
-//     (with its last error: a denied subject, no acknowledgement);
+//     (with its last error: a denied subject, no acknowledgement, stored
+//     dictionaries that cannot be read); damaged rows are not a failure
+//     (Degraded);
 //   - dead-letter: recording or copying dead letters has failed for longer
 //     than FailingAfter.
 func (p *Pipeline) Ready(ctx context.Context) map[string]string {
@@ -58,13 +60,35 @@ func (p *Pipeline) Ready(ctx context.Context) map[string]string {
 	return problems
 }
 
+// Degraded reports what the replica does not do although it is ready, by
+// component, with a reason; empty means nothing:
+//
+//   - outbox: outbox rows the relay found damaged (a stored payload that
+//     does not decode, or not to the SHA-256 and size stored beside it),
+//     with their count and first sequence numbers, and how many later
+//     versions are held behind unpublished ones. They are not published,
+//     and every pass checks them again, so a repaired row goes out.
+//
+// Damage is not unreadiness: it stays in the database whatever replica
+// runs, every other row is published, and a replica reported unready for
+// it would only block a rollout (perhaps the one with the fix).
+func (p *Pipeline) Degraded() map[string]string {
+	out := map[string]string{}
+	if s, _ := p.outboxDamage.Load().(string); s != "" {
+		out["outbox"] = s
+	}
+	return out
+}
+
 // roundSince is the time from since (Unix nanoseconds) to now, in seconds.
 func roundSince(now time.Time, since int64) time.Duration {
 	return now.Sub(time.Unix(0, since)).Round(time.Second)
 }
 
-// Handler serves /healthz (the process is alive), /readyz (Ready) and
-// /metrics (Prometheus text format from gatherer).
+// Handler serves /healthz (the process is alive), /readyz (Ready, with
+// Degraded: 200 "ready", 200 "degraded" with its reasons, or 503 "not
+// ready" with the problems and any degraded reasons) and /metrics
+// (Prometheus text format from gatherer).
 func (p *Pipeline) Handler(gatherer prometheus.Gatherer) http.Handler {
 	mux := http.NewServeMux()
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
@@ -72,12 +96,18 @@ func (p *Pipeline) Handler(gatherer prometheus.Gatherer) http.Handler {
 		_, _ = w.Write([]byte(`{"status":"alive"}` + "\n"))
 	})
 	mux.HandleFunc("GET /readyz", func(w http.ResponseWriter, r *http.Request) {
-		problems := p.Ready(r.Context())
+		problems, degraded := p.Ready(r.Context()), p.Degraded()
 		w.Header().Set("Content-Type", "application/json")
 		body := map[string]any{"status": "ready"}
+		if len(degraded) > 0 {
+			body = map[string]any{"status": "degraded", "degraded": degraded}
+		}
 		if len(problems) > 0 {
 			w.WriteHeader(http.StatusServiceUnavailable)
 			body = map[string]any{"status": "not ready", "problems": problems}
+			if len(degraded) > 0 {
+				body["degraded"] = degraded
+			}
 		}
 		_ = json.NewEncoder(w).Encode(body)
 	})

@@ -29,6 +29,13 @@ type Metrics struct {
 	// every row it met.
 	RelayFailures prometheus.Counter
 	RelayFailing  prometheus.Gauge
+	// OutboxDamaged is the number of outbox rows the relay's last pass
+	// found damaged (a stored payload that does not decode, or not to its
+	// stored SHA-256 and size: never published, met again by every pass);
+	// OutboxHeld the rows that pass left unpublished behind an earlier
+	// version of their derivation that was not published.
+	OutboxDamaged prometheus.Gauge
+	OutboxHeld    prometheus.Gauge
 	// IntakeStalled is 1 while the watchdog finds input pending and no
 	// message settled for StallAfter.
 	IntakeStalled prometheus.Gauge
@@ -96,6 +103,12 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		RelayFailing: prometheus.NewGauge(prometheus.GaugeOpts{
 			Name: "ventderive_relay_failing", Help: "1 while the outbox relay fails, else 0.",
 		}),
+		OutboxDamaged: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_outbox_damaged", Help: "Outbox rows not published because their stored payload does not decode, or not to its stored SHA-256 and size (last relay pass).",
+		}),
+		OutboxHeld: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_outbox_held", Help: "Outbox rows the last relay pass held back behind an earlier unpublished version of their derivation.",
+		}),
 		IntakeStalled: prometheus.NewGauge(prometheus.GaugeOpts{
 			Name: "ventderive_intake_stalled", Help: "1 while input is pending and no message was settled for the stall limit, else 0.",
 		}),
@@ -112,7 +125,7 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 	if reg != nil {
 		reg.MustRegister(m.Inputs, m.Ignored, m.Derived, m.Retractions, m.Refusals, m.DeadLetters,
 			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls,
-			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.IntakeStalled, m.LockFallbacks,
+			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.OutboxDamaged, m.OutboxHeld, m.IntakeStalled, m.LockFallbacks,
 			m.Fresh, m.FreshActive)
 	}
 	return m

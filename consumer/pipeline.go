@@ -67,6 +67,14 @@ type Pipeline struct {
 	// nanoseconds, 0 while it works) and relayErr its last error.
 	relayFailSince atomic.Int64
 	relayErr       atomic.Value // string
+	// damaged holds the outbox rows whose stored payload the relay found
+	// damaged (seq to reason), as of its last complete pass; only the
+	// relay goroutine uses it. damageLogged are the rows already logged
+	// (once per row while the process runs), outboxDamage the readiness
+	// text ("" when none).
+	damaged      map[int64]string
+	damageLogged map[int64]bool
+	outboxDamage atomic.Value // string
 	// stalledSince is when the watchdog found pending input without
 	// progress (Unix nanoseconds, 0 when intake moves), stalledPending how
 	// much was pending then.

@@ -4,6 +4,9 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"maps"
+	"slices"
+	"strconv"
 	"strings"
 	"time"
 
@@ -32,20 +35,92 @@ func (p *Pipeline) relayLoop(ctx context.Context) {
 }
 
 // relayAll makes passes over the outbox, a page of relayBatch rows at a
-// time, until a pass publishes every row it meets. Rows that fail (a subject
-// the permissions deny, a stream that does not answer) stay unpublished, and
-// the next page starts after them, so they never hold back the rows behind
-// them; after a pass with failures the relay backs off and starts again
-// from the first unpublished row. The backlog gauge is kept true meanwhile.
+// time, until a pass publishes every row it can. Rows that fail (a subject
+// the permissions deny, a stream that does not answer, stored dictionaries
+// that cannot be read) stay unpublished, and the next page starts after
+// them, so they never hold back the rows behind them; after a pass with
+// failures the relay backs off and starts again from the first unpublished
+// row. A damaged row (consumer.ErrDamagedPayload) is no failure of the
+// pass: it is reported (noteDamage) and met again by the next pass, so
+// that it neither backs the relay off for every other row nor is lost.
+// The backlog gauge is kept true meanwhile.
 func (p *Pipeline) relayAll(ctx context.Context) {
 	failures := 0
-	var after int64
-	var passErr error
 	for ctx.Err() == nil {
-		res, err := p.store.RelayOutboxFrom(ctx, after, relayBatch, p.publishBatch)
+		pass := p.relayPass(ctx)
+		p.updateBacklog(ctx)
+		p.noteDamage(pass)
+		if pass.err == nil {
+			p.relayFailing(nil)
+			return
+		}
+		failures++
+		p.relayFailing(pass.err)
+		if failures == 1 || failures%20 == 0 {
+			p.log.Warn("outbox relay failed", "err", pass.err, "failures", failures)
+		}
+		sleep(ctx, backoff(p.cfg.RetryBase, p.cfg.RetryMax, failures))
+	}
+}
+
+// relayPassResult is what one pass over the outbox met.
+type relayPassResult struct {
+	err      error        // the last failure (not damage), nil when none
+	damaged  []SkippedRow // rows whose stored payload is damaged
+	held     int          // rows held behind an unpublished earlier version
+	complete bool         // the pass reached the end of the outbox
+}
+
+// relayPass publishes the outbox once, page by page. Ordering is kept per
+// derivation (a resource's version chain): once a version is not
+// published in this pass (damaged, not checked, not acknowledged), no
+// later version of that derivation is, also on later pages, so that a
+// receiver never gets version 2 and then, after a repair, version 1 as
+// the latest. Other derivations, of the same patient too, go on: they
+// are other resources, and holding a patient's every output behind one
+// damaged row would stall that patient's values with no gain in order.
+func (p *Pipeline) relayPass(ctx context.Context) relayPassResult {
+	var r relayPassResult
+	held := map[string]bool{}
+	publish := func(ctx context.Context, msgs []OutboxMessage) ([]int64, error) {
+		send := make([]OutboxMessage, 0, len(msgs))
+		for _, m := range msgs {
+			if held[derivationOf(m.MsgID)] {
+				r.held++
+				continue
+			}
+			send = append(send, m)
+		}
+		if len(send) == 0 {
+			return nil, nil
+		}
+		done, err := p.publishBatch(ctx, send)
+		ok := make(map[int64]bool, len(done))
+		for _, seq := range done {
+			ok[seq] = true
+		}
+		for _, m := range send {
+			if !ok[m.Seq] {
+				held[derivationOf(m.MsgID)] = true
+			}
+		}
+		return done, err
+	}
+	var after int64
+	for ctx.Err() == nil {
+		res, err := p.store.RelayOutboxFrom(ctx, after, relayBatch, publish)
 		p.metrics.Published.Add(float64(res.Marked))
+		for _, s := range res.Skipped {
+			held[derivationOf(s.MsgID)] = true
+			switch {
+			case s.Err == nil:
+				r.held++
+			case errors.Is(s.Err, ErrDamagedPayload):
+				r.damaged = append(r.damaged, s)
+			}
+		}
 		if err != nil {
-			passErr = err
+			r.err = err
 		}
 		if err == nil && res.Claimed == relayBatch {
 			after = res.Last // more rows behind this page
@@ -56,20 +131,65 @@ func (p *Pipeline) relayAll(ctx context.Context) {
 			after = res.Last // skip what failed; try the rest of this pass
 			continue
 		}
-		// The end of the outbox (or the store failed).
-		p.updateBacklog(ctx)
-		if passErr == nil {
-			p.relayFailing(nil)
-			return
-		}
-		failures++
-		p.relayFailing(passErr)
-		if failures == 1 || failures%20 == 0 {
-			p.log.Warn("outbox relay failed", "err", passErr, "failures", failures)
-		}
-		sleep(ctx, backoff(p.cfg.RetryBase, p.cfg.RetryMax, failures))
-		after, passErr = 0, nil
+		// The end of the outbox, or the store failed (then rows behind
+		// may not have been met).
+		r.complete = err == nil
+		return r
 	}
+	return r
+}
+
+// noteDamage reports the damaged rows a pass met: each logged once, with
+// its sequence number and what is wrong (never its bytes), the gauges set,
+// and the readiness text of Degraded. A complete pass replaces what
+// earlier passes found (a repaired row drops out); one cut short by a
+// store failure only adds to it.
+func (p *Pipeline) noteDamage(r relayPassResult) {
+	if p.damaged == nil {
+		p.damaged, p.damageLogged = map[int64]string{}, map[int64]bool{}
+	}
+	found := map[int64]string{}
+	for _, d := range r.damaged {
+		found[d.Seq] = boundText(d.Err.Error(), 300)
+	}
+	if r.complete {
+		for seq := range p.damaged {
+			if _, still := found[seq]; !still {
+				p.log.Info("outbox row no longer found damaged", "seq", seq)
+			}
+		}
+		p.damaged = found
+	} else {
+		maps.Copy(p.damaged, found)
+	}
+	for _, seq := range slices.Sorted(maps.Keys(p.damaged)) {
+		if !p.damageLogged[seq] {
+			p.damageLogged[seq] = true
+			p.log.Error("outbox row not published: stored payload damaged", "seq", seq, "err", p.damaged[seq])
+		}
+	}
+	p.metrics.OutboxDamaged.Set(float64(len(p.damaged)))
+	p.metrics.OutboxHeld.Set(float64(r.held))
+	p.outboxDamage.Store(damageText(p.damaged, r.held))
+}
+
+// damageText is the readiness reason for damaged rows, "" when none: the
+// count, the first sequence numbers and the first reason.
+func damageText(damaged map[int64]string, held int) string {
+	if len(damaged) == 0 {
+		return ""
+	}
+	seqs := slices.Sorted(maps.Keys(damaged))
+	var ids []string
+	for _, s := range seqs[:min(len(seqs), 5)] {
+		ids = append(ids, strconv.FormatInt(s, 10))
+	}
+	more := ""
+	if len(seqs) > 5 {
+		more = ", ..."
+	}
+	return fmt.Sprintf("%d outbox row(s) not published: stored payload damaged (seq %s%s; first: %s); %d later version(s) held behind unpublished ones",
+		len(damaged), strings.Join(ids, ", "), more, damaged[seqs[0]], held)
 }
 
 func (p *Pipeline) updateBacklog(ctx context.Context) {

@@ -40,10 +40,32 @@ type Store interface {
 
 // RelayResult says what one RelayOutboxFrom call did.
 type RelayResult struct {
-	Claimed int   // rows handed to publish
+	Claimed int   // rows claimed (handed to publish, or Skipped)
 	Marked  int   // rows marked published
 	Last    int64 // the highest sequence number claimed, 0 when none
+	// Skipped are the rows claimed but not handed to publish, in seq
+	// order: a stored payload that is not verifiably the bytes recorded
+	// (Err wraps ErrDamagedPayload), one that could not be checked now (a
+	// store failure: Err is that failure, and RelayOutboxFrom returns it
+	// too), or a later version of a derivation whose earlier version was
+	// skipped in the same call (Err nil). Damage alone is no error of the
+	// call: the rows stay unpublished and are met again by the next pass.
+	Skipped []SkippedRow
 }
+
+// SkippedRow is an outbox row RelayOutboxFrom claimed and did not publish.
+type SkippedRow struct {
+	Seq   int64
+	MsgID string
+	Err   error // why; nil: held behind an earlier version of its derivation
+}
+
+// ErrDamagedPayload marks an outbox row whose stored payload is not
+// verifiably the bytes recorded for it: a frame that does not decode (or
+// names a dictionary the store does not hold intact), decoded bytes whose
+// SHA-256 or size is not the one stored beside them, headers that are not
+// a JSON object of strings. Such a row is never published.
+var ErrDamagedPayload = errors.New("stored outbox row damaged")
 
 // ErrDuplicate reports that a message was seen before; the caller acks it.
 var ErrDuplicate = errors.New("duplicate message")

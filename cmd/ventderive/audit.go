@@ -68,6 +68,14 @@ questions (time basis: the blood gas's effective time, except deadletters):
                  plain from before migration 0015) and check that its SHA-256 is its inbox key;
                  a payload that does not decode or match is named and the command exits non-zero.
                  Needs a role that reads inbox.raw (the migrating role), not the reviewer role.
+  outputs        re-verify every stored outbox payload (the published Observations and
+                 Provenance): a zstd frame must decode with a dictionary the database stores
+                 (review_dictionary, not the one this binary embeds) to bytes whose SHA-256
+                 and size are the ones stored beside it; plain rows from before migration 0018
+                 are counted apart. A frame, stored dictionary row or outbox row that fails
+                 (or names no stored derivation version) is named and the command exits
+                 non-zero. Runs as the reviewer role (review_published, review_outbox,
+                 review_dictionary).
 flags common to all: --database-url URL (default $DATABASE_URL; normally the reviewer role)
   --format table|json|csv (default table)
 paging (all but show, published, settings and verify of one key; replay pages its changed keys): --limit N rows (default 1000, at most 10000) --offset N rows skipped;
@@ -100,6 +108,7 @@ var auditQuestions = []auditQuestion{
 	{"verify", []string{"patient", "from", "to", "kind", "limit", "offset"}},
 	{"replay", []string{"patient", "from", "to", "kind", "algorithm", "site", "limit", "offset"}},
 	{"payloads", nil},
+	{"outputs", nil},
 }
 
 var (
@@ -333,6 +342,18 @@ func runAudit(ctx context.Context, args []string, e env) error {
 		}
 		if len(pc.Failed) > 0 {
 			return fmt.Errorf("audit payloads: %d stored payload(s) refused: not the bytes received", len(pc.Failed))
+		}
+		return nil
+	case "outputs":
+		oc, err := postgres.CheckOutputs(ctx, pool, 1000)
+		if err != nil {
+			return fmt.Errorf("audit outputs: %w (this question reads review_published, review_outbox and review_dictionary: the reviewer role)", err)
+		}
+		if err := out.outputs(oc); err != nil {
+			return err
+		}
+		if len(oc.Failed) > 0 {
+			return fmt.Errorf("audit outputs: %d stored output(s) refused: not verifiably the bytes recorded", len(oc.Failed))
 		}
 		return nil
 	case "replay":
@@ -1211,6 +1232,34 @@ func (o auditOutput) payloads(pc postgres.PayloadCheck) error {
 	}
 	fmt.Fprintf(&b, "refused: %d\n", len(pc.Failed))
 	for _, f := range pc.Failed {
+		fmt.Fprintf(&b, "  %s\n", f)
+	}
+	_, err := io.WriteString(o.w, b.String())
+	return err
+}
+
+// outputs writes what audit outputs found: counts, bytes stored against
+// exact bytes, and each refused row.
+func (o auditOutput) outputs(oc postgres.OutputCheck) error {
+	switch o.format {
+	case "json":
+		return o.json(oc)
+	case "csv":
+		w := csv.NewWriter(o.w)
+		w.Write([]string{"compressed", "plain", "stored_bytes", "payload_bytes", "refused"})
+		w.Write([]string{strconv.FormatInt(oc.Compressed, 10), strconv.FormatInt(oc.Plain, 10),
+			strconv.FormatInt(oc.StoredBytes, 10), strconv.FormatInt(oc.PayloadBytes, 10), strings.Join(oc.Failed, "; ")})
+		w.Flush()
+		return w.Error()
+	}
+	var b strings.Builder
+	n := oc.Compressed + oc.Plain
+	fmt.Fprintf(&b, "stored outputs that are the bytes recorded: %d (%d compressed, %d plain from before migration 0018)\n", n, oc.Compressed, oc.Plain)
+	if oc.StoredBytes > 0 {
+		fmt.Fprintf(&b, "  %d bytes stored for %d published (%.1f to 1)\n", oc.StoredBytes, oc.PayloadBytes, float64(oc.PayloadBytes)/float64(oc.StoredBytes))
+	}
+	fmt.Fprintf(&b, "refused: %d\n", len(oc.Failed))
+	for _, f := range oc.Failed {
 		fmt.Fprintf(&b, "  %s\n", f)
 	}
 	_, err := io.WriteString(o.w, b.String())

@@ -18,3 +18,7 @@ var WarmStatements = warmStatements
 // SnapshotFactsKnownSQL is the snapshot statement of a hot reading
 // (loadSnapshots).
 var SnapshotFactsKnownSQL = snapshotFactsKnownSQL
+
+// FactsMissingSQL is the collision guard run after an insert that skipped
+// a fact (guardSkipped).
+var FactsMissingSQL = factsMissingSQL

@@ -3,10 +3,12 @@ package postgres
 import (
 	"cmp"
 	"context"
+	"crypto/sha256"
 	"encoding/json"
 	"errors"
 	"fmt"
 	"slices"
+	"strconv"
 	"strings"
 
 	"github.com/jackc/pgx/v5"
@@ -39,7 +41,7 @@ func orNil(b []byte) []byte {
 
 const (
 	claimOutboxSQL = `
-SELECT seq, subject, msg_id, headers::text, stored_payload, payload_sha256
+SELECT seq, subject, msg_id, headers::text, stored_payload, payload_sha256, payload_size
 FROM outbox
 WHERE published_at IS NULL AND seq > $2
 ORDER BY seq
@@ -58,11 +60,31 @@ func (s *Store) RelayOutbox(ctx context.Context, limit int, publish func(context
 	return res.Marked, err
 }
 
+// claimedRow is an outbox row as claimed, before it is checked.
+type claimedRow struct {
+	m       consumer.OutboxMessage
+	headers string
+	stored  []byte
+	sum     []byte
+	size    *int32
+}
+
 // RelayOutboxFrom implements consumer.Store. Rows claimed by another relay
 // are skipped, not waited for. Sequence numbers that publish returns but did
 // not claim are ignored. When publish returns an error, the rows it reports
 // as published are still marked, the transaction commits, and the error is
 // returned wrapped ("publish outbox: ...") with the counts.
+//
+// Each claimed row is checked before publish sees it (checkOutbox): the
+// exact bytes recorded, whether stored compressed (0018) or plain. A row
+// that is not verifiably those bytes is never published: it is returned in
+// Skipped (wrapping consumer.ErrDamagedPayload), with the later versions
+// of its derivation in this page, and the other rows are published; damage
+// alone is not an error of the call. The stored dictionaries are read
+// once, and only for a frame of a dictionary this binary does not embed,
+// in a savepoint: when they cannot be read at all, the rows that need them
+// are skipped with that error, which the call also returns, while the
+// rows that do not need them are published.
 func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, publish func(context.Context, []consumer.OutboxMessage) ([]int64, error)) (consumer.RelayResult, error) {
 	var res consumer.RelayResult
 	if limit <= 0 {
@@ -70,65 +92,62 @@ func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, pub
 	}
 	var pubErr error
 	err := s.inTx(ctx, "relay outbox", func(tx pgx.Tx) error {
-		res = consumer.RelayResult{}
+		res, pubErr = consumer.RelayResult{}, nil
 		rows, err := tx.Query(ctx, claimOutboxSQL, limit, after)
 		if err != nil {
 			return fmt.Errorf("claim outbox: %w", err)
 		}
-		var sums [][]byte
-		msgs, err := pgx.CollectRows(rows, func(row pgx.CollectableRow) (consumer.OutboxMessage, error) {
-			var m consumer.OutboxMessage
-			var headers string
-			var sum []byte
-			if err := row.Scan(&m.Seq, &m.Subject, &m.MsgID, &headers, &m.Payload, &sum); err != nil {
-				return m, err
-			}
-			if err := json.Unmarshal([]byte(headers), &m.Header); err != nil {
-				return m, fmt.Errorf("outbox headers of seq %d: %w", m.Seq, err)
-			}
-			sums = append(sums, sum)
-			return m, nil
+		claimed, err := pgx.CollectRows(rows, func(row pgx.CollectableRow) (claimedRow, error) {
+			var c claimedRow
+			err := row.Scan(&c.m.Seq, &c.m.Subject, &c.m.MsgID, &c.headers, &c.stored, &c.sum, &c.size)
+			return c, err
 		})
 		if err != nil {
 			return fmt.Errorf("claim outbox: %w", err)
 		}
-		if len(msgs) == 0 {
+		if len(claimed) == 0 {
 			return nil
 		}
-		res.Claimed, res.Last = len(msgs), msgs[len(msgs)-1].Seq
-		// The exact bytes recorded, whether stored compressed (0018) or
-		// plain. A row that does not decode to the SHA-256 stored with it
-		// is never published: it stays unpublished with the later versions
-		// of its derivation in this page (as a failed publish leaves them),
-		// the pass reports it, and the rest are published.
-		ready := msgs[:0:0]
-		var decodeErr error
+		res.Claimed, res.Last = len(claimed), claimed[len(claimed)-1].m.Seq
+		var dicts *dictionarySet
+		var dictErr error
+		loaded := false
+		stored := func() (*dictionarySet, error) {
+			if !loaded {
+				loaded = true
+				dicts, dictErr = savepointDictionaries(ctx, tx)
+			}
+			return dicts, dictErr
+		}
+		ready := make([]consumer.OutboxMessage, 0, len(claimed))
+		var unavailable error
 		failed := map[string]bool{}
-		for i, m := range msgs {
-			chain := m.MsgID
+		for _, c := range claimed {
+			chain := c.m.MsgID
 			if j := strings.LastIndex(chain, "/_history/"); j >= 0 {
 				chain = chain[:j]
 			}
-			p, err := decodePublished(ctx, tx, writerDictionariesSQL, m.Seq, m.Payload, sums[i])
-			switch {
-			case err != nil && !errors.Is(err, rawcodec.ErrCorrupt) && !errors.Is(err, ErrOutputMismatch):
-				return fmt.Errorf("claim outbox: %w", err)
-			case err != nil:
-				decodeErr = cmp.Or(decodeErr, err)
-				failed[chain] = true
-				continue
-			case failed[chain]:
+			if failed[chain] {
+				res.Skipped = append(res.Skipped, consumer.SkippedRow{Seq: c.m.Seq, MsgID: c.m.MsgID})
 				continue
 			}
-			m.Payload = p
+			m, err := checkOutbox(c, stored)
+			if err != nil {
+				failed[chain] = true
+				res.Skipped = append(res.Skipped, consumer.SkippedRow{Seq: c.m.Seq, MsgID: c.m.MsgID, Err: err})
+				if !errors.Is(err, consumer.ErrDamagedPayload) {
+					unavailable = cmp.Or(unavailable, err)
+				}
+				continue
+			}
 			ready = append(ready, m)
 		}
 		var published []int64
 		if len(ready) > 0 {
 			published, pubErr = publish(ctx, ready)
 		}
-		if decodeErr != nil {
-			pubErr = errors.Join(fmt.Errorf("not published: %w", decodeErr), pubErr)
+		if unavailable != nil {
+			pubErr = errors.Join(fmt.Errorf("not published: %w", unavailable), pubErr)
 		}
 		var seqs []int64
 		for _, seq := range published {
@@ -153,6 +172,74 @@ func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, pub
 		return res, fmt.Errorf("publish outbox: %w", pubErr)
 	}
 	return res, nil
+}
+
+// savepointDictionaries reads the writer's stored outbox dictionaries in a
+// savepoint of tx, so that a failure to read them (the table gone, the
+// right revoked) does not abort the relay's transaction.
+func savepointDictionaries(ctx context.Context, tx pgx.Tx) (*dictionarySet, error) {
+	sp, err := tx.Begin(ctx)
+	if err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	ds, err := loadDictionaries(ctx, sp, writerDictionariesSQL, "raw_dictionary")
+	if err != nil {
+		_ = sp.Rollback(ctx) // a broken connection fails the marking after it
+		return nil, err
+	}
+	if err := sp.Commit(ctx); err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	return ds, nil
+}
+
+// checkOutbox returns a claimed row as it is published: its headers, and
+// the exact bytes recorded for it. A frame is decoded (with the embedded
+// outbox dictionary, or the stored one it names), and the bytes must have
+// the SHA-256 and the size stored beside it; a plain row (before 0018) is
+// its own record. Anything else is an error wrapping
+// consumer.ErrDamagedPayload, except a failure to read the stored
+// dictionaries, which says nothing about the row.
+func checkOutbox(c claimedRow, stored func() (*dictionarySet, error)) (consumer.OutboxMessage, error) {
+	m := c.m
+	damaged := func(format string, a ...any) error {
+		return fmt.Errorf("outbox %d: %w: %w", m.Seq, consumer.ErrDamagedPayload, fmt.Errorf(format, a...))
+	}
+	if err := json.Unmarshal([]byte(c.headers), &m.Header); err != nil {
+		return m, damaged("headers are not a JSON object of strings: %w", err)
+	}
+	if !rawcodec.IsCompressed(c.stored) {
+		m.Payload = c.stored
+		return m, nil
+	}
+	var b []byte
+	var err error
+	id := rawcodec.FrameDictID(c.stored)
+	if id == 0 || slices.ContainsFunc(rawcodec.Embedded(), func(d rawcodec.Dictionary) bool { return d.ID == id }) {
+		b, err = rawcodec.Outbox().Decode(c.stored)
+	} else {
+		ds, derr := stored()
+		if derr != nil {
+			return m, fmt.Errorf("outbox %d: frame of dictionary %#x not checked: %w", m.Seq, id, derr)
+		}
+		b, err = ds.decode(c.stored)
+	}
+	if err != nil {
+		return m, damaged("%w", err)
+	}
+	got := sha256.Sum256(b)
+	if len(c.sum) != len(got) || !slices.Equal(c.sum, got[:]) {
+		return m, damaged("%w: decoded bytes SHA-256 %x, stored %x", ErrOutputMismatch, got, c.sum)
+	}
+	if c.size == nil || int(*c.size) != len(b) {
+		size := "none"
+		if c.size != nil {
+			size = strconv.Itoa(int(*c.size))
+		}
+		return m, damaged("%w: decoded %d bytes, stored size %s", ErrOutputMismatch, len(b), size)
+	}
+	m.Payload = b
+	return m, nil
 }
 
 const backlogSQL = `SELECT count(*) FROM outbox WHERE published_at IS NULL`

@@ -5,6 +5,7 @@ import (
 	"crypto/sha256"
 	"errors"
 	"fmt"
+	"maps"
 	"slices"
 
 	"github.com/jackc/pgx/v5"
@@ -105,4 +106,71 @@ func decodePublished(ctx context.Context, q querier, dictSQL string, seq int64, 
 		}
 	}
 	return b, nil
+}
+
+// dictionarySet decodes outbox frames with the dictionaries of stored
+// rows (raw_dictionary, review_dictionary), one codec per intact row. A
+// row that does not hold the dictionary of its ID spoils only the frames
+// of that ID: it is kept in bad with the reason, never used.
+type dictionarySet struct {
+	codecs map[int64]*rawcodec.Codec
+	bad    map[int64]string
+	table  string // where the rows came from, for the reasons
+}
+
+// loadDictionaries reads the (id, dictionary) rows dictSQL returns. An
+// error is a failure to read them at all (no table, no right, the
+// connection): no frame it would decode is judged then.
+func loadDictionaries(ctx context.Context, q querier, dictSQL, table string) (*dictionarySet, error) {
+	rows, err := q.Query(ctx, dictSQL)
+	if err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	type dict struct {
+		ID         int64
+		Dictionary []byte
+	}
+	ds, err := pgx.CollectRows(rows, pgx.RowToStructByPos[dict])
+	if err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	set := &dictionarySet{codecs: map[int64]*rawcodec.Codec{}, bad: map[int64]string{}, table: table}
+	for _, d := range ds {
+		id, err := rawcodec.DictID(d.Dictionary)
+		if err != nil || int64(id) != d.ID {
+			set.bad[d.ID] = fmt.Sprintf("%s row %d does not hold the dictionary of that ID", table, d.ID)
+			continue
+		}
+		c, err := rawcodec.New(d.Dictionary)
+		if err != nil {
+			set.bad[d.ID] = fmt.Sprintf("%s row %d: %v", table, d.ID, err)
+			continue
+		}
+		set.codecs[d.ID] = c
+	}
+	return set, nil
+}
+
+// decode decodes a frame with the stored dictionary it names. A frame of
+// no intact stored dictionary, or that does not decode, is an error
+// wrapping rawcodec.ErrCorrupt.
+func (ds *dictionarySet) decode(stored []byte) ([]byte, error) {
+	id := int64(rawcodec.FrameDictID(stored))
+	if c := ds.codecs[id]; c != nil {
+		return c.Decode(stored)
+	}
+	if why, ok := ds.bad[id]; ok {
+		return nil, fmt.Errorf("%w: frame of dictionary %#x: %s", rawcodec.ErrCorrupt, id, why)
+	}
+	return nil, fmt.Errorf("%w: frame names dictionary %#x, which %s does not hold", rawcodec.ErrCorrupt, id, ds.table)
+}
+
+// badRows lists the stored dictionary rows that are not usable, by ID.
+func (ds *dictionarySet) badRows() []string {
+	ids := slices.Sorted(maps.Keys(ds.bad))
+	out := make([]string, len(ids))
+	for i, id := range ids {
+		out[i] = ds.bad[id]
+	}
+	return out
 }

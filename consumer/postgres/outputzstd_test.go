@@ -272,14 +272,23 @@ func TestDamagedCompressedOutputsAreRefused(t *testing.T) {
 	}
 
 	var published []int64
-	_, err = f.store.RelayOutbox(f.ctx, 100, func(_ context.Context, ms []consumer.OutboxMessage) ([]int64, error) {
+	res, err := f.store.RelayOutboxFrom(f.ctx, 0, 100, func(_ context.Context, ms []consumer.OutboxMessage) ([]int64, error) {
 		for _, m := range ms {
 			published = append(published, m.Seq)
 		}
 		return seqs(ms), nil
 	})
-	if !errors.Is(err, rawcodec.ErrCorrupt) {
-		t.Errorf("relay over a damaged row: %v, want ErrCorrupt", err)
+	if err != nil {
+		t.Errorf("relay over a damaged row: %v, want the damage reported in Skipped, not as a failure", err)
+	}
+	skipped := false
+	for _, s := range res.Skipped {
+		if s.Seq == obsSeq {
+			skipped = errors.Is(s.Err, rawcodec.ErrCorrupt) && errors.Is(s.Err, consumer.ErrDamagedPayload)
+		}
+	}
+	if !skipped {
+		t.Errorf("the damaged row %d is not skipped as damaged (ErrCorrupt): %+v", obsSeq, res.Skipped)
 	}
 	for _, s := range published {
 		if s == obsSeq {

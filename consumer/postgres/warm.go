@@ -28,13 +28,22 @@ import (
 // PostgreSQL later invalidates (new statistics, a new partition) is made
 // again by the next execution, as before.
 //
+// factsMissingSQL, the collision guard, runs only after an insert that
+// skipped a fact (a resource sent again): with NULL arrays it counts no
+// row.
+//
 // Left out are the statements that insert one row from scalar parameters
 // (claimInboxSQL, insertDerivationSQL, insertRefusalSQL, insertSettingsSQL):
 // NULLs violate their NOT NULL columns, and pgx drops a cached statement
 // whose execution failed. They are planned by their first use, as before.
+// So are the term and encounter lookups (loadTermsSQL, loadEncountersSQL,
+// seedTermsSQL, seedEncountersSQL): they run on the pool outside any
+// ingest transaction, under the default plan_cache_mode (custom plans for
+// their first executions), and only when the Store's cache misses a value,
+// so a generic plan made here would not be the one they use.
 var warmStatements = []string{
 	lockPatientsSQL, claimInboxesSQL, hotPatientsSQL, lockPatientSQL,
-	insertFactsSQL, otherPatientsSQL, countFactsSQL,
+	insertFactsSQL, factsMissingSQL, otherPatientsSQL, countFactsSQL,
 	affectedSQL, snapshotFactsSQL, snapshotHeadsSQL, snapshotHeadsPendingSQL,
 	snapshotFactsKnownSQL, snapshotHeadsKnownSQL, snapshotHeadsPendingKnownSQL,
 	insertDerivationsSQL, insertRefusalsSQL, writeHeadsSQL, insertOutboxRowsSQL, insertOutboxSQL,

@@ -3,6 +3,7 @@ package postgres_test
 import (
 	"context"
 	"fmt"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -204,5 +205,39 @@ func TestRewarmAfterMigrations(t *testing.T) {
 		if plans[sql] < 1 {
 			t.Errorf("after Rewarm no generic plan of %.80q", strings.TrimSpace(sql))
 		}
+	}
+}
+
+// The collision guard (factsMissingSQL) is warmed too: it runs only when a
+// message carries a fact already stored (a resource sent again), which on
+// a new connection would otherwise plan it in that message's transaction.
+// A warmed connection holds its generic plan before any message, and a
+// message that repeats a stored blood gas beside a new reading then runs
+// that same plan once more.
+func TestWarmPoolPlansCollisionGuard(t *testing.T) {
+	f := newFixture(t)
+	var p testPlan
+	gas := abg(p1, "warm-guard-abg", t0, 45)
+	if _, err := f.store.Ingest(f.ctx, message("fhir.input.lab", 1, gas), p.plan); err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Contains(postgres.WarmStatements, postgres.FactsMissingSQL) {
+		t.Fatal("factsMissingSQL is not among the warmed statements")
+	}
+	pool := onePool(t, f, true)
+	before := genericPlans(t, f, pool)
+	if before[postgres.FactsMissingSQL] < 1 {
+		t.Fatalf("a warmed connection holds no generic plan of the collision guard")
+	}
+	store := postgres.New(pool, postgres.Options{PatientKey: testKey, Now: clock()})
+	again := message("fhir.input.lab", 2, gas, vent(p1, "warm-guard-ve", fhirmap.QMinuteVol, t0.Add(-time.Minute), 9, "L/min"))
+	for _, r := range store.IngestBatch(f.ctx, []consumer.Message{again}, p.plan) {
+		if r.Err != nil {
+			t.Fatal(r.Err)
+		}
+	}
+	after := genericPlans(t, f, pool)
+	if sql := postgres.FactsMissingSQL; after[sql] <= before[sql] {
+		t.Errorf("the repeated fact did not run the warmed collision guard: generic plans %d before, %d after", before[sql], after[sql])
 	}
 }
