@@ -26,16 +26,17 @@ FROM unnest($1::text[]) AS u(ref)`
 
 	// claimInboxesSQL claims the inbox keys of a group in one statement
 	// (in key order, so that two groups holding the same redelivered
-	// message cannot deadlock on it) and returns those it claimed; a key
-	// listed twice is claimed once.
+	// message cannot deadlock on it) and returns those it claimed, as hex;
+	// a key listed twice is claimed once. The keys arrive as hex and are
+	// stored as their 32 bytes (migration 0019).
 	claimInboxesSQL = `
 INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
-SELECT u.inbox_key, u.subject, u.stream_seq, u.received, $8, u.resources, u.facts, u.raw
+SELECT decode(u.inbox_key, 'hex'), u.subject, u.stream_seq, u.received, $8, u.resources, u.facts, u.raw
 FROM unnest($1::text[], $2::text[], $3::bigint[], $4::timestamptz[], $5::int[], $6::int[], $7::int[], $9::bytea[])
      AS u(inbox_key, subject, stream_seq, received, resources, facts, ord, raw)
-ORDER BY u.inbox_key, u.ord
+ORDER BY decode(u.inbox_key, 'hex'), u.ord
 ON CONFLICT (inbox_key) DO NOTHING
-RETURNING inbox_key`
+RETURNING encode(inbox_key, 'hex')`
 )
 
 // IngestBatch implements consumer.BatchStore: group commit. It records
