@@ -1,4 +1,5 @@
--- 0019: the inbox key as its 32 bytes instead of 64 hex characters.
+-- 0019: the inbox key as its 32 bytes instead of 64 hex characters, and
+-- the inbox row's subject as a number into a lookup table.
 --
 -- The inbox key is the SHA-256 of the message's payload. Stored as
 -- lowercase hex text it took 65 bytes in the inbox row and as many in each
@@ -29,15 +30,24 @@
 --    columns too (inbox_key as hex text), so the four views over it are
 --    left as they are: it is first replaced by a definition that does not
 --    read inbox.inbox_key, and after the conversion by the final one.
+-- 5. inbox.subject (text, 18 bytes a row on the bench) becomes subject_id,
+--    an integer into the new lookup table inbox_subject (one row per
+--    subject, unique). Input subjects are any subject under the input
+--    stream's filter, recorded and not interpreted, so the codes are not a
+--    fixed list: the writer's claim inserts a subject it does not find in
+--    the same statement (ON CONFLICT DO UPDATE, a no-op update, returns the
+--    row even when a concurrent transaction committed it first), as the
+--    fact writer does for fact_encounter; a foreign key keeps every code a
+--    known subject. integer rather than smallint: the column follows the
+--    33-byte key and precedes an 8-byte-aligned bigint, so both take the
+--    same room, and an integer cannot run out.
+-- 6. The grants function is restated (inbox.subject_id; inbox_subject).
 --
--- Left as they are: inbox.subject stays text (input subjects are any
--- subject under the input stream's filter, recorded and not interpreted:
--- a CHECKed list of codes would refuse a new one, and a lookup table
--- filled by the writer would put an upsert into every group's claim); the
--- counts resources and facts stay integer (facts is bounded only by the
--- message size, not provably under 32,767, and with this column order
--- int2 would save at most the padding before id). Grants are unchanged:
--- the column grants on inbox and dead_letter survive the type change.
+-- Left as they are: dead_letter.subject stays text (a dead letter is rare
+-- and people read it); the counts resources and facts stay integer (facts
+-- is bounded only by the message size, not provably under 32,767; two
+-- smallints would move raw 4 bytes earlier, which saves 8 bytes on about
+-- half the rows, as the row ends 8-aligned after id, and none on the rest).
 --
 -- Every table named here is rewritten under an ACCESS EXCLUSIVE lock: on a
 -- large store stop the service while the migration runs.
@@ -62,12 +72,25 @@ ALTER TABLE outbox DROP CONSTRAINT outbox_inbox_key_fkey;
 ALTER TABLE site_settings DROP CONSTRAINT site_settings_inbox_key_fkey;
 ALTER TABLE input_resource DROP CONSTRAINT input_resource_inbox_key_fkey;
 
-ALTER TABLE inbox DROP CONSTRAINT inbox_raw_matches;
+-- The subjects: one row each, numbered in their order.
+CREATE TABLE inbox_subject (
+    id      integer GENERATED ALWAYS AS IDENTITY PRIMARY KEY,
+    subject text NOT NULL UNIQUE CHECK (subject <> '')
+);
+INSERT INTO inbox_subject (subject) SELECT DISTINCT subject FROM inbox ORDER BY subject;
+CREATE FUNCTION pg_temp.inbox_subject_id(s text) RETURNS integer
+LANGUAGE sql STABLE AS $$ SELECT id FROM inbox_subject WHERE subject = s $$;
+
+-- One rewrite of inbox for both columns.
+ALTER TABLE inbox DROP CONSTRAINT inbox_raw_matches, DROP CONSTRAINT inbox_subject_check;
 ALTER TABLE inbox
     ALTER COLUMN inbox_key TYPE bytea USING decode(inbox_key, 'hex'),
+    ALTER COLUMN subject TYPE integer USING pg_temp.inbox_subject_id(subject),
     ADD CONSTRAINT inbox_key_size CHECK (octet_length(inbox_key) = 32),
     ADD CONSTRAINT inbox_raw_matches CHECK (
         raw IS NULL OR substr(raw, 1, 4) = '\x28b52ffd'::bytea OR inbox_key = sha256(raw));
+ALTER TABLE inbox RENAME COLUMN subject TO subject_id;
+ALTER TABLE inbox ADD CONSTRAINT inbox_subject_id_fkey FOREIGN KEY (subject_id) REFERENCES inbox_subject;
 
 ALTER TABLE derivation ALTER COLUMN inbox_key TYPE bytea USING decode(inbox_key, 'hex');
 ALTER TABLE refusal ALTER COLUMN inbox_key TYPE bytea USING decode(inbox_key, 'hex');
@@ -131,3 +154,46 @@ CREATE VIEW review_dead_letter AS
 SELECT id, encode(inbox_key, 'hex') AS inbox_key, subject, stream_seq, octet_length(raw) AS size_bytes, reason, detail,
        created_at
 FROM dead_letter;
+
+-- The grants function of 0018 with inbox.subject_id for subject and the
+-- lookup table inbox_subject (read, insert, and the no-op update of the
+-- writer's ON CONFLICT DO UPDATE). Reviewer views are still found by name.
+CREATE OR REPLACE FUNCTION ventderive_apply_grants() RETURNS void
+LANGUAGE plpgsql AS $$
+DECLARE
+    v text;
+BEGIN
+    IF EXISTS (SELECT 1 FROM pg_roles WHERE rolname = 'ventderive_writer') THEN
+        GRANT SELECT, INSERT ON derivation, derivation_input,
+            refusal, refusal_input, head, outbox, site_settings TO ventderive_writer;
+        GRANT SELECT ON fact TO ventderive_writer;
+        GRANT SELECT, INSERT ON fact_row, fact_encounter, fact_term TO ventderive_writer;
+        GRANT UPDATE (encounter) ON fact_encounter TO ventderive_writer;
+        GRANT UPDATE (quantity) ON fact_term TO ventderive_writer;
+        GRANT USAGE ON SEQUENCE fact_row_id_seq TO ventderive_writer;
+        GRANT EXECUTE ON FUNCTION ventderive_fact_partitions(timestamptz, timestamptz) TO ventderive_writer;
+        REVOKE SELECT ON inbox, input_resource, dead_letter FROM ventderive_writer;
+        GRANT INSERT ON inbox, input_resource, dead_letter TO ventderive_writer;
+        GRANT SELECT (id, inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts)
+            ON inbox TO ventderive_writer;
+        GRANT SELECT, INSERT ON inbox_subject TO ventderive_writer;
+        GRANT UPDATE (subject) ON inbox_subject TO ventderive_writer;
+        GRANT SELECT (id, reference, resource_type, version_id, patient_ref, patient_hash, digest,
+            inbox_key, received, recorded_at) ON input_resource TO ventderive_writer;
+        GRANT SELECT (id, inbox_key, subject, stream_seq, reason, detail, created_at)
+            ON dead_letter TO ventderive_writer;
+        GRANT UPDATE (published_at) ON outbox TO ventderive_writer;
+        GRANT UPDATE ON head TO ventderive_writer;
+        GRANT SELECT ON schema_version TO ventderive_writer;
+        GRANT SELECT ON raw_dictionary TO ventderive_writer;
+    END IF;
+    IF EXISTS (SELECT 1 FROM pg_roles WHERE rolname = 'ventderive_reviewer') THEN
+        FOR v IN SELECT viewname FROM pg_views
+                 WHERE schemaname = current_schema() AND viewname LIKE 'review\_%' ORDER BY viewname
+        LOOP
+            EXECUTE format('GRANT SELECT ON %I TO ventderive_reviewer', v);
+        END LOOP;
+    END IF;
+END;
+$$;
+REVOKE ALL ON FUNCTION ventderive_apply_grants() FROM PUBLIC;

@@ -22,7 +22,8 @@ import (
 // SHA-256 of invented payloads, computed here with Go's crypto/sha256 (FIPS
 // 180-4). After 0019 every stored key is its 32 bytes and hex-encodes to
 // the key stored before; the reviewer views that show a key read back row
-// for row as before (64 lowercase hex characters); a redelivered message
+// for row as before (64 lowercase hex characters); each inbox row names its
+// subject as before, through one inbox_subject row a subject; a redelivered message
 // is still a duplicate (ON CONFLICT stores nothing, a plain insert breaks
 // inbox_pkey); the foreign keys still refuse a row naming no inbox row;
 // and inbox_raw_matches still refuses a payload that is not its key's.
@@ -92,8 +93,11 @@ func TestInboxKeyBytesMigratesStoredRows(t *testing.T) {
 	     FROM pg_attribute a JOIN pg_class c ON c.oid = a.attrelid
 	     WHERE c.relname IN ('fact', 'review_fact', 'review_derivation', 'review_refusal', 'review_outbox',
 	                         'review_dead_letter') AND a.attnum > 0))`
-	var before string
+	var before, subjectsBefore string
 	if err := conn.QueryRow(ctx, viewsSQL).Scan(&before); err != nil {
+		t.Fatal(err)
+	}
+	if err := conn.QueryRow(ctx, `SELECT string_agg(inbox_key || ' ' || subject, ',' ORDER BY inbox_key) FROM inbox`).Scan(&subjectsBefore); err != nil {
 		t.Fatal(err)
 	}
 	for _, k := range []string{keyA, keyB, keyDead} {
@@ -106,6 +110,7 @@ func TestInboxKeyBytesMigratesStoredRows(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	var pgErr *pgconn.PgError
 	if v != migrations.Latest() || v < 19 {
 		t.Fatalf("migrated to %d, want Latest %d (>= 19)", v, migrations.Latest())
 	}
@@ -157,9 +162,26 @@ func TestInboxKeyBytesMigratesStoredRows(t *testing.T) {
 		t.Errorf("the views read differently after 0019:\n before\n%s\n after\n%s", before, after)
 	}
 
+	// Each inbox row names its subject through inbox_subject, one row a
+	// subject; a number that names no subject is refused.
+	var subjectsAfter string
+	var subjectRows int
+	if err := conn.QueryRow(ctx, `SELECT string_agg(encode(i.inbox_key, 'hex') || ' ' || s.subject, ',' ORDER BY i.inbox_key),
+	    (SELECT count(*) FROM inbox_subject) FROM inbox i JOIN inbox_subject s ON s.id = i.subject_id`).Scan(&subjectsAfter, &subjectRows); err != nil {
+		t.Fatal(err)
+	}
+	if subjectsAfter != subjectsBefore || subjectRows != 2 {
+		t.Errorf("subjects after 0019: %s (%d lookup rows), want %s (2)", subjectsAfter, subjectRows, subjectsBefore)
+	}
+	if _, err := conn.Exec(ctx, `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts)
+	    VALUES (decode(repeat('cd', 32), 'hex'), 9999, 5, now(), now(), 0, 0)`); !errors.As(err, &pgErr) ||
+		pgErr.Code != "23503" || pgErr.ConstraintName != "inbox_subject_id_fkey" {
+		t.Errorf("an inbox row naming no subject: %v, want a foreign key violation of inbox_subject_id_fkey", err)
+	}
+
 	// Dedup: the same message again is a duplicate.
-	const claim = `INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
-	  VALUES (decode($1, 'hex'), 'fhir.input.lab', 9, now(), now(), 0, 0, $2)`
+	const claim = `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts, raw)
+	  VALUES (decode($1, 'hex'), (SELECT id FROM inbox_subject WHERE subject = 'fhir.input.lab'), 9, now(), now(), 0, 0, $2)`
 	tag, err := conn.Exec(ctx, claim+` ON CONFLICT (inbox_key) DO NOTHING`, keyA, payload)
 	if err != nil {
 		t.Fatal(err)
@@ -168,7 +190,6 @@ func TestInboxKeyBytesMigratesStoredRows(t *testing.T) {
 		t.Errorf("a redelivered message claimed %d inbox rows, want 0 (a duplicate)", tag.RowsAffected())
 	}
 	_, err = conn.Exec(ctx, claim, keyA, payload)
-	var pgErr *pgconn.PgError
 	if !errors.As(err, &pgErr) || pgErr.Code != "23505" || pgErr.ConstraintName != "inbox_pkey" {
 		t.Errorf("a second inbox row with key A: %v, want a unique violation of inbox_pkey", err)
 	}
@@ -221,8 +242,11 @@ func TestInboxKeyIs32Bytes(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer conn.Close(ctx)
-	const inbox = `INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
-	  VALUES ($1, 'fhir.input.lab', 1, now(), now(), 0, 0)`
+	if _, err := conn.Exec(ctx, `INSERT INTO inbox_subject (subject) VALUES ('fhir.input.lab')`); err != nil {
+		t.Fatal(err)
+	}
+	const inbox = `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts)
+	  VALUES ($1, (SELECT id FROM inbox_subject WHERE subject = 'fhir.input.lab'), 1, now(), now(), 0, 0)`
 	const dead = `INSERT INTO dead_letter (inbox_key, subject, stream_seq, raw, reason, detail, created_at)
 	  VALUES ($1, 'fhir.input.lab', 1, '\x7b', 'invalid-json', '', now())`
 	hexText := []byte(strings.Repeat("ab", 32)) // 64 bytes: the hex characters themselves

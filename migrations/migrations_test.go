@@ -153,7 +153,8 @@ func TestChecksRefuseBadRows(t *testing.T) {
 	}
 	defer conn.Close(ctx)
 	const key = "aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa"
-	if _, err := conn.Exec(ctx, `INSERT INTO inbox VALUES (decode($1, 'hex'), 'fhir.input.lab', 1, now(), now(), 0, 0)`, key); err != nil {
+	if _, err := conn.Exec(ctx, `WITH s AS (INSERT INTO inbox_subject (subject) VALUES ('fhir.input.lab') RETURNING id)
+	    INSERT INTO inbox VALUES (decode($1, 'hex'), (SELECT id FROM s), 1, now(), now(), 0, 0)`, key); err != nil {
 		t.Fatal(err)
 	}
 	const hash = "0123456789abcdef0123456789abcdef"

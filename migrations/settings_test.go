@@ -28,7 +28,8 @@ func TestSiteSettingsChecks(t *testing.T) {
 	}
 	defer conn.Close(ctx)
 	inbox := strings.Repeat("a", 64)
-	if _, err := conn.Exec(ctx, `INSERT INTO inbox VALUES (decode($1, 'hex'), 's', 0, now(), now(), 0, 0)`, inbox); err != nil {
+	if _, err := conn.Exec(ctx, `WITH s AS (INSERT INTO inbox_subject (subject) VALUES ('s') RETURNING id)
+	    INSERT INTO inbox VALUES (decode($1, 'hex'), (SELECT id FROM s), 0, now(), now(), 0, 0)`, inbox); err != nil {
 		t.Fatal(err)
 	}
 	sum := func(s string) string { h := sha256.Sum256([]byte(s)); return hex.EncodeToString(h[:]) }

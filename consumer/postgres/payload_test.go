@@ -46,8 +46,11 @@ func TestPayloadsCompressedAndChecked(t *testing.T) {
 	plain := []byte(`{"resourceType":"Bundle","type":"collection","entry":[]}`)
 	sum := sha256.Sum256(plain)
 	plainKey := hex.EncodeToString(sum[:])
-	insert := `INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
-		VALUES (decode($1, 'hex'), 'fhir.input.device', 99, now(), now(), 0, 0, $2)`
+	if _, err := f.pool.Exec(f.ctx, `INSERT INTO inbox_subject (subject) VALUES ('fhir.input.device') ON CONFLICT DO NOTHING`); err != nil {
+		t.Fatal(err)
+	}
+	insert := `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts, raw)
+		VALUES (decode($1, 'hex'), (SELECT id FROM inbox_subject WHERE subject = 'fhir.input.device'), 99, now(), now(), 0, 0, $2)`
 	if _, err := f.pool.Exec(f.ctx, insert, plainKey, plain); err != nil {
 		t.Fatal(err)
 	}

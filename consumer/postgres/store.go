@@ -122,9 +122,19 @@ const (
 	pointLookupsSQL = `SELECT set_config('enable_seqscan', 'off', true), set_config('plan_cache_mode', 'force_generic_plan', true),
     set_config('jit', 'off', true), set_config('max_parallel_workers_per_gather', '0', true)`
 
+	// claimInboxSQL claims the message's inbox key (hex, stored as its 32
+	// bytes) and stores its subject as an inbox_subject id, inserting a
+	// subject not stored yet as claimInboxesSQL does (migration 0019).
 	claimInboxSQL = `
-INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
-VALUES (decode($1, 'hex'), $2, $3, $4, $5, $6, $7, $8)
+WITH ns AS (
+    INSERT INTO inbox_subject (subject)
+    SELECT $2::text WHERE NOT EXISTS (SELECT 1 FROM inbox_subject x WHERE x.subject = $2::text)
+    ON CONFLICT (subject) DO UPDATE SET subject = EXCLUDED.subject
+    RETURNING id
+)
+INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts, raw)
+VALUES (decode($1, 'hex'), coalesce((SELECT x.id FROM inbox_subject x WHERE x.subject = $2::text), (SELECT id FROM ns)),
+    $3, $4, $5, $6, $7, $8)
 ON CONFLICT (inbox_key) DO NOTHING`
 
 	// One lock per patient, taken in sorted order by the caller so that two

@@ -28,7 +28,8 @@ func TestMain(m *testing.M) { pgtest.Main(m) }
 // every minute and a blood gas every 4 hours. The values are invented and
 // plausible; they are not physiology under test.
 const benchFillSQL = `
-INSERT INTO inbox VALUES (decode(repeat('a', 64), 'hex'), 'bench', 0, now(), now(), 0, 0);
+INSERT INTO inbox_subject (subject) VALUES ('bench');
+INSERT INTO inbox VALUES (decode(repeat('a', 64), 'hex'), (SELECT id FROM inbox_subject), 0, now(), now(), 0, 0);
 CREATE TEMP TABLE g AS
 SELECT 'Patient/bench-long' AS ref, 'Observation/bl-abg-' || i || '#http://loinc.org|2019-8' AS bg,
        'Observation/bl-abg-' || i AS res, timestamptz '2026-03-01 00:30:00Z' + i * interval '4 hours' AS eff, i AS n
