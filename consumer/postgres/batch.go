@@ -29,10 +29,12 @@ FROM unnest($1::text[]) AS u(ref)`
 	// message cannot deadlock on it) and returns those it claimed, as hex;
 	// a key listed twice is claimed once. The keys arrive as hex and are
 	// stored as their 32 bytes, the subjects as their inbox_subject ids
-	// (migration 0019): a subject not stored yet is inserted by the same
-	// statement, in sorted order, and ON CONFLICT DO UPDATE (a no-op
-	// update) returns its id even when a concurrent transaction committed
-	// it first, as insertFactsSQL does for its lookup rows.
+	// (migration 0019). IngestBatch commits a new subject before the
+	// transaction (seedLookups); one still missing (the seed failed, or no
+	// lookup cache) is inserted by this statement, in sorted order, and ON
+	// CONFLICT DO UPDATE (a no-op update) returns its id even when a
+	// concurrent transaction committed it first, as insertFactsSQL does for
+	// its lookup rows.
 	claimInboxesSQL = `
 WITH ns AS (
     INSERT INTO inbox_subject (subject)
