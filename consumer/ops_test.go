@@ -368,7 +368,7 @@ func TestFrozenLockHoldsBackOnlyItsPatient(t *testing.T) {
 	deadline := time.Now().Add(90 * time.Second)
 	for {
 		var n int
-		if err := h.pool.QueryRow(ctx, `SELECT count(*) FROM inbox WHERE inbox_key = ANY($1)`, inboxKeys(others)).Scan(&n); err != nil {
+		if err := h.pool.QueryRow(ctx, `SELECT count(*) FROM inbox WHERE encode(inbox_key, 'hex') = ANY($1)`, inboxKeys(others)).Scan(&n); err != nil {
 			t.Fatal(err)
 		}
 		if n == len(others) {

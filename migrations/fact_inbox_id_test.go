@@ -228,7 +228,7 @@ func TestFactInboxIDMigratesStoredRows(t *testing.T) {
 		t.Errorf("stored columns:\n got  %s\n want %s", stored, wantStored)
 	}
 	var ids string
-	if err := conn.QueryRow(ctx, `SELECT string_agg(i.id::text || '=' || left(i.inbox_key, 1), ' ' ORDER BY i.id) FROM inbox i`).Scan(&ids); err != nil {
+	if err := conn.QueryRow(ctx, `SELECT string_agg(i.id::text || '=' || left(encode(i.inbox_key, 'hex'), 1), ' ' ORDER BY i.id) FROM inbox i`).Scan(&ids); err != nil {
 		t.Fatal(err)
 	}
 	if ids != "1=a 2=b" {
@@ -239,7 +239,7 @@ func TestFactInboxIDMigratesStoredRows(t *testing.T) {
 	// version again is refused by the unique key.
 	const newSQL = `INSERT INTO fact_row (inbox_id, effective, value, encounter_id, term_id, key, digest, patient_ref,
 	    quantity, version_id)
-	  SELECT (SELECT id FROM inbox WHERE inbox_key = $1), '2026-03-01T11:43:00Z', 400, e.id, t.id, 'Observation/vt4',
+	  SELECT (SELECT id FROM inbox WHERE inbox_key = decode($1, 'hex')), '2026-03-01T11:43:00Z', 400, e.id, t.id, 'Observation/vt4',
 	    decode(repeat('6', 64), 'hex'), 'Patient/p1', 'tidal-volume', ''
 	  FROM fact_encounter e, fact_term t WHERE e.encounter = '' AND t.quantity = 'tidal-volume'
 	  ON CONFLICT (hashtextextended(key, 0), digest, effective) DO NOTHING` // the unique index since 0017

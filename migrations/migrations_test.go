@@ -153,7 +153,8 @@ func TestChecksRefuseBadRows(t *testing.T) {
 	}
 	defer conn.Close(ctx)
 	const key = "aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa"
-	if _, err := conn.Exec(ctx, `INSERT INTO inbox VALUES ($1, 'fhir.input.lab', 1, now(), now(), 0, 0)`, key); err != nil {
+	if _, err := conn.Exec(ctx, `WITH s AS (INSERT INTO inbox_subject (subject) VALUES ('fhir.input.lab') RETURNING id)
+	    INSERT INTO inbox VALUES (decode($1, 'hex'), (SELECT id FROM s), 1, now(), now(), 0, 0)`, key); err != nil {
 		t.Fatal(err)
 	}
 	const hash = "0123456789abcdef0123456789abcdef"
@@ -177,7 +178,7 @@ func TestChecksRefuseBadRows(t *testing.T) {
 	  blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
 	  interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest, inbox_key, created_at)
 	  VALUES ($1, $2, gen_random_uuid(), 'vdvt', 'Patient/p1', $3, '', 'Observation/a', now(), $4, $5, 'm', '1',
-	  '[]', '[]', '', '', '', '', '[]', $6, '', 'a/1', $7, $8, now())`
+	  '[]', '[]', '', '', '', '', '[]', $6, '', 'a/1', $7, decode($8, 'hex'), now())`
 	tests := []struct {
 		name       string
 		sql        string
@@ -202,12 +203,12 @@ func TestChecksRefuseBadRows(t *testing.T) {
 		// inbox_inbox_key_check and refusal_reason_check were dropped by
 		// 0013 (values the service computes): TestServiceChecksDropped.
 		{"refusal of another patient's key", `INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail, digest, inbox_key, created_at)
-		  VALUES ('Patient/p2|Observation/a|vdvt', 'vdvt', 'Patient/p1', $1, 'Observation/a', now(), 'venous-specimen', '', $2, $3, now())`,
+		  VALUES ('Patient/p2|Observation/a|vdvt', 'vdvt', 'Patient/p1', $1, 'Observation/a', now(), 'venous-specimen', '', $2, decode($3, 'hex'), now())`,
 			[]any{hash, dig, key}, "refusal_key_parts"},
-		{"outbox subject with space", `INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at) VALUES ('a b', 'm1', '{}', '', $1, now())`,
+		{"outbox subject with space", `INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at) VALUES ('a b', 'm1', '{}', '', decode($1, 'hex'), now())`,
 			[]any{key}, "outbox_subject_check"},
 		{"resource digest not of its bytes", `INSERT INTO input_resource (reference, resource_type, version_id, patient_ref, patient_hash, digest, raw, inbox_key, received, recorded_at)
-		  VALUES ('Observation/a', 'Observation', '', 'Patient/p1', $1, $2, '\x7b7d', $3, now(), now())`,
+		  VALUES ('Observation/a', 'Observation', '', 'Patient/p1', $1, $2, '\x7b7d', decode($3, 'hex'), now(), now())`,
 			[]any{hash, dig, key}, "input_resource_digest_matches"},
 	}
 	for _, tc := range tests {

@@ -28,7 +28,8 @@ func TestSiteSettingsChecks(t *testing.T) {
 	}
 	defer conn.Close(ctx)
 	inbox := strings.Repeat("a", 64)
-	if _, err := conn.Exec(ctx, `INSERT INTO inbox VALUES ($1, 's', 0, now(), now(), 0, 0)`, inbox); err != nil {
+	if _, err := conn.Exec(ctx, `WITH s AS (INSERT INTO inbox_subject (subject) VALUES ('s') RETURNING id)
+	    INSERT INTO inbox VALUES (decode($1, 'hex'), (SELECT id FROM s), 0, now(), now(), 0, 0)`, inbox); err != nil {
 		t.Fatal(err)
 	}
 	sum := func(s string) string { h := sha256.Sum256([]byte(s)); return hex.EncodeToString(h[:]) }
@@ -44,7 +45,7 @@ func TestSiteSettingsChecks(t *testing.T) {
 		{"no site", sum(`{"algorithm":"x","aliasDigest":""}`), `{"algorithm":"x","aliasDigest":""}`, "x", "", "site_settings_is_object"},
 	}
 	for _, tc := range tests {
-		_, err := conn.Exec(ctx, `INSERT INTO site_settings VALUES ($1, $2, $3, $4, $5, now())`, tc.digest, tc.snapshot, tc.algorithm, tc.alias, inbox)
+		_, err := conn.Exec(ctx, `INSERT INTO site_settings VALUES ($1, $2, $3, $4, decode($5, 'hex'), now())`, tc.digest, tc.snapshot, tc.algorithm, tc.alias, inbox)
 		var pgErr *pgconn.PgError
 		switch {
 		case tc.constraint == "" && err != nil:

@@ -316,7 +316,7 @@ func TestAuditVerifyReplay(t *testing.T) {
 		t.Fatal(err)
 	}
 	var snapshot, inbox string
-	if err := admin.QueryRow(ctx, `SELECT snapshot, inbox_key FROM site_settings WHERE digest = $1`, snapDigest).Scan(&snapshot, &inbox); err != nil {
+	if err := admin.QueryRow(ctx, `SELECT snapshot, encode(inbox_key, 'hex') FROM site_settings WHERE digest = $1`, snapDigest).Scan(&snapshot, &inbox); err != nil {
 		t.Fatal(err)
 	}
 	older := strings.Replace(snapshot, `"algorithm":"`+fhirmap.Algorithm+`"`, `"algorithm":"ventderive-derive/0"`, 1)
@@ -324,7 +324,7 @@ func TestAuditVerifyReplay(t *testing.T) {
 		t.Fatalf("the snapshot does not name its algorithm as expected: %s", snapshot)
 	}
 	if _, err := admin.Exec(ctx, `INSERT INTO site_settings (digest, snapshot, algorithm, alias_digest, inbox_key, created_at)
-		VALUES ($1, $2, 'ventderive-derive/0', '', $3, now())`, auditSHA([]byte(older)), older, inbox); err != nil {
+		VALUES ($1, $2, 'ventderive-derive/0', '', decode($3, 'hex'), now())`, auditSHA([]byte(older)), older, inbox); err != nil {
 		t.Fatal(err)
 	}
 	ratio := patC + "|Observation/abg-c3|" + fhirmap.KindVentilatoryRatio

@@ -103,7 +103,7 @@ func (b *bench) backlog(ctx context.Context) (backlogResult, error) {
 	if err == nil {
 		err = b.whileDraining(ctx, func() (bool, error) {
 			var n int
-			if err := pool.QueryRow(ctx, `SELECT count(*) FROM outbox WHERE inbox_key = $1 AND subject = $2 AND published_at IS NOT NULL`,
+			if err := pool.QueryRow(ctx, `SELECT count(*) FROM outbox WHERE inbox_key = decode($1, 'hex') AND subject = $2 AND published_at IS NOT NULL`,
 				gasKey, consumer.DefaultObservationSub).Scan(&n); err != nil || n == 0 {
 				return false, err
 			}
@@ -138,10 +138,10 @@ func (b *bench) backlog(ctx context.Context) (backlogResult, error) {
 		return res, err
 	}
 	var gasSeq int64
-	if err := pool.QueryRow(ctx, `SELECT stream_seq FROM inbox WHERE inbox_key = $1`, gasKey).Scan(&gasSeq); err != nil {
+	if err := pool.QueryRow(ctx, `SELECT stream_seq FROM inbox WHERE inbox_key = decode($1, 'hex')`, gasKey).Scan(&gasSeq); err != nil {
 		return res, fmt.Errorf("the fresh gas: %w", err)
 	}
-	rows, err := pool.Query(ctx, `SELECT msg_id FROM outbox WHERE inbox_key = ANY($1) AND subject = $2`, keys, consumer.DefaultObservationSub)
+	rows, err := pool.Query(ctx, `SELECT msg_id FROM outbox WHERE inbox_key = ANY(ARRAY(SELECT decode(k, 'hex') FROM unnest($1::text[]) AS k)) AND subject = $2`, keys, consumer.DefaultObservationSub)
 	if err != nil {
 		return res, err
 	}

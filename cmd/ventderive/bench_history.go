@@ -285,7 +285,10 @@ func (b *bench) drainMeasured(ctx context.Context, name, url string, pool *pgxpo
 		keys = append(keys, k)
 	}
 	var old int64
-	if err := pool.QueryRow(ctx, `SELECT (SELECT count(*) FROM inbox WHERE inbox_key = ANY($1)) + (SELECT count(*) FROM dead_letter WHERE inbox_key = ANY($1))`, keys).Scan(&old); err != nil {
+	if err := pool.QueryRow(ctx, `
+WITH k AS (SELECT decode(k, 'hex') AS key FROM unnest($1::text[]) AS k)
+SELECT (SELECT count(*) FROM inbox WHERE inbox_key IN (SELECT key FROM k))
+     + (SELECT count(*) FROM dead_letter WHERE inbox_key IN (SELECT key FROM k))`, keys).Scan(&old); err != nil {
 		return row, err
 	}
 	want := before + int64(len(keys)) - old

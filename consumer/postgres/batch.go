@@ -26,16 +26,33 @@ FROM unnest($1::text[]) AS u(ref)`
 
 	// claimInboxesSQL claims the inbox keys of a group in one statement
 	// (in key order, so that two groups holding the same redelivered
-	// message cannot deadlock on it) and returns those it claimed; a key
-	// listed twice is claimed once.
+	// message cannot deadlock on it) and returns those it claimed, as hex;
+	// a key listed twice is claimed once. The keys arrive as hex and are
+	// stored as their 32 bytes, the subjects as their inbox_subject ids
+	// (migration 0019). IngestBatch commits a new subject before the
+	// transaction (seedLookups); one still missing (the seed failed, or no
+	// lookup cache) is inserted by this statement, in sorted order, and ON
+	// CONFLICT DO UPDATE (a no-op update) returns its id even when a
+	// concurrent transaction committed it first, as insertFactsSQL does for
+	// its lookup rows.
 	claimInboxesSQL = `
-INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
-SELECT u.inbox_key, u.subject, u.stream_seq, u.received, $8, u.resources, u.facts, u.raw
+WITH ns AS (
+    INSERT INTO inbox_subject (subject)
+    SELECT DISTINCT s FROM unnest($2::text[]) AS s
+    WHERE NOT EXISTS (SELECT 1 FROM inbox_subject x WHERE x.subject = s)
+    ORDER BY 1
+    ON CONFLICT (subject) DO UPDATE SET subject = EXCLUDED.subject
+    RETURNING id, subject
+)
+INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts, raw)
+SELECT decode(u.inbox_key, 'hex'),
+    coalesce((SELECT x.id FROM inbox_subject x WHERE x.subject = u.subject), (SELECT n.id FROM ns n WHERE n.subject = u.subject)),
+    u.stream_seq, u.received, $8, u.resources, u.facts, u.raw
 FROM unnest($1::text[], $2::text[], $3::bigint[], $4::timestamptz[], $5::int[], $6::int[], $7::int[], $9::bytea[])
      AS u(inbox_key, subject, stream_seq, received, resources, facts, ord, raw)
-ORDER BY u.inbox_key, u.ord
+ORDER BY decode(u.inbox_key, 'hex'), u.ord
 ON CONFLICT (inbox_key) DO NOTHING
-RETURNING inbox_key`
+RETURNING encode(inbox_key, 'hex')`
 )
 
 // IngestBatch implements consumer.BatchStore: group commit. It records

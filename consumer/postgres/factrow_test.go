@@ -34,7 +34,7 @@ SELECT v.key, v.digest, v.resource_ref, v.version_id, v.last_updated, v.patient_
        v.detail, v.specimen, v.temp_corrected, v.value, v.unit, v.text, v.source_value, v.source_unit, v.code_system,
        v.code, v.code_display, v.status, v.effective, v.issued, v.inbox_key, v.recorded_at,
        float8send(v.value), float8send(v.source_value),
-       r.inbox_id IS NOT NULL AND r.inbox_id = i.id AND i.inbox_key = v.inbox_key, r.source_value IS NOT NULL,
+       r.inbox_id IS NOT NULL AND r.inbox_id = i.id AND encode(i.inbox_key, 'hex') = v.inbox_key, r.source_value IS NOT NULL,
        r.recorded_at IS NOT NULL, r.inbox_key IS NOT NULL
 FROM fact v JOIN fact_row r ON r.id = v.id LEFT JOIN inbox i ON i.id = r.inbox_id
 ORDER BY v.id`)
@@ -116,7 +116,7 @@ func TestFactRowNarrowRoundTrip(t *testing.T) {
 	}
 
 	recorded := map[string]time.Time{}
-	rows, err := f.pool.Query(f.ctx, `SELECT inbox_key, recorded_at FROM inbox`)
+	rows, err := f.pool.Query(f.ctx, `SELECT encode(inbox_key, 'hex'), recorded_at FROM inbox`)
 	if err != nil {
 		t.Fatal(err)
 	}

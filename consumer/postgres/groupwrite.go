@@ -53,7 +53,7 @@ WITH u AS MATERIALIZED (
         u.assumptions::jsonb, u.basis, u.interp_code, u.interp_text, u.interp_source, u.flags::jsonb, u.status,
         u.retracted, u.algorithm, u.digest,
         (SELECT p.id FROM derivation p WHERE p.key = u.key AND p.version = u.version - 1),
-        u.inbox_key, $28, u.record::jsonb, nullif(u.settings_digest, '')
+        decode(u.inbox_key, 'hex'), $28, u.record::jsonb, nullif(u.settings_digest, '')
     FROM u ORDER BY u.ord
     RETURNING id, key, version
 )
@@ -74,7 +74,7 @@ WITH u AS MATERIALIZED (
     INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail,
         digest, inbox_key, created_at, settings_digest)
     SELECT u.key, u.kind, u.patient_ref, u.patient_hash, u.blood_gas_key, u.effective, u.reason, u.detail,
-        u.digest, u.inbox_key, $12, nullif(u.settings_digest, '')
+        u.digest, decode(u.inbox_key, 'hex'), $12, nullif(u.settings_digest, '')
     FROM u ORDER BY u.ord
     RETURNING id, key
 )
@@ -119,12 +119,12 @@ ON CONFLICT (key) DO UPDATE SET
 	// message.
 	insertOutboxRowsSQL = `
 INSERT INTO outbox (subject, msg_id, headers, stored_payload, payload_sha256, payload_size, inbox_key, created_at)
-SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, u.sum, u.size, u.inbox_key, $6
+SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, u.sum, u.size, decode(u.inbox_key, 'hex'), $6
 FROM unnest($1::text[], $2::text[], $3::text[], $4::bytea[], $5::text[], $7::bytea[], $8::int[]) WITH ORDINALITY
      AS u(subject, msg_id, headers, payload, inbox_key, sum, size, ord)
 ORDER BY u.ord
 ON CONFLICT (msg_id) DO NOTHING
-RETURNING inbox_key`
+RETURNING encode(inbox_key, 'hex')`
 
 	// snapshotHeadsPendingSQL is snapshotHeadsSQL with the group's pending
 	// heads of the patient ($12..$19: key, blood gas, kind, version,

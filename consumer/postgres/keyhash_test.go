@@ -106,7 +106,7 @@ func TestFactKeyCollisionRefusesMessage(t *testing.T) {
 				}
 			}
 			var stored int
-			if err := f.pool.QueryRow(f.ctx, `SELECT count(*) FROM inbox WHERE inbox_key = $1`, msgs[c.bad].InboxKey).Scan(&stored); err != nil {
+			if err := f.pool.QueryRow(f.ctx, `SELECT count(*) FROM inbox WHERE inbox_key = decode($1, 'hex')`, msgs[c.bad].InboxKey).Scan(&stored); err != nil {
 				t.Fatal(err)
 			}
 			if stored != 0 {

@@ -64,7 +64,7 @@ func TestWriterConstraintErrorLogsNoValues(t *testing.T) {
 	defer writer.Close(ctx)
 	const canary = "Patient/canary-zz9"
 	_, err = writer.Exec(ctx, `INSERT INTO dead_letter (inbox_key, subject, stream_seq, raw, reason, detail, created_at)
-		VALUES ($1, 'fhir.input.lab', 1, $2, $3, 'x', now())`, strings.Repeat("a", 64), []byte(canary), canary)
+		VALUES (decode($1, 'hex'), 'fhir.input.lab', 1, $2, $3, 'x', now())`, strings.Repeat("a", 64), []byte(canary), canary)
 	if err == nil || !strings.Contains(err.Error(), "23514") {
 		t.Fatalf("insert of a bad reason as the writer: %v, want a check violation", err)
 	}

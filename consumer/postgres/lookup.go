@@ -31,6 +31,9 @@ type lookupCache struct {
 	// Values seen without an id since the last load, at most maxWanted.
 	wantTerms      map[termKey]bool
 	wantEncounters map[string]bool
+	// subjects are the input subjects known committed in inbox_subject
+	// (migration 0019): seedLookups commits a subject not among them.
+	subjects map[string]bool
 }
 
 // termKey is the value of a fact_term row: the columns of its unique
@@ -56,7 +59,7 @@ const (
 
 func newLookupCache() *lookupCache {
 	return &lookupCache{terms: map[termKey]int32{}, encounters: map[string]int32{},
-		wantTerms: map[termKey]bool{}, wantEncounters: map[string]bool{}}
+		wantTerms: map[termKey]bool{}, wantEncounters: map[string]bool{}, subjects: map[string]bool{}}
 }
 
 // ids returns the cached term and encounter ids of facts, 0 where none is
@@ -214,6 +217,9 @@ ON CONFLICT ON CONSTRAINT fact_term_values DO NOTHING`
 
 	seedEncountersSQL = `
 INSERT INTO fact_encounter (encounter) SELECT * FROM unnest($1::text[]) ON CONFLICT (encounter) DO NOTHING`
+
+	seedSubjectsSQL = `
+INSERT INTO inbox_subject (subject) SELECT * FROM unnest($1::text[]) ON CONFLICT (subject) DO NOTHING`
 )
 
 // seedLookups commits the terms and encounters of msgs that the cache
@@ -228,12 +234,16 @@ INSERT INTO fact_encounter (encounter) SELECT * FROM unnest($1::text[]) ON CONFL
 // (the dead letter keeps the message itself). Rows go in sorted order, so
 // two replicas seeding the same values cannot deadlock. A failure (a
 // value a lookup table's CHECK refuses) is left to the group's insert,
-// which refuses the message as before.
+// which refuses the message as before. The input subjects (inbox_subject,
+// migration 0019) are seeded the same way, so that a group bringing a new
+// subject does not hold back another group's claim of it; the claim still
+// inserts a subject it does not find.
 func (s *Store) seedLookups(ctx context.Context, msgs []consumer.Message) {
 	c := s.lookups
 	if c == nil {
 		return
 	}
+	s.seedSubjects(ctx, msgs)
 	terms := map[termKey]bool{}
 	encs := map[string]bool{}
 	c.mu.RLock()
@@ -279,6 +289,36 @@ func (s *Store) seedLookups(ctx context.Context, msgs []consumer.Message) {
 	}
 	c.mu.Unlock()
 	s.loadWanted(ctx)
+}
+
+// seedSubjects commits the subjects of msgs not known committed, in sorted
+// order, and notes them as known.
+func (s *Store) seedSubjects(ctx context.Context, msgs []consumer.Message) {
+	c := s.lookups
+	var list []string
+	c.mu.RLock()
+	for _, m := range msgs {
+		if m.Subject != "" && !c.subjects[m.Subject] { // "" is the claim's to refuse
+			list = append(list, m.Subject)
+		}
+	}
+	c.mu.RUnlock()
+	if len(list) == 0 {
+		return
+	}
+	slices.Sort(list)
+	list = slices.Compact(list)
+	if _, err := s.pool.Exec(ctx, seedSubjectsSQL, list); err != nil {
+		s.log.Debug("seed inbox subjects", "error", err)
+		return
+	}
+	c.mu.Lock()
+	for _, subj := range list {
+		if len(c.subjects) < maxCached {
+			c.subjects[subj] = true
+		}
+	}
+	c.mu.Unlock()
 }
 
 func boolCmp(a, b bool) int {

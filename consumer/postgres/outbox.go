@@ -19,7 +19,7 @@ import (
 
 const deadLetterSQL = `
 INSERT INTO dead_letter (inbox_key, subject, stream_seq, raw, reason, detail, created_at)
-VALUES ($1, $2, $3, $4, $5, $6, $7)
+VALUES (decode($1, 'hex'), $2, $3, $4, $5, $6, $7)
 ON CONFLICT (inbox_key) DO NOTHING`
 
 // DeadLetter implements consumer.Store: it keeps the message as received

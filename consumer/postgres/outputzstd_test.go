@@ -456,7 +456,7 @@ func TestOutboxFrameNeedsDigestAndSize(t *testing.T) {
 		{"plain row without either", []byte(`{}`), nil, nil, true},
 	} {
 		_, err := f.pool.Exec(f.ctx, `INSERT INTO outbox (subject, msg_id, headers, stored_payload, payload_sha256, payload_size, inbox_key, created_at)
-VALUES ('vd.test', $1, '{}'::jsonb, $2, $3, $4, $5, now())`, "check-"+c.name, c.payload, c.sum, c.size, in.InboxKey)
+VALUES ('vd.test', $1, '{}'::jsonb, $2, $3, $4, decode($5, 'hex'), now())`, "check-"+c.name, c.payload, c.sum, c.size, in.InboxKey)
 		switch {
 		case c.ok && err != nil:
 			t.Errorf("%s: refused: %v", c.name, err)

@@ -25,8 +25,8 @@ func storedRaw(raw []byte) []byte {
 const (
 	dictionariesSQL = `SELECT id, dictionary FROM raw_dictionary ORDER BY id DESC`
 	payloadsSQL     = `
-SELECT inbox_key, raw FROM inbox
-WHERE raw IS NOT NULL AND inbox_key > $1 ORDER BY inbox_key LIMIT $2`
+SELECT encode(inbox_key, 'hex'), raw FROM inbox
+WHERE raw IS NOT NULL AND inbox_key > decode($1, 'hex') ORDER BY inbox_key LIMIT $2`
 )
 
 // PayloadCodec is the decoder of stored payloads over every dictionary the

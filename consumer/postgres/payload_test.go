@@ -46,8 +46,11 @@ func TestPayloadsCompressedAndChecked(t *testing.T) {
 	plain := []byte(`{"resourceType":"Bundle","type":"collection","entry":[]}`)
 	sum := sha256.Sum256(plain)
 	plainKey := hex.EncodeToString(sum[:])
-	insert := `INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
-		VALUES ($1, 'fhir.input.device', 99, now(), now(), 0, 0, $2)`
+	if _, err := f.pool.Exec(f.ctx, `INSERT INTO inbox_subject (subject) VALUES ('fhir.input.device') ON CONFLICT DO NOTHING`); err != nil {
+		t.Fatal(err)
+	}
+	insert := `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts, raw)
+		VALUES (decode($1, 'hex'), (SELECT id FROM inbox_subject WHERE subject = 'fhir.input.device'), 99, now(), now(), 0, 0, $2)`
 	if _, err := f.pool.Exec(f.ctx, insert, plainKey, plain); err != nil {
 		t.Fatal(err)
 	}
@@ -57,7 +60,7 @@ func TestPayloadsCompressedAndChecked(t *testing.T) {
 	}
 	// A damaged frame: one byte of the compressed body flipped.
 	victim := msgs[1].InboxKey
-	if _, err := f.pool.Exec(f.ctx, `UPDATE inbox SET raw = overlay(raw placing decode(lpad(to_hex(get_byte(raw, 20) # 255), 2, '0'), 'hex') from 21 for 1) WHERE inbox_key = $1`, victim); err != nil {
+	if _, err := f.pool.Exec(f.ctx, `UPDATE inbox SET raw = overlay(raw placing decode(lpad(to_hex(get_byte(raw, 20) # 255), 2, '0'), 'hex') from 21 for 1) WHERE inbox_key = decode($1, 'hex')`, victim); err != nil {
 		t.Fatal(err)
 	}
 	// A frame compressed with a dictionary the database does not hold.
@@ -75,7 +78,7 @@ func TestPayloadsCompressedAndChecked(t *testing.T) {
 		t.Fatal(err)
 	}
 	stranger := msgs[2]
-	if _, err := f.pool.Exec(f.ctx, `UPDATE inbox SET raw = $2 WHERE inbox_key = $1`, stranger.InboxKey, oc.Encode(stranger.Raw)); err != nil {
+	if _, err := f.pool.Exec(f.ctx, `UPDATE inbox SET raw = $2 WHERE inbox_key = decode($1, 'hex')`, stranger.InboxKey, oc.Encode(stranger.Raw)); err != nil {
 		t.Fatal(err)
 	}
 	got, err = postgres.CheckPayloads(f.ctx, f.pool, 1000)

@@ -89,7 +89,7 @@ const (
 	// inbox row (migration 0016).
 	retainSizeSQL = `
 WITH gone AS (
-    SELECT coalesce(i.inbox_key, encode(r.inbox_key, 'hex')) AS inbox_key, count(*) AS n, sum(pg_column_size(r.*)) AS bytes
+    SELECT coalesce(i.inbox_key, r.inbox_key) AS inbox_key, count(*) AS n, sum(pg_column_size(r.*)) AS bytes
     FROM fact_row r LEFT JOIN inbox i ON i.id = r.inbox_id
     WHERE hashtextextended(r.key, 0) = ANY(ARRAY(SELECT hashtextextended(k, 0) FROM unnest($1::text[]) AS k))
       AND r.key = ANY($1::text[]) AND r.effective < $2 GROUP BY 1)
@@ -110,7 +110,7 @@ WITH gone AS (
         AND key = ANY($1::text[]) AND effective < $2
     RETURNING inbox_id, inbox_key),
 counted AS (
-    SELECT coalesce(i.inbox_key, encode(g.inbox_key, 'hex')) AS inbox_key, count(*) AS n
+    SELECT coalesce(i.inbox_key, g.inbox_key) AS inbox_key, count(*) AS n
     FROM gone g LEFT JOIN inbox i ON i.id = g.inbox_id GROUP BY 1)
 UPDATE inbox i SET raw = NULL FROM counted c
 WHERE i.inbox_key = c.inbox_key AND c.n = i.facts AND i.raw IS NOT NULL`

@@ -122,9 +122,19 @@ const (
 	pointLookupsSQL = `SELECT set_config('enable_seqscan', 'off', true), set_config('plan_cache_mode', 'force_generic_plan', true),
     set_config('jit', 'off', true), set_config('max_parallel_workers_per_gather', '0', true)`
 
+	// claimInboxSQL claims the message's inbox key (hex, stored as its 32
+	// bytes) and stores its subject as an inbox_subject id, inserting a
+	// subject not stored yet as claimInboxesSQL does (migration 0019).
 	claimInboxSQL = `
-INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
-VALUES ($1, $2, $3, $4, $5, $6, $7, $8)
+WITH ns AS (
+    INSERT INTO inbox_subject (subject)
+    SELECT $2::text WHERE NOT EXISTS (SELECT 1 FROM inbox_subject x WHERE x.subject = $2::text)
+    ON CONFLICT (subject) DO UPDATE SET subject = EXCLUDED.subject
+    RETURNING id
+)
+INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts, raw)
+VALUES (decode($1, 'hex'), coalesce((SELECT x.id FROM inbox_subject x WHERE x.subject = $2::text), (SELECT id FROM ns)),
+    $3, $4, $5, $6, $7, $8)
 ON CONFLICT (inbox_key) DO NOTHING`
 
 	// One lock per patient, taken in sorted order by the caller so that two
@@ -185,7 +195,7 @@ SELECT i.id, u.effective, u.value,
                        (SELECT t.id FROM nt t WHERE ` + termMatchSQL + `)) END,
     u.key, u.digest, u.patient_ref, u.quantity, u.version_id, nullif(u.resource_ref, split_part(u.key, '#', 1)),
     CASE WHEN i.id IS NULL THEN decode(u.inbox_key, 'hex') END
-FROM u LEFT JOIN inbox i ON i.inbox_key = u.inbox_key
+FROM u LEFT JOIN inbox i ON i.inbox_key = decode(u.inbox_key, 'hex')
 ON CONFLICT (hashtextextended(key, 0), digest, effective) DO NOTHING`
 
 	// termMatchSQL matches a fact_term row t to a fact u.
@@ -399,7 +409,7 @@ WITH d AS (
         interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest,
         supersedes_id, inbox_key, created_at, record, settings_digest)
     VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20,
-        $21, $22, $23, $24, (SELECT id FROM derivation WHERE key = $1 AND version = $2 - 1), $25, $26,
+        $21, $22, $23, $24, (SELECT id FROM derivation WHERE key = $1 AND version = $2 - 1), decode($25, 'hex'), $26,
         $33::jsonb, nullif($34, ''))
     RETURNING id
 ), i AS (
@@ -421,7 +431,7 @@ ON CONFLICT (key) DO UPDATE SET version = EXCLUDED.version, refused = false,
 WITH r AS (
     INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail,
         digest, inbox_key, created_at, settings_digest)
-    VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, nullif($18, ''))
+    VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, decode($10, 'hex'), $11, nullif($18, ''))
     RETURNING id
 ), i AS (
     INSERT INTO refusal_input (refusal_id, ordinal, role, fact_key, fact_digest, resource_ref, time_offset, fallback)
@@ -439,7 +449,7 @@ ON CONFLICT (key) DO UPDATE SET refused = true, refusal_id = EXCLUDED.refusal_id
 	// under it.
 	insertSettingsSQL = `
 INSERT INTO site_settings (digest, snapshot, algorithm, alias_digest, inbox_key, created_at)
-SELECT $1, $2, s.snapshot::jsonb ->> 'algorithm', s.snapshot::jsonb ->> 'aliasDigest', $3, $4
+SELECT $1, $2, s.snapshot::jsonb ->> 'algorithm', s.snapshot::jsonb ->> 'aliasDigest', decode($3, 'hex'), $4
 FROM (SELECT $2::text AS snapshot) s
 ON CONFLICT (digest) DO NOTHING`
 
@@ -447,7 +457,7 @@ ON CONFLICT (digest) DO NOTHING`
 	// with the SHA-256 and length of its exact bytes ($7, $8).
 	insertOutboxSQL = `
 INSERT INTO outbox (subject, msg_id, headers, stored_payload, payload_sha256, payload_size, inbox_key, created_at)
-SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, u.sum, u.size, $5, $6
+SELECT u.subject, u.msg_id, u.headers::jsonb, u.payload, u.sum, u.size, decode($5, 'hex'), $6
 FROM unnest($1::text[], $2::text[], $3::text[], $4::bytea[], $7::bytea[], $8::int[])
      WITH ORDINALITY AS u(subject, msg_id, headers, payload, sum, size, ord)
 ORDER BY u.ord

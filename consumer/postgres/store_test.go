@@ -49,7 +49,7 @@ func TestIngestDuplicate(t *testing.T) {
 		}
 	}
 	var raw []byte
-	if err := f.pool.QueryRow(f.ctx, `SELECT raw FROM inbox WHERE inbox_key = $1`, msg.InboxKey).Scan(&raw); err != nil {
+	if err := f.pool.QueryRow(f.ctx, `SELECT raw FROM inbox WHERE inbox_key = decode($1, 'hex')`, msg.InboxKey).Scan(&raw); err != nil {
 		t.Fatalf("inbox raw: %v", err)
 	}
 	// Migration 0015: stored as a zstd frame, read back through the one

@@ -28,7 +28,8 @@ func TestMain(m *testing.M) { pgtest.Main(m) }
 // every minute and a blood gas every 4 hours. The values are invented and
 // plausible; they are not physiology under test.
 const benchFillSQL = `
-INSERT INTO inbox VALUES (repeat('a', 64), 'bench', 0, now(), now(), 0, 0);
+INSERT INTO inbox_subject (subject) VALUES ('bench');
+INSERT INTO inbox VALUES (decode(repeat('a', 64), 'hex'), (SELECT id FROM inbox_subject), 0, now(), now(), 0, 0);
 CREATE TEMP TABLE g AS
 SELECT 'Patient/bench-long' AS ref, 'Observation/bl-abg-' || i || '#http://loinc.org|2019-8' AS bg,
        'Observation/bl-abg-' || i AS res, timestamptz '2026-03-01 00:30:00Z' + i * interval '4 hours' AS eff, i AS n
@@ -77,7 +78,7 @@ INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient
     status, retracted, algorithm, digest, inbox_key, created_at)
 SELECT ref || '|' || bg || '|' || k.kind, 1, gen_random_uuid(), k.kind, ref, repeat('c', 32), '', bg, eff,
        k.v + 0.01 * (n % 5), k.unit, 'bench', '1', '[]', '[]', 'bench basis', '', '', '', '[]', 'final', '', 'bench',
-       repeat('d', 64), repeat('a', 64), eff
+       repeat('d', 64), decode(repeat('a', 64), 'hex'), eff
 FROM g, (VALUES ('deadspace-fraction-vco2', 0.45, '1'), ('deadspace-fraction-estimated', 0.5, '1'),
                 ('paco2-predicted', 40.0, 'mm[Hg]'), ('paco2-measured-minus-predicted', 2.0, 'mm[Hg]'),
                 ('paco2-petco2-gradient', 6.0, 'mm[Hg]'), ('alveolar-deadspace-fraction', 0.15, '1'),

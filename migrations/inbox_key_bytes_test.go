@@ -1,0 +1,282 @@
+package migrations_test
+
+import (
+	"bytes"
+	"crypto/sha256"
+	"encoding/hex"
+	"errors"
+	"strings"
+	"testing"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgconn"
+
+	"github.com/ventderive/ventderive/consumer/postgres/pgtest"
+	"github.com/ventderive/ventderive/migrations"
+)
+
+// TestInboxKeyBytesMigratesStoredRows builds a store at version 18 with an
+// inbox row holding its payload, one without (raw NULL, as after retain), a
+// derivation, a refusal, an outbox row and a settings snapshot naming them,
+// and a dead letter, then migrates to the latest version. The keys are the
+// SHA-256 of invented payloads, computed here with Go's crypto/sha256 (FIPS
+// 180-4). After 0019 every stored key is its 32 bytes and hex-encodes to
+// the key stored before; the reviewer views that show a key read back row
+// for row as before (64 lowercase hex characters); each inbox row names its
+// subject as before, through one inbox_subject row a subject; a redelivered message
+// is still a duplicate (ON CONFLICT stores nothing, a plain insert breaks
+// inbox_pkey); the foreign keys still refuse a row naming no inbox row;
+// and inbox_raw_matches still refuses a payload that is not its key's.
+func TestInboxKeyBytesMigratesStoredRows(t *testing.T) {
+	t.Parallel()
+	ctx := ctxFor(t)
+	conn, err := pgx.Connect(ctx, pgtest.NewEmptyDatabase(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close(ctx)
+	applyBefore(t, ctx, conn, "0019")
+
+	payload := []byte(`{"resourceType":"Bundle","type":"collection","entry":[]}`)
+	sum := sha256.Sum256(payload)
+	keyA := hex.EncodeToString(sum[:])
+	deadRaw := []byte(`{"resourceType":"MedicationAdministration"}`)
+	deadSum := sha256.Sum256(deadRaw)
+	keyDead := hex.EncodeToString(deadSum[:])
+	keyB := strings.Repeat("0f", 32) // a row whose payload retain removed
+	const hash = "0123456789abcdef0123456789abcdef"
+	dig := strings.Repeat("b", 64)
+	snapshot := `{"algorithm":"ventderive-derive/2","aliasDigest":"","site":{"RQ":0.8}}`
+	snapSum := sha256.Sum256([]byte(snapshot))
+
+	seed := []struct {
+		sql  string
+		args []any
+	}{
+		{`INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
+		  VALUES ($1, 'fhir.input.lab', 1, '2026-03-01 12:00:00Z', '2026-03-01 12:00:01Z', 0, 0, $2)`, []any{keyA, payload}},
+		{`INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts, raw)
+		  VALUES ($1, 'fhir.input.device', 2, '2026-03-01 12:00:02Z', '2026-03-01 12:00:03Z', 1, 3, NULL)`, []any{keyB}},
+		{`INSERT INTO derivation (key, version, observation_id, kind, patient_ref, patient_hash, encounter,
+		  blood_gas_key, effective, value, unit, method, method_version, constants, assumptions, basis,
+		  interp_code, interp_text, interp_source, flags, status, retracted, algorithm, digest, inbox_key, created_at)
+		  VALUES ('Patient/p1|Observation/a|vdvt', 1, '6f1c1e9e-0d1b-4c53-9a43-2f0f7f3c9a01', 'vdvt', 'Patient/p1', $1, '',
+		  'Observation/a', '2026-03-01 11:50:00Z', 0.3, '1', 'm', '1', '[]', '[]', '', '', '', '', '[]', 'final', '', 'a/1',
+		  $2, $3, '2026-03-01 12:00:01Z')`, []any{hash, dig, keyA}},
+		{`INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail, digest,
+		  inbox_key, created_at)
+		  VALUES ('Patient/p1|Observation/a|vdvt', 'vdvt', 'Patient/p1', $1, 'Observation/a', '2026-03-01 11:50:00Z',
+		  'venous-specimen', '', $2, $3, '2026-03-01 12:00:03Z')`, []any{hash, dig, keyB}},
+		{`INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at)
+		  VALUES ('ventderive.observation', 'Observation/1', '{}', '\x7b7d', $1, '2026-03-01 12:00:01Z')`, []any{keyA}},
+		{`INSERT INTO site_settings (digest, snapshot, algorithm, alias_digest, inbox_key, created_at)
+		  VALUES ($1, $2, 'ventderive-derive/2', '', $3, '2026-03-01 12:00:01Z')`,
+			[]any{hex.EncodeToString(snapSum[:]), snapshot, keyA}},
+		{`INSERT INTO dead_letter (inbox_key, subject, stream_seq, raw, reason, detail, created_at)
+		  VALUES ($1, 'fhir.input.lab', 3, $2, 'wrong-resource-type', 'resourceType', '2026-03-01 12:00:04Z')`,
+			[]any{keyDead, deadRaw}},
+	}
+	for _, s := range seed {
+		if _, err := conn.Exec(ctx, s.sql, s.args...); err != nil {
+			t.Fatalf("%s: %v", s.sql, err)
+		}
+	}
+
+	// What a reviewer reads that shows an inbox key, and the internal view
+	// fact's columns, row for row.
+	const viewsSQL = `SELECT concat_ws(E'\n',
+	    (SELECT string_agg(v::text, ' ' ORDER BY v.id) FROM review_derivation v),
+	    (SELECT string_agg(v::text, ' ' ORDER BY v.id) FROM review_refusal v),
+	    (SELECT string_agg(v::text, ' ' ORDER BY v.seq) FROM review_outbox v),
+	    (SELECT string_agg(v::text, ' ' ORDER BY v.id) FROM review_dead_letter v),
+	    (SELECT string_agg(a.attname || ':' || format_type(a.atttypid, a.atttypmod), ',' ORDER BY c.relname, a.attnum)
+	     FROM pg_attribute a JOIN pg_class c ON c.oid = a.attrelid
+	     WHERE c.relname IN ('fact', 'review_fact', 'review_derivation', 'review_refusal', 'review_outbox',
+	                         'review_dead_letter') AND a.attnum > 0))`
+	var before, subjectsBefore string
+	if err := conn.QueryRow(ctx, viewsSQL).Scan(&before); err != nil {
+		t.Fatal(err)
+	}
+	if err := conn.QueryRow(ctx, `SELECT string_agg(inbox_key || ' ' || subject, ',' ORDER BY inbox_key) FROM inbox`).Scan(&subjectsBefore); err != nil {
+		t.Fatal(err)
+	}
+	for _, k := range []string{keyA, keyB, keyDead} {
+		if !strings.Contains(before, k) {
+			t.Fatalf("the views before 0019 do not show key %s:\n%s", k, before)
+		}
+	}
+
+	v, err := migrations.ApplyConn(ctx, conn, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var pgErr *pgconn.PgError
+	if v != migrations.Latest() || v < 19 {
+		t.Fatalf("migrated to %d, want Latest %d (>= 19)", v, migrations.Latest())
+	}
+
+	// Every stored key is 32 bytes and is the key stored before.
+	for _, c := range []struct {
+		table string
+		want  []string
+	}{
+		{"inbox", []string{keyA, keyB}},
+		{"derivation", []string{keyA}},
+		{"refusal", []string{keyB}},
+		{"outbox", []string{keyA}},
+		{"site_settings", []string{keyA}},
+		{"dead_letter", []string{keyDead}},
+	} {
+		rows, err := conn.Query(ctx, `SELECT inbox_key FROM `+c.table+` ORDER BY inbox_key`)
+		if err != nil {
+			t.Fatal(err)
+		}
+		keys, err := pgx.CollectRows(rows, pgx.RowTo[[]byte])
+		if err != nil {
+			t.Fatal(err)
+		}
+		var got []string
+		for _, k := range keys {
+			if len(k) != 32 {
+				t.Errorf("%s: a key of %d bytes (%x), want 32", c.table, len(k), k)
+			}
+			got = append(got, hex.EncodeToString(k))
+		}
+		if strings.Join(got, ",") != strings.Join(c.want, ",") {
+			t.Errorf("%s keys after 0019: %v, want %v", c.table, got, c.want)
+		}
+	}
+	var stored []byte
+	if err := conn.QueryRow(ctx, `SELECT raw FROM inbox WHERE inbox_key = $1`, sum[:]).Scan(&stored); err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(stored, payload) {
+		t.Errorf("the payload of key A after 0019: %q, want %q", stored, payload)
+	}
+
+	var after string
+	if err := conn.QueryRow(ctx, viewsSQL).Scan(&after); err != nil {
+		t.Fatal(err)
+	}
+	if after != before {
+		t.Errorf("the views read differently after 0019:\n before\n%s\n after\n%s", before, after)
+	}
+
+	// Each inbox row names its subject through inbox_subject, one row a
+	// subject; a number that names no subject is refused.
+	var subjectsAfter string
+	var subjectRows int
+	if err := conn.QueryRow(ctx, `SELECT string_agg(encode(i.inbox_key, 'hex') || ' ' || s.subject, ',' ORDER BY i.inbox_key),
+	    (SELECT count(*) FROM inbox_subject) FROM inbox i JOIN inbox_subject s ON s.id = i.subject_id`).Scan(&subjectsAfter, &subjectRows); err != nil {
+		t.Fatal(err)
+	}
+	if subjectsAfter != subjectsBefore || subjectRows != 2 {
+		t.Errorf("subjects after 0019: %s (%d lookup rows), want %s (2)", subjectsAfter, subjectRows, subjectsBefore)
+	}
+	if _, err := conn.Exec(ctx, `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts)
+	    VALUES (decode(repeat('cd', 32), 'hex'), 9999, 5, now(), now(), 0, 0)`); !errors.As(err, &pgErr) ||
+		pgErr.Code != "23503" || pgErr.ConstraintName != "inbox_subject_id_fkey" {
+		t.Errorf("an inbox row naming no subject: %v, want a foreign key violation of inbox_subject_id_fkey", err)
+	}
+
+	// Dedup: the same message again is a duplicate.
+	const claim = `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts, raw)
+	  VALUES (decode($1, 'hex'), (SELECT id FROM inbox_subject WHERE subject = 'fhir.input.lab'), 9, now(), now(), 0, 0, $2)`
+	tag, err := conn.Exec(ctx, claim+` ON CONFLICT (inbox_key) DO NOTHING`, keyA, payload)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if tag.RowsAffected() != 0 {
+		t.Errorf("a redelivered message claimed %d inbox rows, want 0 (a duplicate)", tag.RowsAffected())
+	}
+	_, err = conn.Exec(ctx, claim, keyA, payload)
+	if !errors.As(err, &pgErr) || pgErr.Code != "23505" || pgErr.ConstraintName != "inbox_pkey" {
+		t.Errorf("a second inbox row with key A: %v, want a unique violation of inbox_pkey", err)
+	}
+	if _, err := conn.Exec(ctx, `INSERT INTO dead_letter (inbox_key, subject, stream_seq, raw, reason, detail, created_at)
+	    VALUES (decode($1, 'hex'), 'fhir.input.lab', 4, $2, 'wrong-resource-type', '', now())`, keyDead, deadRaw); !errors.As(err, &pgErr) ||
+		pgErr.Code != "23505" || pgErr.ConstraintName != "dead_letter_inbox_key_key" {
+		t.Errorf("a second dead letter with the same key: %v, want a unique violation of dead_letter_inbox_key_key", err)
+	}
+	// A new message is claimed.
+	other := []byte(`{"resourceType":"Bundle","type":"collection","entry":[],"id":"x"}`)
+	otherSum := sha256.Sum256(other)
+	if tag, err := conn.Exec(ctx, claim+` ON CONFLICT (inbox_key) DO NOTHING`, hex.EncodeToString(otherSum[:]), other); err != nil || tag.RowsAffected() != 1 {
+		t.Errorf("a new message: %v, %d rows, want 1", err, tag.RowsAffected())
+	}
+
+	// The payload CHECK compares bytes: a plain payload that is not its
+	// key's is refused.
+	if _, err := conn.Exec(ctx, claim, strings.Repeat("00", 32), payload); !containsConstraint(err, "inbox_raw_matches") {
+		t.Errorf("a plain payload under another key: %v, want inbox_raw_matches", err)
+	}
+
+	// The foreign keys: a row naming a key no inbox row has is refused.
+	for _, c := range []struct{ sql, constraint string }{
+		{`INSERT INTO outbox (subject, msg_id, headers, stored_payload, inbox_key, created_at)
+		  VALUES ('ventderive.observation', 'Observation/2', '{}', '\x7b7d', decode($1, 'hex'), now())`, "outbox_inbox_key_fkey"},
+		{`INSERT INTO site_settings (digest, snapshot, algorithm, alias_digest, inbox_key, created_at)
+		  SELECT encode(sha256(convert_to(s, 'UTF8')), 'hex'), s, 'ventderive-derive/2', '', decode($1, 'hex'), now()
+		  FROM (VALUES ('{"algorithm":"ventderive-derive/2","aliasDigest":"","site":{"RQ":0.9}}')) AS v(s)`,
+			"site_settings_inbox_key_fkey"},
+		{`INSERT INTO refusal (key, kind, patient_ref, patient_hash, blood_gas_key, effective, reason, detail, digest,
+		  inbox_key, created_at)
+		  VALUES ('Patient/p1|Observation/a|vdvt', 'vdvt', 'Patient/p1', '` + hash + `', 'Observation/a', now(),
+		  'venous-specimen', '', '` + dig + `', decode($1, 'hex'), now())`, "refusal_inbox_key_fkey"},
+	} {
+		_, err := conn.Exec(ctx, c.sql, strings.Repeat("ee", 32))
+		if !errors.As(err, &pgErr) || pgErr.Code != "23503" || pgErr.ConstraintName != c.constraint {
+			t.Errorf("a row naming no inbox row: %v, want a foreign key violation of %s", err, c.constraint)
+		}
+	}
+}
+
+// TestInboxKeyIs32Bytes: since 0019 an inbox or dead-letter key of any
+// length but 32 bytes is refused, in particular a key passed as its 64 hex
+// characters instead of decoded (the mistake the CHECK is there to catch).
+func TestInboxKeyIs32Bytes(t *testing.T) {
+	t.Parallel()
+	ctx := ctxFor(t)
+	conn, err := pgx.Connect(ctx, pgtest.NewDatabase(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close(ctx)
+	if _, err := conn.Exec(ctx, `INSERT INTO inbox_subject (subject) VALUES ('fhir.input.lab')`); err != nil {
+		t.Fatal(err)
+	}
+	const inbox = `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts)
+	  VALUES ($1, (SELECT id FROM inbox_subject WHERE subject = 'fhir.input.lab'), 1, now(), now(), 0, 0)`
+	const dead = `INSERT INTO dead_letter (inbox_key, subject, stream_seq, raw, reason, detail, created_at)
+	  VALUES ($1, 'fhir.input.lab', 1, '\x7b', 'invalid-json', '', now())`
+	hexText := []byte(strings.Repeat("ab", 32)) // 64 bytes: the hex characters themselves
+	for _, c := range []struct {
+		name    string
+		key     []byte
+		refused bool
+	}{
+		{"31 bytes", bytes.Repeat([]byte{0xab}, 31), true},
+		{"33 bytes", bytes.Repeat([]byte{0xab}, 33), true},
+		{"hex text as bytes", hexText, true},
+		{"empty", []byte{}, true},
+		{"32 bytes", bytes.Repeat([]byte{0xab}, 32), false},
+	} {
+		for _, tb := range []struct{ table, sql, constraint string }{
+			{"inbox", inbox, "inbox_key_size"},
+			{"dead_letter", dead, "dead_letter_inbox_key_size"},
+		} {
+			table := tb.table
+			_, err := conn.Exec(ctx, tb.sql, c.key)
+			want := ""
+			if c.refused {
+				want = tb.constraint
+			}
+			switch {
+			case want == "" && err != nil:
+				t.Errorf("%s into %s: %v, want accepted", c.name, table, err)
+			case want != "" && !containsConstraint(err, want):
+				t.Errorf("%s into %s: %v, want a violation of %s", c.name, table, err, want)
+			}
+		}
+	}
+}
