@@ -49,6 +49,13 @@ type Metrics struct {
 	// FreshActive is 1 while the fresh lane's consumer exists and its
 	// pulls succeed, else 0.
 	FreshActive prometheus.Gauge
+	// RandomIndexBytes is the size of each random-order unique index every
+	// input writes (postgres.RandomIndexes, by name; for fact_row's the
+	// partitions that can receive inserts), SharedBuffersBytes the
+	// server's shared_buffers, as serve's buffer check last read them
+	// (cmd/ventderive: at start, then hourly).
+	RandomIndexBytes   *prometheus.GaugeVec
+	SharedBuffersBytes prometheus.Gauge
 }
 
 // NewMetrics creates the metrics and registers them with reg when it is not nil.
@@ -121,12 +128,18 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		FreshActive: prometheus.NewGauge(prometheus.GaugeOpts{
 			Name: "ventderive_fresh_lane_active", Help: "1 while the fresh lane's consumer exists and its pulls succeed, else 0.",
 		}),
+		RandomIndexBytes: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "ventderive_random_index_bytes", Help: "Size of each random-order unique index every input writes (fact_row's: the partitions that can receive inserts), at the last buffer check.",
+		}, []string{"index"}),
+		SharedBuffersBytes: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "ventderive_shared_buffers_bytes", Help: "PostgreSQL shared_buffers in bytes, at the last buffer check.",
+		}),
 	}
 	if reg != nil {
 		reg.MustRegister(m.Inputs, m.Ignored, m.Derived, m.Retractions, m.Refusals, m.DeadLetters,
 			m.Redeliveries, m.Published, m.OutboxBacklog, m.Latency, m.Handling, m.Stalls,
 			m.DeadLetterCopyFailures, m.DeadLetterFailing, m.RelayFailures, m.RelayFailing, m.OutboxDamaged, m.OutboxHeld, m.IntakeStalled, m.LockFallbacks,
-			m.Fresh, m.FreshActive)
+			m.Fresh, m.FreshActive, m.RandomIndexBytes, m.SharedBuffersBytes)
 	}
 	return m
 }

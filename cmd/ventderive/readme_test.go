@@ -4,9 +4,13 @@ import (
 	"flag"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strings"
 	"testing"
 
+	"github.com/prometheus/client_golang/prometheus"
+
+	"github.com/ventderive/ventderive/consumer"
 	"github.com/ventderive/ventderive/fhirmap"
 )
 
@@ -91,5 +95,45 @@ func TestREADMEDeriveExampleIsCurrent(t *testing.T) {
 	}
 	if n < 5 {
 		t.Errorf("README example has %d lines of output", n)
+	}
+}
+
+// captureRegisterer keeps the collectors registered with it.
+type captureRegisterer struct{ cs []prometheus.Collector }
+
+func (c *captureRegisterer) Register(x prometheus.Collector) error {
+	c.cs = append(c.cs, x)
+	return nil
+}
+func (c *captureRegisterer) MustRegister(xs ...prometheus.Collector) { c.cs = append(c.cs, xs...) }
+func (c *captureRegisterer) Unregister(prometheus.Collector) bool    { return false }
+
+// Every metric the service registers is in the README's metrics table
+// ("Health and metrics"), as a row `| `name` |`.
+func TestREADMEDocumentsMetrics(t *testing.T) {
+	b, err := os.ReadFile("../../README.md")
+	if err != nil {
+		t.Fatal(err)
+	}
+	var reg captureRegisterer
+	consumer.NewMetrics(&reg)
+	fq := regexp.MustCompile(`fqName: "([^"]+)"`)
+	n := 0
+	for _, c := range reg.cs {
+		ch := make(chan *prometheus.Desc, 4)
+		go func() { c.Describe(ch); close(ch) }()
+		for d := range ch {
+			m := fq.FindStringSubmatch(d.String())
+			if m == nil {
+				t.Fatalf("no name in %s", d)
+			}
+			n++
+			if !strings.Contains(string(b), "| `"+m[1]+"` |") {
+				t.Errorf("README's metrics table lacks %s", m[1])
+			}
+		}
+	}
+	if n < 20 {
+		t.Fatalf("only %d metrics described", n)
 	}
 }

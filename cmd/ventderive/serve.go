@@ -322,17 +322,29 @@ func serve(ctx context.Context, c serveConfig, log *slog.Logger, ready chan<- *c
 	}
 	store := postgres.New(pool, postgres.Options{PatientKey: []byte(c.patientHashKey), Logger: log})
 
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	metrics := consumer.NewMetrics(reg)
+	// shared_buffers against the random-order indexes: now, while NATS
+	// may still be out of reach, and then every bufferCheckInterval;
+	// warnings only, never a reason to stop or to be unready.
+	bctx, stopBuffers := context.WithCancel(ctx)
+	buffersDone := make(chan struct{})
+	go func() {
+		defer close(buffersDone)
+		watchBuffers(bctx, pool, log, metrics, bufferCheckInterval, randomIndexShare)
+	}()
+	defer func() { stopBuffers(); <-buffersDone }()
+
 	nc, err := connectNATS(ctx, c, log)
 	if err != nil {
 		return err
 	}
 	defer nc.Close()
 
-	reg := prometheus.NewRegistry()
-	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	p, err := consumer.New(nc, store, consumer.Options{
 		Config: c.pipeline, Site: site, Codes: codes, AliasDigest: aliasDigest, Logger: log,
-		Metrics: consumer.NewMetrics(reg), Workers: c.workers,
+		Metrics: metrics, Workers: c.workers,
 	})
 	if err != nil {
 		return err
