@@ -67,8 +67,14 @@ func TestCheckBuffersWarnsAndSetsGauges(t *testing.T) {
 		t.Fatal(err)
 	}
 	// Some invented inbox keys, so that the indexes' sizes differ.
-	if _, err := pool.Exec(ctx, `INSERT INTO inbox (inbox_key, subject, stream_seq, received, recorded_at, resources, facts)
-		SELECT encode(sha256(i::text::bytea), 'hex'), 'fhir.input.test', i, now(), now(), 0, 0 FROM generate_series(1, 3000) i`); err != nil {
+	// (Migration 0019: the key is its 32 bytes, the subject an id into
+	// inbox_subject.)
+	if _, err := pool.Exec(ctx, `INSERT INTO inbox_subject (subject) VALUES ('fhir.input.test') ON CONFLICT DO NOTHING`); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := pool.Exec(ctx, `INSERT INTO inbox (inbox_key, subject_id, stream_seq, received, recorded_at, resources, facts)
+		SELECT sha256(i::text::bytea), (SELECT id FROM inbox_subject WHERE subject = 'fhir.input.test'), i, now(), now(), 0, 0
+		FROM generate_series(1, 3000) i`); err != nil {
 		t.Fatal(err)
 	}
 	size := func(sql string, args ...any) float64 {
