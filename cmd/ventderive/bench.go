@@ -117,7 +117,7 @@ func runBench(ctx context.Context, args []string, e env) error {
 	fs.IntVar(&f.historyCopies, "history-copies", 4, "copies of the unit (10 patients each) in the history-growth measurement")
 	historyDays := fs.String("history-days", "", "simulated days of history built by the group-ingest writer before the cost-per-input measurement, comma-separated ascending sizes of one growing store, e.g. 1,3,7 or 30 (empty: skip)")
 	fs.IntVar(&f.historyPatients, "history-patients", 200, "patients of the --history-days store (a multiple of 10: copies of the unit)")
-	fs.IntVar(&f.historyInputs, "history-inputs", 5000, "inputs of the workload measured on the --history-days store and on an empty store")
+	fs.IntVar(&f.historyInputs, "history-inputs", 50000, "inputs of the workload measured on the --history-days store and on an empty store (the default holds blood gases: 5,000 inputs of 200 patients are the next day's first 25 minutes, derive nothing, and drain in about 2 s, so the replica's start dominates them)")
 	fs.DurationVar(&f.historyEvery, "history-every", time.Minute, "ventilator reading interval of the --history-days store and its workload (the simulator's 1 min to 10 min)")
 	fs.DurationVar(&f.freshAge, "fresh-age", 0, "the replicas' fresh-lane age limit, as serve --fresh-age (0: the service default; negative, e.g. -1s: the lane off, for comparison)")
 	fs.BoolVar(&f.ladder, "ladder", true, "measure the cost ladder: the floor, + the service's strict decode, + its inbox and fact rows on readings that can affect no derivation, and the one-replica pipeline, each as a row (about 10 s at the defaults; --ladder=false: skip)")
