@@ -106,6 +106,33 @@ func TestInboxKeyBytesMigratesStoredRows(t *testing.T) {
 		}
 	}
 
+	// A grant a site's DBA gave another role on the views 0019 changes
+	// survives the migration (a view dropped and created again would lose
+	// it). Roles are cluster-wide: the name is this database's.
+	var db string
+	if err := conn.QueryRow(ctx, `SELECT current_database()`).Scan(&db); err != nil {
+		t.Fatal(err)
+	}
+	auditor := pgx.Identifier{"site_audit_" + db}.Sanitize()
+	changedViews := []string{"review_derivation", "review_refusal", "review_outbox", "review_dead_letter"}
+	if _, err := conn.Exec(ctx, `CREATE ROLE `+auditor+` NOLOGIN`); err != nil {
+		t.Fatal(err)
+	}
+	defer func() {
+		if _, err := conn.Exec(ctx, `DROP OWNED BY `+auditor+`; DROP ROLE `+auditor); err != nil {
+			t.Errorf("drop role %s: %v", auditor, err)
+		}
+	}()
+	if _, err := conn.Exec(ctx, `GRANT SELECT ON `+strings.Join(changedViews, ", ")+` TO `+auditor); err != nil {
+		t.Fatal(err)
+	}
+
+	// The store has statistics, as a running one has (autovacuum).
+	rewritten := []string{"inbox", "derivation", "refusal", "outbox", "site_settings", "dead_letter"}
+	if _, err := conn.Exec(ctx, `ANALYZE `+strings.Join(rewritten, ", ")); err != nil {
+		t.Fatal(err)
+	}
+
 	v, err := migrations.ApplyConn(ctx, conn, nil)
 	if err != nil {
 		t.Fatal(err)
@@ -152,6 +179,38 @@ func TestInboxKeyBytesMigratesStoredRows(t *testing.T) {
 	}
 	if !bytes.Equal(stored, payload) {
 		t.Errorf("the payload of key A after 0019: %q, want %q", stored, payload)
+	}
+
+	for _, view := range changedViews {
+		var granted bool
+		if err := conn.QueryRow(ctx, `SELECT has_table_privilege($1, $2, 'SELECT')`, "site_audit_"+db, view).Scan(&granted); err != nil {
+			t.Fatal(err)
+		}
+		if !granted {
+			t.Errorf("after 0019 the site's role no longer has SELECT on %s", view)
+		}
+	}
+
+	// The columns whose type changed have statistics again (a type change
+	// drops them; 0019 analyzes the tables it rewrote).
+	for _, table := range rewritten {
+		col := "inbox_key"
+		var n int
+		if err := conn.QueryRow(ctx, `SELECT count(*) FROM pg_stats WHERE schemaname = current_schema()
+		    AND tablename = $1 AND attname = $2`, table, col).Scan(&n); err != nil {
+			t.Fatal(err)
+		}
+		if n != 1 {
+			t.Errorf("after 0019 %s.%s has no statistics", table, col)
+		}
+	}
+	var subjectStats int
+	if err := conn.QueryRow(ctx, `SELECT count(*) FROM pg_stats WHERE schemaname = current_schema()
+	    AND tablename = 'inbox' AND attname = 'subject_id'`).Scan(&subjectStats); err != nil {
+		t.Fatal(err)
+	}
+	if subjectStats != 1 {
+		t.Errorf("after 0019 inbox.subject_id has no statistics")
 	}
 
 	var after string
