@@ -42,6 +42,9 @@
 --    33-byte key and precedes an 8-byte-aligned bigint, so both take the
 --    same room, and an integer cannot run out.
 -- 6. The grants function is restated (inbox.subject_id; inbox_subject).
+--    The writer's UPDATE (subject) on inbox_subject serves the claim's
+--    no-op ON CONFLICT DO UPDATE; a BEFORE UPDATE trigger refuses an
+--    update that changes a subject, so the inbox stays append-only.
 -- 7. The rewritten tables are analyzed: a column whose type changed has
 --    no statistics until then.
 --
@@ -116,6 +119,24 @@ CREATE TABLE inbox_subject (
     subject text NOT NULL UNIQUE CHECK (subject <> '')
 );
 INSERT INTO inbox_subject (subject) SELECT DISTINCT subject FROM inbox ORDER BY subject;
+-- A subject is never renamed: a rename would change the recorded subject
+-- of every inbox row that names it. The writer holds UPDATE (subject) only
+-- for the claim's ON CONFLICT DO UPDATE, which sets a subject to itself;
+-- this trigger (the owner's; the writer cannot drop or disable it) refuses
+-- any update that changes one.
+CREATE FUNCTION inbox_subject_unchanged() RETURNS trigger
+LANGUAGE plpgsql AS $$
+BEGIN
+    IF NEW.subject IS DISTINCT FROM OLD.subject THEN
+        RAISE EXCEPTION 'inbox_subject: subject % is never renamed', OLD.subject
+            USING ERRCODE = 'insufficient_privilege';
+    END IF;
+    RETURN NEW;
+END;
+$$;
+REVOKE ALL ON FUNCTION inbox_subject_unchanged() FROM PUBLIC;
+CREATE TRIGGER inbox_subject_unchanged BEFORE UPDATE ON inbox_subject
+    FOR EACH ROW EXECUTE FUNCTION inbox_subject_unchanged();
 CREATE FUNCTION pg_temp.inbox_subject_id(s text) RETURNS integer
 LANGUAGE sql STABLE AS $$ SELECT id FROM inbox_subject WHERE subject = s $$;
 
@@ -196,7 +217,8 @@ FROM dead_letter;
 
 -- The grants function of 0018 with inbox.subject_id for subject and the
 -- lookup table inbox_subject (read, insert, and the no-op update of the
--- writer's ON CONFLICT DO UPDATE). Reviewer views are still found by name.
+-- writer's ON CONFLICT DO UPDATE, which the trigger inbox_subject_unchanged
+-- keeps a no-op). Reviewer views are still found by name.
 CREATE OR REPLACE FUNCTION ventderive_apply_grants() RETURNS void
 LANGUAGE plpgsql AS $$
 DECLARE

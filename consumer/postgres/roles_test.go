@@ -97,6 +97,15 @@ func TestRoles(t *testing.T) {
 		_, err := writer.Exec(ctx, stmt)
 		wantDenied(t, "writer "+stmt, err)
 	}
+	// Migration 0019: the writer's UPDATE (subject) on inbox_subject is
+	// for the claim's no-op ON CONFLICT DO UPDATE only; a rename would
+	// change the recorded subject of every past inbox row, and the trigger
+	// refuses it. The no-op update passes (the control).
+	_, err = writer.Exec(ctx, "UPDATE inbox_subject SET subject = 'fhir.input.renamed' WHERE subject = 'fhir.input.lab'")
+	wantDenied(t, "writer renames an inbox subject", err)
+	if tag, err := writer.Exec(ctx, "UPDATE inbox_subject SET subject = subject WHERE subject = 'fhir.input.lab'"); err != nil || tag.RowsAffected() != 1 {
+		t.Errorf("writer's no-op update of an inbox subject: %v, %d rows; want accepted, 1 row", err, tag.RowsAffected())
+	}
 	// Migration 0018: the relay reads the stored dictionaries (a frame made
 	// by a newer replica's dictionary).
 	var dicts int
