@@ -24,12 +24,12 @@
 -- 4. Views. What people and commands read does not change: every review_*
 --    view that shows an inbox key shows it as 64 lowercase hex characters,
 --    in the same column position (encode(..., 'hex')); review_derivation,
---    review_refusal, review_outbox and review_dead_letter are dropped and
---    created again with the same columns (the grants function grants them
---    to the reviewer again by name). The internal view fact keeps its
---    columns too (inbox_key as hex text), so the four views over it are
---    left as they are: it is first replaced by a definition that does not
---    read inbox.inbox_key, and after the conversion by the final one.
+--    review_refusal, review_outbox and review_dead_letter, and the internal
+--    view fact (inbox_key as hex text; the four views over it are left as
+--    they are), are never dropped, so that a grant a site gave on one
+--    stays: each is first replaced by a definition with the same columns
+--    that does not read inbox_key, and after the conversion by the final
+--    one.
 -- 5. inbox.subject (text, 18 bytes a row on the bench) becomes subject_id,
 --    an integer into the new lookup table inbox_subject (one row per
 --    subject, unique). Input subjects are any subject under the input
@@ -42,6 +42,11 @@
 --    33-byte key and precedes an 8-byte-aligned bigint, so both take the
 --    same room, and an integer cannot run out.
 -- 6. The grants function is restated (inbox.subject_id; inbox_subject).
+--    The writer's UPDATE (subject) on inbox_subject serves the claim's
+--    no-op ON CONFLICT DO UPDATE; a BEFORE UPDATE trigger refuses an
+--    update that changes a subject, so the inbox stays append-only.
+-- 7. The rewritten tables are analyzed: a column whose type changed has
+--    no statistics until then.
 --
 -- Left as they are: dead_letter.subject stays text (a dead letter is rare
 -- and people read it); the counts resources and facts stay integer (facts
@@ -64,7 +69,43 @@ JOIN fact_encounter e ON e.id = r.encounter_id
 JOIN fact_term t ON t.id = r.term_id
 LEFT JOIN inbox i ON i.id = r.inbox_id;
 
-DROP VIEW review_derivation, review_refusal, review_outbox, review_dead_letter;
+-- The four reviewer views that read an inbox_key column are replaced, not
+-- dropped: a view dropped and created again loses every grant a site gave
+-- on it. First a definition with the same columns that does not read
+-- inbox_key (NULL of the same type in its place), so the column can change
+-- type; after the conversion the final definition, below.
+CREATE OR REPLACE VIEW review_derivation AS
+SELECT d.id, d.key, d.version, d.observation_id, d.kind, d.patient_ref, d.encounter,
+       d.blood_gas_key, d.effective, d.value, d.unit, d.method, d.method_version,
+       d.constants, d.assumptions, d.basis, d.interp_code, d.interp_text, d.interp_source,
+       d.flags, d.status, d.retracted, d.algorithm, d.digest,
+       p.version AS supersedes_version, p.value AS supersedes_value, p.status AS supersedes_status,
+       (SELECT n.version FROM derivation n WHERE n.supersedes_id = d.id) AS superseded_by_version,
+       (h.derivation_id = d.id AND NOT h.refused) AS is_current,
+       NULL::text AS inbox_key, d.created_at,
+       d.record, d.settings_digest
+FROM derivation d
+LEFT JOIN derivation p ON p.id = d.supersedes_id
+LEFT JOIN head h ON h.key = d.key;
+
+CREATE OR REPLACE VIEW review_refusal AS
+SELECT r.id, r.key, r.kind, r.patient_ref, r.blood_gas_key, r.effective, r.reason, r.detail,
+       r.digest, (h.refusal_id = r.id) AS is_current, NULL::text AS inbox_key, r.created_at,
+       r.settings_digest
+FROM refusal r
+LEFT JOIN head h ON h.key = r.key;
+
+CREATE OR REPLACE VIEW review_outbox AS
+SELECT seq, subject, msg_id, headers,
+       CASE WHEN substr(stored_payload, 1, 4) = '\x28b52ffd'::bytea THEN payload_size
+            ELSE octet_length(stored_payload) END AS size_bytes,
+       NULL::text AS inbox_key, created_at, published_at
+FROM outbox;
+
+CREATE OR REPLACE VIEW review_dead_letter AS
+SELECT id, NULL::text AS inbox_key, subject, stream_seq, octet_length(raw) AS size_bytes, reason, detail,
+       created_at
+FROM dead_letter;
 
 ALTER TABLE derivation DROP CONSTRAINT derivation_inbox_key_fkey;
 ALTER TABLE refusal DROP CONSTRAINT refusal_inbox_key_fkey;
@@ -78,6 +119,24 @@ CREATE TABLE inbox_subject (
     subject text NOT NULL UNIQUE CHECK (subject <> '')
 );
 INSERT INTO inbox_subject (subject) SELECT DISTINCT subject FROM inbox ORDER BY subject;
+-- A subject is never renamed: a rename would change the recorded subject
+-- of every inbox row that names it. The writer holds UPDATE (subject) only
+-- for the claim's ON CONFLICT DO UPDATE, which sets a subject to itself;
+-- this trigger (the owner's; the writer cannot drop or disable it) refuses
+-- any update that changes one.
+CREATE FUNCTION inbox_subject_unchanged() RETURNS trigger
+LANGUAGE plpgsql AS $$
+BEGIN
+    IF NEW.subject IS DISTINCT FROM OLD.subject THEN
+        RAISE EXCEPTION 'inbox_subject: subject % is never renamed', OLD.subject
+            USING ERRCODE = 'insufficient_privilege';
+    END IF;
+    RETURN NEW;
+END;
+$$;
+REVOKE ALL ON FUNCTION inbox_subject_unchanged() FROM PUBLIC;
+CREATE TRIGGER inbox_subject_unchanged BEFORE UPDATE ON inbox_subject
+    FOR EACH ROW EXECUTE FUNCTION inbox_subject_unchanged();
 CREATE FUNCTION pg_temp.inbox_subject_id(s text) RETURNS integer
 LANGUAGE sql STABLE AS $$ SELECT id FROM inbox_subject WHERE subject = s $$;
 
@@ -122,7 +181,8 @@ JOIN fact_term t ON t.id = r.term_id
 LEFT JOIN inbox i ON i.id = r.inbox_id;
 
 -- The views of 0006, 0018 and 0001 with the same columns; the key as hex.
-CREATE VIEW review_derivation AS
+-- Replaced in place: the grants on them stay.
+CREATE OR REPLACE VIEW review_derivation AS
 SELECT d.id, d.key, d.version, d.observation_id, d.kind, d.patient_ref, d.encounter,
        d.blood_gas_key, d.effective, d.value, d.unit, d.method, d.method_version,
        d.constants, d.assumptions, d.basis, d.interp_code, d.interp_text, d.interp_source,
@@ -136,28 +196,29 @@ FROM derivation d
 LEFT JOIN derivation p ON p.id = d.supersedes_id
 LEFT JOIN head h ON h.key = d.key;
 
-CREATE VIEW review_refusal AS
+CREATE OR REPLACE VIEW review_refusal AS
 SELECT r.id, r.key, r.kind, r.patient_ref, r.blood_gas_key, r.effective, r.reason, r.detail,
        r.digest, (h.refusal_id = r.id) AS is_current, encode(r.inbox_key, 'hex') AS inbox_key, r.created_at,
        r.settings_digest
 FROM refusal r
 LEFT JOIN head h ON h.key = r.key;
 
-CREATE VIEW review_outbox AS
+CREATE OR REPLACE VIEW review_outbox AS
 SELECT seq, subject, msg_id, headers,
        CASE WHEN substr(stored_payload, 1, 4) = '\x28b52ffd'::bytea THEN payload_size
             ELSE octet_length(stored_payload) END AS size_bytes,
        encode(inbox_key, 'hex') AS inbox_key, created_at, published_at
 FROM outbox;
 
-CREATE VIEW review_dead_letter AS
+CREATE OR REPLACE VIEW review_dead_letter AS
 SELECT id, encode(inbox_key, 'hex') AS inbox_key, subject, stream_seq, octet_length(raw) AS size_bytes, reason, detail,
        created_at
 FROM dead_letter;
 
 -- The grants function of 0018 with inbox.subject_id for subject and the
 -- lookup table inbox_subject (read, insert, and the no-op update of the
--- writer's ON CONFLICT DO UPDATE). Reviewer views are still found by name.
+-- writer's ON CONFLICT DO UPDATE, which the trigger inbox_subject_unchanged
+-- keeps a no-op). Reviewer views are still found by name.
 CREATE OR REPLACE FUNCTION ventderive_apply_grants() RETURNS void
 LANGUAGE plpgsql AS $$
 DECLARE
@@ -197,3 +258,8 @@ BEGIN
 END;
 $$;
 REVOKE ALL ON FUNCTION ventderive_apply_grants() FROM PUBLIC;
+
+-- A column whose type changed has lost its statistics: gather them again
+-- for the tables rewritten here (ANALYZE runs inside the migration's
+-- transaction; it samples, so it stays short on a large store).
+ANALYZE inbox, inbox_subject, derivation, refusal, outbox, site_settings, input_resource, dead_letter;

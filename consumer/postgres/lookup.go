@@ -34,6 +34,9 @@ type lookupCache struct {
 	// subjects are the input subjects known committed in inbox_subject
 	// (migration 0019): seedLookups commits a subject not among them.
 	subjects map[string]bool
+	// seedWarned are the subjects whose seed failure was logged at Warn,
+	// at most maxWanted: a further failure for one is logged at Debug.
+	seedWarned map[string]bool
 }
 
 // termKey is the value of a fact_term row: the columns of its unique
@@ -59,7 +62,7 @@ const (
 
 func newLookupCache() *lookupCache {
 	return &lookupCache{terms: map[termKey]int32{}, encounters: map[string]int32{},
-		wantTerms: map[termKey]bool{}, wantEncounters: map[string]bool{}, subjects: map[string]bool{}}
+		wantTerms: map[termKey]bool{}, wantEncounters: map[string]bool{}, subjects: map[string]bool{}, seedWarned: map[string]bool{}}
 }
 
 // ids returns the cached term and encounter ids of facts, 0 where none is
@@ -309,7 +312,31 @@ func (s *Store) seedSubjects(ctx context.Context, msgs []consumer.Message) {
 	slices.Sort(list)
 	list = slices.Compact(list)
 	if _, err := s.pool.Exec(ctx, seedSubjectsSQL, list); err != nil {
-		s.log.Debug("seed inbox subjects", "error", err)
+		// The claim still inserts the subject, inside the group's
+		// transaction, so nothing is lost; but a lasting failure (a
+		// missing grant) brings back the wait across groups that seeding
+		// avoids. Warn once per subject; repeats at Debug.
+		// Only SQLSTATE and constraint are logged (translate).
+		err = translate("seed inbox subjects", err, false)
+		if ctx.Err() != nil {
+			s.log.Debug("seed inbox subjects", "subjects", list, "error", err)
+			return
+		}
+		var fresh []string
+		c.mu.Lock()
+		for _, subj := range list {
+			if !c.seedWarned[subj] && len(c.seedWarned) < maxWanted {
+				c.seedWarned[subj] = true
+				fresh = append(fresh, subj)
+			}
+		}
+		c.mu.Unlock()
+		if len(fresh) > 0 {
+			s.log.Warn("seed inbox subjects failed: new subjects are inserted inside the group's transaction",
+				"subjects", fresh, "error", err)
+		} else {
+			s.log.Debug("seed inbox subjects", "subjects", list, "error", err)
+		}
 		return
 	}
 	c.mu.Lock()

@@ -3,7 +3,9 @@ package postgres_test
 import (
 	"context"
 	"errors"
+	"log/slog"
 	"os"
+	"strings"
 	"testing"
 	"time"
 
@@ -79,6 +81,30 @@ func TestRoles(t *testing.T) {
 	if n, err := store.RelayOutbox(ctx, 10, func(_ context.Context, ms []consumer.OutboxMessage) ([]int64, error) { return seqs(ms), nil }); err != nil || n != 1 {
 		t.Fatalf("RelayOutbox as writer = %d, %v", n, err)
 	}
+	// A group (IngestBatch: seedSubjectsSQL, then claimInboxesSQL) of two
+	// messages with a subject the store has not seen, as the writer. The
+	// seed's failure is only logged (the claim inserts the subject too), so
+	// its log line is what shows a grant it lacks.
+	var logged lockedBuffer
+	groupStore := postgres.New(writer, postgres.Options{PatientKey: testKey, Now: clock(),
+		Logger: slog.New(slog.NewTextHandler(&logged, nil))})
+	group := []consumer.Message{
+		message("fhir.input.device.roles", 3, vent(p1, "ve-roles-1", fhirmap.QMinuteVol, t0.Add(2*time.Hour), 10, "L/min")),
+		message("fhir.input.device.roles", 4, vent(p1, "ve-roles-2", fhirmap.QMinuteVol, t0.Add(3*time.Hour), 11, "L/min")),
+	}
+	for i, r := range groupStore.IngestBatch(ctx, group, new(testPlan).plan) {
+		if r.Err != nil {
+			t.Errorf("IngestBatch message %d as writer: %v", i, r.Err)
+		}
+	}
+	var grouped int
+	if err := writer.QueryRow(ctx, `SELECT count(*) FROM inbox i JOIN inbox_subject s ON s.id = i.subject_id
+	    WHERE s.subject = 'fhir.input.device.roles'`).Scan(&grouped); err != nil || grouped != 2 {
+		t.Errorf("inbox rows of the writer's group with its new subject: %d, %v; want 2", grouped, err)
+	}
+	if l := logged.String(); strings.Contains(l, "level=WARN") {
+		t.Errorf("the writer's group logged a warning:\n%s", l)
+	}
 	dl := consumer.Message{InboxKey: sha([]byte("bad")), Subject: "fhir.input.lab", Raw: []byte("bad")}
 	if err := store.DeadLetter(ctx, dl, "invalid-json", ""); err != nil {
 		t.Fatalf("DeadLetter as writer: %v", err)
@@ -96,6 +122,15 @@ func TestRoles(t *testing.T) {
 	} {
 		_, err := writer.Exec(ctx, stmt)
 		wantDenied(t, "writer "+stmt, err)
+	}
+	// Migration 0019: the writer's UPDATE (subject) on inbox_subject is
+	// for the claim's no-op ON CONFLICT DO UPDATE only; a rename would
+	// change the recorded subject of every past inbox row, and the trigger
+	// refuses it. The no-op update passes (the control).
+	_, err = writer.Exec(ctx, "UPDATE inbox_subject SET subject = 'fhir.input.renamed' WHERE subject = 'fhir.input.lab'")
+	wantDenied(t, "writer renames an inbox subject", err)
+	if tag, err := writer.Exec(ctx, "UPDATE inbox_subject SET subject = subject WHERE subject = 'fhir.input.lab'"); err != nil || tag.RowsAffected() != 1 {
+		t.Errorf("writer's no-op update of an inbox subject: %v, %d rows; want accepted, 1 row", err, tag.RowsAffected())
 	}
 	// Migration 0018: the relay reads the stored dictionaries (a frame made
 	// by a newer replica's dictionary).

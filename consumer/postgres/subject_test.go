@@ -273,3 +273,47 @@ func TestSeededSubjectDoesNotWaitForAnotherGroup(t *testing.T) {
 		t.Errorf("%d inbox rows naming %d subjects (%d lookup rows), want 4, 1, 1", rows, subjects, f.count(t, "inbox_subject"))
 	}
 }
+
+// TestSeedSubjectFailureWarns: when committing a new subject before the
+// group's transaction fails, the store logs it at Warn (a lasting failure,
+// such as a missing grant, would otherwise silently bring back the wait
+// across groups that seeding avoids), once per subject: a second group
+// with the same subject logs it at Debug only. The failure is made here by
+// a CHECK that refuses the subject (so the group's own claim refuses it
+// too; what is checked is the log).
+func TestSeedSubjectFailureWarns(t *testing.T) {
+	t.Parallel()
+	f := newFixture(t)
+	if _, err := f.pool.Exec(f.ctx, `ALTER TABLE inbox_subject
+	    ADD CONSTRAINT test_refused_subject CHECK (subject <> 'fhir.input.unseedable')`); err != nil {
+		t.Fatal(err)
+	}
+	var logged lockedBuffer
+	store := postgres.New(f.pool, postgres.Options{PatientKey: testKey, Now: clock(),
+		Logger: slog.New(slog.NewTextHandler(&logged, nil))})
+	var p testPlan
+	for round := range 2 {
+		group := []consumer.Message{
+			message("fhir.input.unseedable", uint64(1+2*round), vent(p1, fmt.Sprintf("ve-u%d-1", round), fhirmap.QMinuteVol, t0.Add(time.Duration(round)*time.Hour), 10, "L/min")),
+			message("fhir.input.unseedable", uint64(2+2*round), vent(p1, fmt.Sprintf("ve-u%d-2", round), fhirmap.QMinuteVol, t0.Add(time.Duration(round)*time.Hour+time.Minute), 11, "L/min")),
+		}
+		for i, r := range store.IngestBatch(f.ctx, group, p.plan) {
+			if r.Err == nil {
+				t.Errorf("round %d message %d: recorded, want the CHECK's refusal", round, i)
+			}
+		}
+	}
+	l := logged.String()
+	warned := 0
+	for _, line := range strings.Split(l, "\n") {
+		if strings.Contains(line, "level=WARN") && strings.Contains(line, "seed inbox subjects") {
+			warned++
+			if !strings.Contains(line, "fhir.input.unseedable") {
+				t.Errorf("the warning does not name the subject: %s", line)
+			}
+		}
+	}
+	if warned != 1 {
+		t.Errorf("%d warnings of the seed's failure over two groups, want 1:\n%s", warned, l)
+	}
+}
