@@ -45,6 +45,8 @@ func (p *Pipeline) relayLoop(ctx context.Context) {
 // that it neither backs the relay off for every other row nor is lost.
 // The backlog gauge is kept true meanwhile.
 func (p *Pipeline) relayAll(ctx context.Context) {
+	p.relayMu.Lock()
+	defer p.relayMu.Unlock()
 	failures := 0
 	for ctx.Err() == nil {
 		pass := p.relayPass(ctx)
@@ -139,9 +141,9 @@ func (p *Pipeline) relayPass(ctx context.Context) relayPassResult {
 	return r
 }
 
-// noteDamage reports the damaged rows a pass met: each logged once, with
-// its sequence number and what is wrong (never its bytes), the gauges set,
-// and the readiness text of Degraded. A complete pass replaces what
+// noteDamage reports the damaged rows a pass met (relayMu held): each
+// logged once, with its sequence number and what is wrong (never its
+// bytes), the gauges set, and the readiness text of Degraded. A complete pass replaces what
 // earlier passes found (a repaired row drops out); one cut short by a
 // store failure only adds to it.
 func (p *Pipeline) noteDamage(r relayPassResult) {
