@@ -194,52 +194,83 @@ func savepointDictionaries(ctx context.Context, tx pgx.Tx) (*dictionarySet, erro
 }
 
 // checkOutbox returns a claimed row as it is published: its headers, and
-// the exact bytes recorded for it. A frame is decoded (with the embedded
-// outbox dictionary, or the stored one it names), and the bytes must have
-// the SHA-256 and the size stored beside it; a plain row (before 0018) is
-// its own record. Anything else is an error wrapping
-// consumer.ErrDamagedPayload, except a failure to read the stored
-// dictionaries, which says nothing about the row.
+// the exact bytes recorded for it (verifyStored). A frame is decoded with
+// the embedded outbox dictionary, or the stored one it names. Anything
+// wrong with the row is an error wrapping consumer.ErrDamagedPayload,
+// except a failure to read the stored dictionaries, which says nothing
+// about the row.
 func checkOutbox(c claimedRow, stored func() (*dictionarySet, error)) (consumer.OutboxMessage, error) {
 	m := c.m
-	damaged := func(format string, a ...any) error {
-		return fmt.Errorf("outbox %d: %w: %w", m.Seq, consumer.ErrDamagedPayload, fmt.Errorf(format, a...))
-	}
-	if err := json.Unmarshal([]byte(c.headers), &m.Header); err != nil {
-		return m, damaged("headers are not a JSON object of strings: %w", err)
-	}
-	if !rawcodec.IsCompressed(c.stored) {
-		m.Payload = c.stored
-		return m, nil
-	}
-	var b []byte
-	var err error
-	id := rawcodec.FrameDictID(c.stored)
-	if id == 0 || slices.ContainsFunc(rawcodec.Embedded(), func(d rawcodec.Dictionary) bool { return d.ID == id }) {
-		b, err = rawcodec.Outbox().Decode(c.stored)
-	} else {
-		ds, derr := stored()
-		if derr != nil {
-			return m, fmt.Errorf("outbox %d: frame of dictionary %#x not checked: %w", m.Seq, id, derr)
+	decode := func(frame []byte) ([]byte, error) {
+		id := rawcodec.FrameDictID(frame)
+		if id == 0 || slices.ContainsFunc(rawcodec.Embedded(), func(d rawcodec.Dictionary) bool { return d.ID == id }) {
+			return rawcodec.Outbox().Decode(frame)
 		}
-		b, err = ds.decode(c.stored)
+		ds, err := stored()
+		if err != nil {
+			return nil, notChecked{fmt.Errorf("frame of dictionary %#x not checked: %w", id, err)}
+		}
+		return ds.decode(frame)
 	}
+	var size *int64
+	if c.size != nil {
+		n := int64(*c.size)
+		size = &n
+	}
+	h, b, _, err := verifyStored(c.headers, c.stored, c.sum, size, decode)
 	if err != nil {
-		return m, damaged("%w", err)
+		return m, fmt.Errorf("outbox %d: %w", m.Seq, err)
+	}
+	m.Header, m.Payload = h, b
+	return m, nil
+}
+
+// notChecked is a failure of a decode function of verifyStored that says
+// nothing about the row (the stored dictionaries could not be read).
+type notChecked struct{ error }
+
+func (e notChecked) Unwrap() error { return e.error }
+
+// verifyStored is the one check of an outbox row's stored form, used by
+// the relay (checkOutbox) and by the audit (CheckOutputs), so that the
+// audit names every row the relay holds back as damaged: the headers
+// (jsonb as text) must be a JSON object of strings; a frame must decode
+// (decode: with the relay's dictionaries, or the audit's stored ones) to
+// bytes whose SHA-256 and size are sum and size, stored beside it; plain
+// bytes (a row written before migration 0018) are their own record and
+// have no stored digest. It returns the headers, the exact bytes, and
+// whether the row was a frame. An error wraps consumer.ErrDamagedPayload,
+// except a notChecked error of decode, returned as it is.
+func verifyStored(headers string, stored, sum []byte, size *int64, decode func([]byte) ([]byte, error)) (map[string]string, []byte, bool, error) {
+	damaged := func(format string, a ...any) error {
+		return fmt.Errorf("%w: %w", consumer.ErrDamagedPayload, fmt.Errorf(format, a...))
+	}
+	var h map[string]string
+	if err := json.Unmarshal([]byte(headers), &h); err != nil {
+		return nil, nil, false, damaged("headers are not a JSON object of strings: %w", err)
+	}
+	if !rawcodec.IsCompressed(stored) {
+		return h, stored, false, nil
+	}
+	b, err := decode(stored)
+	if err != nil {
+		if errors.As(err, new(notChecked)) {
+			return nil, nil, true, err
+		}
+		return nil, nil, true, damaged("%w", err)
 	}
 	got := sha256.Sum256(b)
-	if len(c.sum) != len(got) || !slices.Equal(c.sum, got[:]) {
-		return m, damaged("%w: decoded bytes SHA-256 %x, stored %x", ErrOutputMismatch, got, c.sum)
+	if len(sum) != len(got) || !slices.Equal(sum, got[:]) {
+		return nil, nil, true, damaged("%w: decoded bytes SHA-256 %x, stored %x", ErrOutputMismatch, got, sum)
 	}
-	if c.size == nil || int(*c.size) != len(b) {
-		size := "none"
-		if c.size != nil {
-			size = strconv.Itoa(int(*c.size))
+	if size == nil || *size != int64(len(b)) {
+		n := "none"
+		if size != nil {
+			n = strconv.FormatInt(*size, 10)
 		}
-		return m, damaged("%w: decoded %d bytes, stored size %s", ErrOutputMismatch, len(b), size)
+		return nil, nil, true, damaged("%w: decoded %d bytes, stored size %s", ErrOutputMismatch, len(b), n)
 	}
-	m.Payload = b
-	return m, nil
+	return h, b, true, nil
 }
 
 const backlogSQL = `SELECT count(*) FROM outbox WHERE published_at IS NULL`
