@@ -1,9 +1,12 @@
 package consumer
 
 import (
+	"bytes"
 	"context"
 	"fmt"
 	"log/slog"
+	"slices"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"testing"
@@ -39,6 +42,10 @@ func (s *overlapStore) RelayOutboxFrom(ctx context.Context, _ int64, _ int, _ fu
 
 func (s *overlapStore) OutboxBacklog(context.Context) (int64, error) { return 1, nil }
 
+func (s *overlapStore) OutboxUnpublished(_ context.Context, seqs []int64) ([]int64, error) {
+	return seqs, nil
+}
+
 // Two relayAll calls (the relay loop kicked by the last commits, and the
 // final flush of Run) never run passes at once: they share the damage
 // state (damaged, damageLogged). Without relayMu the store sees two calls
@@ -59,5 +66,60 @@ func TestRelayAllCallsDoNotOverlap(t *testing.T) {
 	}
 	if len(p.damaged) != 1 || !p.damageLogged[7] {
 		t.Fatalf("damage state = %v, logged %v", p.damaged, p.damageLogged)
+	}
+}
+
+// damageStore reports seq 7 damaged on the first relay call only, and
+// says whether it is still unpublished.
+type damageStore struct {
+	Store
+	calls       int
+	unpublished []int64
+}
+
+func (s *damageStore) RelayOutboxFrom(context.Context, int64, int, func(context.Context, []OutboxMessage) ([]int64, error)) (RelayResult, error) {
+	s.calls++
+	if s.calls > 1 {
+		return RelayResult{}, nil // complete, and row 7 not met: another replica holds it locked
+	}
+	return RelayResult{Claimed: 1, Last: 7, Skipped: []SkippedRow{{Seq: 7, MsgID: "Observation/d-7/_history/1",
+		Err: fmt.Errorf("outbox 7: %w: invented damage", ErrDamagedPayload)}}}, nil
+}
+
+func (s *damageStore) OutboxBacklog(context.Context) (int64, error) {
+	return int64(len(s.unpublished)), nil
+}
+
+func (s *damageStore) OutboxUnpublished(_ context.Context, seqs []int64) ([]int64, error) {
+	var out []int64
+	for _, q := range seqs {
+		if slices.Contains(s.unpublished, q) {
+			out = append(out, q)
+		}
+	}
+	return out, nil
+}
+
+// A complete pass that does not meet a damaged row (another replica has
+// it locked, SKIP LOCKED) does not clear the report: the row stays counted
+// and no "no longer found damaged" line is logged, until the row is found
+// published (here by another replica) or passes this replica's check.
+func TestRelayDamageReportHoldsForRowsOtherReplicasLock(t *testing.T) {
+	s := &damageStore{unpublished: []int64{7}}
+	var logs bytes.Buffer
+	p := &Pipeline{store: s, metrics: NewMetrics(nil), log: slog.New(slog.NewTextHandler(&logs, nil)), now: time.Now}
+	ctx := context.Background()
+	p.relayAll(ctx)
+	p.relayAll(ctx)
+	if len(p.damaged) != 1 || strings.Contains(logs.String(), "no longer found damaged") {
+		t.Fatalf("after a pass that skipped the locked row: damaged %v, logs\n%s\nwant row 7 still reported", p.damaged, logs.String())
+	}
+	if d, _ := p.outboxDamage.Load().(string); !strings.Contains(d, "seq 7") {
+		t.Errorf("degraded reason %q, want row 7", d)
+	}
+	s.unpublished = nil // another replica published it after a repair
+	p.relayAll(ctx)
+	if len(p.damaged) != 0 || !strings.Contains(logs.String(), "no longer found damaged") {
+		t.Errorf("after row 7 was published: damaged %v, logs\n%s\nwant it cleared and logged", p.damaged, logs.String())
 	}
 }

@@ -282,6 +282,17 @@ func (s *Store) OutboxBacklog(ctx context.Context) (int64, error) {
 	return n, translate("outbox backlog", err, false)
 }
 
+const unpublishedSQL = `
+SELECT coalesce(array_agg(seq ORDER BY seq), '{}') FROM outbox
+WHERE seq = ANY($1::bigint[]) AND published_at IS NULL`
+
+// OutboxUnpublished implements consumer.Store.
+func (s *Store) OutboxUnpublished(ctx context.Context, seqs []int64) ([]int64, error) {
+	var left []int64
+	err := s.pool.QueryRow(ctx, unpublishedSQL, seqs).Scan(&left)
+	return left, translate("outbox unpublished", err, false)
+}
+
 // Ping implements consumer.Store: a round trip on a pooled connection.
 func (s *Store) Ping(ctx context.Context) error {
 	return translate("ping", s.pool.Ping(ctx), false)

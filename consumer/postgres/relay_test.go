@@ -3,6 +3,7 @@ package postgres_test
 import (
 	"context"
 	"errors"
+	"slices"
 	"testing"
 
 	"github.com/ventderive/ventderive/consumer"
@@ -34,5 +35,27 @@ func TestRelayOutboxFromPagesPastFailures(t *testing.T) {
 	}
 	if b, _ := f.store.OutboxBacklog(f.ctx); b != 2 {
 		t.Errorf("backlog %d, want the 2 stuck rows", b)
+	}
+}
+
+// OutboxUnpublished returns those of the given rows not yet published
+// (the relay asks it about damaged rows a pass did not meet), in order,
+// and nothing for a seq that is no outbox row.
+func TestOutboxUnpublished(t *testing.T) {
+	t.Parallel()
+	f, _ := outputStore(t)
+	var all []int64
+	if err := f.pool.QueryRow(f.ctx, `SELECT array_agg(seq ORDER BY seq) FROM outbox`).Scan(&all); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := f.pool.Exec(f.ctx, `UPDATE outbox SET published_at = now() WHERE seq = $1`, all[1]); err != nil {
+		t.Fatal(err)
+	}
+	got, err := f.store.OutboxUnpublished(f.ctx, []int64{all[2], all[1], all[0], all[len(all)-1] + 1000})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Equal(got, []int64{all[0], all[2]}) {
+		t.Errorf("OutboxUnpublished = %v, want %v", got, []int64{all[0], all[2]})
 	}
 }
