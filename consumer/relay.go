@@ -54,6 +54,14 @@ func (p *Pipeline) relayAll(ctx context.Context) {
 		p.noteDamage(ctx, pass)
 		if pass.err == nil {
 			p.relayFailing(nil)
+			if pass.marked > 0 && pass.held > 0 {
+				// A version held behind one this pass published (by
+				// another relay, or on an earlier page) may go now: pass
+				// again rather than wait for the next kick. A pass that
+				// publishes nothing ends it, so damaged and held rows
+				// alone never keep it busy.
+				continue
+			}
 			return
 		}
 		failures++
@@ -71,21 +79,22 @@ type relayPassResult struct {
 	damaged  []SkippedRow // rows whose stored payload is damaged
 	checked  []int64      // rows claimed whose stored payload passed the check
 	held     int          // rows held behind an unpublished earlier version
+	marked   int          // rows marked published
 	complete bool         // the pass reached the end of the outbox
 }
 
 // relayPass publishes the outbox once, page by page. Ordering is kept per
 // derivation (a resource's version chain: its message id without
 // "/_history/N", so a version's Observation and its Provenance are two
-// chains) within this pass only: once a version is not published in it
-// (damaged, not checked, not acknowledged), no later version of that chain
-// is handed to NATS in it, also on later pages. It is not kept across
-// replicas: a row another replica has locked is skipped (SKIP LOCKED), so
-// while that replica holds version 1 this pass may publish version 3, and
-// version 1 goes out later. Nor inside one batch: publishBatch sends a
-// page's rows together, so when version 1's acknowledgement fails version
-// 2 is not marked but may be in the stream already (it is sent again
-// after version 1). Other derivations, of the same patient too, go on:
+// chains): once a version is not published in this pass (damaged, not
+// checked, not acknowledged), no later version of that chain is handed to
+// NATS in it, also on later pages. Across replicas the store keeps it: a
+// claimed row waits while the previous version of its derivation is
+// unpublished outside the claim (a row another replica holds locked, which
+// SKIP LOCKED passed), and is returned as held. It is not kept inside one
+// batch: publishBatch sends a page's rows together, so when version 1's
+// acknowledgement fails version 2 is not marked but may be in the stream
+// already (it is sent again after version 1). Other derivations, of the same patient too, go on:
 // they are other resources, and holding a patient's every output behind
 // one damaged row would stall that patient's values with no gain in order.
 func (p *Pipeline) relayPass(ctx context.Context) relayPassResult {
@@ -120,6 +129,7 @@ func (p *Pipeline) relayPass(ctx context.Context) relayPassResult {
 	for ctx.Err() == nil {
 		res, err := p.store.RelayOutboxFrom(ctx, after, relayBatch, publish)
 		p.metrics.Published.Add(float64(res.Marked))
+		r.marked += res.Marked
 		for _, s := range res.Skipped {
 			held[derivationOf(s.MsgID)] = true
 			switch {

@@ -123,3 +123,49 @@ func TestRelayDamageReportHoldsForRowsOtherReplicasLock(t *testing.T) {
 		t.Errorf("after row 7 was published: damaged %v, logs\n%s\nwant it cleared and logged", p.damaged, logs.String())
 	}
 }
+
+// passStore answers relay calls from a script: each call marks and holds
+// the given counts.
+type passStore struct {
+	Store
+	script []RelayResult
+	calls  int
+}
+
+func (s *passStore) RelayOutboxFrom(context.Context, int64, int, func(context.Context, []OutboxMessage) ([]int64, error)) (RelayResult, error) {
+	s.calls++
+	if s.calls > len(s.script) {
+		return RelayResult{}, nil
+	}
+	return s.script[s.calls-1], nil
+}
+
+func (s *passStore) OutboxBacklog(context.Context) (int64, error) { return 0, nil }
+
+func (s *passStore) OutboxUnpublished(_ context.Context, seqs []int64) ([]int64, error) {
+	return seqs, nil
+}
+
+// relayAll passes again while a pass published something and held a
+// later version (it may go now), and stops after a pass that published
+// nothing: held rows alone do not keep it busy.
+func TestRelayAllPassesAgainForHeldVersions(t *testing.T) {
+	held := RelayResult{Claimed: 2, Marked: 1, Last: 2, Skipped: []SkippedRow{{Seq: 2, MsgID: "Observation/d/_history/2"}}}
+	onlyHeld := RelayResult{Claimed: 1, Last: 2, Skipped: []SkippedRow{{Seq: 2, MsgID: "Observation/d/_history/2"}}}
+	for _, c := range []struct {
+		name   string
+		script []RelayResult
+		calls  int
+	}{
+		{"published and held: again", []RelayResult{held, held, {Claimed: 1, Marked: 1, Last: 3}}, 3},
+		{"held only: once", []RelayResult{onlyHeld, onlyHeld}, 1},
+		{"nothing held: once", []RelayResult{{Claimed: 1, Marked: 1, Last: 1}, held}, 1},
+	} {
+		s := &passStore{script: c.script}
+		p := &Pipeline{store: s, metrics: NewMetrics(nil), log: slog.New(slog.DiscardHandler), now: time.Now}
+		p.relayAll(context.Background())
+		if s.calls != c.calls {
+			t.Errorf("%s: %d passes, want %d", c.name, s.calls, c.calls)
+		}
+	}
+}

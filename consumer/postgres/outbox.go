@@ -48,6 +48,16 @@ ORDER BY seq
 LIMIT $1
 FOR UPDATE SKIP LOCKED`
 
+	// Claimed rows whose previous version (either resource of it) is
+	// unpublished and not in this claim: another relay holds it locked
+	// (SKIP LOCKED passed it), or an earlier page of this pass left it.
+	// The message ids are looked up by their unique index.
+	heldBehindSQL = `
+SELECT DISTINCT c.seq
+FROM unnest($1::bigint[], $2::text[]) AS c(seq, prev)
+JOIN outbox e ON e.msg_id = c.prev
+WHERE e.published_at IS NULL AND NOT e.seq = ANY($3::bigint[])`
+
 	markPublishedSQL = `
 UPDATE outbox SET published_at = $2
 WHERE seq = ANY($1::bigint[]) AND published_at IS NULL`
@@ -80,7 +90,10 @@ type claimedRow struct {
 // that is not verifiably those bytes is never published: it is returned in
 // Skipped (wrapping consumer.ErrDamagedPayload), with the later versions
 // of its derivation in this page, and the other rows are published; damage
-// alone is not an error of the call. The stored dictionaries are read
+// alone is not an error of the call. A row whose previous version (of
+// either resource) is unpublished and not in this claim is skipped as held
+// (Err nil), with the later versions of its derivation in this page
+// (heldBehind): another relay may hold that version locked. The stored dictionaries are read
 // once, and only for a frame of a dictionary this binary does not embed,
 // in a savepoint: when they cannot be read at all, the rows that need them
 // are skipped with that error, which the call also returns, while the
@@ -119,6 +132,10 @@ func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, pub
 			}
 			return dicts, dictErr
 		}
+		behind, err := heldBehind(ctx, tx, claimed)
+		if err != nil {
+			return err
+		}
 		ready := make([]consumer.OutboxMessage, 0, len(claimed))
 		var unavailable error
 		failed := map[string]bool{}
@@ -126,6 +143,9 @@ func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, pub
 			chain := c.m.MsgID
 			if j := strings.LastIndex(chain, "/_history/"); j >= 0 {
 				chain = chain[:j]
+			}
+			if behind[c.m.Seq] {
+				failed[chain] = true
 			}
 			if failed[chain] {
 				res.Skipped = append(res.Skipped, consumer.SkippedRow{Seq: c.m.Seq, MsgID: c.m.MsgID})
@@ -172,6 +192,56 @@ func (s *Store) RelayOutboxFrom(ctx context.Context, after int64, limit int, pub
 		return res, fmt.Errorf("publish outbox: %w", pubErr)
 	}
 	return res, nil
+}
+
+// heldBehind returns the claimed rows that must wait for an unpublished
+// earlier version outside the claim: version N of "<Type>/<id>/_history/N"
+// waits while "Observation/<id>/_history/N-1" or "Provenance/<id>/_history/N-1"
+// is unpublished. Checking the previous version suffices: no version is
+// published while its previous one is not. This keeps the order across
+// relays, which SKIP LOCKED alone does not.
+func heldBehind(ctx context.Context, tx pgx.Tx, claimed []claimedRow) (map[int64]bool, error) {
+	var seqs []int64
+	var prevs []string
+	for _, c := range claimed {
+		rest, ok := strings.CutPrefix(c.m.MsgID, "Observation/")
+		if !ok {
+			if rest, ok = strings.CutPrefix(c.m.MsgID, "Provenance/"); !ok {
+				continue
+			}
+		}
+		j := strings.LastIndex(rest, "/_history/")
+		if j < 0 {
+			continue
+		}
+		v, err := strconv.Atoi(rest[j+len("/_history/"):])
+		if err != nil || v <= 1 {
+			continue
+		}
+		prev := rest[:j] + "/_history/" + strconv.Itoa(v-1)
+		seqs = append(seqs, c.m.Seq, c.m.Seq)
+		prevs = append(prevs, "Observation/"+prev, "Provenance/"+prev)
+	}
+	held := map[int64]bool{}
+	if len(seqs) == 0 {
+		return held, nil
+	}
+	all := make([]int64, len(claimed))
+	for i, c := range claimed {
+		all[i] = c.m.Seq
+	}
+	rows, err := tx.Query(ctx, heldBehindSQL, seqs, prevs, all)
+	if err != nil {
+		return nil, fmt.Errorf("claim outbox: earlier versions: %w", err)
+	}
+	got, err := pgx.CollectRows(rows, pgx.RowTo[int64])
+	if err != nil {
+		return nil, fmt.Errorf("claim outbox: earlier versions: %w", err)
+	}
+	for _, seq := range got {
+		held[seq] = true
+	}
+	return held, nil
 }
 
 // savepointDictionaries reads the writer's stored outbox dictionaries in a
