@@ -174,6 +174,7 @@ func (p *Pipeline) noteDamage(ctx context.Context, r relayPassResult) {
 	for _, seq := range r.checked {
 		if _, was := p.damaged[seq]; was {
 			delete(p.damaged, seq)
+			delete(p.damageLogged, seq) // bounded by the rows reported
 			p.log.Info("outbox row no longer found damaged", "seq", seq)
 		}
 	}
@@ -196,6 +197,7 @@ func (p *Pipeline) noteDamage(ctx context.Context, r relayPassResult) {
 				for _, seq := range unmet {
 					if !slices.Contains(left, seq) {
 						delete(p.damaged, seq)
+						delete(p.damageLogged, seq)
 						p.log.Info("outbox row no longer found damaged", "seq", seq, "published", true)
 					}
 				}

@@ -122,6 +122,9 @@ func TestRelayDamageReportHoldsForRowsOtherReplicasLock(t *testing.T) {
 	if len(p.damaged) != 0 || !strings.Contains(logs.String(), "no longer found damaged") {
 		t.Errorf("after row 7 was published: damaged %v, logs\n%s\nwant it cleared and logged", p.damaged, logs.String())
 	}
+	if len(p.damageLogged) != 0 {
+		t.Errorf("damageLogged %v after the row cleared: want it bounded by the rows reported", p.damageLogged)
+	}
 }
 
 // passStore answers relay calls from a script: each call marks and holds
