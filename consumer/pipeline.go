@@ -67,11 +67,14 @@ type Pipeline struct {
 	// nanoseconds, 0 while it works) and relayErr its last error.
 	relayFailSince atomic.Int64
 	relayErr       atomic.Value // string
+	// relayMu serialises relayAll: the relay loop and the final flush of
+	// Run (which begins only after the loop has stopped) must never run
+	// passes at once, and it guards damaged and damageLogged.
+	relayMu sync.Mutex
 	// damaged holds the outbox rows whose stored payload the relay found
-	// damaged (seq to reason), as of its last complete pass; only the
-	// relay goroutine uses it. damageLogged are the rows already logged
-	// (once per row while the process runs), outboxDamage the readiness
-	// text ("" when none).
+	// damaged (seq to reason), as of its last complete pass.
+	// damageLogged are the rows already logged (once per row while the
+	// process runs), outboxDamage the readiness text ("" when none).
 	damaged      map[int64]string
 	damageLogged map[int64]bool
 	outboxDamage atomic.Value // string
@@ -229,8 +232,8 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	}
 	p.started = time.Now()
 	relayCtx, stopRelay := context.WithCancel(context.WithoutCancel(ctx))
-	var wg sync.WaitGroup
-	wg.Go(func() { p.relayLoop(relayCtx) })
+	var wg, relay sync.WaitGroup
+	relay.Go(func() { p.relayLoop(relayCtx) })
 	wg.Go(func() { p.watchdog(ctx) })
 	var fresh sync.WaitGroup
 	if p.cfg.FreshAge >= 0 {
@@ -243,13 +246,17 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	fresh.Wait()
 	p.setFreshActive(false)
 
-	// Input is settled; publish what it produced before stopping, bounded
-	// so that a dead NATS cannot hold shutdown forever (the outbox keeps
-	// the rest for the next start).
+	// Input is settled: stop the relay loop (the last commits may have
+	// kicked it) and wait for it, then publish what the input produced
+	// before stopping, bounded so that a dead NATS cannot hold shutdown
+	// forever (the outbox keeps the rest for the next start). A pass the
+	// loop had begun is cut short; rows it published and did not mark are
+	// published again by the flush, which the stream drops as repeats.
+	stopRelay()
+	relay.Wait()
 	flushCtx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 10*time.Second)
 	p.relayAll(flushCtx)
 	cancel()
-	stopRelay()
 	wg.Wait()
 	p.active.Store(false)
 	return nil

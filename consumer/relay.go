@@ -45,13 +45,23 @@ func (p *Pipeline) relayLoop(ctx context.Context) {
 // that it neither backs the relay off for every other row nor is lost.
 // The backlog gauge is kept true meanwhile.
 func (p *Pipeline) relayAll(ctx context.Context) {
+	p.relayMu.Lock()
+	defer p.relayMu.Unlock()
 	failures := 0
 	for ctx.Err() == nil {
 		pass := p.relayPass(ctx)
 		p.updateBacklog(ctx)
-		p.noteDamage(pass)
+		p.noteDamage(ctx, pass)
 		if pass.err == nil {
 			p.relayFailing(nil)
+			if pass.marked > 0 && pass.held > 0 {
+				// A version held behind one this pass published (by
+				// another relay, or on an earlier page) may go now: pass
+				// again rather than wait for the next kick. A pass that
+				// publishes nothing ends it, so damaged and held rows
+				// alone never keep it busy.
+				continue
+			}
 			return
 		}
 		failures++
@@ -67,24 +77,33 @@ func (p *Pipeline) relayAll(ctx context.Context) {
 type relayPassResult struct {
 	err      error        // the last failure (not damage), nil when none
 	damaged  []SkippedRow // rows whose stored payload is damaged
+	checked  []int64      // rows claimed whose stored payload passed the check
 	held     int          // rows held behind an unpublished earlier version
+	marked   int          // rows marked published
 	complete bool         // the pass reached the end of the outbox
 }
 
 // relayPass publishes the outbox once, page by page. Ordering is kept per
-// derivation (a resource's version chain): once a version is not
-// published in this pass (damaged, not checked, not acknowledged), no
-// later version of that derivation is, also on later pages, so that a
-// receiver never gets version 2 and then, after a repair, version 1 as
-// the latest. Other derivations, of the same patient too, go on: they
-// are other resources, and holding a patient's every output behind one
-// damaged row would stall that patient's values with no gain in order.
+// derivation (a resource's version chain: its message id without
+// "/_history/N", so a version's Observation and its Provenance are two
+// chains): once a version is not published in this pass (damaged, not
+// checked, not acknowledged), no later version of that chain is handed to
+// NATS in it, also on later pages. Across replicas the store keeps it: a
+// claimed row waits while the previous version of its derivation is
+// unpublished outside the claim (a row another replica holds locked, which
+// SKIP LOCKED passed), and is returned as held. It is not kept inside one
+// batch: publishBatch sends a page's rows together, so when version 1's
+// acknowledgement fails version 2 is not marked but may be in the stream
+// already (it is sent again after version 1). Other derivations, of the same patient too, go on:
+// they are other resources, and holding a patient's every output behind
+// one damaged row would stall that patient's values with no gain in order.
 func (p *Pipeline) relayPass(ctx context.Context) relayPassResult {
 	var r relayPassResult
 	held := map[string]bool{}
 	publish := func(ctx context.Context, msgs []OutboxMessage) ([]int64, error) {
 		send := make([]OutboxMessage, 0, len(msgs))
 		for _, m := range msgs {
+			r.checked = append(r.checked, m.Seq) // the store hands only checked rows
 			if held[derivationOf(m.MsgID)] {
 				r.held++
 				continue
@@ -110,6 +129,7 @@ func (p *Pipeline) relayPass(ctx context.Context) relayPassResult {
 	for ctx.Err() == nil {
 		res, err := p.store.RelayOutboxFrom(ctx, after, relayBatch, publish)
 		p.metrics.Published.Add(float64(res.Marked))
+		r.marked += res.Marked
 		for _, s := range res.Skipped {
 			held[derivationOf(s.MsgID)] = true
 			switch {
@@ -139,28 +159,53 @@ func (p *Pipeline) relayPass(ctx context.Context) relayPassResult {
 	return r
 }
 
-// noteDamage reports the damaged rows a pass met: each logged once, with
-// its sequence number and what is wrong (never its bytes), the gauges set,
-// and the readiness text of Degraded. A complete pass replaces what
-// earlier passes found (a repaired row drops out); one cut short by a
-// store failure only adds to it.
-func (p *Pipeline) noteDamage(r relayPassResult) {
+// noteDamage reports the damaged rows a pass met (relayMu held): each
+// logged once, with its sequence number and what is wrong (never its
+// bytes), the gauges set, and the readiness text of Degraded. A row leaves
+// the report only when this replica claimed it and it passed the check, or
+// it is found published: a complete pass that did not meet a reported row
+// says nothing about it, since another replica may hold it locked (SKIP
+// LOCKED) and that pass skipped it. A row the store cannot be asked about
+// now stays reported.
+func (p *Pipeline) noteDamage(ctx context.Context, r relayPassResult) {
 	if p.damaged == nil {
 		p.damaged, p.damageLogged = map[int64]string{}, map[int64]bool{}
 	}
-	found := map[int64]string{}
-	for _, d := range r.damaged {
-		found[d.Seq] = boundText(d.Err.Error(), 300)
+	for _, seq := range r.checked {
+		if _, was := p.damaged[seq]; was {
+			delete(p.damaged, seq)
+			delete(p.damageLogged, seq) // bounded by the rows reported
+			p.log.Info("outbox row no longer found damaged", "seq", seq)
+		}
 	}
 	if r.complete {
-		for seq := range p.damaged {
-			if _, still := found[seq]; !still {
-				p.log.Info("outbox row no longer found damaged", "seq", seq)
+		found := map[int64]bool{}
+		for _, d := range r.damaged {
+			found[d.Seq] = true
+		}
+		var unmet []int64
+		for _, seq := range slices.Sorted(maps.Keys(p.damaged)) {
+			if !found[seq] {
+				unmet = append(unmet, seq)
 			}
 		}
-		p.damaged = found
-	} else {
-		maps.Copy(p.damaged, found)
+		if len(unmet) > 0 {
+			qctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
+			left, err := p.store.OutboxUnpublished(qctx, unmet)
+			cancel()
+			if err == nil {
+				for _, seq := range unmet {
+					if !slices.Contains(left, seq) {
+						delete(p.damaged, seq)
+						delete(p.damageLogged, seq)
+						p.log.Info("outbox row no longer found damaged", "seq", seq, "published", true)
+					}
+				}
+			}
+		}
+	}
+	for _, d := range r.damaged {
+		p.damaged[d.Seq] = boundText(d.Err.Error(), 300)
 	}
 	for _, seq := range slices.Sorted(maps.Keys(p.damaged)) {
 		if !p.damageLogged[seq] {

@@ -34,6 +34,10 @@ type Store interface {
 	// OutboxBacklog counts unpublished outbox rows.
 	OutboxBacklog(ctx context.Context) (int64, error)
 
+	// OutboxUnpublished returns those of seqs that are outbox rows not
+	// yet published, in order.
+	OutboxUnpublished(ctx context.Context, seqs []int64) ([]int64, error)
+
 	// Ping reports whether the store is reachable.
 	Ping(ctx context.Context) error
 }
