@@ -66,17 +66,9 @@ const (
 // storedCodec decodes with every dictionary dictSQL returns (id,
 // dictionary rows), each checked to hold the dictionary of its ID.
 func storedCodec(ctx context.Context, q querier, dictSQL string) (*rawcodec.Codec, error) {
-	rows, err := q.Query(ctx, dictSQL)
+	ds, err := readDictionaryRows(ctx, q, dictSQL)
 	if err != nil {
-		return nil, fmt.Errorf("read dictionaries: %w", err)
-	}
-	type dict struct {
-		ID         int64
-		Dictionary []byte
-	}
-	ds, err := pgx.CollectRows(rows, pgx.RowToStructByPos[dict])
-	if err != nil {
-		return nil, fmt.Errorf("read dictionaries: %w", err)
+		return nil, err
 	}
 	if len(ds) == 0 {
 		return nil, errors.New("read dictionaries: none stored in raw_dictionary (run ventderive migrate)")
@@ -89,6 +81,27 @@ func storedCodec(ctx context.Context, q querier, dictSQL string) (*rawcodec.Code
 		all = append(all, d.Dictionary)
 	}
 	return rawcodec.New(all[0], all[1:]...)
+}
+
+// dictionaryRow is one (id, dictionary) row of raw_dictionary or
+// review_dictionary, as stored: not yet checked to hold the dictionary of
+// its ID.
+type dictionaryRow struct {
+	ID         int64
+	Dictionary []byte
+}
+
+// readDictionaryRows reads the (id, dictionary) rows dictSQL returns.
+func readDictionaryRows(ctx context.Context, q querier, dictSQL string) ([]dictionaryRow, error) {
+	rows, err := q.Query(ctx, dictSQL)
+	if err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	ds, err := pgx.CollectRows(rows, pgx.RowToStructByPos[dictionaryRow])
+	if err != nil {
+		return nil, fmt.Errorf("read dictionaries: %w", err)
+	}
+	return ds, nil
 }
 
 // decodePublished returns the exact bytes of a stored outbox payload and
@@ -122,17 +135,9 @@ type dictionarySet struct {
 // error is a failure to read them at all (no table, no right, the
 // connection): no frame it would decode is judged then.
 func loadDictionaries(ctx context.Context, q querier, dictSQL, table string) (*dictionarySet, error) {
-	rows, err := q.Query(ctx, dictSQL)
+	ds, err := readDictionaryRows(ctx, q, dictSQL)
 	if err != nil {
-		return nil, fmt.Errorf("read dictionaries: %w", err)
-	}
-	type dict struct {
-		ID         int64
-		Dictionary []byte
-	}
-	ds, err := pgx.CollectRows(rows, pgx.RowToStructByPos[dict])
-	if err != nil {
-		return nil, fmt.Errorf("read dictionaries: %w", err)
+		return nil, err
 	}
 	set := &dictionarySet{codecs: map[int64]*rawcodec.Codec{}, bad: map[int64]string{}, table: table}
 	for _, d := range ds {
