@@ -8,7 +8,6 @@ import (
 	"errors"
 	"fmt"
 	"math"
-	"os"
 	"runtime"
 	"slices"
 	"sync"
@@ -380,7 +379,7 @@ func (b *bench) historyDays(ctx context.Context) ([]historyPoint, error) {
 		// stderr as soon as it is measured, so that a run stopped early
 		// still shows the sizes it reached (the table on stdout follows
 		// at the end).
-		fmt.Fprintf(os.Stderr, "history: %d days, %d inputs stored, built at %.0f inputs/s, %.0f bytes/input, CPU+PG us/input empty %.0f, history %.0f, ratio %.2f\n",
+		fmt.Fprintf(b.e.stderr, "history: %d days, %d inputs stored, built at %.0f inputs/s, %.0f bytes/input, CPU+PG us/input empty %.0f, history %.0f, ratio %.2f\n",
 			p.days, p.stored, p.buildPerSec, p.st.perInput(p.st.total), p.empty.cpuUS+p.empty.serverUS, p.history.cpuUS+p.history.serverUS, p.ratio())
 	}
 	b.reportHistory(points, float64(buildN)/buildTime.Seconds())
